@@ -1,0 +1,389 @@
+"""The hidden truth of a simulated chip, loaded from a device file (TOML).
+
+A device file is what only the simulator knows: true couplings with their phases
+and delays, relaxation, readout errors, drift and electronics jitter. The chip file
+a lab would write (nominal frequencies, line gains, limits) is derived from it by
+:meth:`DeviceSpec.chip`.
+
+Device file, field by field::
+
+    format = "xtalkcal-simdevice"
+    version = 1
+    name = "grid9-demo"
+    seed = 20261201            # seeds readout sampling, jitter and drift
+    levels = 3                 # transmon levels kept per qubit (≥ 2)
+    repetition_us = 100.0      # time between shot starts
+
+    [electronics]              # per-line, shot-to-shot imperfections of every tone
+    amplitude_jitter = 5e-4    # relative amplitude, standard deviation
+    phase_jitter_rad = 1e-3    # phase, standard deviation
+    jitter_groups = 1          # independent jitter draws per timeline (shots split evenly)
+
+    [drift]                    # all optional; omit the table for a drift-free device
+    phase_diffusion_rad2_per_hour = 1e-4   # random walk of every coupling phase
+    phase_rate_rad_per_hour = 0.0          # default linear phase drift of every coupling
+    log_magnitude_diffusion_per_hour = 1e-5
+    qubit_wander_mhz = 0.02                # stationary std of each f01 (Ornstein-Uhlenbeck)
+    qubit_wander_hours = 2.0               # its correlation time
+
+    [limits]                   # the lab's limits, copied into the derived chip file
+    max_amplitude = 0.9
+
+    [[qubits]]
+    name = "q0"
+    f01_ghz = 4.85             # either f01_ghz + anharmonicity_ghz (Duffing levels)
+    anharmonicity_ghz = -0.21
+    # ej_ghz = 15.0            # or ej_ghz + ec_ghz (charge-basis diagonalisation)
+    # ec_ghz = 0.22
+    t1_us = 60.0
+    t2_us = 45.0
+    readout = [[0.98, 0.02, 0.0], [0.04, 0.95, 0.01], [0.02, 0.06, 0.92]]  # P(assigned|level)
+
+    [[lines]]
+    name = "d0"
+    qubit = "q0"
+    rabi_mhz = 40.0            # true Rabi frequency on its own qubit at amplitude 1
+    max_amplitude = 0.8
+    full_scale_dbm = -20.0     # optional
+    self_delay_ns = 0.0        # gentle frequency response of the line at its own qubit
+    self_slope_db_per_ghz = 0.0
+
+    [[couplings]]              # leak of a line onto another qubit
+    line = "d1"
+    qubit = "q0"
+    crosstalk_db = -28.0       # |X| at the victim's f01, relative to the victim's own line
+    phase_deg = 35.0           # arg X at the victim's f01
+    delay_ns = 1.5             # extra delay of the leak path: arg X(f) = phase − 2π(f − f01)·delay
+    phase_rate_rad_per_hour = 0.0   # optional, overrides the drift default for this pair
+
+Unlisted (line, qubit) pairs do not couple.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
+from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits
+from xtalkcal.exceptions import ConfigError
+from xtalkcal.tomlfields import Fields, load_toml
+
+__all__ = [
+    "QubitTruth",
+    "LineTruth",
+    "CouplingTruth",
+    "DriftParams",
+    "DeviceSpec",
+    "load_device",
+    "device_from_dict",
+]
+
+DEVICE_FORMAT = "xtalkcal-simdevice"
+DEVICE_VERSION = 1
+HOUR_S = 3600.0
+
+
+@dataclass(frozen=True)
+class QubitTruth:
+    """True parameters of one transmon."""
+
+    name: str
+    levels: TransmonLevels
+    t1_us: float
+    t2_us: float
+    readout: np.ndarray  # (L_assign, L_assign) P(assigned | level), rows sum to 1
+    ej_ghz: float | None = None
+    ec_ghz: float | None = None
+
+    @property
+    def f01_ghz(self) -> float:
+        return float(self.levels.energies_ghz[1])
+
+    @property
+    def f12_ghz(self) -> float:
+        e = self.levels.energies_ghz
+        return float(e[2] - e[1])
+
+
+@dataclass(frozen=True)
+class LineTruth:
+    """True gain and own-qubit frequency response of a line."""
+
+    name: str
+    qubit: str
+    rabi_mhz: float
+    max_amplitude: float
+    full_scale_dbm: float | None
+    self_delay_ns: float = 0.0
+    self_slope_db_per_ghz: float = 0.0
+
+
+@dataclass(frozen=True)
+class CouplingTruth:
+    """Leak of ``line`` onto ``qubit``, as the crosstalk element X at the victim's f01."""
+
+    line: str
+    qubit: str
+    crosstalk_db: float
+    phase_rad: float
+    delay_ns: float
+    phase_rate_rad_per_hour: float | None = None
+
+
+@dataclass(frozen=True)
+class DriftParams:
+    """Drift of the hidden parameters (all zero: a drift-free device)."""
+
+    phase_diffusion_rad2_per_hour: float = 0.0
+    phase_rate_rad_per_hour: float = 0.0
+    log_magnitude_diffusion_per_hour: float = 0.0
+    qubit_wander_mhz: float = 0.0
+    qubit_wander_hours: float = 1.0
+
+    @property
+    def enabled(self) -> bool:
+        return any(
+            v != 0.0
+            for v in (
+                self.phase_diffusion_rad2_per_hour,
+                self.phase_rate_rad_per_hour,
+                self.log_magnitude_diffusion_per_hour,
+                self.qubit_wander_mhz,
+            )
+        )
+
+
+@dataclass(frozen=True)
+class DeviceSpec:
+    """Everything the simulator knows about a chip."""
+
+    name: str
+    seed: int
+    n_levels: int
+    repetition_us: float
+    qubits: tuple[QubitTruth, ...]
+    lines: tuple[LineTruth, ...]
+    couplings: tuple[CouplingTruth, ...]
+    limits: SafetyLimits
+    amplitude_jitter: float = 5e-4
+    phase_jitter_rad: float = 1e-3
+    jitter_groups: int = 1
+    drift: DriftParams = field(default_factory=DriftParams)
+    source: str = "<memory>"
+
+    # ------------------------------------------------------------------ lookups
+    def qubit(self, name: str) -> QubitTruth:
+        for q in self.qubits:
+            if q.name == name:
+                return q
+        raise KeyError(name)
+
+    def line(self, name: str) -> LineTruth:
+        for ln in self.lines:
+            if ln.name == name:
+                return ln
+        raise KeyError(name)
+
+    def line_of(self, qubit: str) -> LineTruth:
+        for ln in self.lines:
+            if ln.qubit == qubit:
+                return ln
+        raise KeyError(qubit)
+
+    def coupling(self, line: str, qubit: str) -> CouplingTruth | None:
+        for c in self.couplings:
+            if c.line == line and c.qubit == qubit:
+                return c
+        return None
+
+    def chip(self) -> Chip:
+        """The chip file a lab would have: nominal values only, no hidden truth."""
+        return Chip(
+            name=self.name,
+            qubits=tuple(
+                Qubit(
+                    q.name,
+                    round(q.f01_ghz, 6),
+                    round(q.f12_ghz - q.f01_ghz, 6),
+                    round(q.f12_ghz, 6),
+                    q.t1_us,
+                    q.t2_us,
+                )
+                for q in self.qubits
+            ),
+            lines=tuple(
+                DriveLine(ln.name, ln.qubit, ln.rabi_mhz, ln.max_amplitude, ln.full_scale_dbm)
+                for ln in self.lines
+            ),
+            readout_groups=(tuple(q.name for q in self.qubits),),
+            limits=self.limits,
+            source=f"derived from {self.source}",
+        )
+
+
+def load_device(path: str | Path) -> DeviceSpec:
+    """Load and validate a device file (ConfigError names the file and field)."""
+    data, source = load_toml(path)
+    return device_from_dict(data, source=source)
+
+
+def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> DeviceSpec:
+    """Validate a device given as a TOML-shaped dictionary."""
+    top = Fields(data, source)
+    fmt = top.string("format", DEVICE_FORMAT)
+    if fmt != DEVICE_FORMAT:
+        raise top.error("format", f"expected {DEVICE_FORMAT!r} (is this a chip file?)")
+    top.integer("version", DEVICE_VERSION, lo=1, hi=DEVICE_VERSION)
+    name = top.string("name")
+    seed = top.integer("seed", 0, lo=0)
+    n_levels = top.integer("levels", 3, lo=2, hi=8)
+    rep = top.number("repetition_us", 100.0, lo=0.1, hi=1e5, unit="µs")
+
+    el = top.table("electronics", None)
+    amp_j = el.number("amplitude_jitter", 5e-4, lo=0.0, hi=0.1)
+    ph_j = el.number("phase_jitter_rad", 1e-3, lo=0.0, hi=0.5, unit="rad")
+    groups = el.integer("jitter_groups", 1, lo=1, hi=1000)
+    el.reject_unknown()
+
+    dr = top.table("drift", None)
+    drift = DriftParams(
+        phase_diffusion_rad2_per_hour=dr.number("phase_diffusion_rad2_per_hour", 0.0, lo=0.0),
+        phase_rate_rad_per_hour=dr.number("phase_rate_rad_per_hour", 0.0),
+        log_magnitude_diffusion_per_hour=dr.number("log_magnitude_diffusion_per_hour", 0.0, lo=0.0),
+        qubit_wander_mhz=dr.number("qubit_wander_mhz", 0.0, lo=0.0, hi=100.0, unit="MHz"),
+        qubit_wander_hours=dr.number("qubit_wander_hours", 1.0, lo=0.0, lo_open=True, unit="h"),
+    )
+    dr.reject_unknown()
+
+    lim = top.table("limits", None)
+    limits = SafetyLimits(
+        max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
+        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=-200.0, hi=40.0),
+    )
+    lim.reject_unknown()
+
+    qubits: list[QubitTruth] = []
+    qtabs = top.tables("qubits")
+    if not qtabs:
+        raise top.error("qubits", "at least one [[qubits]] block is required")
+    for qt in qtabs:
+        qname = qt.string("name")
+        if any(q.name == qname for q in qubits):
+            raise qt.error("name", f"duplicate qubit name {qname!r}")
+        has_duffing = "f01_ghz" in qt.data or "anharmonicity_ghz" in qt.data
+        has_charge = "ej_ghz" in qt.data or "ec_ghz" in qt.data
+        if has_duffing == has_charge:
+            raise qt.error(
+                "f01_ghz",
+                "give either f01_ghz + anharmonicity_ghz (Duffing) or ej_ghz + ec_ghz "
+                "(charge basis), not both and not neither",
+            )
+        ej = ec = None
+        if has_duffing:
+            f01 = qt.number("f01_ghz", lo=0.5, hi=20.0, unit="GHz")
+            alpha = qt.number("anharmonicity_ghz", lo=-1.0, hi=0.0, hi_open=True, unit="GHz")
+            levels = duffing_levels(f01, alpha, n_levels)
+        else:
+            ej = qt.number("ej_ghz", lo=0.1, hi=500.0, unit="GHz")
+            ec = qt.number("ec_ghz", lo=0.01, hi=5.0, unit="GHz")
+            if ej / ec < 10:
+                raise qt.error("ej_ghz", f"EJ/EC = {ej / ec:.3g} < 10 is not a transmon")
+            levels = charge_basis_levels(ej, ec, n_levels=n_levels)
+        t1 = qt.number("t1_us", lo=0.0, lo_open=True, unit="µs")
+        t2 = qt.number("t2_us", lo=0.0, lo_open=True, unit="µs")
+        if t2 > 2 * t1 * (1 + 1e-12):
+            raise qt.error("t2_us", f"T2 = {t2:g} µs exceeds 2·T1 = {2 * t1:g} µs (unphysical)")
+        ro = qt.matrix("readout", None)
+        if ro is None:
+            ro_arr = np.eye(min(n_levels, 3))
+        else:
+            ro_arr = np.asarray(ro, float)
+            if ro_arr.shape[0] != ro_arr.shape[1] or ro_arr.shape[0] < 2:
+                raise qt.error("readout", f"expected a square matrix, got shape {ro_arr.shape}")
+            if np.any(ro_arr < 0) or np.any(np.abs(ro_arr.sum(axis=1) - 1) > 1e-6):
+                raise qt.error(
+                    "readout",
+                    "rows are P(assigned | level): entries ≥ 0 and each row summing to 1",
+                )
+            if ro_arr.shape[0] > n_levels:
+                raise qt.error(
+                    "readout", f"{ro_arr.shape[0]} rows but only levels = {n_levels} are simulated"
+                )
+        qt.reject_unknown()
+        qubits.append(QubitTruth(qname, levels, t1, t2, ro_arr, ej, ec))
+    qnames = [q.name for q in qubits]
+
+    lines: list[LineTruth] = []
+    for lt in top.tables("lines"):
+        lname = lt.string("name")
+        if any(ln.name == lname for ln in lines):
+            raise lt.error("name", f"duplicate line name {lname!r}")
+        target = lt.string("qubit")
+        if target not in qnames:
+            raise lt.error("qubit", f"{target!r} is not a qubit; known: {', '.join(qnames)}")
+        if any(ln.qubit == target for ln in lines):
+            raise lt.error("qubit", f"qubit {target!r} already has a drive line")
+        lines.append(
+            LineTruth(
+                lname,
+                target,
+                lt.number("rabi_mhz", lo=1e-3, hi=1000.0, unit="MHz"),
+                lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
+                lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm"),
+                lt.number("self_delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
+                lt.number("self_slope_db_per_ghz", 0.0, lo=-60.0, hi=60.0, unit="dB/GHz"),
+            )
+        )
+        lt.reject_unknown()
+    missing = [q for q in qnames if not any(ln.qubit == q for ln in lines)]
+    if missing:
+        raise top.error("lines", f"qubit(s) {', '.join(missing)} have no drive line")
+    lnames = [ln.name for ln in lines]
+
+    couplings: list[CouplingTruth] = []
+    for ct in top.tables("couplings", None):
+        line = ct.string("line")
+        if line not in lnames:
+            raise ct.error("line", f"{line!r} is not a line; known: {', '.join(lnames)}")
+        qubit = ct.string("qubit")
+        if qubit not in qnames:
+            raise ct.error("qubit", f"{qubit!r} is not a qubit; known: {', '.join(qnames)}")
+        if next(ln for ln in lines if ln.name == line).qubit == qubit:
+            raise ct.error("qubit", "a line's coupling to its own qubit is set by rabi_mhz")
+        if any(c.line == line and c.qubit == qubit for c in couplings):
+            raise ct.error("qubit", f"coupling {line} → {qubit} is listed twice")
+        couplings.append(
+            CouplingTruth(
+                line,
+                qubit,
+                ct.number("crosstalk_db", lo=-150.0, hi=0.0, unit="dB"),
+                math.radians(ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")),
+                ct.number("delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
+                ct.number("phase_rate_rad_per_hour", None),
+            )
+        )
+        ct.reject_unknown()
+    top.reject_unknown()
+    if not top.data.get("qubits"):
+        raise ConfigError(source, "qubits", "empty")
+    return DeviceSpec(
+        name=name,
+        seed=seed,
+        n_levels=n_levels,
+        repetition_us=rep,
+        qubits=tuple(qubits),
+        lines=tuple(lines),
+        couplings=tuple(couplings),
+        limits=limits,
+        amplitude_jitter=amp_j,
+        phase_jitter_rad=ph_j,
+        jitter_groups=groups,
+        drift=drift,
+        source=source,
+    )
