@@ -1,0 +1,141 @@
+"""The ``xtalkcal`` command line: a thin shell over the library.
+
+User mistakes (bad files, limits exceeded, unknown names) print one line naming
+the file and field and exit with status 2; a calibration whose fits are rejected
+exits with status 1; success is 0. No traceback is shown unless ``--debug``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from xtalkcal import __version__
+from xtalkcal.exceptions import XtalkcalError
+
+__all__ = ["main"]
+
+log = logging.getLogger(__name__)
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+_COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {}
+
+
+def _command(name: str):
+    def deco(fn):
+        _COMMANDS[name] = fn
+        return fn
+
+    return deco
+
+
+def _detect_format(path: str) -> str:
+    from xtalkcal.tomlfields import load_toml
+
+    data, _ = load_toml(path)
+    return str(data.get("format", ""))
+
+
+@_command("check")
+def _cmd_check(args: argparse.Namespace) -> int:
+    from xtalkcal.chip import load_chip
+
+    for path in args.files:
+        fmt = _detect_format(path)
+        if fmt == "xtalkcal-simdevice":
+            from simulated_device.device import load_device
+
+            dev = load_device(path)
+            print(f"{path}: simulated device {dev.name!r}: {len(dev.qubits)} qubits, "
+                  f"{len(dev.couplings)} couplings — OK")
+        elif fmt == "xtalkcal-protocol":
+            from xtalkcal.protocol import load_protocol
+
+            proto = load_protocol(path)
+            print(f"{path}: protocol {proto.name!r} — OK")
+        else:
+            chip = load_chip(path)
+            print(f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
+                  f"{len(chip.lines)} lines — OK")
+    return EXIT_OK
+
+
+@_command("export-chip")
+def _cmd_export_chip(args: argparse.Namespace) -> int:
+    import tomli_w
+
+    from simulated_device.device import load_device
+
+    dev = load_device(args.device)
+    text = tomli_w.dumps(dev.chip().to_dict())
+    header = (f"# Chip file derived from the simulated device {args.device}:\n"
+              "# nominal values only, as a lab would know them.\n")
+    _atomic_write(Path(args.output), header + text)
+    print(f"wrote {args.output}")
+    return EXIT_OK
+
+
+def _atomic_write(path: Path, text: str) -> None:
+    """Write a text file so that a crash never leaves a half-written one."""
+    import os
+    import tempfile
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser (exposed for documentation and tests)."""
+    p = argparse.ArgumentParser(
+        prog="xtalkcal",
+        description="Measure, cancel and track microwave drive crosstalk on transmon chips.",
+    )
+    p.add_argument("--version", action="version", version=f"xtalkcal {__version__}")
+    p.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    c = sub.add_parser("check", help="validate chip, device or protocol files")
+    c.add_argument("files", nargs="+", help="TOML files to validate")
+
+    e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")
+    e.add_argument("device", help="simulated device file (TOML)")
+    e.add_argument("-o", "--output", required=True, help="chip file to write")
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``xtalkcal`` command."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+                        format="%(levelname)s %(name)s: %(message)s")
+    if not args.command:
+        parser.print_help()
+        return EXIT_USAGE
+    try:
+        return _COMMANDS[args.command](args)
+    except XtalkcalError as exc:
+        if args.debug:
+            raise
+        print(f"xtalkcal: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        print("xtalkcal: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
