@@ -1,0 +1,50 @@
+"""The CLI: help, version, one-line errors without traceback, atomic file output."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+from simulated_device import demo_device_path
+from xtalkcal.cli import main
+
+
+def test_help_and_version(capsys):
+    assert main([]) == 2
+    out = capsys.readouterr().out
+    assert "check" in out and "export-chip" in out
+
+
+def test_version_via_subprocess():
+    r = subprocess.run([sys.executable, "-m", "xtalkcal.cli", "--version"],
+                       capture_output=True, text=True)
+    assert r.returncode == 0 and r.stdout.startswith("xtalkcal ")
+
+
+def test_bad_file_gives_one_line_and_exit_2(tmp_path, capsys):
+    p = tmp_path / "chip.toml"
+    p.write_text('name = "x"\n[[qubits]]\nname = "a"\nf01_ghz = 5000\nanharmonicity_ghz = -0.2\n')
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    assert "chip.toml" in err and "qubits[0].f01_ghz" in err and "accepted" in err
+
+
+def test_bad_device_file_one_line(tmp_path, capsys):
+    text = open(demo_device_path()).read().replace("crosstalk_db = -", "crosstalk_db = ", 1)
+    p = tmp_path / "dev.toml"
+    p.write_text(text)
+    assert main(["check", str(p)]) == 2
+    err = capsys.readouterr().err
+    assert "couplings[0].crosstalk_db" in err and err.count("\n") == 1
+
+
+def test_export_chip_matches_device(tmp_path, capsys, demo_device):
+    out = tmp_path / "sub" / "chip.toml"
+    assert main(["export-chip", demo_device_path(), "-o", str(out)]) == 0
+    assert main(["check", str(out)]) == 0
+    from xtalkcal.chip import load_chip
+
+    chip = load_chip(out)
+    assert chip.qubits == demo_device.chip().qubits
+    assert [p.name for p in out.parent.iterdir()] == ["chip.toml"]  # no temp file left
