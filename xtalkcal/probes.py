@@ -1,0 +1,365 @@
+"""Measurement methods: timelines for one aggressor and its victims, and their error signals.
+
+One *column probe* plays a train of K identical aggressor pulses on line j at its
+frequency f_j; every victim i of the column gets, in the same shots, a cancellation
+tone on its own line: the same envelope at f_j with complex amplitude z_i = a·e^{iφ}
+(fraction of full scale). The field at victim i is then w_i = u_i + v_i·z_i, and each
+method turns it into an isolated error signal that depends on |w_i| only:
+
+``leakage``
+    victim prepared in |1⟩ by a π pulse; signal P(2). Used when f_j lies within
+    ``leakage_window_ghz`` of the victim's 1–2 transition.
+``rotation``
+    victim left in |0⟩; signal P(1). Used when f_j lies within ``rotation_window_ghz``
+    of the victim's 0–1 transition.
+``stark``
+    quadrature Ramsey on the victim (π/2 – train – π/2 at phases 0 and π/2); signal the
+    Ramsey phase minus that of the same sequence without the aggressor (reference
+    timelines in every batch), signed so that it grows with |w|² (AC Stark shift
+    δ = Ω²α/(2Δ(Δ − α)), Δ = f_j − f01, Krantz et al., Appl. Phys. Rev. 6, 021318 (2019)).
+
+Detuning windows: 60 MHz by default for both — about twice the spectral width
+1/(2πσ) of the 8 ns-σ Gaussian pulses used here, beyond which a resonant probe's
+signal falls off quickly (common practice; adjustable in the protocol file).
+
+Amplification: the train repeats the pulse K times with a spacing that makes the
+leaked drive add in phase at the transition the method watches (spacing·|f_j − ν| an
+integer), so the rotation grows like K·|w| and the signal near the null like K²|w|².
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+
+from xtalkcal.chip import Chip
+from xtalkcal.rig import Counts
+from xtalkcal.timeline import Envelope, Timeline, Tone, pulse_area_ns
+
+__all__ = [
+    "Method",
+    "MethodWindows",
+    "choose_method",
+    "PulseShape",
+    "ColumnProbe",
+    "ProbeSignals",
+    "pi_pulse_amplitude",
+]
+
+Method = Literal["leakage", "rotation", "stark"]
+METHODS: tuple[str, ...] = ("leakage", "rotation", "stark")
+
+
+@dataclass(frozen=True)
+class MethodWindows:
+    """Detuning windows (GHz) that pick a method from the frequency plan."""
+
+    leakage_window_ghz: float = 0.06
+    rotation_window_ghz: float = 0.06
+
+
+def choose_method(chip: Chip, aggressor_line: str, victim: str,
+                  windows: MethodWindows = MethodWindows()) -> Method:
+    """The method for a pair, from the chip's frequency plan alone (module docstring)."""
+    f = chip.qubit(chip.line(aggressor_line).qubit).f01_ghz
+    q = chip.qubit(victim)
+    d12, d01 = abs(f - q.f12_ghz), abs(f - q.f01_ghz)
+    if d12 <= windows.leakage_window_ghz and d12 <= d01:
+        return "leakage"
+    if d01 <= windows.rotation_window_ghz:
+        return "rotation"
+    return "stark"
+
+
+@dataclass(frozen=True)
+class PulseShape:
+    """The pulse of the probes: Gaussian of ``sigma_ns``, ``duration_ns`` long."""
+
+    duration_ns: float = 32.0
+    sigma_ns: float = 8.0
+
+    @property
+    def envelope(self) -> Envelope:
+        return Envelope("gaussian", sigma_ns=self.sigma_ns)
+
+    @property
+    def area_ns(self) -> float:
+        return pulse_area_ns(self.envelope, self.duration_ns)
+
+
+def pi_pulse_amplitude(chip: Chip, qubit: str, shape: PulseShape, angle: float = math.pi) -> float:
+    """Amplitude of a rotation by ``angle`` on ``qubit`` from the nominal line gain."""
+    rabi_ghz = chip.line_of(qubit).rabi_mhz * 1e-3
+    return angle / (2 * math.pi * rabi_ghz * shape.area_ns)
+
+
+def _coherent_spacing(duration_ns: float, gap_ns: float, detuning_ghz: float) -> float:
+    """Shortest spacing ≥ duration+gap with spacing·|detuning| an integer."""
+    base = duration_ns + gap_ns
+    d = abs(detuning_ghz)
+    if d * base < 0.05:  # the phase slip per pulse is already tiny
+        return base
+    n = math.ceil(base * d - 1e-9)
+    return n / d
+
+
+@dataclass(frozen=True)
+class ProbeSignals:
+    """Error signals of a batch of probe points.
+
+    Attributes
+    ----------
+    signal, stderr : ndarray (n_points, n_victims)
+        The isolated error signal per victim (probability, or Stark phase in rad) and its
+        standard error.
+    shots : ndarray (n_points, n_victims)
+        Shots behind each value.
+    successes : ndarray (n_points, n_victims)
+        For probability signals: shots counted as the error event (else −1).
+    """
+
+    signal: np.ndarray
+    stderr: np.ndarray
+    shots: np.ndarray
+    successes: np.ndarray
+
+
+@dataclass(frozen=True)
+class ColumnProbe:
+    """Timelines and signals for aggressor line ``aggressor`` and its victims.
+
+    Parameters
+    ----------
+    chip : Chip
+    aggressor : str
+        Aggressor line name.
+    victims : sequence of str
+        Victim qubits, probed in the same shots.
+    methods : sequence of Method, optional
+        Per victim; default from :func:`choose_method`.
+    amplitude : float
+        Peak amplitude of the aggressor pulses (fraction of full scale).
+    repeats : int
+        K, number of aggressor pulses.
+    shape : PulseShape
+    gap_ns : float
+        Minimum idle time between pulses (ns).
+    """
+
+    chip: Chip
+    aggressor: str
+    victims: tuple[str, ...]
+    amplitude: float
+    repeats: int = 1
+    methods: tuple[str, ...] = ()
+    shape: PulseShape = field(default_factory=PulseShape)
+    gap_ns: float = 4.0
+    windows: MethodWindows = field(default_factory=MethodWindows)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "victims", tuple(self.victims))
+        if not self.methods:
+            object.__setattr__(
+                self, "methods",
+                tuple(choose_method(self.chip, self.aggressor, v, self.windows)
+                      for v in self.victims),
+            )
+        if len(self.methods) != len(self.victims):
+            raise ValueError("one method per victim is needed")
+        for m in self.methods:
+            if m not in METHODS:
+                raise ValueError(f"unknown method {m!r}; accepted: {METHODS}")
+        if self.repeats < 1:
+            raise ValueError("repeats must be ≥ 1")
+        own = self.chip.line(self.aggressor).qubit
+        if own in self.victims:
+            raise ValueError(f"the aggressor's own qubit {own} cannot be its victim")
+
+    # ---------------------------------------------------------------- geometry
+    @property
+    def freq_ghz(self) -> float:
+        """The aggressor frequency f_j: its own qubit's f01."""
+        return self.chip.qubit(self.chip.line(self.aggressor).qubit).f01_ghz
+
+    @property
+    def spacing_ns(self) -> float:
+        """Pulse spacing: coherent at the transition of the most sensitive victim."""
+        f = self.freq_ghz
+        best = None
+        for v, m in zip(self.victims, self.methods):
+            q = self.chip.qubit(v)
+            if m == "leakage":
+                best = f - q.f12_ghz
+                break
+            if m == "rotation" and best is None:
+                best = f - q.f01_ghz
+        if best is None:
+            return self.shape.duration_ns + self.gap_ns
+        return _coherent_spacing(self.shape.duration_ns, self.gap_ns, best)
+
+    @property
+    def has_stark(self) -> bool:
+        return "stark" in self.methods
+
+    @property
+    def quadratures(self) -> tuple[float, ...]:
+        return (0.0, math.pi / 2) if self.has_stark else (0.0,)
+
+    def train_start_ns(self) -> float:
+        return self.shape.duration_ns + self.gap_ns
+
+    def duration_ns(self) -> float:
+        """End of the last pulse (readout time)."""
+        t = self.train_start_ns() + (self.repeats - 1) * self.spacing_ns + self.shape.duration_ns
+        return t + self.gap_ns + self.shape.duration_ns
+
+    # ---------------------------------------------------------------- timelines
+    def _prep_and_analysis(self, theta: float) -> tuple[list[Tone], list[Tone]]:
+        chip, shape = self.chip, self.shape
+        env = shape.envelope
+        prep: list[Tone] = []
+        post: list[Tone] = []
+        t_end = self.duration_ns() - shape.duration_ns
+        for v, m in zip(self.victims, self.methods):
+            line = chip.line_of(v).name
+            f01 = chip.qubit(v).f01_ghz
+            if m == "leakage":
+                a = pi_pulse_amplitude(chip, v, shape)
+                prep.append(Tone(line, 0.0, shape.duration_ns, f01, a, 0.0, env))
+            elif m == "stark":
+                a = pi_pulse_amplitude(chip, v, shape, math.pi / 2)
+                prep.append(Tone(line, 0.0, shape.duration_ns, f01, a, 0.0, env))
+                post.append(Tone(line, t_end, shape.duration_ns, f01, a, theta, env))
+        return prep, post
+
+    def timelines(self, z: np.ndarray, *, aggressor_on: bool = True,
+                  label: str = "") -> list[Timeline]:
+        """Timelines for cancellation settings ``z`` (n_points, n_victims), complex.
+
+        Each point yields one timeline per Ramsey quadrature (one or two), ordered
+        point-major. With ``aggressor_on=False`` the aggressor pulses are left out
+        (cancellation tones still play).
+        """
+        z = np.atleast_2d(np.asarray(z, dtype=complex))
+        if z.shape[1] != len(self.victims):
+            raise ValueError(f"z must have {len(self.victims)} columns, got {z.shape}")
+        chip, shape = self.chip, self.shape
+        env = shape.envelope
+        f = self.freq_ghz
+        t0 = self.train_start_ns()
+        dt = self.spacing_ns
+        lines = [chip.line_of(v).name for v in self.victims]
+        readout = tuple(self.victims) + (chip.line(self.aggressor).qubit,)
+        out: list[Timeline] = []
+        for p in range(z.shape[0]):
+            for theta in self.quadratures:
+                prep, post = self._prep_and_analysis(theta)
+                train: list[Tone] = []
+                for k in range(self.repeats):
+                    start = t0 + k * dt
+                    if aggressor_on and self.amplitude > 0:
+                        train.append(Tone(self.aggressor, start, shape.duration_ns, f,
+                                          self.amplitude, 0.0, env))
+                    for line, zz in zip(lines, z[p]):
+                        if zz != 0:
+                            train.append(Tone(line, start, shape.duration_ns, f, abs(zz),
+                                              math.atan2(zz.imag, zz.real), env))
+                out.append(Timeline(tuple(prep + train + post), readout,
+                                    readout_ns=self.duration_ns(),
+                                    label=f"{label}p{p}q{theta:.3f}"))
+        return out
+
+    def reference_timelines(self, label: str = "ref") -> list[Timeline]:
+        """The same sequence with no aggressor and no cancellation (Stark reference)."""
+        return self.timelines(np.zeros((1, len(self.victims))), aggressor_on=False, label=label)
+
+    # ---------------------------------------------------------------- signals
+    def signals(self, counts: Counts, n_points: int,
+                reference: Counts | None = None) -> ProbeSignals:
+        """Error signal per point and victim from the counts of :meth:`timelines`.
+
+        ``reference`` holds the counts of :meth:`reference_timelines` (needed for Stark).
+        """
+        nq = len(self.quadratures)
+        if counts.counts.shape[0] != n_points * nq:
+            raise ValueError("counts do not match the number of points")
+        shots = counts.shots
+        nv = len(self.victims)
+        sig = np.zeros((n_points, nv))
+        err = np.zeros((n_points, nv))
+        nshots = np.zeros((n_points, nv), dtype=np.int64)
+        succ = np.full((n_points, nv), -1, dtype=np.int64)
+        for iv, (v, m) in enumerate(zip(self.victims, self.methods)):
+            c = counts.of(v).reshape(n_points, nq, -1)
+            if m in ("leakage", "rotation"):
+                level = 2 if m == "leakage" else 1
+                k = c[:, :, level].sum(axis=1)
+                n = shots * nq
+                p = k / n
+                sig[:, iv] = p
+                # standard error with a pseudo-count so that p = 0 still has a width
+                pp = (k + 0.5) / (n + 1.0)
+                err[:, iv] = np.sqrt(pp * (1 - pp) / n)
+                nshots[:, iv] = n
+                succ[:, iv] = k
+            else:
+                if reference is None:
+                    raise ValueError("the Stark method needs the reference counts")
+                phi, dphi = _ramsey_phase(c, shots)
+                r = reference.of(v).reshape(1, nq, -1)
+                phi0, dphi0 = _ramsey_phase(r, reference.shots)
+                d = np.angle(np.exp(1j * (phi - phi0)))
+                sign = self._stark_sign(v)
+                sig[:, iv] = sign * d
+                err[:, iv] = np.sqrt(dphi**2 + dphi0**2)
+                nshots[:, iv] = shots * nq
+        return ProbeSignals(sig, err, nshots, succ)
+
+    def _stark_sign(self, victim: str) -> float:
+        """Sign of the Stark shift δ = Ω²α/(2Δ(Δ−α)) times the train's phase convention."""
+        q = self.chip.qubit(victim)
+        delta = self.freq_ghz - q.f01_ghz
+        alpha = q.anharmonicity_ghz
+        s = math.copysign(1.0, alpha / (delta * (delta - alpha)))
+        # A positive frequency shift makes the Ramsey phase measured by _ramsey_phase
+        # decrease (the victim's frame is fixed at its nominal f01), hence the minus.
+        return -s
+
+    def expected_rotation_per_pulse(self, victim: str, crosstalk_db: float) -> float:
+        """Rough rotation (rad) of one aggressor pulse at ``victim`` for a given |X|."""
+        rabi = self.chip.line_of(victim).rabi_mhz * 1e-3
+        lam = math.sqrt(2.0) if dict(zip(self.victims, self.methods))[victim] == "leakage" else 1
+        return 2 * math.pi * lam * rabi * self.amplitude * 10 ** (crosstalk_db / 20) * (
+            self.shape.area_ns)
+
+
+def _ramsey_phase(c: np.ndarray, shots: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ramsey phase (rad) and its standard error from quadrature counts (n, 2, levels).
+
+    P1(θ) = ½(1 − cos(Φ − θ)) for the π/2–wait–π/2(θ) sequence, so with
+    x = 1 − 2·P1(0) = cos Φ and y = 1 − 2·P1(π/2) = sin Φ, Φ = atan2(y, x).
+    """
+    n = float(shots)
+    p0 = c[:, 0, 1:].sum(axis=-1) / n  # anything but |0⟩ counts as "excited"
+    p1 = c[:, 1, 1:].sum(axis=-1) / n
+    x = 1 - 2 * p0
+    y = 1 - 2 * p1
+    phi = np.arctan2(y, x)
+    r2 = np.maximum(x * x + y * y, 1e-6)
+    # Var(x) = 4 p(1-p)/n; propagate through atan2.
+    vx = 4 * np.clip(p0 * (1 - p0), 1e-6, None) / n
+    vy = 4 * np.clip(p1 * (1 - p1), 1e-6, None) / n
+    dphi = np.sqrt((y * y * vx + x * x * vy) / (r2 * r2))
+    return phi, dphi
+
+
+def probe_points(n_victims: int, points: Sequence[Sequence[complex]]) -> np.ndarray:
+    """Stack per-victim point lists (equal lengths) into an (n_points, n_victims) array."""
+    arr = np.array([list(p) for p in points], dtype=complex).T
+    if arr.shape[1] != n_victims:
+        raise ValueError("one list of points per victim is needed")
+    return arr
