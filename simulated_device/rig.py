@@ -15,6 +15,7 @@ single timeline's counts is of order (∂p/∂ξ·σ)², far below shot noise fo
 
 from __future__ import annotations
 
+import hashlib
 import math
 from collections.abc import Sequence
 from pathlib import Path
@@ -59,8 +60,8 @@ class SimRig:
         self.device = device if isinstance(device, DeviceSpec) else load_device(device)
         self._seed = self.device.seed if seed is None else int(seed)
         ss = np.random.SeedSequence(self._seed)
-        shot_seq, drift_seq = ss.spawn(2)
-        self._rng = np.random.default_rng(shot_seq)
+        _, drift_seq = ss.spawn(2)
+        self._repeat_count: dict[int, int] = {}
         self._drift = DeviceDrift(self.device, enabled=drift, rng=np.random.default_rng(drift_seq))
         self._chip = self.device.chip()
         self._t_s = 0.0
@@ -113,7 +114,7 @@ class SimRig:
 
         started = self._t_s
         state = self._drift.at(started)
-        counts = self._simulate(timelines, int(shots), readout, state)
+        counts = self._simulate(timelines, int(shots), readout, state, self._batch_rng(timelines, shots))
         self._t_s += len(timelines) * int(shots) * self.repetition_ns * 1e-9
         self._shots_total += len(timelines) * int(shots)
         return Counts(readout, counts, int(shots), started, self._t_s)
@@ -135,7 +136,20 @@ class SimRig:
             return base
         return base * self._drift.crosstalk(victim, line, f, state)
 
-    def _simulate(self, timelines, shots, readout, state) -> np.ndarray:
+    def _batch_rng(self, timelines: Sequence[Timeline], shots: int) -> np.random.Generator:
+        """Randomness of one batch, from the seed and the batch's content.
+
+        A batch's outcomes then do not depend on what ran before it, so a sweep that is
+        interrupted and resumed (skipping the batches already on disk) reproduces the
+        uninterrupted run exactly. Repeats of an identical batch get fresh draws.
+        """
+        h = hashlib.blake2b(repr((tuple(timelines), int(shots))).encode(), digest_size=8)
+        key = int.from_bytes(h.digest(), "little")
+        n = self._repeat_count.get(key, 0)
+        self._repeat_count[key] = n + 1
+        return np.random.default_rng(np.random.SeedSequence([self._seed, key, n]))
+
+    def _simulate(self, timelines, shots, readout, state, rng) -> np.ndarray:
         dev = self.device
         G = dev.jitter_groups
         R = len(timelines)
@@ -143,8 +157,8 @@ class SimRig:
         n_lines = len(line_names)
         line_index = {n: k for k, n in enumerate(line_names)}
         # Jitter per (timeline, group, line).
-        eps = self._rng.normal(0.0, dev.amplitude_jitter, size=(R, G, n_lines))
-        eta = self._rng.normal(0.0, dev.phase_jitter_rad, size=(R, G, n_lines))
+        eps = rng.normal(0.0, dev.amplitude_jitter, size=(R, G, n_lines))
+        eta = rng.normal(0.0, dev.phase_jitter_rad, size=(R, G, n_lines))
         jit = (1.0 + eps) * np.exp(1j * eta)
 
         M = max((len(tl.tones) for tl in timelines), default=0)
@@ -214,7 +228,7 @@ class SimRig:
             c = np.zeros((R, na), dtype=np.int64)
             for g in range(G):
                 if group_shots[g]:
-                    c += self._rng.multinomial(group_shots[g], p_assigned[:, g, :])
+                    c += rng.multinomial(group_shots[g], p_assigned[:, g, :])
             out[:, iq, :na] = c
         return out
 

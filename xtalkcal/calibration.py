@@ -1,0 +1,322 @@
+"""The whole matrix: risk map, column-parallel survey, column-parallel null search.
+
+Cost grows like the number of aggressor columns, not of pairs: one aggressor train
+disturbs all its victims at once and all qubits are read together, so each column
+is surveyed — and nulled — in the same shots for every victim. Victims whose
+method wants a different amplification (leakage/rotation want few pulses, Stark
+wants a long train) are split into at most two passes of the column.
+
+Survey of a pass: the aggressor train with every victim's cancellation tone on a
+small ring around 0 plus the centre (paraboloid in z, so both |X| and its phase
+come out), and, for Stark victims, the reference without aggressor.
+Null search: rounds of rings around each victim's current estimate, at the radius
+where the signal rises by a set amount above the floor (information grows with the
+radius until the signal saturates), refitted on all points of the pass, until the
+stderr of X reaches the protocol's target or the shot budget is spent.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from xtalkcal.chip import Chip
+from xtalkcal.fit import fit_paraboloid
+from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
+from xtalkcal.protocol import Protocol
+from xtalkcal.rig import Rig
+from xtalkcal.sweep import BatchRunner
+
+__all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "ring_around"]
+
+# Rise of the signal above the floor at which rings are placed: probabilities stay in
+# the near-quadratic part of sin² (< 10 % off), Stark phases well inside ±π/2.
+RISE_PROBABILITY = 0.2
+RISE_STARK_RAD = 0.6
+# Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
+STRONGEST_DB = -20.0
+
+
+@dataclass(frozen=True)
+class PairResult:
+    """What was learnt about one (aggressor line, victim qubit) pair."""
+
+    aggressor: str
+    victim: str
+    method: str
+    freq_ghz: float
+    accepted: bool
+    reason: str
+    x: complex | None  # crosstalk element X (None if rejected)
+    x_cov: np.ndarray | None  # 2×2 covariance of (Re X, Im X)
+    nulled: bool  # above threshold, so a null search ran
+    shots: int
+    repeats: int
+    measured_at_s: float
+    stage: str  # "survey" or "null"
+
+    @property
+    def stderr(self) -> float:
+        """sqrt(trace of the covariance) of X (linear)."""
+        return float(np.sqrt(np.trace(self.x_cov))) if self.x_cov is not None else math.nan
+
+    @property
+    def magnitude_db(self) -> float:
+        return 20 * math.log10(abs(self.x)) if self.x else -math.inf
+
+    @property
+    def ratio(self) -> complex | None:
+        """Compensation ratio r = −X."""
+        return None if self.x is None else -self.x
+
+
+@dataclass
+class CalibrationResult:
+    """Outcome of :func:`calibrate_chip`."""
+
+    chip: Chip
+    protocol: Protocol
+    rig_description: str
+    pairs: list[PairResult] = field(default_factory=list)
+    sweeps: dict[str, xr.Dataset] = field(default_factory=dict)
+    shots: int = 0
+    rig_seconds: float = 0.0
+    risk: list[dict[str, Any]] = field(default_factory=list)
+
+    def pair(self, aggressor: str, victim: str) -> PairResult:
+        for p in self.pairs:
+            if p.aggressor == aggressor and p.victim == victim:
+                return p
+        raise KeyError((aggressor, victim))
+
+
+def risk_map(chip: Chip, protocol: Protocol) -> list[dict[str, Any]]:
+    """Hazards of the frequency plan alone, before any shot.
+
+    Flags each (aggressor line, victim) whose aggressor frequency lies within the
+    protocol's windows of the victim's 0–1 or 1–2 transition, or within 20 MHz of
+    its two-photon 0–2 transition at (f01 + f12)/2 (window common practice). Sorted
+    most hazardous first (smallest detuning).
+    """
+    out = []
+    for ln in chip.lines:
+        f = chip.qubit(ln.qubit).f01_ghz
+        for q in chip.qubits:
+            if q.name == ln.qubit:
+                continue
+            hazards = []
+            for kind, nu, win in (
+                ("0-1", q.f01_ghz, protocol.windows.rotation_window_ghz),
+                ("1-2", q.f12_ghz, protocol.windows.leakage_window_ghz),
+                ("0-2/2", q.f02_half_ghz, 0.02),
+            ):
+                if abs(f - nu) <= win:
+                    hazards.append((kind, f - nu))
+            method = protocol.method_override(ln.name, q.name) or choose_method(
+                chip, ln.name, q.name, protocol.windows)
+            d = min((abs(h[1]) for h in hazards), default=abs(f - q.f01_ghz))
+            out.append({"aggressor": ln.name, "victim": q.name, "method": method,
+                        "hazards": [f"{k} at {1e3 * dd:+.0f} MHz" for k, dd in hazards],
+                        "detuning_ghz": d})
+    out.sort(key=lambda r: (not r["hazards"], r["detuning_ghz"]))
+    return out
+
+
+def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 0.0
+                ) -> np.ndarray:
+    """Points (n+1, V): the centre, then n points on a ring, per victim column."""
+    th = phase0 + 2 * np.pi * np.arange(n) / n
+    ring = center[None, :] + radius[None, :] * np.exp(1j * th)[:, None]
+    return np.vstack([center[None, :], ring])
+
+
+def _stark_gain(chip: Chip, victim: str, freq: float, shape: PulseShape, repeats: int) -> float:
+    """Stark phase (rad) per |z|² of the victim's own line at ``freq`` (nominal chip)."""
+    q = chip.qubit(victim)
+    g = chip.line_of(victim).rabi_mhz * 1e-3
+    d, a = freq - q.f01_ghz, q.anharmonicity_ghz
+    coef = a / (2 * d * (d - a))  # δ = Ω²·coef (Krantz et al. 2019)
+    t = np.linspace(0, shape.duration_ns, 801)
+    from xtalkcal.timeline import envelope_values
+
+    e2 = np.trapezoid(np.abs(envelope_values(shape.envelope, shape.duration_ns, t)) ** 2, t)
+    return abs(2 * np.pi * g * g * coef * e2 * repeats)
+
+
+def calibrate_chip(
+    rig: Rig,
+    protocol: Protocol,
+    *,
+    runner: BatchRunner | None = None,
+    aggressors: list[str] | None = None,
+    log: Callable[[str], None] | None = None,
+) -> CalibrationResult:
+    """Survey every column and null every pair above the protocol's threshold."""
+    chip = rig.chip
+    runner = runner or BatchRunner(rig)
+    say = log or (lambda s: None)
+    result = CalibrationResult(chip, protocol, rig.describe(), risk=risk_map(chip, protocol))
+    shape = PulseShape(protocol.pulse.duration_ns, protocol.pulse.sigma_ns)
+    for line in aggressors or list(chip.line_names):
+        own = chip.line(line).qubit
+        victims = [q for q in chip.qubit_names if q != own]
+        methods = {v: protocol.method_override(line, v)
+                   or choose_method(chip, line, v, protocol.windows) for v in victims}
+        if protocol.only_methods:
+            victims = [v for v in victims if methods[v] in protocol.only_methods]
+        groups = [[v for v in victims if methods[v] != "stark"],
+                  [v for v in victims if methods[v] == "stark"]]
+        for gi, group in enumerate(groups):
+            if group:
+                _calibrate_pass(rig, runner, protocol, result, line, group,
+                                [methods[v] for v in group], shape, stark=(gi == 1), say=say)
+    result.shots = runner.shots_executed + runner.shots_resumed
+    result.rig_seconds = runner.rig_seconds
+    return result
+
+
+def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say):
+    chip = rig.chip
+    amp = protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
+    base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
+                       methods=tuple(methods), shape=shape)
+    spacing = base.spacing_ns
+    if stark:
+        K = max(1, int(protocol.survey.max_train_ns // spacing))
+    else:
+        # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
+        # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
+        theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
+        K = max(1, min(int((math.pi / 4) / theta), int(protocol.survey.max_train_ns // spacing)))
+    probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
+                        methods=tuple(methods), shape=shape)
+    f = probe.freq_ghz
+    V = len(victims)
+    limits = np.array([chip.amplitude_limit(chip.line_of(v).name) for v in victims])
+    # Ring radius per victim for the survey.
+    radius = np.zeros(V)
+    for i, (v, m) in enumerate(zip(victims, methods)):
+        if m == "stark":
+            gain = _stark_gain(chip, v, f, shape, K)
+            radius[i] = math.sqrt(RISE_STARK_RAD * 2 / gain)
+        else:
+            radius[i] = amp * 10 ** (STRONGEST_DB / 20) * 1.5
+    radius = np.minimum(radius, 0.45 * limits)
+    tag = f"{line}-{'stark' if stark else 'res'}"
+    pts_all: list[np.ndarray] = []
+    sig_all: list[np.ndarray] = []
+    err_all: list[np.ndarray] = []
+    shots_all: list[np.ndarray] = []
+    round_all: list[np.ndarray] = []
+
+    def measure(points: np.ndarray, shots: int, key: str, rnd: int) -> None:
+        tls = probe.timelines(points, label=f"{key}:")
+        ref = probe.reference_timelines(label=f"{key}:ref") if stark else []
+        counts = runner.run(key, tls + ref, shots)
+        n = len(tls)
+        main = _slice(counts, 0, n)
+        refc = _slice(counts, n, len(ref) + n) if stark else None
+        s = probe.signals(main, points.shape[0], refc)
+        pts_all.append(points)
+        sig_all.append(s.signal)
+        err_all.append(s.stderr)
+        shots_all.append(s.shots)
+        round_all.append(np.full(points.shape[0], rnd))
+
+    def fit():
+        Z = np.vstack(pts_all).T  # (V, n)
+        S = np.vstack(sig_all).T
+        E = np.vstack(err_all).T
+        return fit_paraboloid(Z, S, E)
+
+    n_ring = protocol.survey.ring_points
+    measure(ring_around(np.zeros(V, complex), radius, n_ring), protocol.survey.shots,
+            f"{tag}-survey", 0)
+    est = fit()
+    survey_time = rig.now()
+    thr = 10 ** (protocol.survey.threshold_db / 20)
+    selected = np.zeros(V, bool)
+    for i in range(V):
+        e = est.estimate(i)
+        if e.accepted:
+            x = -e.z_star / amp
+            sx = e.position_stderr / amp
+            selected[i] = abs(x) + 2 * sx >= thr
+        else:
+            # "No signal" means |X| is small against the ring: bound it from the floor.
+            selected[i] = False
+    say(f"{line}: K={K}, survey of {V} victims, {int(selected.sum())} above "
+        f"{protocol.survey.threshold_db:g} dB")
+    target = 10 ** (protocol.null.target_residual_db / 20) * amp / 2
+    centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
+                       for i in range(V)])
+    budget = protocol.null.shot_budget
+    spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
+    rounds = 0
+    while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
+        rounds += 1
+        est = fit()
+        rad = np.zeros(V)
+        done = np.ones(V, bool)
+        for i in range(V):
+            e = est.estimate(i)
+            if selected[i] and e.accepted:
+                centre[i] = e.z_star
+                rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
+                rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), radius[i])
+                done[i] = e.position_stderr <= target
+            elif selected[i]:
+                rad[i] = radius[i]
+                done[i] = False
+            else:
+                rad[i] = 0.0
+        if done.all():
+            break
+        pts = ring_around(centre, rad, protocol.null.points_per_ring,
+                          phase0=math.pi / protocol.null.points_per_ring * rounds)
+        measure(pts, protocol.null.shots_per_point, f"{tag}-null{rounds:02d}", rounds)
+        spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
+    est = fit()
+    now = rig.now()
+    for i, v in enumerate(victims):
+        e = est.estimate(i)
+        nshots = int(np.vstack(shots_all)[:, i].sum())
+        if e.accepted:
+            x = -e.z_star / amp
+            cov = np.asarray(e.covariance) / amp**2
+            result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
+                                           bool(selected[i]), nshots, K,
+                                           now if selected[i] else survey_time,
+                                           "null" if selected[i] else "survey"))
+        else:
+            result.pairs.append(PairResult(line, v, methods[i], f, False, e.reason.value, None,
+                                           None, False, nshots, K, survey_time, "survey"))
+    Z = np.vstack(pts_all)
+    result.sweeps[tag] = xr.Dataset(
+        {
+            "z_re": (("point", "victim"), Z.real, {"units": "fraction of full scale",
+                                                   "long_name": "cancellation tone, real part"}),
+            "z_im": (("point", "victim"), Z.imag, {"units": "fraction of full scale",
+                                                   "long_name": "cancellation tone, imag part"}),
+            "signal": (("point", "victim"), np.vstack(sig_all), {"long_name": "error signal"}),
+            "stderr": (("point", "victim"), np.vstack(err_all), {"long_name": "standard error"}),
+            "shots": (("point", "victim"), np.vstack(shots_all), {"units": "shots"}),
+            "round": (("point",), np.concatenate(round_all), {"long_name": "search round"}),
+        },
+        coords={"victim": list(victims)},
+        attrs={"aggressor": line, "frequency_ghz": f, "repeats": K, "aggressor_amplitude": amp,
+               "methods": ",".join(methods), "rig": rig.describe(),
+               "spacing_ns": probe.spacing_ns},
+    )
+
+
+def _slice(counts, a: int, b: int):
+    from xtalkcal.rig import Counts
+
+    return Counts(counts.qubits, counts.counts[a:b], counts.shots, counts.started_s,
+                  counts.finished_s)
