@@ -26,10 +26,11 @@ import numpy as np
 import xarray as xr
 
 from xtalkcal.chip import Chip
-from xtalkcal.fit import fit_paraboloid
+from xtalkcal.fit import VerdictRules, fit_paraboloid
 from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
 from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
+from xtalkcal.timeline import envelope_values
 from xtalkcal.sweep import BatchRunner
 
 __all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "ring_around"]
@@ -40,6 +41,7 @@ RISE_PROBABILITY = 0.2
 RISE_STARK_RAD = 0.6
 # Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
 STRONGEST_DB = -20.0
+_RULES = VerdictRules(mismatch_pvalue=0.0)
 
 
 @dataclass(frozen=True)
@@ -127,25 +129,46 @@ def risk_map(chip: Chip, protocol: Protocol) -> list[dict[str, Any]]:
     return out
 
 
+def ring_points_for(n_victims: int, at_least: int) -> int:
+    """Points per ring: the smallest prime ≥ max(at_least, 2·V + 1)."""
+    n = max(at_least, 2 * n_victims + 1)
+    while any(n % d == 0 for d in range(2, int(n**0.5) + 1)):
+        n += 1
+    return n
+
+
 def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 0.0
                 ) -> np.ndarray:
-    """Points (n+1, V): the centre, then n points on a ring, per victim column."""
-    th = phase0 + 2 * np.pi * np.arange(n) / n
-    ring = center[None, :] + radius[None, :] * np.exp(1j * th)[:, None]
+    """Points (n+1, V): the centre, then a ring of n points per victim column.
+
+    Victim v visits the ring's angles in the order θ_p = 2π·p·(v+1)/n. With n prime
+    and n > 2V the sequences e^{iθ} of two victims are orthogonal (and so are their
+    conjugates), so the leak of one victim's cancellation tone onto another victim —
+    linear in the first tone — averages out of the second victim's null estimate
+    instead of biasing it.
+    """
+    V = center.shape[0]
+    if n <= 2 * V:
+        raise ValueError(f"{n} ring points cannot keep {V} victims orthogonal (need > 2V)")
+    p = np.arange(n)[:, None]
+    m = np.arange(1, V + 1)[None, :]
+    th = phase0 + 2 * np.pi * ((p * m) % n) / n
+    ring = center[None, :] + radius[None, :] * np.exp(1j * th)
     return np.vstack([center[None, :], ring])
 
 
-def _stark_gain(chip: Chip, victim: str, freq: float, shape: PulseShape, repeats: int) -> float:
-    """Stark phase (rad) per |z|² of the victim's own line at ``freq`` (nominal chip)."""
+def _stark_gain(probe: ColumnProbe, victim: str) -> float:
+    """Stark phase (rad) per |z|² of the victim's own line playing the train (nominal chip)."""
+    chip = probe.chip
     q = chip.qubit(victim)
     g = chip.line_of(victim).rabi_mhz * 1e-3
-    d, a = freq - q.f01_ghz, q.anharmonicity_ghz
+    d, a = probe.freq_ghz - q.f01_ghz, q.anharmonicity_ghz
     coef = a / (2 * d * (d - a))  # δ = Ω²·coef (Krantz et al. 2019)
-    t = np.linspace(0, shape.duration_ns, 801)
-    from xtalkcal.timeline import envelope_values
-
-    e2 = np.trapezoid(np.abs(envelope_values(shape.envelope, shape.duration_ns, t)) ** 2, t)
-    return abs(2 * np.pi * g * g * coef * e2 * repeats)
+    e2 = 0.0
+    for _, length, env in probe._train_slots():
+        t = np.linspace(0, length, 2001)
+        e2 += float(np.trapezoid(np.abs(envelope_values(env, length, t)) ** 2, t))
+    return abs(2 * np.pi * g * g * coef * e2)
 
 
 def calibrate_chip(
@@ -187,14 +210,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                        methods=tuple(methods), shape=shape)
     spacing = base.spacing_ns
     if stark:
-        K = max(1, int(protocol.survey.max_train_ns // spacing))
+        K = max(1, int(protocol.survey.max_train_ns // shape.duration_ns))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
         theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
         K = max(1, min(int((math.pi / 4) / theta), int(protocol.survey.max_train_ns // spacing)))
     probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
-                        methods=tuple(methods), shape=shape)
+                        methods=tuple(methods), shape=shape, merged=stark)
     f = probe.freq_ghz
     V = len(victims)
     limits = np.array([chip.amplitude_limit(chip.line_of(v).name) for v in victims])
@@ -202,7 +225,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     radius = np.zeros(V)
     for i, (v, m) in enumerate(zip(victims, methods)):
         if m == "stark":
-            gain = _stark_gain(chip, v, f, shape, K)
+            gain = _stark_gain(probe, v)
             radius[i] = math.sqrt(RISE_STARK_RAD * 2 / gain)
         else:
             radius[i] = amp * 10 ** (STRONGEST_DB / 20) * 1.5
@@ -232,9 +255,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         Z = np.vstack(pts_all).T  # (V, n)
         S = np.vstack(sig_all).T
         E = np.vstack(err_all).T
-        return fit_paraboloid(Z, S, E)
+        # The leak of the other victims' tones (orthogonal designs, see ring_around) and
+        # the weak non-quadratic terms add scatter the paraboloid does not model: the
+        # covariance is scaled by the reduced chi-square (Birge ratio) instead of
+        # rejecting the fit for it.
+        return fit_paraboloid(Z, S, E, rules=_RULES)
 
-    n_ring = protocol.survey.ring_points
+    n_ring = ring_points_for(V, protocol.survey.ring_points)
+    n_null = ring_points_for(V, protocol.null.points_per_ring)
     measure(ring_around(np.zeros(V, complex), radius, n_ring), protocol.survey.shots,
             f"{tag}-survey", 0)
     est = fit()
@@ -245,7 +273,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         e = est.estimate(i)
         if e.accepted:
             x = -e.z_star / amp
-            sx = e.position_stderr / amp
+            sx = e.position_stderr * math.sqrt(_birge(e)) / amp
             selected[i] = abs(x) + 2 * sx >= thr
         else:
             # "No signal" means |X| is small against the ring: bound it from the floor.
@@ -269,7 +297,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 centre[i] = e.z_star
                 rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
                 rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), radius[i])
-                done[i] = e.position_stderr <= target
+                done[i] = e.position_stderr * math.sqrt(_birge(e)) <= target
             elif selected[i]:
                 rad[i] = radius[i]
                 done[i] = False
@@ -277,8 +305,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 rad[i] = 0.0
         if done.all():
             break
-        pts = ring_around(centre, rad, protocol.null.points_per_ring,
-                          phase0=math.pi / protocol.null.points_per_ring * rounds)
+        pts = ring_around(centre, rad, n_null, phase0=math.pi / n_null * rounds)
         measure(pts, protocol.null.shots_per_point, f"{tag}-null{rounds:02d}", rounds)
         spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     est = fit()
@@ -288,7 +315,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         nshots = int(np.vstack(shots_all)[:, i].sum())
         if e.accepted:
             x = -e.z_star / amp
-            cov = np.asarray(e.covariance) / amp**2
+            cov = np.asarray(e.covariance) * _birge(e) / amp**2
             result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
                                            bool(selected[i]), nshots, K,
                                            now if selected[i] else survey_time,
@@ -313,6 +340,12 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
     )
+
+
+def _birge(e) -> float:
+    """max(1, reduced chi-square): the factor that makes a covariance honest."""
+    chi = e.reduced_chi2
+    return max(1.0, float(chi)) if math.isfinite(chi) else 1.0
 
 
 def _slice(counts, a: int, b: int):

@@ -148,6 +148,10 @@ class ColumnProbe:
     shape : PulseShape
     gap_ns : float
         Minimum idle time between pulses (ns).
+    merged : bool
+        Play the K pulses as one flat-top pulse K·duration long with cosine ramps of
+        2σ (the amplification of a Stark probe is its drive time; one long pulse
+        gives the same accumulated phase with far fewer edges).
     """
 
     chip: Chip
@@ -159,6 +163,7 @@ class ColumnProbe:
     shape: PulseShape = field(default_factory=PulseShape)
     gap_ns: float = 4.0
     windows: MethodWindows = field(default_factory=MethodWindows)
+    merged: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "victims", tuple(self.victims))
@@ -212,9 +217,24 @@ class ColumnProbe:
     def train_start_ns(self) -> float:
         return self.shape.duration_ns + self.gap_ns
 
+    def train_ns(self) -> float:
+        """Length of the aggressor train (ns)."""
+        if self.merged:
+            return self.repeats * self.shape.duration_ns
+        return (self.repeats - 1) * self.spacing_ns + self.shape.duration_ns
+
+    def _train_slots(self) -> list[tuple[float, float, Envelope]]:
+        t0 = self.train_start_ns()
+        if self.merged:
+            ramp = min(2 * self.shape.sigma_ns, 0.5 * self.train_ns())
+            return [(t0, self.train_ns(), Envelope("flattop", ramp_ns=ramp))]
+        env = self.shape.envelope
+        return [(t0 + k * self.spacing_ns, self.shape.duration_ns, env)
+                for k in range(self.repeats)]
+
     def duration_ns(self) -> float:
         """End of the last pulse (readout time)."""
-        t = self.train_start_ns() + (self.repeats - 1) * self.spacing_ns + self.shape.duration_ns
+        t = self.train_start_ns() + self.train_ns()
         return t + self.gap_ns + self.shape.duration_ns
 
     # ---------------------------------------------------------------- timelines
@@ -247,11 +267,9 @@ class ColumnProbe:
         z = np.atleast_2d(np.asarray(z, dtype=complex))
         if z.shape[1] != len(self.victims):
             raise ValueError(f"z must have {len(self.victims)} columns, got {z.shape}")
-        chip, shape = self.chip, self.shape
-        env = shape.envelope
+        chip = self.chip
         f = self.freq_ghz
-        t0 = self.train_start_ns()
-        dt = self.spacing_ns
+        slots = self._train_slots()
         lines = [chip.line_of(v).name for v in self.victims]
         readout = tuple(self.victims) + (chip.line(self.aggressor).qubit,)
         out: list[Timeline] = []
@@ -259,14 +277,13 @@ class ColumnProbe:
             for theta in self.quadratures:
                 prep, post = self._prep_and_analysis(theta)
                 train: list[Tone] = []
-                for k in range(self.repeats):
-                    start = t0 + k * dt
+                for start, length, env in slots:
                     if aggressor_on and self.amplitude > 0:
-                        train.append(Tone(self.aggressor, start, shape.duration_ns, f,
+                        train.append(Tone(self.aggressor, start, length, f,
                                           self.amplitude, 0.0, env))
                     for line, zz in zip(lines, z[p]):
                         if zz != 0:
-                            train.append(Tone(line, start, shape.duration_ns, f, abs(zz),
+                            train.append(Tone(line, start, length, f, abs(zz),
                                               math.atan2(zz.imag, zz.real), env))
                 out.append(Timeline(tuple(prep + train + post), readout,
                                     readout_ns=self.duration_ns(),
