@@ -14,6 +14,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from xtalkcal import __version__
+from xtalkcal.exceptions import ConfigError as XtalkcalConfigError
 from xtalkcal.exceptions import XtalkcalError
 
 __all__ = ["main"]
@@ -79,6 +80,72 @@ def _cmd_export_chip(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _make_rig(spec: str, *, seed: int | None, drift: bool):
+    """The rig named on the command line: 'sim' (bundled demo device), a device file, or
+    'package.module:factory' for a lab's own rig plug-in (called with no arguments)."""
+    import importlib
+
+    if spec == "sim" or spec.endswith(".toml"):
+        from simulated_device import SimRig, demo_device_path
+
+        return SimRig(demo_device_path() if spec == "sim" else spec, seed=seed, drift=drift)
+    if ":" not in spec:
+        raise XtalkcalConfigError("--rig", f"{spec!r}: expected 'sim', a device .toml file, "
+                                           "or 'module:factory'")
+    mod, _, attr = spec.partition(":")
+    try:
+        factory = getattr(importlib.import_module(mod), attr)
+    except (ImportError, AttributeError) as exc:
+        raise XtalkcalConfigError("--rig", f"cannot load {spec!r}: {exc}") from None
+    from xtalkcal.rig import Rig
+
+    rig = factory()
+    if not isinstance(rig, Rig):
+        raise XtalkcalConfigError("--rig", f"{spec!r} did not return an object with the rig "
+                                           "members (chip, repetition_ns, describe, run, now)")
+    return rig
+
+
+@_command("calibrate")
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from xtalkcal.calibration import calibrate_chip
+    from xtalkcal.export import dumps, format_table
+    from xtalkcal.protocol import load_protocol
+    from xtalkcal.sweep import BatchRunner
+
+    protocol = load_protocol(args.protocol)
+    rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
+    out = Path(args.output)
+    runner = BatchRunner(rig, args.record, progress=_progress_bar(args))
+    result = calibrate_chip(rig, protocol, runner=runner, log=lambda s: log.info(s))
+    if runner.progress is not None:
+        runner.progress.close()
+    _atomic_write(out, dumps(result) + "\n")
+    print(format_table(result))
+    n_rej = sum(not p.accepted and p.nulled for p in result.pairs)
+    print(f"\n{len(result.pairs)} pairs, {result.shots} shots, "
+          f"{result.rig_seconds:.1f} s of rig time; wrote {out}")
+    return EXIT_FAILED if n_rej else EXIT_OK
+
+
+class _Bar:
+    def __init__(self, total=None):
+        from tqdm import tqdm
+
+        self._bar = tqdm(total=total, unit="shot", unit_scale=True, desc="shots",
+                         disable=None, leave=False)
+
+    def __call__(self, n: int) -> None:
+        self._bar.update(n)
+
+    def close(self) -> None:
+        self._bar.close()
+
+
+def _progress_bar(args):
+    return None if getattr(args, "quiet", False) else _Bar()
+
+
 def _atomic_write(path: Path, text: str) -> None:
     """Write a text file so that a crash never leaves a half-written one."""
     import os
@@ -97,6 +164,11 @@ def _atomic_write(path: Path, text: str) -> None:
         raise
 
 
+def _default_protocol() -> str:
+    here = Path(__file__).resolve().parent.parent / "protocols" / "full.toml"
+    return str(here)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
     p = argparse.ArgumentParser(
@@ -109,6 +181,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     c = sub.add_parser("check", help="validate chip, device or protocol files")
     c.add_argument("files", nargs="+", help="TOML files to validate")
+
+    k = sub.add_parser("calibrate", help="survey the matrix and null every significant pair")
+    k.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    k.add_argument("--rig", default="sim",
+                   help="'sim' (bundled demo device), a device .toml, or module:factory")
+    k.add_argument("--seed", type=int, default=None, help="simulator seed")
+    k.add_argument("--no-drift", action="store_true", help="freeze the simulator's drift")
+    k.add_argument("--record", default=None,
+                   help="directory to record each batch in; rerun with it to resume")
+    k.add_argument("-o", "--output", default="xtalk-matrix.json", help="JSON file to write")
+    k.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
     e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
