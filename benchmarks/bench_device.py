@@ -1,0 +1,158 @@
+"""Throughput of the simulated device's integrator against QuTiP on one batch.
+
+Batch: 400 timelines of a 3-level transmon with T1/T2, each 100 ns long with two tones — a
+near-resonant DRAG (or Gaussian) pulse whose amplitude is swept across the batch, and an
+off-resonant flat-top tone 100–300 MHz away (either side) of varied amplitude and phase, as
+a neighbour's line would leak.
+
+Printed: the compile time of the kernel (or the time to load it from numba's cache), the
+time per timeline of ``evolve_populations`` on all 400 with numba's default thread count and
+with one thread, the time per timeline of a plain ``qutip.mesolve`` (Python coefficient
+functions, tight tolerances) on a subset, the speed ratios and the largest population
+difference on that subset. With ``--scan`` also a table over candidate ``StepControl`` values.
+The target (≥ 30× at ≤ 1e-4 agreement) lives here only, never in a timed test.
+
+Run:  PYTHONPATH=. python benchmarks/bench_device.py [--subset 20] [--scan] [--cold]
+
+``--cold`` points numba's cache at an empty temporary directory first, so the printed
+compile time is that of a fresh install.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+TARGET_RATIO = 30.0
+TARGET_AGREEMENT = 1e-4
+N_TIMELINES = 400
+SEED = 20240612
+
+
+def build_batch(test_module, n: int, seed: int) -> tuple[object, list]:
+    """The benchmark's victim and ``n`` runs (seeded)."""
+    t = test_module
+    rng = np.random.default_rng(seed)
+    victim = t.duffing(5.0, -0.21, 3, t1_ns=40e3, t2_ns=30e3)
+    runs = []
+    for k in range(n):
+        env = (t.Envelope("drag", sigma_ns=10.0, drag_ns=0.5) if k % 2 == 0
+               else t.Envelope("gaussian", sigma_ns=10.0))
+        # Amplitude swept from 0 to about a 2π rotation, as in a Rabi calibration.
+        area = t.pulse_area_ns(env, 40.0)
+        near_omega = (k / n) * 2.0 / area
+        near = t.Drive(30.0, 40.0, victim.f01 + float(rng.uniform(-0.003, 0.003)),
+                       complex(near_omega), env)
+        detuning = float(rng.choice([-1.0, 1.0]) * rng.uniform(0.1, 0.3))
+        off_omega = float(rng.uniform(0.0, 0.04)) * np.exp(1j * rng.uniform(0.0, 2 * math.pi))
+        off = t.Drive(0.0, 100.0, victim.f01 + detuning, complex(off_omega),
+                      t.Envelope("flattop", ramp_ns=10.0))
+        runs.append(t.Run((near, off), 100.0))
+    return victim, runs
+
+
+def time_fast(test_module, victim, runs, control=None,
+              repeats: int = 3) -> tuple[float, np.ndarray]:
+    """Best wall time (s) of ``evolve_populations`` on the whole batch, and its result."""
+    batch = test_module.tone_batch(runs)
+    best = math.inf
+    pops = None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        pops = test_module.evolve_populations(
+            victim.levels_ghz, victim.ladder, np.array([victim.t1_ns]),
+            np.array([victim.t2_ns]), batch, control=control)
+        best = min(best, time.perf_counter() - t0)
+    return best, pops
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--subset", type=int, default=20, help="timelines run through QuTiP")
+    parser.add_argument("--scan", action="store_true", help="also scan StepControl values")
+    parser.add_argument("--cold", action="store_true", help="compile numba afresh")
+    args = parser.parse_args(argv)
+    if args.cold:
+        # Must happen before numba is imported anywhere.
+        os.environ["NUMBA_CACHE_DIR"] = tempfile.mkdtemp(prefix="xtalkcal-numba-")
+
+    root = Path(__file__).resolve().parents[1]
+    sys.path.insert(0, str(root / "tests"))  # the QuTiP model lives with its tests
+    import numba
+    import qutip
+    import test_device_qutip as t
+
+    from simulated_device.dynamics import StepControl
+
+    victim, runs = build_batch(t, N_TIMELINES, SEED)
+
+    t0 = time.perf_counter()
+    t.fast(victim, runs[:2])
+    first_call = time.perf_counter() - t0
+    print(f"numba {numba.__version__}, qutip {qutip.__version__}, "
+          f"{numba.config.NUMBA_NUM_THREADS} threads available")
+    print(f"first call (JIT compile{'' if args.cold else ' or cache load'}): {first_call:.2f} s")
+
+    threads = numba.get_num_threads()
+    wall, pops = time_fast(t, victim, runs)
+    numba.set_num_threads(1)
+    wall1, _ = time_fast(t, victim, runs)
+    numba.set_num_threads(threads)
+    per = wall / len(runs)
+    per1 = wall1 / len(runs)
+    print(f"evolve_populations, {len(runs)} timelines: {wall * 1e3:.1f} ms "
+          f"({per * 1e6:.1f} µs/timeline, {threads} threads); "
+          f"1 thread: {wall1 * 1e3:.1f} ms ({per1 * 1e6:.1f} µs/timeline)")
+
+    subset = np.linspace(0, len(runs) - 1, args.subset).astype(int)
+    results = {}
+    for method in ("adams", "dop853"):
+        options = dict(t.QUTIP_OPTIONS, method=method)
+        q_pops = []
+        t0 = time.perf_counter()
+        for i in subset:
+            q_pops.append(t.qutip_populations(victim, runs[i], options=options, segmented=False))
+        results[method] = ((time.perf_counter() - t0) / len(subset), np.array(q_pops))
+    for method, (q_per, q_pops) in results.items():
+        dev = float(np.max(np.abs(q_pops - pops[subset])))
+        print(f"qutip.mesolve ({method}, atol 1e-12, rtol 1e-10, max_step 0.1 ns), "
+              f"{len(subset)} timelines: {q_per * 1e3:.1f} ms/timeline; "
+              f"ratio {q_per / per:.0f}x ({threads} threads), {q_per / per1:.0f}x (1 thread); "
+              f"max |ΔP| = {dev:.1e}")
+    best_method = min(results, key=lambda m: results[m][0])
+    q_per, q_pops = results[best_method]
+    dev = float(np.max(np.abs(q_pops - pops[subset])))
+    ok = q_per / per1 >= TARGET_RATIO and dev <= TARGET_AGREEMENT
+    print(f"target ≥ {TARGET_RATIO:.0f}x single-threaded at ≤ {TARGET_AGREEMENT:g} "
+          f"(against the faster QuTiP method, {best_method}): {'met' if ok else 'NOT met'}")
+
+    if args.scan:
+        print("\nStepControl scan (max |ΔP| against the QuTiP subset, dop853):")
+        ref = results["dop853"][1]
+        candidates = [
+            StepControl(),
+            StepControl(max_step_ns=1.0),
+            StepControl(phase_per_step=0.5),
+            StepControl(phase_per_step=0.4),
+            StepControl(phase_per_step=0.15),
+            StepControl(phase_per_step=0.125),
+            StepControl(envelope_fraction=0.25),
+            StepControl(1.0, 0.4, 0.25),
+            StepControl(1.0, 0.5, 0.25),
+        ]
+        for c in candidates:
+            w, p = time_fast(t, victim, runs, control=c)
+            dev_c = float(np.max(np.abs(ref - p[subset])))
+            print(f"  {c}: {w / len(runs) * 1e6:7.1f} µs/timeline, max |ΔP| = {dev_c:.1e}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
