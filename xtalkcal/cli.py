@@ -128,6 +128,37 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     return EXIT_FAILED if n_rej else EXIT_OK
 
 
+@_command("demo")
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from simulated_device import SimRig, demo_device_path
+    from xtalkcal.calibration import calibrate_chip
+    from xtalkcal.export import format_table
+    from xtalkcal.protocol import load_protocol
+    from xtalkcal.report import write_report
+    from xtalkcal.sweep import BatchRunner
+
+    protocol = load_protocol(args.protocol)
+    rig = SimRig(demo_device_path(), seed=args.seed, drift=True)
+    out = Path(args.out)
+    if out.exists() and any(out.iterdir()) and not args.force:
+        raise XtalkcalConfigError("--out", f"{out} exists and is not empty; choose another "
+                                           "folder or pass --force")
+    print(f"xtalkcal demo on the bundled simulated chip {rig.chip.name!r} "
+          f"({len(rig.chip.qubits)} qubits); report in {out}/")
+    runner = BatchRunner(rig, out / "record", progress=_progress_bar(args))
+    lines = args.aggressors.split(",") if args.aggressors else None
+    result = calibrate_chip(rig, protocol, runner=runner, aggressors=lines)
+    if runner.progress is not None:
+        runner.progress.close()
+    truth = {(p.aggressor, p.victim): rig.true_crosstalk(p.victim, p.aggressor, p.freq_ghz,
+                                                         p.measured_at_s)
+             for p in result.pairs}
+    md = write_report(result, out, truth=truth)
+    print(format_table(result))
+    print(f"\nreport: {md} and {out / 'report.html'}")
+    return EXIT_OK
+
+
 class _Bar:
     def __init__(self, total=None):
         from tqdm import tqdm
@@ -192,6 +223,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory to record each batch in; rerun with it to resume")
     k.add_argument("-o", "--output", default="xtalk-matrix.json", help="JSON file to write")
     k.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+
+    d = sub.add_parser("demo", help="the whole job on the bundled simulated chip, with a report")
+    d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
+    d.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    d.add_argument("--seed", type=int, default=None, help="simulator seed")
+    d.add_argument("--aggressors", default=None,
+                   help="comma-separated aggressor lines (default: all)")
+    d.add_argument("--force", action="store_true", help="write into a non-empty folder")
+    d.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
     e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
