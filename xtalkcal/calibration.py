@@ -129,10 +129,21 @@ def risk_map(chip: Chip, protocol: Protocol) -> list[dict[str, Any]]:
     return out
 
 
+def _is_prime(n: int) -> bool:
+    return n > 1 and all(n % d for d in range(2, int(n**0.5) + 1))
+
+
+def _multipliers(n: int, count: int) -> list[int]:
+    """Angle multipliers in the middle third of Z_n: a sum-free, symmetric set."""
+    lo = n // 3 + 1
+    m = [k for k in range(lo, (n + 1) // 2) if 3 * k > n]
+    return m[:count]
+
+
 def ring_points_for(n_victims: int, at_least: int) -> int:
-    """Points per ring: the smallest prime ≥ max(at_least, 2·V + 1)."""
-    n = max(at_least, 2 * n_victims + 1)
-    while any(n % d == 0 for d in range(2, int(n**0.5) + 1)):
+    """Points per ring: the smallest prime ≥ ``at_least`` with room for V multipliers."""
+    n = max(at_least, 3)
+    while not (_is_prime(n) and len(_multipliers(n, n_victims)) >= n_victims):
         n += 1
     return n
 
@@ -141,18 +152,21 @@ def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 
                 ) -> np.ndarray:
     """Points (n+1, V): the centre, then a ring of n points per victim column.
 
-    Victim v visits the ring's angles in the order θ_p = 2π·p·(v+1)/n. With n prime
-    and n > 2V the sequences e^{iθ} of two victims are orthogonal (and so are their
-    conjugates), so the leak of one victim's cancellation tone onto another victim —
-    linear in the first tone — averages out of the second victim's null estimate
-    instead of biasing it.
+    Victim v visits the ring's angles in the order θ_p = 2π·p·m_v/n, with the m_v
+    taken from the middle third of Z_n (n prime). That set, with its negatives, is
+    sum-free: no m_v is ± the sum or difference of two others, nor twice another.
+    So the leak of the other victims' cancellation tones onto victim v — linear in
+    one tone (harmonics ±m_k), or a product of two (harmonics m_k ± m_l) — has no
+    component on victim v's own harmonic ±m_v and averages out of its null
+    estimate instead of biasing it.
     """
     V = center.shape[0]
-    if n <= 2 * V:
-        raise ValueError(f"{n} ring points cannot keep {V} victims orthogonal (need > 2V)")
+    m = _multipliers(n, V)
+    if len(m) < V:
+        raise ValueError(f"{n} ring points cannot keep {V} victims apart; "
+                         f"use ring_points_for({V}, ...)")
     p = np.arange(n)[:, None]
-    m = np.arange(1, V + 1)[None, :]
-    th = phase0 + 2 * np.pi * ((p * m) % n) / n
+    th = phase0 + 2 * np.pi * ((p * np.array(m)[None, :]) % n) / n
     ring = center[None, :] + radius[None, :] * np.exp(1j * th)
     return np.vstack([center[None, :], ring])
 

@@ -90,19 +90,22 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool):
 
         return SimRig(demo_device_path() if spec == "sim" else spec, seed=seed, drift=drift)
     if ":" not in spec:
-        raise XtalkcalConfigError("--rig", f"{spec!r}: expected 'sim', a device .toml file, "
-                                           "or 'module:factory'")
+        raise XtalkcalConfigError("command line", "--rig",
+                                  f"{spec!r}: expected 'sim', a device .toml file, "
+                                  "or 'module:factory'")
     mod, _, attr = spec.partition(":")
     try:
         factory = getattr(importlib.import_module(mod), attr)
     except (ImportError, AttributeError) as exc:
-        raise XtalkcalConfigError("--rig", f"cannot load {spec!r}: {exc}") from None
+        raise XtalkcalConfigError("command line", "--rig",
+                                  f"cannot load {spec!r}: {exc}") from None
     from xtalkcal.rig import Rig
 
     rig = factory()
     if not isinstance(rig, Rig):
-        raise XtalkcalConfigError("--rig", f"{spec!r} did not return an object with the rig "
-                                           "members (chip, repetition_ns, describe, run, now)")
+        raise XtalkcalConfigError("command line", "--rig",
+                                  f"{spec!r} did not return an object with the rig "
+                                  "members (chip, repetition_ns, describe, run, now)")
     return rig
 
 
@@ -141,8 +144,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     rig = SimRig(demo_device_path(), seed=args.seed, drift=True)
     out = Path(args.out)
     if out.exists() and any(out.iterdir()) and not args.force:
-        raise XtalkcalConfigError("--out", f"{out} exists and is not empty; choose another "
-                                           "folder or pass --force")
+        raise XtalkcalConfigError("command line", "--out",
+                                      f"{out} exists and is not empty; choose another "
+                                      "folder or pass --force")
     print(f"xtalkcal demo on the bundled simulated chip {rig.chip.name!r} "
           f"({len(rig.chip.qubits)} qubits); report in {out}/")
     runner = BatchRunner(rig, out / "record", progress=_progress_bar(args))

@@ -1,0 +1,173 @@
+"""Probes and the column-parallel calibration against the simulator's ground truth."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+
+from simulated_device import SimRig, demo_device_path
+from xtalkcal.calibration import calibrate_chip, ring_around, ring_points_for, risk_map
+from xtalkcal.cli import main
+from xtalkcal.probes import ColumnProbe, choose_method
+from xtalkcal.protocol import load_protocol, protocol_from_dict
+from xtalkcal.sweep import BatchRunner
+
+QUICK = protocol_from_dict({"name": "test", "survey": {"shots": 1000},
+                            "null": {"shots_per_point": 1000, "max_rounds": 4}})
+
+
+def test_frequency_plan_picks_methods_and_flags_hazards(demo_chip):
+    assert choose_method(demo_chip, "d4", "q5") == "leakage"  # d4 20 MHz below q5's 1-2
+    assert choose_method(demo_chip, "d6", "q7") == "rotation"  # q6/q7 20 MHz apart
+    assert choose_method(demo_chip, "d1", "q4") == "stark"
+    risks = risk_map(demo_chip, load_protocol("protocols/full.toml"))
+    flagged = {(r["aggressor"], r["victim"]): r["hazards"] for r in risks if r["hazards"]}
+    assert any(h.startswith("1-2 at -20 MHz") for h in flagged[("d4", "q5")])
+    assert any(h.startswith("0-1 at -20 MHz") for h in flagged[("d6", "q7")])
+    assert any(h.startswith("0-1 at +20 MHz") for h in flagged[("d7", "q6")])
+    assert ("d1", "q4") not in flagged
+    # flagged pairs come first, most hazardous (smallest detuning) first
+    n = len(flagged)
+    assert all(r["hazards"] for r in risks[:n]) and not any(r["hazards"] for r in risks[n:])
+    d = [r["detuning_ghz"] for r in risks[:n]]
+    assert d == sorted(d)
+
+
+def test_leakage_probe_nulls_at_the_true_ratio(demo_rig):
+    chip = demo_rig.chip
+    probe = ColumnProbe(chip, "d4", ("q5",), amplitude=0.7, repeats=8)
+    f = probe.freq_ghz
+    z_true = demo_rig.true_ratio("q5", "d4", f) * 0.7
+    pts = np.array([[0], [z_true], [z_true * 1.3], [z_true * 0.7]], dtype=complex)
+    s = probe.signals(demo_rig.run(probe.timelines(pts), 4000), 4).signal[:, 0]
+    assert s[0] > 0.3  # uncancelled: strong leakage
+    assert s[1] < 0.02  # at the true null: readout floor only
+    assert s[1] < s[2] and s[1] < s[3]
+
+
+def test_stark_probe_signal_grows_with_field(demo_rig):
+    chip = demo_rig.chip
+    probe = ColumnProbe(chip, "d1", ("q4",), amplitude=0.7, repeats=40, merged=True)
+    z_true = demo_rig.true_ratio("q4", "d1", probe.freq_ghz) * 0.7
+    pts = np.array([[z_true], [z_true + 0.1], [z_true + 0.2]])
+    tls = probe.timelines(pts) + probe.reference_timelines()
+    c = demo_rig.run(tls, 20000)
+    from xtalkcal.rig import Counts
+
+    main_c = Counts(c.qubits, c.counts[:6], c.shots, 0, 0)
+    ref_c = Counts(c.qubits, c.counts[6:], c.shots, 0, 0)
+    s = probe.signals(main_c, 3, ref_c)
+    assert abs(s.signal[0, 0]) < 3 * s.stderr[0, 0] + 0.01
+    # quadratic in |w|: twice the offset gives about four times the phase
+    assert s.signal[2, 0] / s.signal[1, 0] == pytest.approx(4.0, rel=0.25)
+
+
+def test_ring_designs_keep_victims_apart_to_second_order():
+    V = 5
+    n = ring_points_for(V, 8)
+    e = ring_around(np.zeros(V, complex), np.ones(V), n)[1:]
+    # products of one or two other victims' tones never share victim i's harmonic
+    for i in range(V):
+        own = [e[:, i], np.conj(e[:, i])]
+        others = [e[:, k] for k in range(V) if k != i]
+        terms = others + [a * np.conj(b) for a in others for b in others] + [
+            a * b for a in others for b in others] + [e[:, i] * np.conj(o) for o in others]
+        for t in terms:
+            for b in own:
+                assert abs(np.sum(t * np.conj(b))) < 1e-8
+    with pytest.raises(ValueError):
+        ring_around(np.zeros(6, complex), np.ones(6), 11)
+
+
+@pytest.fixture(scope="module")
+def d4_result():
+    rig = SimRig(demo_device_path(), seed=7, drift=False)
+    return rig, calibrate_chip(rig, QUICK, aggressors=["d4"])
+
+
+def test_column_calibration_recovers_the_true_column(d4_result):
+    rig, res = d4_result
+    assert len(res.pairs) == 8
+    leak = res.pair("d4", "q5")
+    assert leak.accepted and leak.nulled and leak.method == "leakage"
+    truth = rig.true_crosstalk("q5", "d4", leak.freq_ghz)
+    resid = 20 * math.log10(abs(leak.x - truth))
+    assert resid < -50
+    # every accepted estimate is within 5 sigma of the truth or below -50 dB from it
+    for p in res.pairs:
+        if p.accepted:
+            t = rig.true_crosstalk(p.victim, p.aggressor, p.freq_ghz)
+            assert abs(p.x - t) < max(5 * p.stderr, 10 ** (-45 / 20)), p
+
+
+def test_column_parallel_costs_one_pass_per_method_group(d4_result):
+    _, res = d4_result
+    assert set(res.sweeps) == {"d4-res", "d4-stark"}
+    assert res.sweeps["d4-stark"].sizes["victim"] == 7
+
+
+def test_interrupted_calibration_resumes_identically(tmp_path):
+    lines = ["d6"]
+    clean = calibrate_chip(SimRig(demo_device_path(), seed=3, drift=False), QUICK,
+                           aggressors=lines)
+
+    class Boom(RuntimeError):
+        pass
+
+    rig = SimRig(demo_device_path(), seed=3, drift=False)
+    runner = BatchRunner(rig, tmp_path)
+    calls = {"n": 0}
+    real_run = rig.run
+
+    def flaky(tls, shots):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise Boom("power cut")
+        return real_run(tls, shots)
+
+    rig.run = flaky
+    with pytest.raises(Boom):
+        calibrate_chip(rig, QUICK, runner=runner, aggressors=lines)
+    assert not list(tmp_path.glob("*.tmp"))
+    rig2 = SimRig(demo_device_path(), seed=3, drift=False)
+    runner2 = BatchRunner(rig2, tmp_path)
+    again = calibrate_chip(rig2, QUICK, runner=runner2, aggressors=lines)
+    assert runner2.shots_resumed > 0 and runner2.shots_executed > 0
+    for a, b in zip(clean.pairs, again.pairs):
+        assert a.accepted == b.accepted and a.x == b.x
+
+
+def test_calibrate_cli_writes_the_matrix_json(tmp_path, capsys):
+    proto = tmp_path / "p.toml"
+    proto.write_text('name = "cli"\n[survey]\nshots = 500\n[null]\nmax_rounds = 2\n'
+                     '[methods]\nonly = ["leakage"]\n')
+    out = tmp_path / "m.json"
+    assert main(["calibrate", "--protocol", str(proto), "--no-drift", "-q", "-o", str(out)]) == 0
+    data = json.loads(out.read_text())
+    assert data["schema"] == "xtalkcal-matrix/1"
+    pairs = {(p["aggressor_line"], p["victim"]): p for p in data["pairs"]}
+    p = pairs[("d4", "q5")]
+    assert p["verdict"] == "accepted" and p["method"] == "leakage"
+    assert p["ratio"]["re"] == pytest.approx(-p["crosstalk"]["re"])
+    assert -27 < p["crosstalk"]["magnitude_db"] < -22
+    assert "d4 → q5" in capsys.readouterr().out
+
+
+def test_demo_runs_end_to_end_reduced(tmp_path):
+    out = tmp_path / "demo"
+    assert main(["demo", "--out", str(out), "--aggressors", "d4", "-q"]) == 0
+    for name in ("report.md", "report.html", "matrix.json", "matrix_db.png",
+                 "matrix_phase.png", "residuals.png"):
+        assert (out / name).stat().st_size > 0
+    assert main(["demo", "--out", str(out), "--aggressors", "d4", "-q"]) == 2  # not empty
+
+
+def test_bad_protocol_field_is_named(tmp_path, capsys):
+    proto = tmp_path / "p.toml"
+    proto.write_text('name = "x"\n[null]\nshots_per_point = -4\n')
+    assert main(["calibrate", "--protocol", str(proto), "-q"]) == 2
+    err = capsys.readouterr().err
+    assert "p.toml" in err and "null.shots_per_point" in err
