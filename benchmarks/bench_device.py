@@ -59,7 +59,7 @@ def build_batch(test_module, n: int, seed: int) -> tuple[object, list]:
 
 
 def time_fast(test_module, victim, runs, control=None,
-              repeats: int = 3) -> tuple[float, np.ndarray]:
+              repeats: int = 5) -> tuple[float, np.ndarray]:
     """Best wall time (s) of ``evolve_populations`` on the whole batch, and its result."""
     batch = test_module.tone_batch(runs)
     best = math.inf
@@ -111,10 +111,13 @@ def main(argv: list[str] | None = None) -> int:
           f"({per * 1e6:.1f} µs/timeline, {threads} threads); "
           f"1 thread: {wall1 * 1e3:.1f} ms ({per1 * 1e6:.1f} µs/timeline)")
 
+    # QuTiP's own adaptive step control at tight tolerances (a step cap only slows it down
+    # without changing its result at these tolerances: checked, 5e-9 either way).
     subset = np.linspace(0, len(runs) - 1, args.subset).astype(int)
     results = {}
     for method in ("adams", "dop853"):
-        options = dict(t.QUTIP_OPTIONS, method=method)
+        options = {k: v for k, v in t.QUTIP_OPTIONS.items() if k != "max_step"}
+        options["method"] = method
         q_pops = []
         t0 = time.perf_counter()
         for i in subset:
@@ -122,35 +125,38 @@ def main(argv: list[str] | None = None) -> int:
         results[method] = ((time.perf_counter() - t0) / len(subset), np.array(q_pops))
     for method, (q_per, q_pops) in results.items():
         dev = float(np.max(np.abs(q_pops - pops[subset])))
-        print(f"qutip.mesolve ({method}, atol 1e-12, rtol 1e-10, max_step 0.1 ns), "
-              f"{len(subset)} timelines: {q_per * 1e3:.1f} ms/timeline; "
-              f"ratio {q_per / per:.0f}x ({threads} threads), {q_per / per1:.0f}x (1 thread); "
-              f"max |ΔP| = {dev:.1e}")
+        print(f"qutip.mesolve ({method}, atol 1e-12, rtol 1e-10), {len(subset)} timelines: "
+              f"{q_per * 1e3:.1f} ms/timeline; ratio {q_per / per:.0f}x ({threads} threads), "
+              f"{q_per / per1:.0f}x (1 thread); max |ΔP| = {dev:.1e}")
     best_method = min(results, key=lambda m: results[m][0])
     q_per, q_pops = results[best_method]
     dev = float(np.max(np.abs(q_pops - pops[subset])))
-    ok = q_per / per1 >= TARGET_RATIO and dev <= TARGET_AGREEMENT
-    print(f"target ≥ {TARGET_RATIO:.0f}x single-threaded at ≤ {TARGET_AGREEMENT:g} "
-          f"(against the faster QuTiP method, {best_method}): {'met' if ok else 'NOT met'}")
+    for label, ratio in ((f"{threads} threads", q_per / per), ("1 thread", q_per / per1)):
+        ok = ratio >= TARGET_RATIO and dev <= TARGET_AGREEMENT
+        print(f"target ≥ {TARGET_RATIO:.0f}x at ≤ {TARGET_AGREEMENT:g} against the faster QuTiP "
+              f"method ({best_method}), {label}: {ratio:.0f}x, {dev:.1e} — "
+              f"{'met' if ok else 'NOT met'}")
 
     if args.scan:
-        print("\nStepControl scan (max |ΔP| against the QuTiP subset, dop853):")
+        print("\nStepControl scan, 1 thread (max |ΔP| against the QuTiP subset, dop853):")
         ref = results["dop853"][1]
         candidates = [
             StepControl(),
-            StepControl(max_step_ns=1.0),
-            StepControl(phase_per_step=0.5),
+            StepControl(phase_per_step=0.3),
+            StepControl(phase_per_step=0.35),
             StepControl(phase_per_step=0.4),
+            StepControl(phase_per_step=0.5),
             StepControl(phase_per_step=0.15),
             StepControl(phase_per_step=0.125),
-            StepControl(envelope_fraction=0.25),
-            StepControl(1.0, 0.4, 0.25),
-            StepControl(1.0, 0.5, 0.25),
+            StepControl(1.0, 0.25, 0.25),
         ]
+        numba.set_num_threads(1)
         for c in candidates:
             w, p = time_fast(t, victim, runs, control=c)
             dev_c = float(np.max(np.abs(ref - p[subset])))
-            print(f"  {c}: {w / len(runs) * 1e6:7.1f} µs/timeline, max |ΔP| = {dev_c:.1e}")
+            print(f"  {c}: {w / len(runs) * 1e6:7.1f} µs/timeline, "
+                  f"{q_per * len(runs) / w:5.1f}x, max |ΔP| = {dev_c:.1e}")
+        numba.set_num_threads(threads)
     return 0
 
 

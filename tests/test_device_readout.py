@@ -3,8 +3,8 @@
 The readout model (DESIGN.md section 4): the final level populations p of a victim pass
 through its assignment matrix A (rows P(assigned | level)), q = p·A, and the counts of a
 timeline are one multinomial draw of ``shots`` trials with probabilities q. A multinomial
-has mean n·q_i, variance n·q_i(1 − q_i) and covariance −n·q_i·q_j (textbook; e.g. any
-probability reference). The populations p come from the integrator, which is validated
+has mean n·q_i, variance n·q_i(1 − q_i) and covariance −n·q_i·q_j (standard properties of
+the multinomial distribution). The populations p come from the integrator, which is validated
 against QuTiP in tests/test_device_qutip.py; here they are recomputed directly from the
 device file's numbers, not through the rig.
 """
@@ -216,7 +216,10 @@ def test_same_seed_same_counts_other_seed_other_counts() -> None:
 
 @pytest.mark.parametrize("channel", ["phase", "log_magnitude"])
 def test_drift_random_walk_variance_grows_linearly(channel: str) -> None:
-    """Var of a coupling's phase (and log-magnitude) walk = D·t over many seeds (Wiener).
+    """Var of a coupling's phase (and log-magnitude) walk = D·t over many seeds.
+
+    D·t is the variance of a Wiener process of diffusion constant D (its definition), which
+    is what DESIGN.md section 4 asks for ("phase random walk plus linear rate").
 
     Each increment is independent with variance D·Δt, and the phase's mean follows the
     linear rate. 1200 seeds: the standard error of a variance is √(2/1200) ≈ 4 %; the
