@@ -66,7 +66,7 @@ class StepControl:
     """
 
     max_step_ns: float = 0.5
-    phase_per_step: float = 0.25
+    phase_per_step: float = 0.3
     envelope_fraction: float = 0.125
 
 
@@ -319,7 +319,7 @@ def _evolve_one(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, 
                     spread = off
                 if code[k] == GAUSSIAN or code[k] == DRAG:
                     step = min(step, env_fraction * sigma[k])
-                elif code[k] == FLATTOP:
+                elif code[k] == FLATTOP and ramp[k] > 0.0:
                     step = min(step, env_fraction * ramp[k])
         if spread > 0.0:
             step = min(step, phase_per_step / (TWO_PI * spread))

@@ -715,8 +715,6 @@ def test_against_scipy_reference() -> None:
 # --- known defect ---------------------------------------------------------------------------------
 
 
-@pytest.mark.xfail(strict=True, reason="dynamics.py: a zero-ramp flat-top tone in a time-dependent "
-                   "interval sets the Magnus step to 0 (step = envelope_fraction·ramp_ns)")
 def test_zero_ramp_flattop_overlapping_other_tone() -> None:
     """A flat-top tone with ramp_ns = 0 (a valid Envelope) overlapping a Gaussian elsewhere.
 
