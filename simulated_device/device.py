@@ -70,7 +70,7 @@ from typing import Any
 import numpy as np
 
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
-from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits
+from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits, read_limits
 from xtalkcal.exceptions import ConfigError
 from xtalkcal.tomlfields import Fields, load_toml
 
@@ -261,12 +261,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
     )
     dr.reject_unknown()
 
-    lim = top.table("limits", None)
-    limits = SafetyLimits(
-        max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
-        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=-200.0, hi=40.0),
-    )
-    lim.reject_unknown()
+    limits = read_limits(top.table("limits", None))
 
     qubits: list[QubitTruth] = []
     qtabs = top.tables("qubits")

@@ -225,6 +225,16 @@ class Chip:
         }
 
 
+def read_limits(lim: Fields) -> SafetyLimits:
+    """The lab's ``[limits]`` table (shared by chip and simulated-device files)."""
+    limits = SafetyLimits(
+        max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
+        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=-200.0, hi=40.0),
+    )
+    lim.reject_unknown()
+    return limits
+
+
 def load_chip(path: str | Path) -> Chip:
     """Load and validate a chip file.
 
@@ -247,11 +257,7 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
     name = top.string("name")
 
     lim = top.table("limits", None)
-    limits = SafetyLimits(
-        max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
-        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=-200.0, hi=40.0),
-    )
-    lim.reject_unknown()
+    limits = read_limits(lim)
 
     qubits: list[Qubit] = []
     qtables = top.tables("qubits")
