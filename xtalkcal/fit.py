@@ -53,7 +53,7 @@ import enum
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Literal
+from typing import Any, Generic, Literal, TypeVar
 
 import lmfit
 import numpy as np
@@ -246,36 +246,40 @@ _NAN_VALUES = NullFitValues(
 )
 
 
-class _Guarded:
+_V = TypeVar("_V")
+
+
+class _Guarded(Generic[_V]):
     """Shared rule: the numbers of a rejected estimate are not handed out."""
 
     verdict: Verdict
     reason: RejectionReason
     message: str
+    _values: _V
 
     @property
     def accepted(self) -> bool:
         """True when the verdict is ``accepted``."""
         return self.verdict is Verdict.ACCEPTED
 
-    def _checked(self) -> Any:
+    def _checked(self) -> _V:
         if self.verdict is not Verdict.ACCEPTED:
             raise RejectedEstimateError(
                 f"this estimate was rejected ({self.reason.value}): {self.message}. "
                 "A rejected estimate has no value; use .unchecked() only for diagnostics."
             )
-        return self._values  # type: ignore[attr-defined]
+        return self._values
 
-    def unchecked(self) -> Any:
+    def unchecked(self) -> _V:
         """The fitted numbers regardless of the verdict -- for diagnostic plots only.
 
         Never store, export or act on these for a rejected estimate.
         """
-        return self._values  # type: ignore[attr-defined]
+        return self._values
 
 
 @dataclass(frozen=True, eq=False, repr=False)
-class NullEstimate(_Guarded):
+class NullEstimate(_Guarded[NullFitValues]):
     """One null estimate: value, covariance, quality figure and verdict.
 
     The value properties (``z_star``, ``covariance``, ``floor``, ...) raise
@@ -475,7 +479,7 @@ _NAN_RING = RingValues(*(math.nan,) * 6)
 
 
 @dataclass(frozen=True, eq=False, repr=False)
-class RingEstimate(_Guarded):
+class RingEstimate(_Guarded[RingValues]):
     """Direction of the null seen from a ring's centre, with a verdict.
 
     Same rule as :class:`NullEstimate`: values raise when rejected.
@@ -655,9 +659,7 @@ class ParaboloidBatch:
             curvature_stderr=float(r["curvature_stderr"][idx]),
         )
         shots = None if self.total_shots is None else int(self.total_shots[idx])
-        msg = _paraboloid_message(
-            reason, {k: v[idx] for k, v in r.items()}, self.dof, self.rules
-        )
+        msg = _paraboloid_message(reason, {k: v[idx] for k, v in r.items()}, self.dof, self.rules)
         return NullEstimate(
             method=self.method,
             verdict=verdict,
@@ -865,7 +867,8 @@ def _region_ok(zn: NDArray[np.complex128], zs: NDArray[Any], margin: float) -> N
             & (zs.imag <= ymax + my)
         )
         in_circle = np.abs(zs) <= 1.0 + margin  # zn has max radius 1 by construction
-    return in_box & in_circle
+    ok: NDArray[np.bool_] = in_box & in_circle
+    return ok
 
 
 def _batched_wls(
@@ -1023,7 +1026,7 @@ def _paraboloid_message(
             f"the paraboloid does not describe the data (chi-square tail probability "
             f"{float(r['pvalue']):.2g} with {dof} dof)"
         )
-    return reason.value
+    return str(reason.value)
 
 
 def fit_paraboloid(
@@ -1440,7 +1443,8 @@ def _fisher_covariance(info: NDArray[np.float64], n_interest: int = 2) -> NDArra
         return np.full(info.shape, np.inf)
     cov = np.linalg.pinv(im, rcond=1e-12, hermitian=True)
     cov[:n_interest, :n_interest] = np.linalg.inv(schur)
-    return cov / np.outer(d, d)
+    out: NDArray[np.float64] = cov / np.outer(d, d)
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -1594,7 +1598,8 @@ def _binomial_irls(
     sqrt_w = np.sqrt(n / (p_prev * (1 - p_prev)))
 
     def residual(params: lmfit.Parameters) -> NDArray[np.float64]:
-        return (p_obs - _model_mean(zn, ka, params.valuesdict(), model)) * sqrt_w
+        r: NDArray[np.float64] = (p_obs - _model_mean(zn, ka, params.valuesdict(), model)) * sqrt_w
+        return r
 
     success = True
     nfev = 0
@@ -1839,6 +1844,7 @@ def fit_null(
             top = float(np.max(p_obs)) - max(st.floor, 0.0)
             alt_amp = float(np.clip(top, 0.02, 0.999 * (1 - max(st.floor, 0.0))))
             starts.append(_Start(st.x, st.y, st.floor, st.kappa, alt_amp))
+
     def finite(o: _LmfitOutcome) -> bool:
         return all(math.isfinite(v) for v in o.values.values())
 
@@ -1861,8 +1867,13 @@ def fit_null(
                 candidates = [best_free]
     if not candidates:
         return _rejected(
-            method, RejectionReason.FIT_FAILED, "the optimizer returned non-finite values",
-            npts, total, dof, amps,
+            method,
+            RejectionReason.FIT_FAILED,
+            "the optimizer returned non-finite values",
+            npts,
+            total,
+            dof,
+            amps,
         )
     best = min(candidates, key=lambda o: o.objective)
     return _finish_binomial(best, zn, kc, n, ka, centre, scale, model, rules, method, amps)
@@ -2046,14 +2057,22 @@ def fit_null_gaussian(
     inv_sig = 1 / sg
 
     def residual(params: lmfit.Parameters) -> NDArray[np.float64]:
-        return (sa - _model_mean(zn, ones, params.valuesdict(), "paraboloid")) * inv_sig
+        r: NDArray[np.float64] = (
+            sa - _model_mean(zn, ones, params.valuesdict(), "paraboloid")
+        ) * inv_sig
+        return r
 
     out = _lmfit_least_squares(residual, pars)
     v = dict(out.params.valuesdict())
     if not all(math.isfinite(x) for x in v.values()):
         return _rejected(
-            method, RejectionReason.FIT_FAILED, "the optimizer returned non-finite values",
-            npts, None, dof, (1,),
+            method,
+            RejectionReason.FIT_FAILED,
+            "the optimizer returned non-finite values",
+            npts,
+            None,
+            dof,
+            (1,),
         )
     p, jac = _null_signal_jacobian(
         zn, ones, v["x"], v["y"], v["floor"], v["kappa"], math.nan, "paraboloid"
@@ -2063,8 +2082,13 @@ def fit_null_gaussian(
     cov = _fisher_covariance(info)
     if not np.all(np.isfinite(cov[:2, :2])):
         return _rejected(
-            method, RejectionReason.FIT_FAILED, "the data do not identify the null",
-            npts, None, dof, (1,),
+            method,
+            RejectionReason.FIT_FAILED,
+            "the data do not identify the null",
+            npts,
+            None,
+            dof,
+            (1,),
         )
     kap_se = math.sqrt(max(cov[3, 3], 0.0))
     snr = v["kappa"] / kap_se if kap_se > 0 else math.inf
