@@ -30,8 +30,8 @@ from xtalkcal.fit import VerdictRules, fit_paraboloid
 from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
 from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
-from xtalkcal.timeline import envelope_values
 from xtalkcal.sweep import BatchRunner
+from xtalkcal.timeline import envelope_values
 
 __all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "ring_around"]
 
@@ -61,6 +61,8 @@ class PairResult:
     repeats: int
     measured_at_s: float
     stage: str  # "survey" or "null"
+    sweep_id: str = ""  # key of the raw sweep in CalibrationResult.sweeps
+    quality: float = math.nan  # reduced chi-square of the fit
 
     @property
     def stderr(self) -> float:
@@ -95,6 +97,45 @@ class CalibrationResult:
             if p.aggressor == aggressor and p.victim == victim:
                 return p
         raise KeyError((aggressor, victim))
+
+
+def ledger_entries(result: CalibrationResult, *, run_tag: str = "") -> list:
+    """The result as :class:`~xtalkcal.ledger.LedgerEntry` objects (one per pair).
+
+    Rejected pairs are stored too (as history, never current). Each entry links to its
+    raw sweep by ``sweep_id`` = ``run_tag + "/" + pass key``; store the sweeps of
+    :func:`ledger_sweeps` in the same commit.
+    """
+    from xtalkcal import __version__
+    from xtalkcal.ledger import LedgerEntry, utc_timestamp
+
+    stamp = utc_timestamp()
+    out = []
+    for p in result.pairs:
+        nan2 = ((math.nan, math.nan), (math.nan, math.nan))
+        out.append(LedgerEntry(
+            aggressor=p.aggressor, victim=p.victim, frequency_ghz=p.freq_ghz,
+            value=p.x if p.x is not None else complex(math.nan, math.nan),
+            covariance=tuple(map(tuple, p.x_cov)) if p.x_cov is not None else nan2,
+            method=p.method, shots=p.shots, amplification=p.repeats,
+            quality=p.quality if p.accepted else math.nan,
+            verdict="accepted" if p.accepted else "rejected",
+            reason=p.reason if not p.accepted else "",
+            measured_at_s=p.measured_at_s, measured_at_utc=stamp,
+            rig=result.rig_description, software_version=f"xtalkcal {__version__}",
+            kind="null" if p.nulled else "survey", tag=run_tag,
+            sweep_id=_sweep_key(run_tag, p.sweep_id),
+        ))
+    return out
+
+
+def _sweep_key(run_tag: str, key: str) -> str:
+    return f"{run_tag}/{key}" if run_tag else key
+
+
+def ledger_sweeps(result: CalibrationResult, *, run_tag: str = "") -> dict[str, xr.Dataset]:
+    """The raw sweeps of a result keyed as :func:`ledger_entries` links them."""
+    return {_sweep_key(run_tag, k): v for k, v in result.sweeps.items()}
 
 
 def risk_map(chip: Chip, protocol: Protocol) -> list[dict[str, Any]]:
@@ -191,9 +232,25 @@ def calibrate_chip(
     *,
     runner: BatchRunner | None = None,
     aggressors: list[str] | None = None,
+    column_parallel: bool = True,
     log: Callable[[str], None] | None = None,
 ) -> CalibrationResult:
-    """Survey every column and null every pair above the protocol's threshold."""
+    """Survey every column and null every pair above the protocol's threshold.
+
+    Parameters
+    ----------
+    rig : Rig
+    protocol : Protocol
+    runner : BatchRunner, optional
+        Records batches (resumable); a plain one is made if not given.
+    aggressors : list of str, optional
+        Aggressor lines to calibrate (default all).
+    column_parallel : bool
+        True: all victims of an aggressor share the shots. False: one victim per pass
+        (the pair-by-pair baseline of the benchmarks).
+    log : callable, optional
+        Receives one line of progress text per pass.
+    """
     chip = rig.chip
     runner = runner or BatchRunner(rig)
     say = log or (lambda s: None)
@@ -209,9 +266,12 @@ def calibrate_chip(
         groups = [[v for v in victims if methods[v] != "stark"],
                   [v for v in victims if methods[v] == "stark"]]
         for gi, group in enumerate(groups):
-            if group:
-                _calibrate_pass(rig, runner, protocol, result, line, group,
-                                [methods[v] for v in group], shape, stark=(gi == 1), say=say)
+            passes = [group] if column_parallel else [[v] for v in group]
+            for victims_of_pass in passes:
+                if victims_of_pass:
+                    _calibrate_pass(rig, runner, protocol, result, line, victims_of_pass,
+                                    [methods[v] for v in victims_of_pass], shape,
+                                    stark=(gi == 1), say=say)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
@@ -245,6 +305,8 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             radius[i] = amp * 10 ** (STRONGEST_DB / 20) * 1.5
     radius = np.minimum(radius, 0.45 * limits)
     tag = f"{line}-{'stark' if stark else 'res'}"
+    if tag in result.sweeps:  # pair-by-pair passes: one record per victim
+        tag = f"{tag}-{victims[0]}"
     pts_all: list[np.ndarray] = []
     sig_all: list[np.ndarray] = []
     err_all: list[np.ndarray] = []
@@ -333,10 +395,12 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
                                            bool(selected[i]), nshots, K,
                                            now if selected[i] else survey_time,
-                                           "null" if selected[i] else "survey"))
+                                           "null" if selected[i] else "survey", tag,
+                                           float(e.reduced_chi2)))
         else:
             result.pairs.append(PairResult(line, v, methods[i], f, False, e.reason.value, None,
-                                           None, False, nshots, K, survey_time, "survey"))
+                                           None, False, nshots, K, survey_time, "survey", tag,
+                                           float(e.reduced_chi2)))
     Z = np.vstack(pts_all)
     result.sweeps[tag] = xr.Dataset(
         {

@@ -124,11 +124,30 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     if runner.progress is not None:
         runner.progress.close()
     _atomic_write(out, dumps(result) + "\n")
+    if args.ledger:
+        _record_in_ledger(args.ledger, rig.chip.name, result)
     print(format_table(result))
     n_rej = sum(not p.accepted and p.nulled for p in result.pairs)
     print(f"\n{len(result.pairs)} pairs, {result.shots} shots, "
           f"{result.rig_seconds:.1f} s of rig time; wrote {out}")
     return EXIT_FAILED if n_rej else EXIT_OK
+
+
+def _record_in_ledger(path: str, chip: str, result) -> None:
+    """Append a calibration (entries and raw sweeps) to the chip's ledger, one commit."""
+    import datetime as dt
+
+    from xtalkcal.calibration import ledger_entries, ledger_sweeps
+    from xtalkcal.ledger import Ledger
+
+    led = Ledger.create(path, chip=chip, exist_ok=True)
+    if led.chip != chip:
+        raise XtalkcalConfigError("command line", "--ledger",
+                                  f"{path} belongs to chip {led.chip!r}, not {chip!r}")
+    tag = "cal-" + dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S")
+    receipt = led.append(ledger_entries(result, run_tag=tag),
+                         sweeps=ledger_sweeps(result, run_tag=tag))
+    log.info("ledger %s: commit %s", path, receipt)
 
 
 @_command("demo")
@@ -157,6 +176,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     truth = {(p.aggressor, p.victim): rig.true_crosstalk(p.victim, p.aggressor, p.freq_ghz,
                                                          p.measured_at_s)
              for p in result.pairs}
+    _record_in_ledger(str(out / "ledger"), rig.chip.name, result)
     md = write_report(result, out, truth=truth)
     print(format_table(result))
     print(f"\nreport: {md} and {out / 'report.html'}")
@@ -226,6 +246,8 @@ def build_parser() -> argparse.ArgumentParser:
     k.add_argument("--record", default=None,
                    help="directory to record each batch in; rerun with it to resume")
     k.add_argument("-o", "--output", default="xtalk-matrix.json", help="JSON file to write")
+    k.add_argument("--ledger", default=None,
+                   help="the chip's ledger directory to append the estimates to (created if new)")
     k.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
     d = sub.add_parser("demo", help="the whole job on the bundled simulated chip, with a report")

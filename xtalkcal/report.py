@@ -38,8 +38,7 @@ def write_report(result: CalibrationResult, out: str | Path, *,
     nulled = [p for p in result.pairs if p.accepted and p.nulled]
     leak = [p for p in nulled if p.method == "leakage"]
     for p in (leak or nulled)[:1] + sorted(nulled, key=lambda p: -abs(p.x))[:1]:
-        tag = f"{p.aggressor}-{'stark' if p.method == 'stark' else 'res'}"
-        sweep = result.sweeps[tag]
+        sweep = result.sweeps[p.sweep_id]
         amp = sweep.attrs["aggressor_amplitude"]
         name = f"null_{p.aggressor}_{p.victim}.png"
         if any(f[1] == name for f in figs):
