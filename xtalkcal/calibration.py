@@ -330,13 +330,21 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     def fit():
         Z = np.vstack(pts_all).T  # (V, n)
         S = np.vstack(sig_all).T
-        E = np.vstack(err_all).T
+        E = np.vstack(err_all).T.copy()
+        # Once a victim has two rings centred near its null, the wide survey ring is
+        # dropped from its fit (a weight of ~0): signals are symmetric in |z − z*| but
+        # not exactly quadratic, and mixing radii far apart would bias z*.
+        rnd = np.concatenate(round_all)
+        if rnd.max() >= 2:
+            E[np.ix_(searched, rnd == 0)] *= 1e6
+        return fit_paraboloid(Z, S, E, rules=_RULES)
         # The leak of the other victims' tones (orthogonal designs, see ring_around) and
         # the weak non-quadratic terms add scatter the paraboloid does not model: the
         # covariance is scaled by the reduced chi-square (Birge ratio) instead of
         # rejecting the fit for it.
         return fit_paraboloid(Z, S, E, rules=_RULES)
 
+    searched = np.zeros(V, bool)  # victims whose null is being searched
     n_ring = ring_points_for(V, protocol.survey.ring_points)
     n_null = ring_points_for(V, protocol.null.points_per_ring)
     measure(ring_around(np.zeros(V, complex), radius, n_ring), protocol.survey.shots,
@@ -359,6 +367,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     target = 10 ** (protocol.null.target_residual_db / 20) * amp / 2
     centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
                        for i in range(V)])
+    searched[:] = selected
     budget = protocol.null.shot_budget
     spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     rounds = 0
