@@ -17,8 +17,8 @@ A run's time axis is cut at every tone start/end and at the ends of flat-top ram
 * An interval where every active tone shares one frequency and has a constant
   envelope (square tones, flat tops, or no tone at all) has a *static* generator
   in the frame of that frequency. Its propagator is the exact exponential of the
-  L²×L² Lindblad generator (scaling and squaring + Taylor), one per interval, however
-  long: long flat-top Stark pulses and idle waits cost the same as a short one.
+  L²×L² Lindblad generator, one per interval, however long: long flat-top Stark
+  pulses and idle waits cost the same as a short one.
 * Other intervals are stepped with the fourth-order Magnus integrator (two
   Gauss–Legendre points and one commutator; Blanes et al., Phys. Rep. 470, 151 (2009))
   in the frame of the strongest tone, where a single-frequency drive is slow, so
@@ -27,6 +27,20 @@ A run's time axis is cut at every tone start/end and at the ends of flat-top ram
   weak dissipation is applied by Strang splitting with its exact channel. The
   dissipator commutes with the diagonal part of H (it is phase covariant), so the
   splitting error involves only the drive: ~ T·dt²·Ω²·Γ/12.
+
+How the stepper is kept cheap (none of this changes the result beyond round-off):
+
+* H is tridiagonal (diagonal levels plus the ladder), so the Magnus exponent, commutator
+  included, is written out entry by entry; its diagonal is centred (a global phase, which
+  cancels in UρU†) to lower its norm.
+* Matrix exponentials are Taylor polynomials evaluated by Paterson–Stockmeyer (degree 12 in
+  five products); the degree (6 to 15) is the lowest whose remainder bound at the argument's
+  norm is below 1e-16, with scaling and squaring beyond that.
+* The dissipation channel for the step is computed once per interval and applied along the
+  diagonals of ρ, the only entries it couples; the half steps of consecutive steps merge.
+* Envelope constants are computed once per interval, and each tone's rotating phase
+  e^{−i2π(f_k − f)t} is advanced by a complex product per step, re-evaluated every 16 steps.
+* All work arrays are allocated once per run: the kernel allocates nothing per step.
 
 The reference path (:func:`evolve_reference`) integrates the same master equation
 with SciPy's adaptive Runge–Kutta at tight tolerances; it is slow and exists for tests.
@@ -124,121 +138,10 @@ def _envelope(code, t_rel, T, sigma, drag, ramp):
     return 1.0 + 0.0j
 
 
-@nb.njit(cache=True)
-def _matmul(A, B):
-    n = A.shape[0]
-    C = np.zeros((n, n), dtype=np.complex128)
-    for i in range(n):
-        for k in range(n):
-            a = A[i, k]
-            if a != 0:
-                for j in range(n):
-                    C[i, j] += a * B[k, j]
-    return C
-
-
-@nb.njit(cache=True)
-def _expm(A):
-    """exp(A) for a small dense complex matrix: scaling and squaring with Taylor order 12."""
-    n = A.shape[0]
-    norm = 0.0
-    for i in range(n):
-        row = 0.0
-        for j in range(n):
-            row += abs(A[i, j])
-        norm = max(norm, row)
-    s = 0
-    if norm > 0.5:
-        s = int(math.ceil(math.log2(norm / 0.5)))
-    scale = 1.0 / (2.0**s)
-    X = A * scale
-    E = np.eye(n, dtype=np.complex128)
-    term = np.eye(n, dtype=np.complex128)
-    for k in range(1, 13):
-        term = _matmul(term, X) / k
-        E += term
-    for _ in range(s):
-        E = _matmul(E, E)
-    return E
-
-
-@nb.njit(cache=True)
-def _hamiltonian(t, f_frame, levels_ghz, ladder, start, dur, freq, omega, code, sigma, drag, ramp,
-                 n_tones):
-    """H/h (GHz) in the frame rotating at f_frame, at time t."""
-    L = levels_ghz.shape[0]
-    H = np.zeros((L, L), dtype=np.complex128)
-    for n in range(L):
-        H[n, n] = levels_ghz[n] - n * f_frame
-    drive = 0.0 + 0.0j
-    for k in range(n_tones):
-        tr = t - start[k]
-        if tr < 0.0 or tr > dur[k]:
-            continue
-        e = _envelope(code[k], tr, dur[k], sigma[k], drag[k], ramp[k])
-        ph = -TWO_PI * (freq[k] - f_frame) * t
-        drive += 0.5 * omega[k] * e * complex(math.cos(ph), math.sin(ph))
-    for n in range(L - 1):
-        H[n + 1, n] += drive * ladder[n]
-        H[n, n + 1] += np.conj(drive) * ladder[n]
-    return H
-
-
-@nb.njit(cache=True)
-def _generator(H, gamma1, gamma_phi):
-    """Row-major vec(ρ) Lindblad generator (1/ns) for H (GHz)."""
-    L = H.shape[0]
-    N = L * L
-    G = np.zeros((N, N), dtype=np.complex128)
-    for m in range(L):
-        for k in range(L):
-            row = m * L + k
-            for p in range(L):
-                # -i2π (H ρ)[m,k] = -i2π Σ_p H[m,p] ρ[p,k]
-                G[row, p * L + k] += -1j * TWO_PI * H[m, p]
-                # +i2π (ρ H)[m,k] = +i2π Σ_q ρ[m,q] H[q,k]
-                G[row, m * L + p] += 1j * TWO_PI * H[p, k]
-            # relaxation: J = √Γ1 Σ √n |n-1><n|;  J ρ J† -> ρ[m+1,k+1] √((m+1)(k+1)) Γ1
-            if m + 1 < L and k + 1 < L:
-                G[row, (m + 1) * L + (k + 1)] += gamma1 * math.sqrt((m + 1.0) * (k + 1.0))
-            # -(1/2){J†J, ρ}: J†J = Γ1 n̂  and dephasing -Γφ (m-k)^2
-            G[row, row] += -0.5 * gamma1 * (m + k) - gamma_phi * (m - k) ** 2
-    return G
-
-
-@nb.njit(cache=True)
-def _apply_super(S, rho):
-    L = rho.shape[0]
-    N = L * L
-    v = np.empty(N, dtype=np.complex128)
-    for m in range(L):
-        for k in range(L):
-            v[m * L + k] = rho[m, k]
-    out = np.zeros((L, L), dtype=np.complex128)
-    for r in range(N):
-        acc = 0.0 + 0.0j
-        for c in range(N):
-            acc += S[r, c] * v[c]
-        out[r // L, r % L] = acc
-    return out
-
-
-@nb.njit(cache=True)
-def _change_frame(rho, f_old, f_new, t):
-    """ρ_new[m,k] = ρ_old[m,k]·exp(i2π(f_new − f_old)(m − k)t)."""
-    L = rho.shape[0]
-    d = TWO_PI * (f_new - f_old) * t
-    for m in range(L):
-        for k in range(L):
-            if m != k:
-                ph = d * (m - k)
-                rho[m, k] *= complex(math.cos(ph), math.sin(ph))
-    return rho
-
-
-# Taylor polynomials for the per-step unitary. The degree is the lowest of _PS_DEGREES whose
-# remainder bound at the norm of the exponent is below _TAYLOR_TOL; the tolerance is per step
-# and relative to ‖U‖ = 1, so 10⁴ steps still keep the truncation below 1e-12.
+# Taylor polynomials for every matrix exponential (per-step unitaries and interval channels).
+# The degree is the lowest of _PS_DEGREES whose remainder bound at the norm of the (scaled)
+# argument is below _TAYLOR_TOL; the tolerance is relative to a norm-1 result and applies per
+# step, so 10⁴ steps still keep the truncation below 1e-12.
 _TAYLOR_TOL = 1e-16
 _PS_DEGREES = (6, 9, 12, 15)
 _INV_FACT = tuple(1.0 / math.factorial(k) for k in range(_PS_DEGREES[-1] + 1))
@@ -330,6 +233,87 @@ def _expm_into(X, out, X2, X3, tmp):
 
 
 @nb.njit(cache=True)
+def _hamiltonian(t, f_frame, levels_ghz, ladder, start, dur, freq, omega, code, sigma, drag, ramp,
+                 n_tones):
+    """H/h (GHz) in the frame rotating at f_frame, at time t."""
+    L = levels_ghz.shape[0]
+    H = np.zeros((L, L), dtype=np.complex128)
+    for n in range(L):
+        H[n, n] = levels_ghz[n] - n * f_frame
+    drive = 0.0 + 0.0j
+    for k in range(n_tones):
+        tr = t - start[k]
+        if tr < 0.0 or tr > dur[k]:
+            continue
+        e = _envelope(code[k], tr, dur[k], sigma[k], drag[k], ramp[k])
+        ph = -TWO_PI * (freq[k] - f_frame) * t
+        drive += 0.5 * omega[k] * e * complex(math.cos(ph), math.sin(ph))
+    for n in range(L - 1):
+        H[n + 1, n] += drive * ladder[n]
+        H[n, n + 1] += np.conj(drive) * ladder[n]
+    return H
+
+
+@nb.njit(cache=True)
+def _generator(H, gamma1, gamma_phi):
+    """Row-major vec(ρ) Lindblad generator (1/ns) for H (GHz)."""
+    L = H.shape[0]
+    N = L * L
+    G = np.zeros((N, N), dtype=np.complex128)
+    for m in range(L):
+        for k in range(L):
+            row = m * L + k
+            for p in range(L):
+                # -i2π (H ρ)[m,k] = -i2π Σ_p H[m,p] ρ[p,k]
+                G[row, p * L + k] += -1j * TWO_PI * H[m, p]
+                # +i2π (ρ H)[m,k] = +i2π Σ_q ρ[m,q] H[q,k]
+                G[row, m * L + p] += 1j * TWO_PI * H[p, k]
+            # relaxation: J = √Γ1 Σ √n |n-1><n|;  J ρ J† -> ρ[m+1,k+1] √((m+1)(k+1)) Γ1
+            if m + 1 < L and k + 1 < L:
+                G[row, (m + 1) * L + (k + 1)] += gamma1 * math.sqrt((m + 1.0) * (k + 1.0))
+            # -(1/2){J†J, ρ}: J†J = Γ1 n̂  and dephasing -Γφ (m-k)^2
+            G[row, row] += -0.5 * gamma1 * (m + k) - gamma_phi * (m - k) ** 2
+    return G
+
+
+@nb.njit(cache=True)
+def _apply_super(S, rho, v):
+    """ρ ← S·vec(ρ) in place (row-major vec); ``v`` is an L² work vector."""
+    L = rho.shape[0]
+    N = L * L
+    for m in range(L):
+        for k in range(L):
+            v[m * L + k] = rho[m, k]
+    for r in range(N):
+        acc = 0.0 + 0.0j
+        for c in range(N):
+            acc += S[r, c] * v[c]
+        rho[r // L, r % L] = acc
+
+
+@nb.njit(cache=True)
+def _scaled_into(A, c, out):
+    """out = c·A."""
+    n = A.shape[0]
+    for i in range(n):
+        for j in range(n):
+            out[i, j] = c * A[i, j]
+
+
+@nb.njit(cache=True)
+def _change_frame(rho, f_old, f_new, t):
+    """ρ_new[m,k] = ρ_old[m,k]·exp(i2π(f_new − f_old)(m − k)t)."""
+    L = rho.shape[0]
+    d = TWO_PI * (f_new - f_old) * t
+    for m in range(L):
+        for k in range(L):
+            if m != k:
+                ph = d * (m - k)
+                rho[m, k] *= complex(math.cos(ph), math.sin(ph))
+    return rho
+
+
+@nb.njit(cache=True)
 def _dissipate(S, rho):
     """ρ ← S ρ in place, for S = exp(τ·G) of the dissipation-only generator.
 
@@ -373,10 +357,11 @@ def _active_envelope(kind, p, i, t):
 @nb.njit(cache=True)
 def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi, gen_diss,
                      start, dur, freq, omega, code, sigma, drag, ramp, n_tones, max_step,
-                     phase_per_step, env_fraction, w):
+                     phase_per_step, env_fraction, w, sw):
     """Advance ρ (in place) over a time-dependent interval [ta, ta + span] by Magnus-4 steps.
 
-    ``w`` holds the run's work arrays (allocated once per run by ``_evolve_one``). The
+    ``w`` and ``sw`` hold the run's L×L and L²×L² work arrays (allocated once per run by
+    ``_evolve_one``). The
     Hamiltonian is tridiagonal, H = D + z(t)·X + z̄(t)·X† with D = diag(ε_n − n·f) and
     X = Σ λ_n|n+1⟩⟨n|, so the Magnus exponent Ω = (dt/2)(A1 + A2) + (√3/12)dt²[A2, A1]
     (A = −i2πH at the two Gauss points) is written out in closed form, without products:
@@ -384,6 +369,7 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
     [D, X] = Σ (d_{n+1} − d_n)λ_n|n+1⟩⟨n| and [X, X†] = Σ (λ_{n−1}² − λ_n²)|n⟩⟨n|.
     """
     (om, U, X2, X3, tmp, T, dvec, lam2, kind, par, half_om, wph, zph, rot, p1, p2) = w
+    sarg, _, sX2, sX3, stmp, d_half, d_full, _ = sw
     L = levels_ghz.shape[0]
     tm = ta + 0.5 * span
     for n in range(L):
@@ -444,8 +430,10 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
     # Strang splitting: the half-step channels of consecutive steps merge into one full step.
     damped = gamma1 > 0.0 or gamma_phi > 0.0
     if damped:
-        d_half = _expm(gen_diss * (0.5 * dt))
-        d_full = _expm(gen_diss * dt)
+        _scaled_into(gen_diss, 0.5 * dt, sarg)
+        _expm_into(sarg, d_half, sX2, sX3, stmp)
+        _scaled_into(gen_diss, dt, sarg)
+        _expm_into(sarg, d_full, sX2, sX3, stmp)
         _dissipate(d_half, rho)
     a_lin = -1j * math.pi * dt  # (dt/2)·(−i2π)
     kap = -(SQRT3 / 3.0) * math.pi * math.pi * dt * dt  # (√3/12)·dt²·(−i2π)²
@@ -516,6 +504,12 @@ def _evolve_one(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, 
             np.empty(M, dtype=np.complex128), np.empty(M), np.empty(M, dtype=np.complex128),
             np.empty(M, dtype=np.complex128), np.empty(M, dtype=np.complex128),
             np.empty(M, dtype=np.complex128))
+    N = L * L
+    swork = (np.empty((N, N), dtype=np.complex128), np.empty((N, N), dtype=np.complex128),
+             np.empty((N, N), dtype=np.complex128), np.empty((N, N), dtype=np.complex128),
+             np.empty((N, N), dtype=np.complex128), np.empty((N, N), dtype=np.complex128),
+             np.empty((N, N), dtype=np.complex128), np.empty(N, dtype=np.complex128))
+    sarg, sprop, sX2, sX3, stmp, _, _, vec = swork
     gen_diss = _generator(np.zeros((L, L), dtype=np.complex128), gamma1, gamma_phi)
     # breakpoints
     nb_max = 2 + 4 * n_tones
@@ -573,12 +567,13 @@ def _evolve_one(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, 
         if static:
             H = _hamiltonian(tm, f_cur, levels_ghz, ladder, start, dur, freq, omega, code, sigma,
                              drag, ramp, n_tones)
-            S = _expm(_generator(H, gamma1, gamma_phi) * span)
-            rho = _apply_super(S, rho)
+            _scaled_into(_generator(H, gamma1, gamma_phi), span, sarg)
+            _expm_into(sarg, sprop, sX2, sX3, stmp)
+            _apply_super(sprop, rho, vec)
             continue
         _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi, gen_diss,
                          start, dur, freq, omega, code, sigma, drag, ramp, n_tones, max_step,
-                         phase_per_step, env_fraction, work)
+                         phase_per_step, env_fraction, work, swork)
     pops = np.empty(L)
     for n in range(L):
         pops[n] = rho[n, n].real
