@@ -546,19 +546,21 @@ def analyse_recheck(
     ``rules.confidence_sigma``, ``sigma`` = stderr of ``|dX|``):
 
     1. **broken**, fit rejected: fewer points than parameters (4, or 3 with a fixed
-       curvature), a design that does not determine them (``fit_failed``), or a chi-square
-       tail probability below ``rules.mismatch_pvalue`` (``model_mismatch``).
+       curvature: ``too_few_points``), or a design that does not determine them
+       (``fit_failed``).
     2. **broken**, with a prior: the data's own ``kappa`` differs from the prior by more than
        ``rules.prior_consistency_sigma`` combined standard errors (the landscape changed:
        ``model_mismatch``).
-    3. **broken**, ``kappa / stderr(kappa) < rules.min_curvature_snr``: the curvature is not
+    3. **broken**, fit rejected: the chi-square tail probability (data, plus the prior's
+       pull when a prior is given) is below ``rules.mismatch_pvalue`` (``model_mismatch``).
+    4. **broken**, ``kappa / stderr(kappa) < rules.min_curvature_snr``: the curvature is not
        significantly positive (``no_signal``). With a prior this uses the combined estimate,
        so a flat landscape is caught only as far as rule 2's data-only ``kappa`` resolves it.
-    4. **broken**, ``|d| > rules.region_factor * rho``: the null left the probed region
+    5. **broken**, ``|d| > rules.region_factor * rho``: the null left the probed region
        (``outside_region``); the ring cannot measure such a shift.
-    5. **drifted**, ``|dX| > tol`` (the point estimate exceeds the tolerance); ``confident``
+    6. **drifted**, ``|dX| > tol`` (the point estimate exceeds the tolerance); ``confident``
        if also ``|dX| - k sigma > tol``.
-    6. **within** otherwise; ``confident`` if ``|dX| + k sigma < tol``; ``comfortable`` if
+    7. **within** otherwise; ``confident`` if ``|dX| + k sigma < tol``; ``comfortable`` if
        ``|dX| + k sigma`` is at least ``rules.comfort_db`` below ``tol``.
 
     Parameters
@@ -570,8 +572,8 @@ def analyse_recheck(
         Error signal at each point (probability, or rad for a Stark phase), oriented so the
         null is a minimum.
     stderr : array_like of float, shape (n,) or scalar
-        Standard error of each signal value (same units), > 0. For counts use
-        :func:`xtalkcal.fit.binomial_signal`.
+        Standard error of each signal value (same units), > 0. For binomial counts use
+        :func:`analyse_recheck_counts`, which weights by the model's variance.
     z_stored : complex
         The stored null ``z_s`` the re-check was centred on (fraction of full scale).
     amplitude : complex
@@ -802,14 +804,6 @@ def analyse_recheck(
             RejectionReason.FIT_FAILED,
             **numbers,
         )
-    if dof > 0 and pvalue < rules.mismatch_pvalue:
-        return outcome(
-            RecheckDecision.BROKEN,
-            f"the paraboloid does not describe the re-check (chi-square {chi2:.3g} with "
-            f"{dof} dof, tail probability {pvalue:.2g} < {rules.mismatch_pvalue:g})",
-            RejectionReason.MODEL_MISMATCH,
-            **numbers,
-        )
     if prior is not None and math.isfinite(data_k):
         zk = abs(data_k - prior[0]) / math.sqrt(data_k_se**2 + prior[1] ** 2)
         if zk > rules.prior_consistency_sigma:
@@ -821,6 +815,14 @@ def analyse_recheck(
                 RejectionReason.MODEL_MISMATCH,
                 **numbers,
             )
+    if dof > 0 and pvalue < rules.mismatch_pvalue:
+        return outcome(
+            RecheckDecision.BROKEN,
+            f"the paraboloid does not describe the re-check (chi-square {chi2:.3g} with "
+            f"{dof} dof, tail probability {pvalue:.2g} < {rules.mismatch_pvalue:g})",
+            RejectionReason.MODEL_MISMATCH,
+            **numbers,
+        )
     snr = kappa / kappa_se if kappa_se > 0 else (math.inf if kappa > 0 else -math.inf)
     if not snr >= rules.min_curvature_snr:
         return outcome(
@@ -1455,8 +1457,8 @@ def next_check(
     * **broken**: ``min_interval_hours`` and follow-up ``recalibrate`` (full calibration).
     * **drifted**: ``shorten * base`` (0.5); follow-up ``recentre`` when the re-check's own
       estimate is good enough to adopt (``k`` times the largest stderr axis of ``dX`` below the
-      tolerance, and ``|d| <= rho``, inside the ring where the paraboloid was probed), else
-      ``recalibrate``. The trend is not used: it describes the value being replaced.
+      tolerance, ``k = rules.confidence_sigma``), else ``recalibrate``. The trend is not used:
+      it describes the value being replaced.
     * **within**: ``lengthen * base`` (2) when comfortable (upper ``k``-sigma bound at least
       ``rules.comfort_db`` below the tolerance), ``modest_lengthen * base`` (1.5) when
       confidently within, ``base`` otherwise.
@@ -1537,16 +1539,17 @@ def next_check(
         proposal, use_trend = shorten * base, False
         tol = _lin(outcome.tolerance_db)
         axis = math.sqrt(max(float(np.linalg.eigvalsh(outcome.shift_covariance)[-1]), 0.0))
-        adoptable = (
-            rules.confidence_sigma * axis < tol and abs(outcome.null_shift) <= outcome.probe_radius
-        )
+        # Adopting the re-check's null leaves its estimation error as the new residual; it
+        # must sit well inside the tolerance. (Shifts beyond the probed region are already
+        # broken, so no distance rule is needed here.)
+        adoptable = rules.confidence_sigma * axis < tol
         follow_up = FollowUp.RECENTRE if adoptable else FollowUp.RECALIBRATE
         why = (
             f"drifted: shortened x{shorten:g}; "
             + (
                 "the re-check's null is precise enough to adopt (re-centre)"
                 if adoptable
-                else "the re-check's null is too uncertain or too far out to adopt (recalibrate)"
+                else "the re-check's null is too uncertain to adopt (recalibrate)"
             )
         )
     elif outcome.comfortable:
