@@ -10,7 +10,7 @@ import pytest
 from scipy.linalg import expm
 
 from simulated_device import SimRig, ToneBatch, evolve_populations
-from xtalkcal.exceptions import FitInputError
+from xtalkcal.exceptions import FitInputError, TimelineError
 from xtalkcal.verify import (
     CLIFFORD_DECOMPOSITIONS,
     PRIMITIVES,
@@ -270,7 +270,30 @@ def test_timelines_are_right_aligned_and_isolated_keeps_the_timing(demo_chip):
                 assert last == pytest.approx(a.end_ns) or seqs.primitives(li, s, q)[-1] == "I"
 
 
+def test_bad_sequence_requests_raise_timeline_errors(demo_chip):
+    with pytest.raises(TimelineError):
+        draw_sequences([], [1], 2)
+    with pytest.raises(TimelineError):
+        draw_sequences(["q0", "q0"], [1], 2)
+    with pytest.raises(TimelineError):
+        draw_sequences(["q0"], [-1], 2)
+    seqs = draw_sequences(["q0"], [2], 1, rng=0)
+    with pytest.raises(TimelineError):
+        rb_timelines(demo_chip, seqs, playing=["q1"])
+
+
 # --------------------------------------------------------------------------- simulator
+
+
+def test_readout_offsets_match_the_hidden_assignment_matrix(demo_device):
+    """B = ½[P(read 0|0) + P(read 0|1)] against the device file's readout matrices."""
+    rig = SimRig(demo_device, seed=5, drift=False)
+    b = readout_offsets(rig, ["q4", "q5", "q6"], shots=40000)
+    for q, value in b.items():
+        a = demo_device.qubit(q).readout
+        expected = 0.5 * (a[0, 0] + a[1, 0])
+        # shot noise ~ 0.5·√(2·0.25/40000) ≈ 2e-3; the π pulse error is ~1e-5
+        assert value == pytest.approx(expected, abs=6e-3)
 
 
 def test_isolated_rb_is_coherence_limited(demo_device):

@@ -78,6 +78,7 @@ import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from functools import lru_cache
+from types import MappingProxyType
 from typing import Literal
 
 import numpy as np
@@ -120,7 +121,7 @@ DragCondition = Literal["phase", "leakage", "off"]
 Transform = Callable[[Timeline], Timeline]
 
 # name -> (rotation angle θ, tone phase φ); "I" is an idle slot.
-PRIMITIVES: dict[str, tuple[float, float]] = {
+PRIMITIVES: Mapping[str, tuple[float, float]] = MappingProxyType({
     "I": (0.0, 0.0),
     "X": (math.pi, 0.0),
     "Y": (math.pi, math.pi / 2),
@@ -128,7 +129,7 @@ PRIMITIVES: dict[str, tuple[float, float]] = {
     "-X/2": (math.pi / 2, math.pi),
     "Y/2": (math.pi / 2, math.pi / 2),
     "-Y/2": (math.pi / 2, -math.pi / 2),
-}
+})
 
 CLIFFORD_DECOMPOSITIONS: tuple[tuple[str, ...], ...] = (
     # Paulis
@@ -200,14 +201,14 @@ class CliffordGroup:
 
         Raises
         ------
-        ValueError
-            If ``u`` is not a Clifford.
+        TimelineError
+            If ``u`` is not a Clifford (a ValueError).
         """
         c = _canonical(np.asarray(u, dtype=complex))
         d = np.abs(self.unitaries - c[None]).reshape(len(self.unitaries), -1).max(axis=1)
         k = int(np.argmin(d))
         if d[k] > atol:
-            raise ValueError("the unitary is not a single-qubit Clifford")
+            raise TimelineError("the unitary is not a single-qubit Clifford")
         return k
 
     def product(self, indices: Sequence[int]) -> int:
@@ -255,13 +256,15 @@ def drag_coefficient_ns(anharmonicity_ghz: float, condition: DragCondition = "ph
     if condition == "off":
         return 0.0
     if not (math.isfinite(anharmonicity_ghz) and anharmonicity_ghz != 0):
-        raise ValueError(f"anharmonicity must be finite and non-zero, got {anharmonicity_ghz!r}")
+        raise TimelineError(
+            f"anharmonicity must be finite and non-zero, got {anharmonicity_ghz!r} GHz")
     beta_leak = -1.0 / (2 * math.pi * anharmonicity_ghz)
     if condition == "leakage":
         return beta_leak
     if condition == "phase":
         return ladder_ratio_sq / 4.0 * beta_leak
-    raise ValueError(f"unknown DRAG condition {condition!r}; accepted: 'phase', 'leakage', 'off'")
+    raise TimelineError(
+        f"unknown DRAG condition {condition!r}; accepted: 'phase', 'leakage', 'off'")
 
 
 @dataclass(frozen=True)
@@ -358,12 +361,12 @@ def draw_sequences(qubits: Sequence[str], lengths: Sequence[int], n_sequences: i
     """
     rng = np.random.default_rng(rng)
     if n_sequences < 1:
-        raise ValueError("n_sequences must be ≥ 1")
+        raise TimelineError(f"n_sequences must be ≥ 1, got {n_sequences}")
     if not qubits or len(set(qubits)) != len(qubits):
-        raise ValueError("qubits must be a non-empty list of distinct names")
+        raise TimelineError(f"qubits must be a non-empty list of distinct names, got {qubits!r}")
     lengths = tuple(int(m) for m in lengths)
     if any(m < 0 for m in lengths):
-        raise ValueError("sequence lengths must be ≥ 0")
+        raise TimelineError(f"sequence lengths must be ≥ 0, got {lengths}")
     group = clifford_group()
     out = []
     for m in lengths:
@@ -457,7 +460,7 @@ def run_rb(rig: Rig, sequences: RBSequences, *, gates: GateSet = GateSet(),
         read), ``wall_s``, ``mode``, ``shots``, ``slot_ns``.
     """
     if mode not in ("simultaneous", "isolated"):
-        raise ValueError(f"mode must be 'simultaneous' or 'isolated', got {mode!r}")
+        raise TimelineError(f"mode must be 'simultaneous' or 'isolated', got {mode!r}")
     runner = runner or BatchRunner(rig)
     chip = rig.chip
     nq, nl, ns = len(sequences.qubits), len(sequences.lengths), sequences.n_sequences
@@ -824,7 +827,7 @@ def simultaneous_rb(rig: Rig, sequences: RBSequences, *, gates: GateSet = GateSe
                     transforms: Mapping[str, Transform | None] | None = None,
                     shots: int = 2000,
                     offset: float | Mapping[str, float] | Literal["measured"] | None = "measured",
-                    isolated: bool = True, runner: BatchRunner | None = None,
+                    runner: BatchRunner | None = None,
                     n_boot: int = 200, rng=None) -> SimultaneousRBReport:
     """Isolated RB of each qubit and simultaneous RB under each condition.
 
@@ -842,8 +845,6 @@ def simultaneous_rb(rig: Rig, sequences: RBSequences, *, gates: GateSet = GateSe
     offset : float, mapping, "measured" or None
         Fixed asymptote B (dimensionless) per qubit; ``"measured"`` (default) measures it
         with :func:`readout_offsets`; None leaves it free.
-    isolated : bool
-        Run the isolated reference (required for the comparison).
     runner : BatchRunner, optional
     n_boot : int
         Bootstrap resamples for the standard errors.
@@ -854,15 +855,14 @@ def simultaneous_rb(rig: Rig, sequences: RBSequences, *, gates: GateSet = GateSe
     SimultaneousRBReport
     """
     rng = np.random.default_rng(rng)
-    if not isolated:
-        raise ValueError("the comparison needs the isolated reference (isolated=True)")
     transforms = {"uncompensated": None} if transforms is None else dict(transforms)
     if "isolated" in transforms:
-        raise ValueError("'isolated' is reserved for the isolated reference")
+        raise TimelineError("'isolated' is reserved for the isolated reference; rename the "
+                            "condition")
     if isinstance(offset, str):
         if offset != "measured":
-            raise ValueError(f"offset must be a number, a mapping, 'measured' or None, got "
-                             f"{offset!r}")
+            raise FitInputError(f"offset must be a number, a mapping, 'measured' or None, "
+                                f"got {offset!r}")
         offset = readout_offsets(rig, sequences.qubits, gates=gates, runner=runner)
     data = {"isolated": run_rb(rig, sequences, gates=gates, mode="isolated", shots=shots,
                                runner=runner, key="rbiso")}
