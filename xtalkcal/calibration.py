@@ -269,17 +269,30 @@ def calibrate_chip(
             passes = [group] if column_parallel else [[v] for v in group]
             for victims_of_pass in passes:
                 if victims_of_pass:
+                    # Column-parallel: the tones already found for this aggressor play
+                    # during later passes, so their leaks are nulled too.
+                    fixed = tuple(
+                        (chip.line_of(p.victim).name, -p.x * _amplitude(protocol, chip, line))
+                        for p in result.pairs
+                        if column_parallel and p.aggressor == line and p.accepted and p.nulled
+                    )
                     _calibrate_pass(rig, runner, protocol, result, line, victims_of_pass,
                                     [methods[v] for v in victims_of_pass], shape,
-                                    stark=(gi == 1), say=say)
+                                    stark=(gi == 1), say=say, fixed=fixed)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
 
 
-def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say):
+def _amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
+    """Peak amplitude of the aggressor pulses of ``line``."""
+    return protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
+
+
+def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
+                    fixed=()):
     chip = rig.chip
-    amp = protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
+    amp = _amplitude(protocol, chip, line)
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
                        methods=tuple(methods), shape=shape)
     spacing = base.spacing_ns
@@ -291,7 +304,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
         K = max(1, min(int((math.pi / 4) / theta), int(protocol.survey.max_train_ns // spacing)))
     probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
-                        methods=tuple(methods), shape=shape, merged=stark)
+                        methods=tuple(methods), shape=shape, merged=stark, fixed=fixed)
     f = probe.freq_ghz
     V = len(victims)
     limits = np.array([chip.amplitude_limit(chip.line_of(v).name) for v in victims])
@@ -347,7 +360,13 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     searched = np.zeros(V, bool)  # victims whose null is being searched
     n_ring = ring_points_for(V, protocol.survey.ring_points)
     n_null = ring_points_for(V, protocol.null.points_per_ring)
-    measure(ring_around(np.zeros(V, complex), radius, n_ring), protocol.survey.shots,
+    # Rings longer than the protocol asks for (to keep victims apart) share the same
+    # shots per ring: every victim gets the information the protocol intends per round,
+    # and a column's cost does not grow with its number of victims.
+    survey_shots = _shots_per_point(protocol.survey.shots, protocol.survey.ring_points, n_ring)
+    null_shots = _shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
+                                  n_null)
+    measure(ring_around(np.zeros(V, complex), radius, n_ring), survey_shots,
             f"{tag}-survey", 0)
     est = fit()
     survey_time = rig.now()
@@ -391,7 +410,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         if done.all():
             break
         pts = ring_around(centre, rad, n_null, phase0=math.pi / n_null * rounds)
-        measure(pts, protocol.null.shots_per_point, f"{tag}-null{rounds:02d}", rounds)
+        measure(pts, null_shots, f"{tag}-null{rounds:02d}", rounds)
         spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     est = fit()
     now = rig.now()
@@ -427,6 +446,11 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
     )
+
+
+def _shots_per_point(nominal: int, nominal_points: int, points: int) -> int:
+    """Shots per point that keep a ring's total at ``nominal × nominal_points``."""
+    return max(50, int(round(nominal * max(nominal_points, 1) / points)))
 
 
 def _birge(e) -> float:

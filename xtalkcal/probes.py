@@ -148,6 +148,10 @@ class ColumnProbe:
     shape : PulseShape
     gap_ns : float
         Minimum idle time between pulses (ns).
+    fixed : tuple of (line, complex amplitude)
+        Cancellation tones already found for other victims of this aggressor, played
+        with every aggressor pulse at a fixed setting (their leak onto this pass's
+        victims is then part of the nulls found, as it will be in use).
     phase_cycle : tuple of float
         Phases (rad) added to the victims' preparation (and Ramsey analysis) pulses,
         one timeline each, counts summed. An imperfect preparation leaves a little
@@ -172,6 +176,7 @@ class ColumnProbe:
     windows: MethodWindows = field(default_factory=MethodWindows)
     merged: bool = False
     phase_cycle: tuple[float, ...] = (0.0, math.pi)
+    fixed: tuple[tuple[str, complex], ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "victims", tuple(self.victims))
@@ -295,7 +300,7 @@ class ColumnProbe:
                     if aggressor_on and self.amplitude > 0:
                         train.append(Tone(self.aggressor, start, length, f,
                                           self.amplitude, 0.0, env))
-                    for line, zz in zip(lines, z[p]):
+                    for line, zz in list(zip(lines, z[p])) + list(self.fixed):
                         if zz != 0:
                             train.append(Tone(line, start, length, f, abs(zz),
                                               math.atan2(zz.imag, zz.real), env))
