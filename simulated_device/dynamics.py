@@ -194,7 +194,9 @@ def _expm_into(X, out, X2, X3, tmp):
     for i in range(n):
         row = 0.0
         for j in range(n):
-            row += abs(X[i, j])
+            # |x| without hypot's overflow guard (entries are far from overflow; it is a bound)
+            x = X[i, j]
+            row += math.sqrt(x.real * x.real + x.imag * x.imag)
         theta = max(theta, row)
     s = 0
     q = _PS_DEGREES[-1] // 3
