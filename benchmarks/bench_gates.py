@@ -13,8 +13,28 @@ Otherwise the benchmark builds the compensated timelines itself: for every tone 
 j at f_j it adds ``tone.scaled(rig.true_ratio(i, j, f_j), line_i)`` on every victim line
 i — and says so in its output.
 
+Own-drive correction (``--own-drive``, off by default): the cancellation tones that line
+k plays at f_j to protect qubit k also reach qubit j itself, changing its own drive by
+the factor ``1 + Σ_k X_jk(f_j)·r_kj`` (second order, up to ~−43 dB on this chip for q1,
+enough for a few 1e-5 error per gate). A lab re-calibrates its gate amplitudes with
+compensation on (common practice); the benchmark mimics that with the true factor,
+dividing every tone of line j at f_j by it before the cancellation copies are made. It
+is then reported as a third condition, ``comp+own``.
+
 Target: with compensation, each qubit's simultaneous error per gate within 10 % of its
 isolated one, or 2e-5 absolute, whichever is larger.
+
+Default design (why): all nine qubits, because the whole chip is affordable — the cost
+of a simulated victim-timeline grows with the number of tones it holds (compensation
+multiplies them by up to nine), not with the qubit count alone; lengths 1–400 Cliffords,
+because coherence-limited qubits (p ≈ 0.999) decay only ~15 % by m = 400 and a fixed
+asymptote B from the readout (``readout_offsets``) is what makes such shallow decays
+precise, while 400 Cliffords (~750 slots of 32 ns, 24 µs) stay well inside the 100 µs
+repetition time and the chip's average-power limit; 12 draws shared by every condition
+so the ratios are paired draw by draw; 1e5 shots, which cost the simulator nothing but
+its multinomial draw (on hardware they would cost 10 s per timeline: use fewer and more
+draws there). Restrict with ``--qubits`` (e.g. q4,q5,q6,q7: the leakage pair and the
+near-resonant pair) for a quicker look.
 
 Run:  PYTHONPATH=. python benchmarks/bench_gates.py [--qubits q4,q5,q6,q7] [--draws 12]
 """
@@ -98,6 +118,37 @@ def local_transform(rig: SimRig, pairs: dict):
     return transform, f"built in the benchmark from rig.true_ratio ({len(pairs)} pairs)"
 
 
+def own_drive_factors(rig: SimRig, qubits: list[str], pairs: dict) -> dict[str, complex]:
+    """1 + Σ_k X_jk(f_j)·r_kj per played line j: its own drive with compensation on."""
+    chip = rig.chip
+    out = {}
+    for j in qubits:
+        line = chip.line_of(j).name
+        f = chip.qubit(j).f01_ghz
+        total = 1.0 + 0j
+        for (agg, victim), x in pairs.items():
+            if agg == line:
+                total += rig.true_crosstalk(j, chip.line_of(victim).name, f) * (-x)
+        out[line] = total
+    return out
+
+
+def with_own_drive(transform, rig: SimRig, qubits: list[str], pairs: dict):
+    """``transform`` applied after dividing each line's own-frequency tones by its factor."""
+    chip = rig.chip
+    factors = own_drive_factors(rig, qubits, pairs)
+    freqs = {chip.line_of(q).name: chip.qubit(q).f01_ghz for q in qubits}
+
+    def corrected(tl: Timeline) -> Timeline:
+        tones = tuple(
+            t.scaled(1.0 / factors[t.line], t.line)
+            if t.line in factors and abs(t.freq_ghz - freqs[t.line]) < 1e-6 else t
+            for t in tl.tones)
+        return transform(replace(tl, tones=tones))
+
+    return corrected, factors
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--qubits", default="q0,q1,q2,q3,q4,q5,q6,q7,q8")
@@ -109,6 +160,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=2031)
     ap.add_argument("--local", action="store_true",
                     help="build compensation in the benchmark even if the library has it")
+    ap.add_argument("--own-drive", action="store_true",
+                    help="add a condition with the own-drive correction (module docstring)")
     args = ap.parse_args(argv)
 
     qubits = args.qubits.split(",")
@@ -127,33 +180,45 @@ def main(argv: list[str] | None = None) -> int:
           f"{args.shots} shots; slot {gates.slot_ns:g} ns (DRAG '{gates.drag}')")
     print(f"compensation: {how}")
 
+    conditions = {"uncompensated": None, "compensated": transform}
+    if args.own_drive:
+        conditions["comp+own"], factors = with_own_drive(transform, rig, qubits, pairs)
+        worst = max(factors, key=lambda k: abs(factors[k] - 1))
+        print(f"own-drive factors: largest |factor − 1| = {abs(factors[worst] - 1):.2e} "
+              f"on {worst} ({20 * math.log10(abs(factors[worst] - 1)):.1f} dB)")
+
     t0 = time.perf_counter()
-    rep = simultaneous_rb(rig, seqs, gates=gates,
-                          transforms={"uncompensated": None, "compensated": transform},
+    rep = simultaneous_rb(rig, seqs, gates=gates, transforms=conditions,
                           shots=args.shots, rng=args.seed)
     total = time.perf_counter() - t0
 
     print()
     print(rep.table())
     print()
-    print(f"{'qubit':6s} {'T1/T2 limit':>12s} {'target':>10s} {'compensated':>12s} verdict")
-    ok_all = True
+    comp_names = [k for k in conditions if k != "uncompensated"]
+    print("target: simultaneous ≤ isolated + max(10 %, 2e-5); error per gate in 1e-4")
+    print(f"{'qubit':6s} {'T1/T2 limit':>12s} {'isolated':>9s} {'target':>8s}"
+          + "".join(f" {k:>12s} {'':6s}" for k in comp_names))
+    ok_all = {k: True for k in comp_names}
     for c in rep.comparisons:
         q = rig.device.qubit(c.qubit)
         limit = coherence_limited_error_per_gate(gates.slot_ns, q.t1_us * 1e3, q.t2_us * 1e3)
         iso = c.isolated.error_per_gate
         tol = max(0.10 * iso, 2e-5)
-        comp = c.simultaneous["compensated"].error_per_gate
-        ok = comp - iso <= tol
-        ok_all &= ok
-        print(f"{c.qubit:6s} {1e4 * limit:12.2f} {1e4 * (iso + tol):10.2f} {1e4 * comp:12.2f} "
-              f"{'ok' if ok else 'MISSED'}   (1e-4)")
+        row = f"{c.qubit:6s} {1e4 * limit:12.2f} {1e4 * iso:9.2f} {1e4 * (iso + tol):8.2f}"
+        for k in comp_names:
+            e = c.simultaneous[k].error_per_gate
+            ok = e - iso <= tol
+            ok_all[k] &= ok
+            row += f" {1e4 * e:12.2f} {'ok' if ok else 'MISSED':6s}"
+        print(row)
     print()
     for k in rep.wall_s:
         print(f"{k:14s} wall {rep.wall_s[k]:7.1f} s   victim-timelines {rep.victim_timelines[k]}")
-    print(f"total incl. fits {total:.1f} s; target {'met' if ok_all else 'NOT met'} "
-          f"for all qubits")
-    return 0 if ok_all else 1
+    print(f"total incl. fits {total:.1f} s")
+    for k, ok in ok_all.items():
+        print(f"{k}: target {'met' if ok else 'NOT met'} for all qubits")
+    return 0 if ok_all["compensated"] else 1
 
 
 if __name__ == "__main__":
