@@ -363,10 +363,10 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
     """Advance ρ (in place) over a time-dependent interval [ta, ta + span] by Magnus-4 steps.
 
     ``w`` and ``sw`` hold the run's L×L and L²×L² work arrays (allocated once per run by
-    ``_evolve_one``). The
-    Hamiltonian is tridiagonal, H = D + z(t)·X + z̄(t)·X† with D = diag(ε_n − n·f) and
-    X = Σ λ_n|n+1⟩⟨n|, so the Magnus exponent Ω = (dt/2)(A1 + A2) + (√3/12)dt²[A2, A1]
-    (A = −i2πH at the two Gauss points) is written out in closed form, without products:
+    ``_evolve_one``). The Hamiltonian is tridiagonal, H = D + z(t)·X + z̄(t)·X† with
+    D = diag(ε_n − n·f) and X = Σ λ_n|n+1⟩⟨n|, so the Magnus exponent
+    Ω = (dt/2)(A1 + A2) + (√3/12)dt²[A2, A1] (A = −i2πH at the two Gauss points) is written
+    out in closed form, without products:
     [H2, H1] = (z1 − z2)[D, X] + (z̄1 − z̄2)[D, X†] + 2i·Im(z2 z̄1)[X, X†], where
     [D, X] = Σ (d_{n+1} − d_n)λ_n|n+1⟩⟨n| and [X, X†] = Σ (λ_{n−1}² − λ_n²)|n⟩⟨n|.
     """
