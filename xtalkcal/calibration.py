@@ -20,13 +20,14 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import lru_cache
 from typing import Any
 
 import numpy as np
 import xarray as xr
 
 from xtalkcal.chip import Chip
-from xtalkcal.fit import VerdictRules, fit_paraboloid
+from xtalkcal.fit import ColumnNullFit, VerdictRules, fit_paraboloid_column
 from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
 from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
@@ -91,12 +92,40 @@ class CalibrationResult:
     shots: int = 0
     rig_seconds: float = 0.0
     risk: list[dict[str, Any]] = field(default_factory=list)
+    # Per sweep key: (victims, C, stderr) with C[i, k] the field at victim i from victim
+    # k's line at the aggressor's frequency (X_ik(f_j)), measured in the column sweep.
+    couplings: dict[str, tuple[tuple[str, ...], np.ndarray, np.ndarray]] = field(
+        default_factory=dict)
 
     def pair(self, aggressor: str, victim: str) -> PairResult:
         for p in self.pairs:
             if p.aggressor == aggressor and p.victim == victim:
                 return p
         raise KeyError((aggressor, victim))
+
+
+def measured_couplings(result: CalibrationResult):
+    """The line-to-line couplings measured in the column sweeps, as a lookup function.
+
+    Returns ``get(victim, line, freq_ghz) -> X`` (0 where not measured): the field at
+    ``victim`` from ``line`` (another victim's own line) at an aggressor frequency, as
+    fitted by :func:`xtalkcal.fit.fit_paraboloid_column`. This is what the multi-victim
+    solve needs (:func:`xtalkcal.compensation.multi_victim_settings`, ``couplings=``):
+    X between victims at the aggressor's frequency, not at the victims' own.
+    """
+    chip = result.chip
+    table: dict[tuple[str, str, float], complex] = {}
+    for key, (victims, C, _err) in result.couplings.items():
+        f = float(result.sweeps[key].attrs["frequency_ghz"])
+        for i, v in enumerate(victims):
+            for k, u in enumerate(victims):
+                if i != k and np.isfinite(C[i, k]):
+                    table[(v, chip.line_of(u).name, round(f, 9))] = complex(C[i, k])
+
+    def get(victim: str, line: str, freq_ghz: float) -> complex:
+        return table.get((victim, line, round(float(freq_ghz), 9)), 0j)
+
+    return get
 
 
 def ledger_entries(result: CalibrationResult, *, run_tag: str = "") -> list:
@@ -174,11 +203,39 @@ def _is_prime(n: int) -> bool:
     return n > 1 and all(n % d for d in range(2, int(n**0.5) + 1))
 
 
-def _multipliers(n: int, count: int) -> list[int]:
-    """Angle multipliers in the middle third of Z_n: a sum-free, symmetric set."""
-    lo = n // 3 + 1
-    m = [k for k in range(lo, (n + 1) // 2) if 3 * k > n]
-    return m[:count]
+def _harmonic(h: int, n: int) -> int:
+    """Canonical harmonic index on a ring of n points: cos/sin of h and −h coincide."""
+    h %= n
+    return min(h, n - h)
+
+
+def _multipliers_ok(m: list[int], n: int) -> bool:
+    for i, mi in enumerate(m):
+        others = [x for j, x in enumerate(m) if j != i]
+        # Harmonics of victim i's column model (fit_paraboloid_column): its own tone
+        # (m_i), the bilinear terms conj(z_i)·z_k (m_k − m_i) and the linear terms z_k
+        # (m_k) — all distinct and non-zero, or the model is degenerate.
+        model = ([_harmonic(mi, n)] + [_harmonic(x - mi, n) for x in others]
+                 + [_harmonic(x, n) for x in others])
+        if 0 in model or len(set(model)) != len(model):
+            return False
+        # The unmodelled second-order terms z_k·conj(z_l) must stay off victim i's own
+        # harmonic, else they would bias its null.
+        if _harmonic(mi, n) in {_harmonic(a - b, n) for a in others for b in others if a != b}:
+            return False
+    return True
+
+
+@lru_cache(maxsize=256)
+def _multipliers(n: int, count: int) -> tuple[int, ...]:
+    """Angle multipliers for ``count`` victims on a ring of n points (greedy search)."""
+    m: list[int] = []
+    for c in range(1, n // 2 + 1):
+        if _multipliers_ok(m + [c], n):
+            m.append(c)
+            if len(m) == count:
+                break
+    return tuple(m)
 
 
 def ring_points_for(n_victims: int, at_least: int) -> int:
@@ -193,13 +250,13 @@ def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 
                 ) -> np.ndarray:
     """Points (n+1, V): the centre, then a ring of n points per victim column.
 
-    Victim v visits the ring's angles in the order θ_p = 2π·p·m_v/n, with the m_v
-    taken from the middle third of Z_n (n prime). That set, with its negatives, is
-    sum-free: no m_v is ± the sum or difference of two others, nor twice another.
-    So the leak of the other victims' cancellation tones onto victim v — linear in
-    one tone (harmonics ±m_k), or a product of two (harmonics m_k ± m_l) — has no
-    component on victim v's own harmonic ±m_v and averages out of its null
-    estimate instead of biasing it.
+    Victim v visits the ring's angles in the order θ_p = 2π·p·m_v/n (n prime). The
+    multipliers are chosen (:func:`_multipliers`) so that, for every victim, the
+    harmonics of its column model — its own tone (m_v), the leak of each other tone
+    (m_k) and its product with its own (m_k − m_v) — are all distinct, and the
+    unmodelled products of two other tones (m_k − m_l) avoid its own harmonic. The
+    other victims' leaks are then separable from the null (see
+    :func:`xtalkcal.fit.fit_paraboloid_column`) and cannot bias it.
     """
     V = center.shape[0]
     m = _multipliers(n, V)
@@ -207,7 +264,7 @@ def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 
         raise ValueError(f"{n} ring points cannot keep {V} victims apart; "
                          f"use ring_points_for({V}, ...)")
     p = np.arange(n)[:, None]
-    th = phase0 + 2 * np.pi * ((p * np.array(m)[None, :]) % n) / n
+    th = phase0 + 2 * np.pi * ((p * np.array(m[:V])[None, :]) % n) / n
     ring = center[None, :] + radius[None, :] * np.exp(1j * th)
     return np.vstack([center[None, :], ring])
 
@@ -272,7 +329,7 @@ def calibrate_chip(
                     # Column-parallel: the tones already found for this aggressor play
                     # during later passes, so their leaks are nulled too.
                     fixed = tuple(
-                        (chip.line_of(p.victim).name, -p.x * _amplitude(protocol, chip, line))
+                        (chip.line_of(p.victim).name, -p.x * pass_amplitude(protocol, chip, line))
                         for p in result.pairs
                         if column_parallel and p.aggressor == line and p.accepted and p.nulled
                     )
@@ -284,15 +341,48 @@ def calibrate_chip(
     return result
 
 
-def _amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
-    """Peak amplitude of the aggressor pulses of ``line``."""
+def measure_probe(runner: BatchRunner, probe: ColumnProbe, points: np.ndarray, shots: int,
+                  key: str):
+    """Run a probe at ``points`` (n, V) as one recorded batch; its :class:`ProbeSignals`.
+
+    Stark probes get their reference timelines (no aggressor) in the same batch.
+    """
+    tls = probe.timelines(points, label=f"{key}:")
+    ref = probe.reference_timelines(label=f"{key}:ref") if probe.has_stark else []
+    counts = runner.run(key, tls + ref, shots)
+    n = len(tls)
+    main = _slice(counts, 0, n)
+    refc = _slice(counts, n, n + len(ref)) if ref else None
+    return probe.signals(main, points.shape[0], refc)
+
+
+def survey_radii(probe: ColumnProbe) -> np.ndarray:
+    """Ring radius per victim before anything is known of its null (fraction of full scale).
+
+    Stark victims: where the victim line's own Stark phase reaches ~2×RISE_STARK_RAD
+    (nominal chip values); resonant victims: 1.5× the null of the strongest crosstalk we
+    plan for. Never more than 45 % of the victim line's limit.
+    """
+    chip = probe.chip
+    out = np.empty(len(probe.victims))
+    for i, (v, m) in enumerate(zip(probe.victims, probe.methods)):
+        if m == "stark":
+            out[i] = math.sqrt(RISE_STARK_RAD * 2 / _stark_gain(probe, v))
+        else:
+            out[i] = probe.amplitude * 10 ** (STRONGEST_DB / 20) * 1.5
+        out[i] = min(out[i], 0.45 * chip.amplitude_limit(chip.line_of(v).name))
+    return out
+
+
+def pass_amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
+    """Peak amplitude of the aggressor pulses of ``line`` (fraction of full scale)."""
     return protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
 
 
 def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
                     fixed=()):
     chip = rig.chip
-    amp = _amplitude(protocol, chip, line)
+    amp = pass_amplitude(protocol, chip, line)
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
                        methods=tuple(methods), shape=shape)
     spacing = base.spacing_ns
@@ -307,16 +397,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                         methods=tuple(methods), shape=shape, merged=stark, fixed=fixed)
     f = probe.freq_ghz
     V = len(victims)
-    limits = np.array([chip.amplitude_limit(chip.line_of(v).name) for v in victims])
-    # Ring radius per victim for the survey.
-    radius = np.zeros(V)
-    for i, (v, m) in enumerate(zip(victims, methods)):
-        if m == "stark":
-            gain = _stark_gain(probe, v)
-            radius[i] = math.sqrt(RISE_STARK_RAD * 2 / gain)
-        else:
-            radius[i] = amp * 10 ** (STRONGEST_DB / 20) * 1.5
-    radius = np.minimum(radius, 0.45 * limits)
+    radius = survey_radii(probe)
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
@@ -327,13 +408,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     round_all: list[np.ndarray] = []
 
     def measure(points: np.ndarray, shots: int, key: str, rnd: int) -> None:
-        tls = probe.timelines(points, label=f"{key}:")
-        ref = probe.reference_timelines(label=f"{key}:ref") if stark else []
-        counts = runner.run(key, tls + ref, shots)
-        n = len(tls)
-        main = _slice(counts, 0, n)
-        refc = _slice(counts, n, len(ref) + n) if stark else None
-        s = probe.signals(main, points.shape[0], refc)
+        s = measure_probe(runner, probe, points, shots, key)
         pts_all.append(points)
         sig_all.append(s.signal)
         err_all.append(s.stderr)
@@ -350,12 +425,12 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         rnd = np.concatenate(round_all)
         if rnd.max() >= 2:
             E[np.ix_(searched, rnd == 0)] *= 1e6
-        return fit_paraboloid(Z, S, E, rules=_RULES)
-        # The leak of the other victims' tones (orthogonal designs, see ring_around) and
-        # the weak non-quadratic terms add scatter the paraboloid does not model: the
+        # The other victims' tones are in the model (fit_paraboloid_column): each null is
+        # that of the aggressor's leak alone, and the couplings between the victims'
+        # lines at this frequency come out too. Weak non-quadratic terms remain: the
         # covariance is scaled by the reduced chi-square (Birge ratio) instead of
-        # rejecting the fit for it.
-        return fit_paraboloid(Z, S, E, rules=_RULES)
+        # rejecting the fit for them.
+        return _ColumnFit(fit_paraboloid_column(Z, S, E, rules=_RULES))
 
     searched = np.zeros(V, bool)  # victims whose null is being searched
     n_ring = ring_points_for(V, protocol.survey.ring_points)
@@ -414,6 +489,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     est = fit()
     now = rig.now()
+    result.couplings[tag] = (tuple(victims), est.fit.couplings, est.fit.couplings_stderr)
     for i, v in enumerate(victims):
         e = est.estimate(i)
         nshots = int(np.vstack(shots_all)[:, i].sum())
@@ -440,8 +516,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             "stderr": (("point", "victim"), np.vstack(err_all), {"long_name": "standard error"}),
             "shots": (("point", "victim"), np.vstack(shots_all), {"units": "shots"}),
             "round": (("point",), np.concatenate(round_all), {"long_name": "search round"}),
+            "coupling_re": (("victim", "from_victim"), est.fit.couplings.real,
+                            {"long_name": "field at victim from from_victim's line, real part",
+                             "units": "relative to the victim's own line"}),
+            "coupling_im": (("victim", "from_victim"), est.fit.couplings.imag,
+                            {"long_name": "same, imaginary part",
+                             "units": "relative to the victim's own line"}),
         },
-        coords={"victim": list(victims)},
+        coords={"victim": list(victims), "from_victim": list(victims)},
         attrs={"aggressor": line, "frequency_ghz": f, "repeats": K, "aggressor_amplitude": amp,
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
@@ -451,6 +533,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
 def _shots_per_point(nominal: int, nominal_points: int, points: int) -> int:
     """Shots per point that keep a ring's total at ``nominal × nominal_points``."""
     return max(50, int(round(nominal * max(nominal_points, 1) / points)))
+
+
+@dataclass(frozen=True)
+class _ColumnFit:
+    fit: ColumnNullFit
+
+    def estimate(self, i: int):
+        return self.fit.estimates[i]
 
 
 def _birge(e) -> float:

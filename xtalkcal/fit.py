@@ -77,6 +77,8 @@ __all__ = [
     "RingBatch",
     # estimators
     "fit_paraboloid",
+    "fit_paraboloid_column",
+    "ColumnNullFit",
     "fit_paraboloid_counts",
     "fit_ring",
     "fit_null",
@@ -2126,3 +2128,172 @@ def fit_null_gaussian(
         dof=dof,
         _values=values,
     )
+
+
+# ----------------------------------------------------------------------------- column fits
+
+
+@dataclass(frozen=True)
+class ColumnNullFit:
+    """Nulls of all victims of one aggressor from one column-parallel sweep.
+
+    Attributes
+    ----------
+    estimates : tuple of NullEstimate
+        Per victim: the null of the aggressor's leak alone (the other victims' tones
+        modelled, not absorbed).
+    couplings : ndarray (V, V) complex
+        ``couplings[i, k]``: field at victim i from victim k's line relative to victim
+        i's own line, at the sweep's frequency (the crosstalk element X_{i,k} at the
+        aggressor's frequency). NaN where not determined (diagonal, victims whose tone
+        did not vary, rejected fits).
+    couplings_stderr : ndarray (V, V)
+        sqrt of the trace of each coupling's 2×2 covariance.
+    """
+
+    estimates: tuple[NullEstimate, ...]
+    couplings: NDArray[np.complex128]
+    couplings_stderr: NDArray[np.float64]
+
+
+def fit_paraboloid_column(
+    z: ArrayLike,
+    s: ArrayLike,
+    sigma: ArrayLike,
+    *,
+    rules: VerdictRules = DEFAULT_RULES,
+) -> ColumnNullFit:
+    """Fit every victim's null of a column sweep, with the other victims' tones in the model.
+
+    In a column-parallel sweep victim i's field is ``w_i ∝ z_i − a_i + Σ_k c_ik·z_k``:
+    the other victims' cancellation tones leak onto it. Its signal near the null is
+    ``S0 + κ|w_i|²``; expanding, and dropping the small ``|Σ c z|²`` term, gives a model
+    linear in its coefficients::
+
+        S = b0 + b1·x_i + b2·y_i + κ·|z_i|² + Σ_k [g_k·conj(z_i)·z_k + h_k·z_k]  (real parts)
+
+    with ``a_i = −(b1 + i·b2)/(2κ)`` (the null of the aggressor's leak alone) and
+    ``c_ik = conj-coefficient(g_k)/(2κ)`` (the coupling of line k at this frequency).
+    Victims whose tone does not vary over the sweep are left out of the others' models
+    (their constant leak shifts the null, as it will in use).
+
+    Parameters
+    ----------
+    z, s, sigma : arrays (V, n)
+        Cancellation-tone amplitudes, signals and their standard errors per victim.
+    rules : VerdictRules
+        ``min_points`` (at least parameters + 1), ``min_curvature_snr`` and
+        ``region_margin`` apply; ``mismatch_pvalue`` does not (the caller scales by the
+        reduced chi-square).
+
+    Returns
+    -------
+    ColumnNullFit
+    """
+    Z = np.atleast_2d(np.asarray(z, dtype=complex))
+    S = np.atleast_2d(np.asarray(s, dtype=float))
+    E = np.atleast_2d(np.asarray(sigma, dtype=float))
+    if Z.shape != S.shape or Z.shape != E.shape:
+        raise FitInputError(f"z, s and sigma must have one shape (V, n), got {Z.shape}, "
+                            f"{S.shape}, {E.shape}")
+    if not (np.all(np.isfinite(Z)) and np.all(np.isfinite(S)) and np.all(E > 0)):
+        raise FitInputError("z and s must be finite and sigma positive")
+    V, n = Z.shape
+    coup = np.full((V, V), np.nan + 0j)
+    coup_err = np.full((V, V), np.nan)
+    out: list[NullEstimate] = []
+    for i in range(V):
+        # Points weighted down by more than 1e3 in sigma are left out of victim i's fit
+        # (a caller's way of dropping them for one victim only).
+        act = E[i] <= 1e3 * E[i].min()
+        Zi = Z[:, act]
+        varies = np.ptp(Zi.real, axis=1) + np.ptp(Zi.imag, axis=1) > 0
+        est, c_row, c_err = _column_victim(Zi, S[i, act], E[i, act], i, varies, rules)
+        # The dropped term κ|Σ c_k z_k|² is second order; subtract it with the first
+        # estimates and refit once (it matters when shots are plentiful).
+        if est.accepted:
+            lead = np.nan_to_num(c_row) @ Zi
+            est2, c2, e2 = _column_victim(Zi, S[i, act] - est.curvature * np.abs(lead) ** 2,
+                                          E[i, act], i, varies, rules)
+            if est2.accepted:
+                est, c_row, c_err = est2, c2, e2
+        out.append(est)
+        coup[i] = c_row
+        coup_err[i] = c_err
+    return ColumnNullFit(tuple(out), coup, coup_err)
+
+
+def _column_victim(
+    Z: NDArray[np.complex128],
+    si: NDArray[np.float64],
+    ei: NDArray[np.float64],
+    i: int,
+    varies: NDArray[np.bool_],
+    rules: VerdictRules,
+) -> tuple[NullEstimate, NDArray[np.complex128], NDArray[np.float64]]:
+    """One victim's column fit: (estimate, coupling row, coupling-stderr row)."""
+    V, n = Z.shape
+    zi = Z[i]
+    coup = np.full(V, np.nan + 0j)
+    coup_err = np.full(V, np.nan)
+    others = [k for k in range(V) if k != i and varies[k]]
+    cols = [np.ones(n), zi.real, zi.imag, np.abs(zi) ** 2]
+    for k in others:
+        prod = np.conj(zi) * Z[k]
+        cols += [prod.real, prod.imag, Z[k].real, Z[k].imag]
+    A = np.stack(cols, axis=1)
+    p = A.shape[1]
+    if n < max(rules.min_points, p + 1):
+        return (_column_rejected(RejectionReason.TOO_FEW_POINTS,
+                                 f"{n} points for {p} coefficients", n, n - p), coup, coup_err)
+    w = 1.0 / ei
+    Aw = A * w[:, None]
+    normal = Aw.T @ Aw
+    if not np.all(np.isfinite(normal)) or np.linalg.cond(normal) > 1e14:
+        return (_column_rejected(RejectionReason.FIT_FAILED, "degenerate design", n, n - p),
+                coup, coup_err)
+    cov_b = np.linalg.inv(normal)
+    b = cov_b @ (Aw.T @ (si * w))
+    resid = (si - A @ b) * w
+    dof = n - p
+    chi2 = float(resid @ resid)
+    kappa, sk = float(b[3]), float(math.sqrt(cov_b[3, 3]))
+    if kappa <= 0 or kappa / sk < rules.min_curvature_snr:
+        return (_column_rejected(RejectionReason.NO_SIGNAL,
+                                 f"curvature {kappa:.3g} ± {sk:.2g} is not significantly "
+                                 "positive", n, dof), coup, coup_err)
+    a = complex(-b[1], -b[2]) / (2 * kappa)
+    # Delta method for a = −(b1 + i b2)/(2 b3).
+    J = np.array([[-1 / (2 * kappa), 0.0, b[1] / (2 * kappa**2)],
+                  [0.0, -1 / (2 * kappa), b[2] / (2 * kappa**2)]])
+    sub = cov_b[np.ix_([1, 2, 3], [1, 2, 3])]
+    cov_a = J @ sub @ J.T
+    centre = zi.mean()
+    reach = float(np.abs(zi - centre).max())
+    if abs(a - centre) > (1 + rules.region_margin) * reach:
+        reason, msg = RejectionReason.OUTSIDE_REGION, "the null lies outside the swept points"
+    else:
+        reason, msg = RejectionReason.NONE, "accepted"
+    values = NullFitValues(z_star=a, covariance=0.5 * (cov_a + cov_a.T),
+                           floor=float(b[0] - kappa * abs(a) ** 2),
+                           floor_stderr=float(math.sqrt(cov_b[0, 0])), curvature=kappa,
+                           curvature_stderr=sk)
+    verdict = Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
+    est = NullEstimate(method="paraboloid-column", verdict=verdict, reason=reason, message=msg,
+                       n_points=n, total_shots=None,
+                       reduced_chi2=chi2 / dof if dof > 0 else math.nan, dof=dof,
+                       _values=values)
+    if verdict is Verdict.ACCEPTED:
+        for j, k in enumerate(others):
+            g = complex(b[4 + 4 * j], b[5 + 4 * j])
+            # 2κ·Re(conj(z_i)·c·z_k) = 2κ[c_r·Re(conj z_i z_k) − c_i·Im(conj z_i z_k)]
+            coup[k] = complex(g.real, -g.imag) / (2 * kappa)
+            idx = [4 + 4 * j, 5 + 4 * j]
+            coup_err[k] = float(math.sqrt(np.trace(cov_b[np.ix_(idx, idx)])) / (2 * kappa))
+    return est, coup, coup_err
+
+
+def _column_rejected(reason: RejectionReason, message: str, n: int, dof: int) -> NullEstimate:
+    return NullEstimate(method="paraboloid-column", verdict=Verdict.REJECTED, reason=reason,
+                        message=message, n_points=n, total_shots=None, reduced_chi2=math.nan,
+                        dof=dof)

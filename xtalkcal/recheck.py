@@ -1,0 +1,267 @@
+"""Scheduled re-checks on a rig: measure a few points around stored nulls, decide, act.
+
+A re-check of an aggressor's compensated pairs replays the calibration's probe (same
+aggressor amplitude, same amplification K, same method) with **every** cancellation
+tone of that aggressor on, and puts a small ring of points (plus the centre) around
+each re-checked victim's stored null, the rings of different victims kept apart as
+in the calibration (:func:`xtalkcal.calibration.ring_around`). The analysis and the
+decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
+calibration's rule (the signal rises by a set amount), the curvature prior comes
+from refitting the pair's calibration sweep stored in the ledger.
+
+:func:`run_due` is what a cron job runs: re-check whatever the schedule says is due,
+record the outcomes in the ledger (kind ``"recheck"``), re-centre pairs whose re-check
+located the moved null precisely, recalibrate the columns of pairs that drifted too
+far or broke, and reschedule.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from xtalkcal import __version__
+from xtalkcal.calibration import (
+    RISE_PROBABILITY,
+    RISE_STARK_RAD,
+    _shots_per_point,
+    calibrate_chip,
+    ledger_entries,
+    ledger_sweeps,
+    measure_probe,
+    pass_amplitude,
+    ring_around,
+    ring_points_for,
+    survey_radii,
+)
+from xtalkcal.drift import (
+    FollowUp,
+    RecheckDecision,
+    RecheckOutcome,
+    Schedule,
+    analyse_recheck,
+    pair_trend,
+)
+from xtalkcal.fit import VerdictRules, fit_paraboloid
+from xtalkcal.ledger import Ledger, LedgerEntry, MatrixSnapshot, utc_timestamp
+from xtalkcal.probes import ColumnProbe, PulseShape
+from xtalkcal.protocol import Protocol
+from xtalkcal.rig import Rig
+from xtalkcal.sweep import BatchRunner
+
+__all__ = ["PairCheck", "DueReport", "recheck_column", "run_due", "schedule_after_calibration"]
+
+Pair = tuple[str, str]
+
+
+@dataclass(frozen=True)
+class PairCheck:
+    """One pair's re-check: its outcome and the ledger entry made of it."""
+
+    aggressor: str
+    victim: str
+    outcome: RecheckOutcome
+    entry: LedgerEntry
+
+
+@dataclass
+class DueReport:
+    """What one :func:`run_due` call did."""
+
+    now_s: float
+    checked: list[PairCheck] = field(default_factory=list)
+    recentred: list[Pair] = field(default_factory=list)
+    recalibrated: list[str] = field(default_factory=list)  # aggressor lines
+    shots: int = 0
+
+
+def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, float] | None:
+    """(κ, σκ) of the pair from its stored calibration sweep, or None."""
+    if ledger is None or not entry.sweep_id:
+        return None
+    try:
+        ds = ledger.sweep(entry.sweep_id)
+    except Exception:  # noqa: BLE001 - a missing or unreadable sweep only loses the prior
+        return None
+    if entry.victim not in list(ds["victim"].values):
+        return None
+    s = ds.sel(victim=entry.victim)
+    z = s.z_re.values + 1j * s.z_im.values
+    rnd = ds["round"].values
+    keep = rnd >= 1 if rnd.max() >= 2 else np.ones(rnd.shape, bool)
+    e = fit_paraboloid(z[keep], s.signal.values[keep], s.stderr.values[keep],
+                       rules=VerdictRules(mismatch_pvalue=0.0)).estimate()
+    if not e.accepted:
+        return None
+    chi = e.reduced_chi2 if math.isfinite(e.reduced_chi2) else 1.0
+    # Saturating signals are not exactly quadratic, so the curvature seen depends on the
+    # ring radius: the prior is trusted to ±25 % at most.
+    sk = max(e.curvature_stderr * math.sqrt(max(1.0, chi)), 0.25 * e.curvature)
+    return float(e.curvature), float(sk)
+
+
+def recheck_column(
+    rig: Rig,
+    protocol: Protocol,
+    snapshot: MatrixSnapshot,
+    aggressor: str,
+    victims: Iterable[str],
+    *,
+    runner: BatchRunner,
+    ledger: Ledger | None = None,
+    key: str = "recheck",
+) -> list[PairCheck]:
+    """Re-check the given victims of one aggressor, all cancellation tones on.
+
+    Parameters
+    ----------
+    rig : Rig
+    protocol : Protocol
+        ``recheck`` settings (tolerance, points, shots) and the probe pulse.
+    snapshot : MatrixSnapshot
+        The current matrix; it holds the stored nulls and the tones to play.
+    aggressor : str
+    victims : iterable of str
+        Victims of ``aggressor`` to re-check; each must have an entry in ``snapshot``.
+    runner : BatchRunner
+    ledger : Ledger, optional
+        Source of the calibration sweeps (curvature prior).
+    key : str
+        Prefix of the batch keys in the runner's record.
+    """
+    chip = rig.chip
+    amp = pass_amplitude(protocol, chip, aggressor)
+    shape = PulseShape(protocol.pulse.duration_ns, protocol.pulse.sigma_ns)
+    settings = protocol.recheck
+    wanted = list(victims)
+    column = {v: e for (a, v), e in snapshot.entries.items() if a == aggressor}
+    missing = [v for v in wanted if v not in column]
+    if missing:
+        raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
+    checks: list[PairCheck] = []
+    for stark in (False, True):
+        group = [v for v in wanted if (column[v].method == "stark") == stark]
+        if not group:
+            continue
+        entries = [column[v] for v in group]
+        K = max(e.amplification for e in entries)
+        others = tuple((chip.line_of(v).name, -e.value * amp) for v, e in column.items()
+                       if v not in group)
+        probe = ColumnProbe(chip, aggressor, tuple(group), amplitude=amp, repeats=K,
+                            methods=tuple(e.method for e in entries), shape=shape,
+                            merged=stark, fixed=others)
+        z_stored = np.array([-e.value * amp for e in entries])
+        priors = [_sweep_curvature(ledger, e) for e in entries]
+        # The calibration's rule: where the signal rises by a set amount; without a
+        # stored sweep, the survey's radius from the nominal chip.
+        radius = survey_radii(probe)
+        for i, (e, pr) in enumerate(zip(entries, priors)):
+            rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
+            if pr is not None and pr[0] > 0:
+                radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
+        n = ring_points_for(len(group), settings.points)
+        shots = _shots_per_point(settings.shots_per_point, settings.points, n)
+        pts = ring_around(z_stored, radius, n)
+        sig = measure_probe(runner, probe, pts, shots,
+                            f"{key}-{aggressor}-{'stark' if stark else 'res'}")
+        now = rig.now()
+        for i, (v, e, pr) in enumerate(zip(group, entries, priors)):
+            # The other victims' rings add scatter the paraboloid does not model (by design
+            # it is orthogonal to this victim's null, see ring_around); the calibration of the
+            # same column measured its size as the fit's reduced chi-square.
+            excess = math.sqrt(max(1.0, e.quality)) if math.isfinite(e.quality) else 1.0
+            out = analyse_recheck(pts[:, i], sig.signal[:, i], sig.stderr[:, i] * excess,
+                                  z_stored[i], amp, tolerance_db=settings.tolerance_db,
+                                  curvature_prior=pr)
+            x_new = -out.z_null / amp
+            cov = np.asarray(out.null_covariance) / amp**2
+            precise = math.sqrt(np.trace(cov)) <= 0.5 * 10 ** (settings.tolerance_db / 20)
+            ok = (out.decision is not RecheckDecision.BROKEN and precise
+                  and math.isfinite(out.reduced_chi2))
+            reason = "" if ok else (out.reason if out.decision is RecheckDecision.BROKEN else
+                                    "re-check too imprecise to replace the stored null")
+            entry = LedgerEntry(
+                aggressor=aggressor, victim=v, frequency_ghz=e.frequency_ghz,
+                value=complex(x_new) if ok else complex(math.nan, math.nan),
+                covariance=tuple(map(tuple, cov)) if ok else ((math.nan,) * 2,) * 2,
+                method=e.method, shots=int(sig.shots[:, i].sum()), amplification=K,
+                quality=float(out.reduced_chi2) if ok else math.nan,
+                verdict="accepted" if ok else "rejected", reason=reason,
+                measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
+                software_version=f"xtalkcal {__version__}", kind="recheck",
+                tag=f"{out.decision.value}", sweep_id="")
+            checks.append(PairCheck(aggressor, v, out, entry))
+    return checks
+
+
+def schedule_after_calibration(schedule: Schedule, result, now_s: float) -> None:
+    """Register every nulled pair of a calibration result as freshly calibrated."""
+    for p in result.pairs:
+        if p.accepted and p.nulled:
+            schedule.calibrated((p.aggressor, p.victim), now_s)
+
+
+def run_due(
+    rig: Rig,
+    protocol: Protocol,
+    ledger: Ledger,
+    schedule: Schedule,
+    *,
+    runner: BatchRunner | None = None,
+    log: Callable[[str], None] | None = None,
+) -> DueReport:
+    """Do whatever is due now: re-checks, re-centring, recalibrations; then reschedule.
+
+    Returns a :class:`DueReport`. Ledger commits are made as work completes, so an
+    interrupted run loses at most the column in flight.
+    """
+    say = log or (lambda s: None)
+    runner = runner or BatchRunner(rig)
+    start_shots = runner.shots_executed
+    now = rig.now()
+    report = DueReport(now)
+    due = schedule.due(now)
+    if not due:
+        return report
+    snapshot = ledger.current()
+    by_agg: dict[str, list[str]] = {}
+    for a, v in due:
+        if (a, v) in snapshot:
+            by_agg.setdefault(a, []).append(v)
+        else:
+            schedule.remove((a, v))
+    recalibrate: set[str] = set()
+    for a, victims in by_agg.items():
+        tag = f"recheck-{int(rig.now())}"
+        checks = recheck_column(rig, protocol, snapshot, a, victims, runner=runner,
+                                ledger=ledger, key=f"{tag}-{a}")
+        ledger.append([c.entry for c in checks])
+        for c in checks:
+            pair = (c.aggressor, c.victim)
+            trend = pair_trend(ledger.history(*pair), tolerance_db=protocol.recheck.tolerance_db,
+                               now_s=rig.now())
+            nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
+            report.checked.append(c)
+            say(f"{a} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), residual "
+                f"{c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
+            if nxt.follow_up is FollowUp.RECALIBRATE or (
+                    nxt.follow_up is FollowUp.RECENTRE and c.entry.verdict != "accepted"):
+                recalibrate.add(a)
+            elif nxt.follow_up is FollowUp.RECENTRE:
+                # The accepted re-check entry is now the current null: re-centred.
+                schedule.calibrated(pair, rig.now(), interval_h=nxt.interval_h)
+                report.recentred.append(pair)
+    for a in sorted(recalibrate):
+        say(f"{a}: recalibrating the column")
+        res = calibrate_chip(rig, protocol, runner=runner, aggressors=[a])
+        tag = f"recal-{a}-{int(rig.now())}"
+        ledger.append(ledger_entries(res, run_tag=tag), sweeps=ledger_sweeps(res, run_tag=tag))
+        for p in res.pairs:
+            if p.accepted and p.nulled:
+                schedule.calibrated((p.aggressor, p.victim), rig.now())
+        report.recalibrated.append(a)
+    report.shots = runner.shots_executed - start_shots
+    return report
