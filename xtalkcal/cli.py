@@ -153,32 +153,40 @@ def _record_in_ledger(path: str, chip: str, result) -> None:
 @_command("demo")
 def _cmd_demo(args: argparse.Namespace) -> int:
     from simulated_device import SimRig, demo_device_path
-    from xtalkcal.calibration import calibrate_chip
+    from xtalkcal.campaign import run_campaign
     from xtalkcal.export import format_table
     from xtalkcal.protocol import load_protocol
     from xtalkcal.report import write_report
-    from xtalkcal.sweep import BatchRunner
 
     protocol = load_protocol(args.protocol)
     rig = SimRig(demo_device_path(), seed=args.seed, drift=True)
     out = Path(args.out)
     if out.exists() and any(out.iterdir()) and not args.force:
         raise XtalkcalConfigError("command line", "--out",
-                                      f"{out} exists and is not empty; choose another "
-                                      "folder or pass --force")
+                                  f"{out} exists and is not empty; choose another "
+                                  "folder or pass --force")
     print(f"xtalkcal demo on the bundled simulated chip {rig.chip.name!r} "
           f"({len(rig.chip.qubits)} qubits); report in {out}/")
-    runner = BatchRunner(rig, out / "record", progress=_progress_bar(args))
+    bar = _progress_bar(args)
     lines = args.aggressors.split(",") if args.aggressors else None
-    result = calibrate_chip(rig, protocol, runner=runner, aggressors=lines)
-    if runner.progress is not None:
-        runner.progress.close()
-    truth = {(p.aggressor, p.victim): rig.true_crosstalk(p.victim, p.aggressor, p.freq_ghz,
-                                                         p.measured_at_s)
-             for p in result.pairs}
-    _record_in_ledger(str(out / "ledger"), rig.chip.name, result)
-    md = write_report(result, out, truth=truth)
+    rb = [q for q in args.rb_qubits.split(",") if q] if args.rb_qubits else []
+
+    def truth(victim, line, f, t):
+        return rig.true_crosstalk(victim, line, f, t)
+
+    camp = run_campaign(rig, protocol, out, aggressors=lines, rb_qubits=rb, days=args.days,
+                        advance=rig.wait, truth=truth, progress=bar,
+                        rb_draws=args.rb_draws, say=lambda s: print(s, flush=True))
+    if bar is not None:
+        bar.close()
+    result = camp.calibration
+    at_cal = {(p.aggressor, p.victim): rig.true_crosstalk(p.victim, p.aggressor, p.freq_ghz,
+                                                          p.measured_at_s)
+              for p in result.pairs}
+    md = write_report(result, out, truth=at_cal, campaign=camp)
     print(format_table(result))
+    if camp.rb is not None:
+        print("\n" + camp.rb.table())
     print(f"\nreport: {md} and {out / 'report.html'}")
     return EXIT_OK
 
@@ -257,6 +265,10 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--aggressors", default=None,
                    help="comma-separated aggressor lines (default: all)")
     d.add_argument("--force", action="store_true", help="write into a non-empty folder")
+    d.add_argument("--days", type=float, default=7.0, help="simulated days of drift watch")
+    d.add_argument("--rb-qubits", default="q1,q4,q5,q6,q7",
+                   help="qubits for simultaneous randomized benchmarking ('' to skip)")
+    d.add_argument("--rb-draws", type=int, default=6, help="random sequences per length")
     d.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
     e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")

@@ -116,3 +116,108 @@ def plot_residuals(result: CalibrationResult, truth: dict[tuple[str, str], compl
     ax.set_title("nulled pairs: crosstalk before and residual after compensation")
     ax.legend(fontsize=8, loc="upper right")
     return ax
+
+
+def plot_verification(checks, calibration: CalibrationResult, *, truth=None, ax=None):
+    """Measured crosstalk before (|X|) and measured residual after, all compensation on.
+
+    ``checks`` are :class:`xtalkcal.recheck.PairCheck` made right after the calibration;
+    ``truth`` maps (aggressor, victim) → true residual in dB (simulator only, markers).
+    """
+    ax = ax or plt.subplots(figsize=(9.0, 4.2))[1]
+    rows = []
+    for c in checks:
+        p = calibration.pair(c.aggressor, c.victim)
+        if p.x is None:
+            continue
+        rows.append((p, c))
+    rows.sort(key=lambda r: -abs(r[0].x))
+    k = np.arange(len(rows))
+    floor = -80.0
+    before = np.array([20 * math.log10(abs(p.x)) for p, _ in rows])
+    after = np.array([max(c.outcome.residual_db, floor) for _, c in rows])
+    up = np.array([max(c.outcome.residual_upper_db, floor) for _, c in rows])
+    ax.bar(k - 0.2, before - floor, 0.4, bottom=floor, color="#c44e52", label="before: |X| measured")
+    ax.bar(k + 0.2, after - floor, 0.4, bottom=floor, color="#4c72b0",
+           label="after: residual measured (all tones on)")
+    ax.errorbar(k + 0.2, after, yerr=[np.zeros_like(after), up - after], fmt="none",
+                ecolor="#223355", lw=0.8, capsize=1.5, label="2σ upper bound")
+    if truth:
+        tv = [truth.get((p.aggressor, p.victim)) for p, _ in rows]
+        ax.plot([kk + 0.2 for kk, t in zip(k, tv) if t is not None],
+                [t for t in tv if t is not None], "k_", ms=7, label="true residual")
+    tol = checks[0].outcome.tolerance_db if checks else None
+    if tol is not None:
+        ax.axhline(tol, color="k", lw=0.8, ls=":", label=f"tolerance {tol:g} dB")
+    ax.set_xticks(k, [f"{p.aggressor}→{p.victim}" for p, _ in rows], rotation=90, fontsize=6)
+    ax.set_ylim(floor, -15)
+    ax.set_ylabel("crosstalk (dB)")
+    ax.set_title("verification: measured before and after compensation")
+    ax.legend(fontsize=7, loc="upper right", ncol=2)
+    return ax
+
+
+def plot_gate_errors(rb, ax=None):
+    """Error per gate per qubit: isolated, simultaneous without and with compensation."""
+    ax = ax or plt.subplots(figsize=(7.0, 4.0))[1]
+    ds = rb.to_dataset()
+    conds = list(ds.condition.values)
+    qubits = list(ds.qubit.values)
+    width = 0.8 / len(conds)
+    colors = {"isolated": "#55a868", "uncompensated": "#c44e52", "compensated": "#4c72b0"}
+    for j, c in enumerate(conds):
+        v = 1e4 * ds.error_per_gate.sel(condition=c).values
+        e = 1e4 * ds.error_per_gate_stderr.sel(condition=c).values
+        ax.bar(np.arange(len(qubits)) + (j - (len(conds) - 1) / 2) * width, v, width, yerr=e,
+               capsize=2, label=c if c == "isolated" else f"simultaneous, {c}",
+               color=colors.get(c))
+    ax.set_xticks(range(len(qubits)), qubits)
+    ax.set_ylabel("error per gate (10⁻⁴)")
+    ax.set_yscale("log")
+    ax.set_title("randomized benchmarking: simultaneous gates before and after compensation")
+    ax.legend(fontsize=8)
+    return ax
+
+
+def plot_drift(samples, tolerance_db: float, *, pairs=None, axes=None):
+    """Residual of the compensation in use versus time, with re-checks and tolerance.
+
+    One panel per pair (default: the six pairs whose true residual came closest to the
+    tolerance, or with most re-checks when no truth is known).
+    """
+    by_pair: dict[tuple[str, str], list] = {}
+    for s in samples:
+        by_pair.setdefault((s.aggressor, s.victim), []).append(s)
+
+    def score(p):
+        ss = by_pair[p]
+        tr = [s.true_residual_db for s in ss if s.true_residual_db is not None]
+        return max(tr) if tr else sum(s.checked_residual_db is not None for s in ss)
+
+    chosen = list(pairs) if pairs else sorted(by_pair, key=score, reverse=True)[:6]
+    if axes is None:
+        fig, axes = plt.subplots(len(chosen), 1, figsize=(8.0, 1.6 * len(chosen) + 0.6),
+                                 sharex=True, squeeze=False)
+        axes = axes[:, 0]
+    marks = {"within": ("o", "#55a868"), "drifted": ("s", "#dd8452"), "broken": ("x", "#c44e52")}
+    for ax, p in zip(axes, chosen):
+        ss = by_pair[p]
+        t = np.array([s.t_s for s in ss]) / 3600.0
+        tr = [s.true_residual_db for s in ss]
+        if any(v is not None for v in tr):
+            ax.plot(t, [np.nan if v is None else v for v in tr], color="0.3", lw=1,
+                    label="true residual")
+        for dec, (m, col) in marks.items():
+            pts = [(s.t_s / 3600.0, s.checked_residual_db) for s in ss if s.decision == dec]
+            if pts:
+                ax.plot(*zip(*pts), m, color=col, ms=4, ls="none", label=f"re-check: {dec}")
+        ax.axhspan(tolerance_db, 0, color="#c44e52", alpha=0.08)
+        ax.axhline(tolerance_db, color="#c44e52", lw=0.8, ls="--")
+        ax.set_ylim(-75, -25)
+        ax.set_ylabel("dB", fontsize=8)
+        ax.text(0.01, 0.85, f"{p[0]} → {p[1]}", transform=ax.transAxes, fontsize=8)
+    axes[0].legend(fontsize=7, loc="upper right", ncol=4)
+    axes[-1].set_xlabel("time since calibration (h)")
+    axes[0].set_title(f"drift watch: residual of the compensation in use "
+                      f"(tolerance {tolerance_db:g} dB shaded above)")
+    return axes

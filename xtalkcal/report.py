@@ -8,10 +8,19 @@ import math
 from pathlib import Path
 
 import matplotlib.pyplot as plt
+import numpy as np
 
 from xtalkcal.calibration import CalibrationResult
 from xtalkcal.export import dumps, format_table
-from xtalkcal.plot import plot_matrix_db, plot_matrix_phase, plot_null_landscape, plot_residuals
+from xtalkcal.plot import (
+    plot_drift,
+    plot_gate_errors,
+    plot_matrix_db,
+    plot_matrix_phase,
+    plot_null_landscape,
+    plot_residuals,
+    plot_verification,
+)
 
 __all__ = ["write_report"]
 
@@ -25,10 +34,13 @@ def _save(ax, path: Path) -> str:
 
 
 def write_report(result: CalibrationResult, out: str | Path, *,
-                 truth: dict[tuple[str, str], complex] | None = None) -> Path:
+                 truth: dict[tuple[str, str], complex] | None = None,
+                 campaign=None) -> Path:
     """Write the report folder; returns the path of ``report.md``.
 
-    ``truth`` (simulated devices only) adds the true residual |X + r| per pair.
+    ``truth`` (simulated devices only) adds the true residual |X + r| per pair;
+    ``campaign`` (a :class:`xtalkcal.campaign.CampaignResult`) adds verification,
+    gate errors and the drift watch.
     """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -50,6 +62,9 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         figs.append(("Residuals", _save(plot_residuals(result, truth), out / "residuals.png")))
         res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
         worst = max(res) if res else None
+    extra: list[str] = []
+    if campaign is not None:
+        extra += _campaign_sections(campaign, out, figs, truth)
     (out / "matrix.json").write_text(dumps(result) + "\n")
     n_acc = sum(p.accepted for p in result.pairs)
     lines = [
@@ -62,6 +77,7 @@ def write_report(result: CalibrationResult, out: str | Path, *,
     ]
     if worst is not None:
         lines.append(f"- worst true residual of a nulled pair: {worst:.1f} dB")
+    lines += extra
     lines += ["", "## Matrix", "", "```", format_table(result), "```", ""]
     for title, name in figs:
         lines += [f"## {title}", "", f"![{title}]({name})", ""]
@@ -89,3 +105,45 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         "<!doctype html><meta charset='utf-8'><title>xtalkcal report</title>"
         "<body style='font-family:sans-serif;max-width:900px;margin:auto'>" + page + "</body>")
     return md
+
+
+def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) -> list[str]:
+    """Summary lines for the verification, benchmarking and drift parts (adds figures)."""
+    lines: list[str] = []
+    if campaign.verification:
+        true_after = None
+        if truth:
+            settings = {(p.aggressor_line, p.victim): p.ratio for p in campaign.settings.pairs}
+            true_after = {}
+            for c in campaign.verification:
+                r = settings.get((c.aggressor, c.victim))
+                if r is not None:
+                    true_after[(c.aggressor, c.victim)] = 20 * math.log10(
+                        max(abs(truth[(c.aggressor, c.victim)] + r), 1e-12))
+        ax = plot_verification(campaign.verification, campaign.calibration, truth=true_after)
+        figs.append(("Verification", _save(ax, out / "verification.png")))
+        worst = max(c.outcome.residual_db for c in campaign.verification)
+        n_in = sum(c.outcome.decision.value == "within" for c in campaign.verification)
+        lines.append(f"- verification: {n_in} of {len(campaign.verification)} compensated pairs "
+                     f"within {campaign.tolerance_db:g} dB with all tones on; worst measured "
+                     f"residual {worst:.1f} dB")
+    if campaign.rb is not None:
+        ax = plot_gate_errors(campaign.rb)
+        figs.append(("Gate errors", _save(ax, out / "gate_errors.png")))
+        lines += ["", "## Simultaneous randomized benchmarking", "", "```",
+                  campaign.rb.table(), "```"]
+    if campaign.drift:
+        axes = plot_drift(campaign.drift, campaign.tolerance_db)
+        figs.append(("Drift watch", _save(axes[0], out / "drift.png")))
+        tr = [s.true_residual_db for s in campaign.drift if s.true_residual_db is not None]
+        acts = ", ".join(f"{v} {k}" for k, v in campaign.drift_actions.items())
+        line = f"- drift watch: {acts}"
+        if tr:
+            within = np.mean(np.array(tr) <= campaign.tolerance_db)
+            line += (f"; true residual within tolerance {100 * within:.1f} % of "
+                     f"(pair, time) samples")
+        lines.insert(0, line)
+    if campaign.shots:
+        lines.insert(0, "- shots by step: " + ", ".join(f"{k} {v:,}"
+                                                       for k, v in campaign.shots.items()))
+    return lines
