@@ -78,6 +78,21 @@ class DueReport:
     shots: int = 0
 
 
+def _pass_couplings(ledger: Ledger | None, entry: LedgerEntry
+                    ) -> tuple[tuple[str, ...], np.ndarray] | None:
+    """(victims, C) of the calibration pass that produced ``entry``, from its stored sweep."""
+    if ledger is None or not entry.sweep_id:
+        return None
+    try:
+        ds = ledger.sweep(entry.sweep_id)
+    except Exception:  # noqa: BLE001 - without the sweep, no correction
+        return None
+    if "coupling_re" not in ds:
+        return None
+    names = tuple(str(v) for v in ds["victim"].values)
+    return names, ds["coupling_re"].values + 1j * ds["coupling_im"].values
+
+
 def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, float] | None:
     """(κ, σκ) of the pair from its stored calibration sweep, or None."""
     if ledger is None or not entry.sweep_id:
@@ -168,14 +183,29 @@ def recheck_column(
         sig = measure_probe(runner, probe, pts, shots,
                             f"{key}-{aggressor}-{'stark' if stark else 'res'}")
         now = rig.now()
-        for i, (v, e, pr) in enumerate(zip(group, entries, priors)):
-            # The other victims' rings add scatter the paraboloid does not model (by design
-            # it is orthogonal to this victim's null, see ring_around); the calibration of the
-            # same column measured its size as the fit's reduced chi-square.
-            excess = math.sqrt(max(1.0, e.quality)) if math.isfinite(e.quality) else 1.0
-            out = analyse_recheck(pts[:, i], sig.signal[:, i], sig.stderr[:, i] * excess,
-                                  z_stored[i], amp, tolerance_db=settings.tolerance_db,
-                                  curvature_prior=pr)
+        C_info = _pass_couplings(ledger, entries[0])
+        # Amplitude of every co-victim tone of the calibration pass in each timeline:
+        # rings for the victims re-checked now, stored nulls for the others.
+        tone_of = {v: pts[:, i] for i, v in enumerate(group)}
+        for v, e in column.items():
+            if v not in tone_of:
+                tone_of[v] = np.full(pts.shape[0], -e.value * amp)
+        for i, (v, e, pr) in enumerate(zip(group, entries, priors, strict=True)):
+            signal = sig.signal[:, i]
+            if C_info is not None and pr is not None and v in C_info[0]:
+                # The calibration's column fit measured how the other victims' lines
+                # reach this victim at this frequency; take their (known) leak out of
+                # the signal so that what is left is this pair's own paraboloid.
+                names, C = C_info
+                iv = names.index(v)
+                lead = np.zeros(pts.shape[0], complex)
+                for k, u in enumerate(names):
+                    if u != v and u in tone_of and np.isfinite(C[iv, k]):
+                        lead += C[iv, k] * tone_of[u]
+                d = pts[:, i] - z_stored[i]
+                signal = signal - pr[0] * (2 * np.real(np.conj(d) * lead) + np.abs(lead) ** 2)
+            out = analyse_recheck(pts[:, i], signal, sig.stderr[:, i], z_stored[i], amp,
+                                  tolerance_db=settings.tolerance_db, curvature_prior=pr)
             x_new = -out.z_null / amp
             cov = np.asarray(out.null_covariance) / amp**2
             precise = math.sqrt(np.trace(cov)) <= 0.5 * 10 ** (settings.tolerance_db / 20)
@@ -192,7 +222,9 @@ def recheck_column(
                 verdict="accepted" if ok else "rejected", reason=reason,
                 measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
                 software_version=f"xtalkcal {__version__}", kind="recheck",
-                tag=f"{out.decision.value}", sweep_id="")
+                tag=f"{out.decision.value}",
+                # the calibration sweep this analysis rests on (curvature, couplings)
+                sweep_id=e.sweep_id)
             checks.append(PairCheck(aggressor, v, out, entry))
     return checks
 
