@@ -18,7 +18,7 @@ stderr of X reaches the protocol's target or the shot budget is spent.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Collection, Mapping
 from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Any
@@ -290,6 +290,8 @@ def calibrate_chip(
     runner: BatchRunner | None = None,
     aggressors: list[str] | None = None,
     column_parallel: bool = True,
+    key_prefix: str = "",
+    null_victims: Mapping[str, Collection[str]] | None = None,
     log: Callable[[str], None] | None = None,
 ) -> CalibrationResult:
     """Survey every column and null every pair above the protocol's threshold.
@@ -305,6 +307,12 @@ def calibrate_chip(
     column_parallel : bool
         True: all victims of an aggressor share the shots. False: one victim per pass
         (the pair-by-pair baseline of the benchmarks).
+    null_victims : mapping of aggressor line to victims, optional
+        Pairs to null whatever their survey says (a recalibration of pairs already in use
+        must not fall back to a survey estimate).
+    key_prefix : str
+        Prefix of the batch keys in the runner's record (distinct calibrations sharing a
+        record folder need distinct prefixes).
     log : callable, optional
         Receives one line of progress text per pass.
     """
@@ -335,7 +343,9 @@ def calibrate_chip(
                     )
                     _calibrate_pass(rig, runner, protocol, result, line, victims_of_pass,
                                     [methods[v] for v in victims_of_pass], shape,
-                                    stark=(gi == 1), say=say, fixed=fixed)
+                                    stark=(gi == 1), say=say, fixed=fixed,
+                                    key_prefix=key_prefix,
+                                    force=tuple((null_victims or {}).get(line, ())))
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
@@ -380,7 +390,7 @@ def pass_amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
 
 
 def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
-                    fixed=()):
+                    fixed=(), key_prefix="", force=()):
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, line)
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
@@ -408,7 +418,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     round_all: list[np.ndarray] = []
 
     def measure(points: np.ndarray, shots: int, key: str, rnd: int) -> None:
-        s = measure_probe(runner, probe, points, shots, key)
+        s = measure_probe(runner, probe, points, shots, key_prefix + key)
         pts_all.append(points)
         sig_all.append(s.signal)
         err_all.append(s.stderr)
@@ -452,7 +462,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         if e.accepted:
             x = -e.z_star / amp
             sx = e.position_stderr * math.sqrt(_birge(e)) / amp
-            selected[i] = abs(x) + 2 * sx >= thr
+            selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
         else:
             # "No signal" means |X| is small against the ring: bound it from the floor.
             selected[i] = False

@@ -58,7 +58,7 @@ class DriftSample:
     t_s: float
     aggressor: str
     victim: str
-    true_residual_db: float | None  # |X_true(t) − X_current| (simulator only)
+    true_residual_db: float | None  # true field with all tones in use (simulator only)
     checked_residual_db: float | None  # measured by a re-check at this moment
     decision: str | None
 
@@ -79,6 +79,21 @@ class CampaignResult:
 
 def _db(x: complex) -> float:
     return float(20 * np.log10(max(abs(x), 1e-15)))
+
+
+def _all_on_field(truth: Truth, chip, snapshot, pair: tuple[str, str], t_s: float) -> complex:
+    """True field at the victim from the aggressor with all its cancellation tones in use.
+
+    In units of the victim's own line: X_ij(f_j) + r_ij + Σ_k X_ik(f_j)·r_kj, with
+    r = −X_current for every nulled pair of the aggressor (what the re-checks play).
+    """
+    a, v = pair
+    f = snapshot[pair].frequency_ghz
+    w = truth(v, a, f, t_s) - snapshot[pair].value
+    for (aa, k), e in snapshot.entries.items():
+        if aa == a and k != v and e.kind != "survey":
+            w += truth(v, chip.line_of(k).name, f, t_s) * -e.value
+    return w
 
 
 def run_campaign(
@@ -175,8 +190,8 @@ def run_campaign(
                 if pair not in cur:
                     continue
                 e = cur[pair]
-                tr = (None if truth is None else
-                      _db(truth(pair[1], pair[0], e.frequency_ghz, rig.now()) - e.value))
+                tr = None if truth is None else _db(_all_on_field(truth, chip, cur, pair,
+                                                                  rig.now()))
                 c = checked.get(pair)
                 result.drift.append(DriftSample(
                     rig.now(), pair[0], pair[1], tr,

@@ -36,7 +36,7 @@ are those of ``protocols/full.toml``. Field by field::
     min_interval_hours = 0.5
     max_interval_hours = 48.0
     points = 4                   # ring points per re-checked pair (plus the centre)
-    shots_per_point = 4000
+    shots_per_point = 8000
 """
 
 from __future__ import annotations
@@ -94,7 +94,7 @@ class RecheckSettings:
     min_interval_hours: float = 0.5
     max_interval_hours: float = 48.0
     points: int = 4
-    shots_per_point: int = 4000
+    shots_per_point: int = 8000
 
 
 @dataclass(frozen=True)
@@ -187,7 +187,7 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
         min_interval_hours=rt.number("min_interval_hours", 0.5, lo=0.0, lo_open=True, unit="h"),
         max_interval_hours=rt.number("max_interval_hours", 48.0, lo=0.0, lo_open=True, unit="h"),
         points=rt.integer("points", 4, lo=3, hi=64),
-        shots_per_point=rt.integer("shots_per_point", 4000, lo=10, hi=10_000_000),
+        shots_per_point=rt.integer("shots_per_point", 8000, lo=10, hi=10_000_000),
     )
     if not recheck.min_interval_hours <= recheck.interval_hours <= recheck.max_interval_hours:
         raise rt.error("interval_hours", "must lie between min_interval_hours and "

@@ -4,13 +4,16 @@ Describe, run, record are kept apart: probes *describe* timelines; the
 :class:`BatchRunner` *runs* them on a rig after a dry-run safety check; every
 completed batch is *recorded* at once in its own small HDF5 file (written to a
 temporary name, fsync'd, then atomically renamed), so a crash loses at most the
-batch in flight. Given the same run directory, a new runner returns recorded
-batches instead of executing them again: a deterministic calibration that is
-interrupted and started again resumes where it stopped.
+batch in flight. Given the same run directory, a new runner returns a recorded
+batch instead of executing it again — only if the request (timelines and shots)
+is identical to the one recorded (a fingerprint is stored with it): a deterministic
+calibration that is interrupted and started again resumes where it stopped, and a
+later measurement that happens to reuse a key is measured anew.
 """
 
 from __future__ import annotations
 
+import hashlib
 import logging
 import os
 import re
@@ -67,13 +70,15 @@ class BatchRunner:
         timelines = list(timelines)
         readout = common_readout(timelines)
         path = self._path(key)
+        digest = _digest(timelines, shots)
         if path is not None and path.exists():
-            counts = _read(path)
-            if counts.qubits == readout and counts.counts.shape[0] == len(timelines) and (
-                    counts.shots == shots):
+            counts, recorded = _read(path)
+            if recorded == digest:
                 self.shots_resumed += len(timelines) * shots
                 return counts
-            log.warning("recorded batch %s does not match the request; running it again", key)
+            # Same key, different request (e.g. a later calibration reusing a run folder):
+            # the record must not stand in for a measurement it is not.
+            log.warning("recorded batch %s was made for other timelines; measuring anew", key)
         # Dry run: refuse before anything reaches the rig.
         check_timelines(self.rig.chip, timelines, self.rig.repetition_ns)
         counts = self.rig.run(timelines, shots)
@@ -81,13 +86,19 @@ class BatchRunner:
         self.shots_executed += len(timelines) * shots
         self.rig_seconds += counts.finished_s - counts.started_s
         if path is not None:
-            _write_atomic(path, counts)
+            _write_atomic(path, counts, digest)
         if self.progress is not None:
             self.progress(len(timelines) * shots)
         return counts
 
 
-def _write_atomic(path: Path, counts: Counts) -> None:
+def _digest(timelines: Sequence[Timeline], shots: int) -> str:
+    """Fingerprint of a request: a recorded batch answers only the identical request."""
+    return hashlib.blake2b(repr((tuple(timelines), int(shots))).encode(),
+                           digest_size=16).hexdigest()
+
+
+def _write_atomic(path: Path, counts: Counts, digest: str) -> None:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
     try:
@@ -97,6 +108,7 @@ def _write_atomic(path: Path, counts: Counts) -> None:
             f.attrs["shots"] = counts.shots
             f.attrs["started_s"] = counts.started_s
             f.attrs["finished_s"] = counts.finished_s
+            f.attrs["request"] = digest
             f.create_dataset("counts", data=counts.counts)
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
@@ -106,8 +118,9 @@ def _write_atomic(path: Path, counts: Counts) -> None:
         raise
 
 
-def _read(path: Path) -> Counts:
+def _read(path: Path) -> tuple[Counts, str]:
     with h5py.File(path, "r") as f:
         qubits = tuple(str(q) for q in f.attrs["qubits"])
+        digest = str(f.attrs.get("request", ""))
         return Counts(qubits, f["counts"][()], int(f.attrs["shots"]),
-                      float(f.attrs["started_s"]), float(f.attrs["finished_s"]))
+                      float(f.attrs["started_s"]), float(f.attrs["finished_s"])), digest
