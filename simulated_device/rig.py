@@ -47,6 +47,9 @@ class SimRig:
         Set False to freeze all drift (for accuracy benchmarks).
     control : StepControl, optional
         Integrator accuracy knobs.
+    start_s : float
+        Simulated time (s) the clock starts from; the drift paths are those of the
+        seed at that time (a session resumed on a later day sees the drifted chip).
     """
 
     def __init__(
@@ -56,6 +59,7 @@ class SimRig:
         seed: int | None = None,
         drift: bool = True,
         control: StepControl | None = None,
+        start_s: float = 0.0,
     ) -> None:
         self.device = device if isinstance(device, DeviceSpec) else load_device(device)
         self._seed = self.device.seed if seed is None else int(seed)
@@ -64,7 +68,9 @@ class SimRig:
         self._repeat_count: dict[int, int] = {}
         self._drift = DeviceDrift(self.device, enabled=drift, rng=np.random.default_rng(drift_seq))
         self._chip = self.device.chip()
-        self._t_s = 0.0
+        if not (math.isfinite(start_s) and start_s >= 0):
+            raise ValueError("start_s must be a finite, non-negative time")
+        self._t_s = float(start_s)
         self._shots_total = 0
         self._control = control or StepControl()
 

@@ -80,7 +80,7 @@ def _cmd_export_chip(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _make_rig(spec: str, *, seed: int | None, drift: bool):
+def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0):
     """The rig named on the command line: 'sim' (bundled demo device), a device file, or
     'package.module:factory' for a lab's own rig plug-in (called with no arguments)."""
     import importlib
@@ -88,7 +88,8 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool):
     if spec == "sim" or spec.endswith(".toml"):
         from simulated_device import SimRig, demo_device_path
 
-        return SimRig(demo_device_path() if spec == "sim" else spec, seed=seed, drift=drift)
+        return SimRig(demo_device_path() if spec == "sim" else spec, seed=seed, drift=drift,
+                      start_s=start_s)
     if ":" not in spec:
         raise XtalkcalConfigError("command line", "--rig",
                                   f"{spec!r}: expected 'sim', a device .toml file, "
@@ -191,6 +192,54 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_command("due")
+def _cmd_due(args: argparse.Namespace) -> int:
+    """Do whatever is due now (cron-friendly), then exit."""
+    import datetime as dt
+
+    from xtalkcal.drift import Schedule
+    from xtalkcal.ledger import Ledger
+    from xtalkcal.protocol import load_protocol
+    from xtalkcal.recheck import run_due
+
+    protocol = load_protocol(args.protocol)
+    if not Path(args.ledger).exists():
+        raise XtalkcalConfigError("command line", "--ledger",
+                                  f"{args.ledger} does not exist; run `xtalkcal calibrate "
+                                  "--ledger DIR` first")
+    led = Ledger(args.ledger)
+    current = led.current()
+    start = 0.0
+    if args.rig == "sim" or args.rig.endswith(".toml"):
+        # The simulator's clock restarts with every process: continue it from the last
+        # entry, plus the wall time since, so drift goes on between cron runs.
+        if current.entries:
+            last = max(current.entries.values(), key=lambda e: e.measured_at_s)
+            then = dt.datetime.fromisoformat(last.measured_at_utc)
+            start = last.measured_at_s + max(
+                0.0, (dt.datetime.now(dt.timezone.utc) - then).total_seconds())
+    rig = _make_rig(args.rig, seed=args.seed, drift=True, start_s=start)
+    if led.chip != rig.chip.name:
+        raise XtalkcalConfigError("command line", "--ledger",
+                                  f"{args.ledger} belongs to chip {led.chip!r}, the rig drives "
+                                  f"{rig.chip.name!r}")
+    schedule = Schedule.load_or_new(args.schedule, protocol.recheck)
+    if not len(schedule):
+        for (a, v), e in current.entries.items():
+            if e.kind != "survey":
+                schedule.calibrated((a, v), e.measured_at_s)
+    rep = run_due(rig, protocol, led, schedule, log=print)
+    schedule.save(args.schedule)
+    if not rep.checked:
+        print(f"nothing due at rig time {rep.now_s / 3600:.2f} h")
+    else:
+        print(f"{len(rep.checked)} pairs re-checked, {len(rep.recentred)} re-centred, "
+              f"{len(rep.recalibrated)} columns recalibrated; {rep.shots:,} shots")
+    broken = [c for c in rep.checked if c.outcome.decision.value == "broken"
+              and c.aggressor not in rep.recalibrated]
+    return EXIT_FAILED if broken else EXIT_OK
+
+
 class _Bar:
     def __init__(self, total=None):
         from tqdm import tqdm
@@ -270,6 +319,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="qubits for simultaneous randomized benchmarking ('' to skip)")
     d.add_argument("--rb-draws", type=int, default=6, help="random sequences per length")
     d.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+
+    u = sub.add_parser("due", help="re-check whatever is due now and exit (for cron)")
+    u.add_argument("--ledger", required=True, help="the chip's ledger directory")
+    u.add_argument("--schedule", required=True, help="schedule file (JSON; created if new)")
+    u.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    u.add_argument("--rig", default="sim",
+                   help="'sim' (bundled demo device), a device .toml, or module:factory")
+    u.add_argument("--seed", type=int, default=None, help="simulator seed")
 
     e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")

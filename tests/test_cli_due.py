@@ -1,0 +1,43 @@
+"""The cron-friendly `xtalkcal due` command, end to end on the simulated chip."""
+
+from __future__ import annotations
+
+import json
+
+from xtalkcal.cli import main
+from xtalkcal.ledger import Ledger
+
+PROTO = 'name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n[null]\nmax_rounds = 3\n'
+
+
+def test_due_rechecks_what_is_due_and_records_it(tmp_path, capsys):
+    proto = tmp_path / "p.toml"
+    proto.write_text(PROTO)
+    led, sched = tmp_path / "ledger", tmp_path / "schedule.json"
+    assert main(["calibrate", "--protocol", str(proto), "--ledger", str(led), "-q",
+                 "-o", str(tmp_path / "m.json")]) == 0
+    n0 = len(Ledger(led).entries())
+    assert main(["due", "--protocol", str(proto), "--ledger", str(led),
+                 "--schedule", str(sched)]) == 0
+    assert "nothing due" in capsys.readouterr().out
+    assert len(Ledger(led).entries()) == n0  # nothing measured
+    data = json.loads(sched.read_text())
+    assert {(p["aggressor"], p["victim"]) for p in data["pairs"]} >= {("d4", "q5")}
+    for p in data["pairs"]:  # make everything due now
+        p["due_s"] = 0.0
+    sched.write_text(json.dumps(data))
+    assert main(["due", "--protocol", str(proto), "--ledger", str(led),
+                 "--schedule", str(sched)]) == 0
+    out = capsys.readouterr().out
+    assert "re-checked" in out and "d4 → q5" in out
+    rechecks = [e for e in Ledger(led).entries() if e.kind == "recheck"]
+    assert {(e.aggressor, e.victim) for e in rechecks} >= {("d4", "q5")}
+    later = json.loads(sched.read_text())
+    assert all(p["due_s"] > 0 for p in later["pairs"])  # rescheduled
+
+
+def test_due_without_ledger_is_a_clear_error(tmp_path, capsys):
+    assert main(["due", "--ledger", str(tmp_path / "none"), "--schedule",
+                 str(tmp_path / "s.json")]) == 2
+    err = capsys.readouterr().err
+    assert "--ledger" in err and "calibrate" in err and "Traceback" not in err
