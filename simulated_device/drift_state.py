@@ -2,18 +2,21 @@
 
 Channels: for every listed coupling a phase offset (random walk + linear rate) and
 a log-magnitude offset (random walk); for every qubit an f01 offset
-(Ornstein–Uhlenbeck). Paths are generated lazily on a fixed simulated-time grid and
-interpolated linearly in between, so a value depends only on the seed and the time
-asked for — not on how or in which order the questions come.
+(Ornstein–Uhlenbeck). The processes are :class:`simulated_device.drift.DriftTrack`
+channels, read lazily on a fixed 60 s simulated-time grid and interpolated linearly in
+between, so a value depends only on the seed and the time asked for — not on how or
+in which order the questions come (past times included, for the ground truth).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from simulated_device.device import HOUR_S, DeviceSpec
+from simulated_device.drift import DriftTrack
 
 __all__ = ["DeviceDrift", "DriftState"]
 
@@ -53,29 +56,28 @@ class DeviceDrift:
         self._wander_std = d.qubit_wander_mhz * 1e-3
         self._wander_tau = d.qubit_wander_hours * HOUR_S
         n_p, n_q = len(self._pairs), len(self._qubits)
-        # Grid values: columns = phase walk (n_p), log-mag walk (n_p), qubit OU (n_q).
-        first = np.concatenate(
-            [np.zeros(2 * n_p), self._wander_std * self._rng.standard_normal(n_q)]
+        # Channels: phase walks (with their linear rates), log-magnitude walks, and the
+        # qubit-frequency Ornstein-Uhlenbeck wanders, drawn exactly by DriftTrack and
+        # read on a fixed grid (so values depend only on the seed and the time).
+        inf = math.inf
+        tau = self._wander_tau
+        self._track = DriftTrack(
+            2 * n_p + n_q,
+            diffusion=np.concatenate([np.full(n_p, self._phase_diff), np.full(n_p, self._mag_diff),
+                                      np.full(n_q, 2 * self._wander_std**2 / tau)]),
+            rate=np.concatenate([self._rate_per_s, np.zeros(n_p + n_q)]),
+            correlation_time_s=np.concatenate([np.full(2 * n_p, inf), np.full(n_q, tau)]),
+            initial="stationary",
+            rng=self._rng,
+            grid_step_s=GRID_S,
         )
-        self._grid = [first]
+        self._grid = [self._track.value(0.0)]
         self._n_p = n_p
         self._coupling = {(c.qubit, c.line): c for c in device.couplings}
 
     def _extend(self, k: int) -> None:
-        n_p = self._n_p
-        a = np.exp(-GRID_S / self._wander_tau)
         while len(self._grid) <= k:
-            z = self._rng.standard_normal(self._grid[0].size)
-            prev = self._grid[-1]
-            nxt = np.empty_like(prev)
-            nxt[:n_p] = prev[:n_p] + np.sqrt(self._phase_diff * GRID_S) * z[:n_p]
-            nxt[n_p : 2 * n_p] = prev[n_p : 2 * n_p] + np.sqrt(self._mag_diff * GRID_S) * z[
-                n_p : 2 * n_p
-            ]
-            nxt[2 * n_p :] = a * prev[2 * n_p :] + self._wander_std * np.sqrt(1 - a * a) * z[
-                2 * n_p :
-            ]
-            self._grid.append(nxt)
+            self._grid.append(self._track.value(len(self._grid) * GRID_S))
 
     def at(self, t_s: float) -> DriftState:
         """Drift offsets at simulated time ``t_s`` (s)."""
@@ -89,12 +91,12 @@ class DeviceDrift:
         self._extend(k + 1)
         w = (t_s - k * GRID_S) / GRID_S
         v = (1 - w) * self._grid[k] + w * self._grid[k + 1]
-        phase = v[:n_p] + self._rate_per_s * t_s
+        phase = v[:n_p]
         return DriftState(
             t_s,
-            dict(zip(self._pairs, phase.tolist())),
-            dict(zip(self._pairs, v[n_p : 2 * n_p].tolist())),
-            dict(zip(self._qubits, v[2 * n_p :].tolist())),
+            dict(zip(self._pairs, phase.tolist(), strict=True)),
+            dict(zip(self._pairs, v[n_p : 2 * n_p].tolist(), strict=True)),
+            dict(zip(self._qubits, v[2 * n_p :].tolist(), strict=True)),
         )
 
     def crosstalk(self, victim: str, line: str, freq_ghz, state: DriftState):

@@ -120,7 +120,8 @@ class SimRig:
 
         started = self._t_s
         state = self._drift.at(started)
-        counts = self._simulate(timelines, int(shots), readout, state, self._batch_rng(timelines, shots))
+        rng = self._batch_rng(timelines, shots)
+        counts = self._simulate(timelines, int(shots), readout, state, rng)
         self._t_s += len(timelines) * int(shots) * self.repetition_ns * 1e-9
         self._shots_total += len(timelines) * int(shots)
         return Counts(readout, counts, int(shots), started, self._t_s)

@@ -192,7 +192,7 @@ def test_interrupted_calibration_resumes_identically(tmp_path):
     runner2 = BatchRunner(rig2, tmp_path)
     again = calibrate_chip(rig2, QUICK, runner=runner2, aggressors=lines)
     assert runner2.shots_resumed > 0 and runner2.shots_executed > 0
-    for a, b in zip(clean.pairs, again.pairs):
+    for a, b in zip(clean.pairs, again.pairs, strict=True):
         assert a.accepted == b.accepted and a.x == b.x
 
 
@@ -214,11 +214,23 @@ def test_calibrate_cli_writes_the_matrix_json(tmp_path, capsys):
 
 def test_demo_runs_end_to_end_reduced(tmp_path):
     out = tmp_path / "demo"
-    assert main(["demo", "--out", str(out), "--aggressors", "d4", "-q"]) == 0
+    args = ["demo", "--out", str(out), "--aggressors", "d4", "--days", "0.6",
+            "--rb-qubits", "q4,q5", "--rb-draws", "2", "-q"]
+    assert main(args) == 0
     for name in ("report.md", "report.html", "matrix.json", "matrix_db.png",
-                 "matrix_phase.png", "residuals.png"):
-        assert (out / name).stat().st_size > 0
-    assert main(["demo", "--out", str(out), "--aggressors", "d4", "-q"]) == 2  # not empty
+                 "matrix_phase.png", "residuals.png", "verification.png", "gate_errors.png",
+                 "drift.png", "settings.json", "settings.csv", "schedule.json"):
+        assert (out / name).stat().st_size > 0, name
+    md = (out / "report.md").read_text()
+    assert "verification:" in md and "drift watch:" in md and "randomized benchmarking" in md
+    from xtalkcal.compensation import CompensationSettings
+    from xtalkcal.ledger import Ledger
+
+    settings = CompensationSettings.read_json(out / "settings.json")
+    assert any(p.aggressor_line == "d4" and p.victim == "q5" for p in settings.pairs)
+    kinds = {e.kind for e in Ledger(out / "ledger").entries()}
+    assert {"null", "recheck"} <= kinds
+    assert main(args) == 2  # the folder is not empty: refused
 
 
 def test_bad_protocol_field_is_named(tmp_path, capsys):

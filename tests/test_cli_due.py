@@ -7,7 +7,8 @@ import json
 from xtalkcal.cli import main
 from xtalkcal.ledger import Ledger
 
-PROTO = 'name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n[null]\nmax_rounds = 3\n'
+PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
+         '[null]\nmax_rounds = 3\n')
 
 
 def test_due_rechecks_what_is_due_and_records_it(tmp_path, capsys):

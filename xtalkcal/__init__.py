@@ -26,6 +26,19 @@ from xtalkcal.rig import Counts, Rig
 from xtalkcal.safety import check_timelines
 from xtalkcal.timeline import Envelope, Timeline, Tone
 
+# Measurement, storage and use (imported after the data types they build on).
+from xtalkcal.protocol import Protocol, load_protocol  # noqa: E402  isort: skip
+from xtalkcal.calibration import CalibrationResult, calibrate_chip  # noqa: E402  isort: skip
+from xtalkcal.ledger import Ledger, LedgerEntry  # noqa: E402  isort: skip
+from xtalkcal.compensation import (  # noqa: E402  isort: skip
+    CompensationSettings,
+    apply_to_timeline,
+    apply_to_waveforms,
+    multi_victim_settings,
+    pairwise_settings,
+)
+from xtalkcal.recheck import run_due  # noqa: E402  isort: skip
+
 __all__ = [
     "__version__",
     # chip description
@@ -41,6 +54,22 @@ __all__ = [
     "Rig",
     "Counts",
     "check_timelines",
+    # how to calibrate, and calibrating
+    "Protocol",
+    "load_protocol",
+    "calibrate_chip",
+    "CalibrationResult",
+    # the matrix store
+    "Ledger",
+    "LedgerEntry",
+    # compensation for the control stack
+    "CompensationSettings",
+    "pairwise_settings",
+    "multi_victim_settings",
+    "apply_to_timeline",
+    "apply_to_waveforms",
+    # keeping it true
+    "run_due",
     # errors
     "XtalkcalError",
     "ConfigError",

@@ -375,7 +375,7 @@ def survey_radii(probe: ColumnProbe) -> np.ndarray:
     """
     chip = probe.chip
     out = np.empty(len(probe.victims))
-    for i, (v, m) in enumerate(zip(probe.victims, probe.methods)):
+    for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
         if m == "stark":
             out[i] = math.sqrt(RISE_STARK_RAD * 2 / _stark_gain(probe, v))
         else:

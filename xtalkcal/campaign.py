@@ -189,7 +189,7 @@ def run_campaign(
             for pair in pairs:
                 if pair not in cur:
                     continue
-                e = cur[pair]
+                cur[pair]
                 tr = None if truth is None else _db(_all_on_field(truth, chip, cur, pair,
                                                                   rig.now()))
                 c = checked.get(pair)

@@ -297,7 +297,8 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
         lname = lt.string("name")
         target = lt.string("qubit")
         if target not in qnames:
-            raise lt.error("qubit", f"{target!r} is not a qubit of this chip; known: {', '.join(qnames)}")
+            raise lt.error("qubit", f"{target!r} is not a qubit of this chip; "
+                                    f"known: {', '.join(qnames)}")
         rabi = lt.number("rabi_mhz", lo=RABI_RANGE_MHZ[0], hi=RABI_RANGE_MHZ[1], unit="MHz")
         amax = lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True)
         fs = lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm")
@@ -305,11 +306,13 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
         if any(ln.name == lname for ln in lines):
             raise lt.error("name", f"duplicate line name {lname!r}; names must be unique")
         if any(ln.qubit == target for ln in lines):
-            raise lt.error("qubit", f"qubit {target!r} already has a drive line; one line per qubit")
+            raise lt.error("qubit",
+                           f"qubit {target!r} already has a drive line; one line per qubit")
         lines.append(DriveLine(lname, target, rabi, amax, fs))
     missing = [q for q in qnames if not any(ln.qubit == q for ln in lines)]
     if missing:
-        raise top.error("lines", f"qubit(s) {', '.join(missing)} have no drive line; add [[lines]] blocks")
+        raise top.error("lines", f"qubit(s) {', '.join(missing)} have no drive line; "
+                                 "add [[lines]] blocks")
     if limits.max_average_power_dbm is not None:
         unknown_fs = [ln.name for ln in lines if ln.full_scale_dbm is None]
         if unknown_fs:

@@ -137,14 +137,15 @@ def plot_verification(checks, calibration: CalibrationResult, *, truth=None, ax=
     before = np.array([20 * math.log10(abs(p.x)) for p, _ in rows])
     after = np.array([max(c.outcome.residual_db, floor) for _, c in rows])
     up = np.array([max(c.outcome.residual_upper_db, floor) for _, c in rows])
-    ax.bar(k - 0.2, before - floor, 0.4, bottom=floor, color="#c44e52", label="before: |X| measured")
+    ax.bar(k - 0.2, before - floor, 0.4, bottom=floor, color="#c44e52",
+           label="before: |X| measured")
     ax.bar(k + 0.2, after - floor, 0.4, bottom=floor, color="#4c72b0",
            label="after: residual measured (all tones on)")
     ax.errorbar(k + 0.2, after, yerr=[np.zeros_like(after), up - after], fmt="none",
                 ecolor="#223355", lw=0.8, capsize=1.5, label="2σ upper bound")
     if truth:
         tv = [truth.get((p.aggressor, p.victim)) for p, _ in rows]
-        ax.plot([kk + 0.2 for kk, t in zip(k, tv) if t is not None],
+        ax.plot([kk + 0.2 for kk, t in zip(k, tv, strict=True) if t is not None],
                 [t for t in tv if t is not None], "k_", ms=7, label="true residual")
     tol = checks[0].outcome.tolerance_db if checks else None
     if tol is not None:
@@ -200,7 +201,7 @@ def plot_drift(samples, tolerance_db: float, *, pairs=None, axes=None):
                                  sharex=True, squeeze=False)
         axes = axes[:, 0]
     marks = {"within": ("o", "#55a868"), "drifted": ("s", "#dd8452"), "broken": ("x", "#c44e52")}
-    for ax, p in zip(axes, chosen):
+    for ax, p in zip(axes, chosen, strict=True):
         ss = by_pair[p]
         t = np.array([s.t_s for s in ss]) / 3600.0
         tr = [s.true_residual_db for s in ss]
@@ -210,7 +211,8 @@ def plot_drift(samples, tolerance_db: float, *, pairs=None, axes=None):
         for dec, (m, col) in marks.items():
             pts = [(s.t_s / 3600.0, s.checked_residual_db) for s in ss if s.decision == dec]
             if pts:
-                ax.plot(*zip(*pts), m, color=col, ms=4, ls="none", label=f"re-check: {dec}")
+                ax.plot(*zip(*pts, strict=True), m, color=col, ms=4, ls="none",
+                        label=f"re-check: {dec}")
         ax.axhspan(tolerance_db, 0, color="#c44e52", alpha=0.08)
         ax.axhline(tolerance_db, color="#c44e52", lw=0.8, ls="--")
         ax.set_ylim(-75, -25)

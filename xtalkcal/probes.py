@@ -208,7 +208,7 @@ class ColumnProbe:
         """Pulse spacing: coherent at the transition of the most sensitive victim."""
         f = self.freq_ghz
         best = None
-        for v, m in zip(self.victims, self.methods):
+        for v, m in zip(self.victims, self.methods, strict=True):
             q = self.chip.qubit(v)
             if m == "leakage":
                 best = f - q.f12_ghz
@@ -263,7 +263,7 @@ class ColumnProbe:
         prep: list[Tone] = []
         post: list[Tone] = []
         t_end = self.duration_ns() - shape.duration_ns
-        for v, m in zip(self.victims, self.methods):
+        for v, m in zip(self.victims, self.methods, strict=True):
             line = chip.line_of(v).name
             f01 = chip.qubit(v).f01_ghz
             if m == "leakage":
@@ -300,7 +300,7 @@ class ColumnProbe:
                     if aggressor_on and self.amplitude > 0:
                         train.append(Tone(self.aggressor, start, length, f,
                                           self.amplitude, 0.0, env))
-                    for line, zz in list(zip(lines, z[p])) + list(self.fixed):
+                    for line, zz in list(zip(lines, z[p], strict=True)) + list(self.fixed):
                         if zz != 0:
                             train.append(Tone(line, start, length, f, abs(zz),
                                               math.atan2(zz.imag, zz.real), env))
@@ -330,7 +330,7 @@ class ColumnProbe:
         err = np.zeros((n_points, nv))
         nshots = np.zeros((n_points, nv), dtype=np.int64)
         succ = np.full((n_points, nv), -1, dtype=np.int64)
-        for iv, (v, m) in enumerate(zip(self.victims, self.methods)):
+        for iv, (v, m) in enumerate(zip(self.victims, self.methods, strict=True)):
             c = counts.of(v).reshape(n_points, nq, ncyc, -1).sum(axis=2)
             if m in ("leakage", "rotation"):
                 level = 2 if m == "leakage" else 1
@@ -369,7 +369,8 @@ class ColumnProbe:
     def expected_rotation_per_pulse(self, victim: str, crosstalk_db: float) -> float:
         """Rough rotation (rad) of one aggressor pulse at ``victim`` for a given |X|."""
         rabi = self.chip.line_of(victim).rabi_mhz * 1e-3
-        lam = math.sqrt(2.0) if dict(zip(self.victims, self.methods))[victim] == "leakage" else 1
+        method = dict(zip(self.victims, self.methods, strict=True))[victim]
+        lam = math.sqrt(2.0) if method == "leakage" else 1.0
         return 2 * math.pi * lam * rabi * self.amplitude * 10 ** (crosstalk_db / 20) * (
             self.shape.area_ns)
 

@@ -179,7 +179,7 @@ def recheck_column(
         # The calibration's rule: where the signal rises by a set amount; without a
         # stored sweep, the survey's radius from the nominal chip.
         radius = survey_radii(probe)
-        for i, (e, pr) in enumerate(zip(entries, priors)):
+        for i, (e, pr) in enumerate(zip(entries, priors, strict=True)):
             rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
             if pr is not None and pr[0] > 0:
                 radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
@@ -213,8 +213,9 @@ def recheck_column(
             out = analyse_recheck(pts[:, i], signal, sig.stderr[:, i], z_stored[i], amp,
                                   tolerance_db=settings.tolerance_db, curvature_prior=pr)
             chi = out.reduced_chi2
-            if (out.decision is RecheckDecision.BROKEN and out.cause is RejectionReason.MODEL_MISMATCH
-                    and math.isfinite(chi) and chi < MAX_BIRGE):
+            mismatch = (out.decision is RecheckDecision.BROKEN
+                        and out.cause is RejectionReason.MODEL_MISMATCH)
+            if mismatch and math.isfinite(chi) and chi < MAX_BIRGE:
                 # A mild misfit (signals are not exactly quadratic, the co-victim leak is
                 # known only to the calibration's precision) is treated as extra scatter:
                 # errors scaled by the Birge ratio. Beyond MAX_BIRGE the landscape is

@@ -1,4 +1,4 @@
-"""A report folder: PNG figures, the matrix JSON, a Markdown summary and a self-contained HTML page."""
+"""A report folder: PNG figures, the matrix JSON, Markdown and a self-contained HTML page."""
 
 from __future__ import annotations
 
@@ -71,7 +71,8 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         f"# Crosstalk calibration of {result.chip.name}",
         "",
         f"- rig: `{result.rig_description}`",
-        f"- protocol: `{result.protocol.name}`; threshold {result.protocol.survey.threshold_db:g} dB",
+        f"- protocol: `{result.protocol.name}`; "
+        f"threshold {result.protocol.survey.threshold_db:g} dB",
         f"- pairs: {len(result.pairs)} ({n_acc} measured, {len(nulled)} nulled)",
         f"- shots: {result.shots:,}; rig time {result.rig_seconds:.1f} s",
     ]

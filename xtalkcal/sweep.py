@@ -68,7 +68,7 @@ class BatchRunner:
     def run(self, key: str, timelines: Sequence[Timeline], shots: int) -> Counts:
         """Counts of a batch: from the record if present, else executed and recorded."""
         timelines = list(timelines)
-        readout = common_readout(timelines)
+        common_readout(timelines)
         path = self._path(key)
         digest = _digest(timelines, shots)
         if path is not None and path.exists():

@@ -244,7 +244,9 @@ class Timeline:
         last = max((t.end_ns for t in self.tones), default=0.0)
         return last if self.readout_ns is None else self.readout_ns
 
-    def validate(self, *, lines: Iterable[str] | None = None, qubits: Iterable[str] | None = None) -> None:
+    def validate(
+        self, *, lines: Iterable[str] | None = None, qubits: Iterable[str] | None = None
+    ) -> None:
         """Check every tone, the readout, and (optionally) the names against a chip."""
         line_set = set(lines) if lines is not None else None
         qubit_set = set(qubits) if qubits is not None else None
@@ -253,7 +255,8 @@ class Timeline:
             where = f"{name}: tone[{k}]"
             tone.validate(where)
             if line_set is not None and tone.line not in line_set:
-                raise TimelineError(f"{where}: unknown line {tone.line!r}; known: {sorted(line_set)}")
+                raise TimelineError(
+                    f"{where}: unknown line {tone.line!r}; known: {sorted(line_set)}")
         if not self.readout:
             raise TimelineError(f"{name}: readout names no qubit")
         if len(set(self.readout)) != len(self.readout):

@@ -128,7 +128,9 @@ class Fields:
             raise self.error(key, f"{value} is out of range; accepted: {_range_text(lo, hi)}")
         return value
 
-    def string(self, key: str, default: Any = _MISSING, *, choices: Iterable[str] | None = None) -> Any:
+    def string(
+        self, key: str, default: Any = _MISSING, *, choices: Iterable[str] | None = None
+    ) -> Any:
         """A non-empty string, optionally one of ``choices``."""
         value = self._get(key, default)
         if value is None and default is None:
