@@ -106,9 +106,17 @@ def _leak_setup(seed: int):
 
 
 def _measure(rig, chip, amp, z, k, shots):
+    """P(2) counts of q5 at points z with K = k, ``shots`` per point in all.
+
+    The shots of a point are split over the probe's preparation-phase cycle (0, π).
+    """
     probe = ColumnProbe(chip, "d4", ("q5",), amplitude=amp, repeats=int(k))
-    c = rig.run(probe.timelines(np.asarray(z)[:, None]), shots)
-    return c.of("q5")[:, 2]
+    per = probe.per_point
+    if shots % per:
+        raise ValueError(f"shots per point must be a multiple of {per}")
+    z = np.asarray(z)[:, None]
+    c = rig.run(probe.timelines(z), shots // per)
+    return probe.signals(c, z.shape[0]).successes[:, 0]
 
 
 def precision_and_shots(n_seeds: int, n_grid_seeds: int) -> None:
