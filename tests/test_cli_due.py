@@ -42,3 +42,29 @@ def test_due_without_ledger_is_a_clear_error(tmp_path, capsys):
                  str(tmp_path / "s.json")]) == 2
     err = capsys.readouterr().err
     assert "--ledger" in err and "calibrate" in err and "Traceback" not in err
+
+
+def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
+    """A later survey-only estimate means no tone is in use: nothing to re-check."""
+    import dataclasses
+
+    proto = tmp_path / "p.toml"
+    proto.write_text(PROTO)
+    led, sched = tmp_path / "ledger", tmp_path / "schedule.json"
+    assert main(["calibrate", "--protocol", str(proto), "--ledger", str(led), "-q",
+                 "-o", str(tmp_path / "m.json")]) == 0
+    assert main(["due", "--protocol", str(proto), "--ledger", str(led),
+                 "--schedule", str(sched)]) == 0
+    ledger = Ledger(led)
+    e = ledger.current()[("d4", "q5")]
+    ledger.append([dataclasses.replace(e, kind="survey", measured_at_s=e.measured_at_s + 1,
+                                       sweep_id="", seq=0, position=0)])
+    data = json.loads(sched.read_text())
+    for p in data["pairs"]:
+        p["due_s"] = 0.0
+    sched.write_text(json.dumps(data))
+    capsys.readouterr()
+    assert main(["due", "--protocol", str(proto), "--ledger", str(led),
+                 "--schedule", str(sched)]) == 0
+    left = {(p["aggressor"], p["victim"]) for p in json.loads(sched.read_text())["pairs"]}
+    assert ("d4", "q5") not in left

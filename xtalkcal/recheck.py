@@ -277,14 +277,20 @@ def run_due(
         return report
     snapshot = ledger.current()
     by_agg: dict[str, list[str]] = {}
-    for a, v in due:
-        if (a, v) not in snapshot:
-            schedule.remove((a, v))
+
+    def in_use(pair: Pair) -> bool:
+        # Compensated now: its current entry is a null or a re-check, not a survey.
+        return pair in snapshot and snapshot[pair].kind != "survey"
+
+    for pair in schedule.pairs():
+        if not in_use(pair):
+            # A later calibration judged it below threshold: no tone, nothing to check.
+            schedule.remove(pair)
     # A column's re-check costs the same whatever the number of victims on its rings
     # (shots per ring are fixed), so when one pair of an aggressor is due, all its
     # scheduled pairs are re-checked together.
-    for a in sorted({a for a, _v in due}):
-        victims = [v for aa, v in schedule.pairs() if aa == a and (aa, v) in snapshot]
+    for a in sorted({a for a, v in due if in_use((a, v))}):
+        victims = [v for aa, v in schedule.pairs() if aa == a]
         if victims:
             by_agg[a] = victims
     recalibrate: set[str] = set()
