@@ -110,6 +110,7 @@ def run_campaign(
     advance: Callable[[float], None] | None = None,
     truth: Truth | None = None,
     step_h: float = 0.5,
+    watch: Sequence[str] | None = None,
     progress: Callable[[int], None] | None = None,
     say: Callable[[str], None] = print,
 ) -> CampaignResult:
@@ -133,6 +134,8 @@ def run_campaign(
         Ground truth, for a simulated device only: adds the true residuals.
     step_h : float
         Time step of the drift watch (h): the schedule is asked what is due each step.
+    watch : sequence of str, optional
+        Aggressor lines whose pairs the drift watch follows (default all calibrated).
     """
     out = Path(out)
     runner = BatchRunner(rig, out / "record", progress=progress)
@@ -174,6 +177,10 @@ def run_campaign(
         say(f"4/4 drift watch: {days:g} days of scheduled re-checks")
         schedule = Schedule(protocol.recheck)
         schedule_after_calibration(schedule, cal, rig.now())
+        if watch is not None:
+            for pair in schedule.pairs():
+                if pair[0] not in watch:
+                    schedule.remove(pair)
         t_end = rig.now() + days * 86400.0
         before = runner.shots_executed
         actions = {"rechecks": 0, "recentred": 0, "recalibrated columns": 0}

@@ -175,8 +175,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     def truth(victim, line, f, t):
         return rig.true_crosstalk(victim, line, f, t)
 
+    watch = None if args.watch == "all" else [w for w in args.watch.split(",") if w]
     camp = run_campaign(rig, protocol, out, aggressors=lines, rb_qubits=rb, days=args.days,
-                        advance=rig.wait, truth=truth, progress=bar,
+                        advance=rig.wait, truth=truth, progress=bar, watch=watch,
                         rb_draws=args.rb_draws, say=lambda s: print(s, flush=True))
     if bar is not None:
         bar.close()
@@ -315,6 +316,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="comma-separated aggressor lines (default: all)")
     d.add_argument("--force", action="store_true", help="write into a non-empty folder")
     d.add_argument("--days", type=float, default=7.0, help="simulated days of drift watch")
+    d.add_argument("--watch", default="d4,d6,d7",
+                   help="aggressor lines the drift watch follows: the columns with the chip's "
+                        "frequency-plan hazards by default, 'all' for every column (slower)")
     d.add_argument("--rb-qubits", default="q1,q4,q5,q6,q7",
                    help="qubits for simultaneous randomized benchmarking ('' to skip)")
     d.add_argument("--rb-draws", type=int, default=6, help="random sequences per length")
