@@ -30,7 +30,6 @@ integer), so the rotation grows like KÂ·|w| and the signal near the null like KÂ
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -393,11 +392,3 @@ def _ramsey_phase(c: np.ndarray, shots: int) -> tuple[np.ndarray, np.ndarray]:
     vy = 4 * np.clip(p1 * (1 - p1), 1e-6, None) / n
     dphi = np.sqrt((y * y * vx + x * x * vy) / (r2 * r2))
     return phi, dphi
-
-
-def probe_points(n_victims: int, points: Sequence[Sequence[complex]]) -> np.ndarray:
-    """Stack per-victim point lists (equal lengths) into an (n_points, n_victims) array."""
-    arr = np.array([list(p) for p in points], dtype=complex).T
-    if arr.shape[1] != n_victims:
-        raise ValueError("one list of points per victim is needed")
-    return arr

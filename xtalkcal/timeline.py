@@ -29,7 +29,7 @@ Envelopes (``E``, peak 1 before DRAG):
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
 from typing import Literal
 
@@ -286,8 +286,3 @@ class Timeline:
             if tone.line == line:
                 y += tone_values(tone, t) * np.exp(-2j * np.pi * tone.freq_ghz * t)
         return y
-
-
-def shift(tones: Sequence[Tone], dt_ns: float) -> tuple[Tone, ...]:
-    """The same tones ``dt_ns`` later (phases stay referenced to the global clock)."""
-    return tuple(replace(t, start_ns=t.start_ns + dt_ns) for t in tones)
