@@ -52,7 +52,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import linalg, optimize, stats
 
 from xtalkcal.exceptions import XtalkcalError
-from xtalkcal.fit import RejectionReason, binomial_signal
+from xtalkcal.fit import RejectionReason, _json_float, _readonly, binomial_signal
 
 if TYPE_CHECKING:
     from xtalkcal.ledger import LedgerEntry
@@ -187,19 +187,6 @@ def _db(x: float) -> float:
 
 def _lin(db: float) -> float:
     return 10.0 ** (db / 20.0)
-
-
-def _readonly(a: ArrayLike) -> NDArray[np.float64]:
-    arr = np.array(a, dtype=float)
-    arr.setflags(write=False)
-    return arr
-
-
-def _json_float(v: float | None) -> float | None:
-    if v is None:
-        return None
-    v = float(v)
-    return v if math.isfinite(v) else None
 
 
 def _finite_real(name: str, v: object) -> float:
