@@ -66,6 +66,23 @@ def test_stark_probe_signal_grows_with_field(demo_rig):
     assert s.signal[2, 0] / s.signal[1, 0] == pytest.approx(4.0, rel=0.25)
 
 
+def test_stark_readings_past_pi_are_unwrapped(demo_rig):
+    """A sensitive victim (q1 is 65 MHz above d3's tone) read beyond π: the phase keeps
+    following δ = Ω²α/(2Δ(Δ−α)) (Krantz et al., Appl. Phys. Rev. 6, 021318, 2019)
+    instead of aliasing to a negative reading."""
+    from xtalkcal.calibration import _stark_gain, measure_probe
+
+    probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=62, merged=True)
+    z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
+    r = np.array([0.03, 0.06, 0.1])  # predicted phases ~0.35, 1.4 and 3.9 rad
+    s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "wrap")
+    predicted = _stark_gain(probe, "q1") * r**2
+    assert predicted[-1] > math.pi + 0.5
+    assert s.signal[:, 0] == pytest.approx(predicted, rel=0.06)
+    # the reference's error is shared by the batch, kept apart from the per-point errors
+    assert s.common_stderr is not None and 0 < s.common_stderr[0] < 0.1
+
+
 def test_preparation_phase_cycle_makes_the_signal_depend_on_the_field_magnitude_only(demo_rig):
     """An imperfect π pulse leaves coherence; without the 0/π cycle the leakage signal
     depends on the angle around the true null (a first harmonic), with it it does not."""
@@ -136,6 +153,33 @@ def test_column_fit_separates_the_victims_leaks():
 
     plain = fit_paraboloid(Z, S0, E, rules=VerdictRules(mismatch_pvalue=0.0)).estimate(1)
     assert abs(plain.z_star - a[1]) > 5 * math.sqrt(np.trace(plain.covariance))
+
+
+def test_column_fit_gives_each_batch_its_own_offset():
+    """Stark signals of a batch share one reference: an offset error common to a batch.
+    Two rings at different centres with different offsets bias a fit with one offset;
+    per-batch offsets (``groups``) remove the bias and the errors stay honest."""
+    from xtalkcal.fit import fit_paraboloid_column
+
+    V, n = 2, ring_points_for(2, 8)
+    a = np.array([0.03 + 0.01j, -0.02 + 0.02j])
+    centres = [np.zeros(V, complex), a + 0.004]
+    rings = [ring_around(c, np.full(V, 0.08), n).T for c in centres]
+    Z = np.hstack(rings)
+    rnd = np.concatenate([np.full(r.shape[1], k) for k, r in enumerate(rings)])
+    S0 = 100 * np.abs(Z - a[:, None]) ** 2 + np.where(rnd == 1, 0.05, -0.05)
+    E = np.full(S0.shape, 1e-3)
+    pulls_grouped, pulls_single = [], []
+    for seed in range(30):
+        S = S0 + E * np.random.default_rng(seed).normal(size=S0.shape)
+        for groups, pulls in ((rnd, pulls_grouped), (None, pulls_single)):
+            f = fit_paraboloid_column(Z, S, E, groups=groups)
+            pulls += [abs(e.z_star - a[i]) / math.sqrt(np.trace(e.covariance))
+                      for i, e in enumerate(f.estimates)]
+    assert math.sqrt(np.mean(np.square(pulls_grouped))) < 1.4
+    assert min(pulls_single) > 5
+    with pytest.raises(ValueError):
+        fit_paraboloid_column(Z, S0, E, groups=np.zeros(3, dtype=int))
 
 
 @pytest.fixture(scope="module")

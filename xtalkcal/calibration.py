@@ -440,9 +440,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # lines at this frequency come out too. Weak non-quadratic terms remain: the
         # covariance is scaled by the reduced chi-square (Birge ratio) instead of
         # rejecting the fit for them.
-        return _ColumnFit(fit_paraboloid_column(Z, S, E, rules=_RULES))
+        # Stark signals are referred to one reference measurement per batch (round):
+        # each round gets its own offset, which absorbs that shared error.
+        groups = np.zeros(Z.shape, dtype=np.int64)
+        groups[stark_rows] = rnd
+        return _ColumnFit(fit_paraboloid_column(Z, S, E, groups=groups, rules=_RULES))
 
     searched = np.zeros(V, bool)  # victims whose null is being searched
+    stark_rows = np.array([m == "stark" for m in methods])
     n_ring = ring_points_for(V, protocol.survey.ring_points)
     n_null = ring_points_for(V, protocol.null.points_per_ring)
     # Rings longer than the protocol asks for (to keep victims apart) share the same

@@ -2161,6 +2161,7 @@ def fit_paraboloid_column(
     s: ArrayLike,
     sigma: ArrayLike,
     *,
+    groups: ArrayLike | None = None,
     rules: VerdictRules = DEFAULT_RULES,
 ) -> ColumnNullFit:
     """Fit every victim's null of a column sweep, with the other victims' tones in the model.
@@ -2181,6 +2182,12 @@ def fit_paraboloid_column(
     ----------
     z, s, sigma : arrays (V, n)
         Cancellation-tone amplitudes, signals and their standard errors per victim.
+    groups : int array (n,) or (V, n), optional
+        Points with one label share an offset of their own (``b0`` per group, per
+        victim): e.g. the batches of a Stark sweep, whose signals are all referred to one
+        reference measurement per batch, so that the reference's error is common to the
+        batch and must not be averaged as if it were independent per point. Default: one
+        offset for all points.
     rules : VerdictRules
         ``min_points`` (at least parameters + 1), ``min_curvature_snr`` and
         ``region_margin`` apply; ``mismatch_pvalue`` does not (the caller scales by the
@@ -2199,6 +2206,15 @@ def fit_paraboloid_column(
     if not (np.all(np.isfinite(Z)) and np.all(np.isfinite(S)) and np.all(E > 0)):
         raise FitInputError("z and s must be finite and sigma positive")
     V, n = Z.shape
+    if groups is None:
+        G = np.zeros((V, n), dtype=np.int64)
+    else:
+        G = np.asarray(groups)
+        if G.ndim == 1:
+            G = np.broadcast_to(G, (V, G.shape[0]))
+        if G.shape != (V, n) or not np.issubdtype(G.dtype, np.integer):
+            raise FitInputError(f"groups must be integer labels of shape ({n},) or ({V}, {n}),"
+                                f" got {G.dtype} {G.shape}")
     coup = np.full((V, V), np.nan + 0j)
     coup_err = np.full((V, V), np.nan)
     out: list[NullEstimate] = []
@@ -2208,13 +2224,14 @@ def fit_paraboloid_column(
         act = E[i] <= 1e3 * E[i].min()
         Zi = Z[:, act]
         varies = np.ptp(Zi.real, axis=1) + np.ptp(Zi.imag, axis=1) > 0
-        est, c_row, c_err = _column_victim(Zi, S[i, act], E[i, act], i, varies, rules)
+        gi = G[i, act]
+        est, c_row, c_err = _column_victim(Zi, S[i, act], E[i, act], gi, i, varies, rules)
         # The dropped term κ|Σ c_k z_k|² is second order; subtract it with the first
         # estimates and refit once (it matters when shots are plentiful).
         if est.accepted:
             lead = np.nan_to_num(c_row) @ Zi
             est2, c2, e2 = _column_victim(Zi, S[i, act] - est.curvature * np.abs(lead) ** 2,
-                                          E[i, act], i, varies, rules)
+                                          E[i, act], gi, i, varies, rules)
             if est2.accepted:
                 est, c_row, c_err = est2, c2, e2
         out.append(est)
@@ -2227,6 +2244,7 @@ def _column_victim(
     Z: NDArray[np.complex128],
     si: NDArray[np.float64],
     ei: NDArray[np.float64],
+    gi: NDArray[np.int64],
     i: int,
     varies: NDArray[np.bool_],
     rules: VerdictRules,
@@ -2237,7 +2255,10 @@ def _column_victim(
     coup = np.full(V, np.nan + 0j)
     coup_err = np.full(V, np.nan)
     others = [k for k in range(V) if k != i and varies[k]]
-    cols = [np.ones(n), zi.real, zi.imag, np.abs(zi) ** 2]
+    # Coefficients: b1, b2, κ, then one offset per group, then 4 per other victim.
+    labels = np.unique(gi)
+    cols = [zi.real, zi.imag, np.abs(zi) ** 2] + [(gi == g).astype(float) for g in labels]
+    first = 3 + len(labels)
     for k in others:
         prod = np.conj(zi) * Z[k]
         cols += [prod.real, prod.imag, Z[k].real, Z[k].imag]
@@ -2257,17 +2278,19 @@ def _column_victim(
     resid = (si - A @ b) * w
     dof = n - p
     chi2 = float(resid @ resid)
-    kappa, sk = float(b[3]), float(math.sqrt(cov_b[3, 3]))
+    kappa, sk = float(b[2]), float(math.sqrt(cov_b[2, 2]))
     if kappa <= 0 or kappa / sk < rules.min_curvature_snr:
         return (_column_rejected(RejectionReason.NO_SIGNAL,
                                  f"curvature {kappa:.3g} ± {sk:.2g} is not significantly "
                                  "positive", n, dof), coup, coup_err)
-    a = complex(-b[1], -b[2]) / (2 * kappa)
-    # Delta method for a = −(b1 + i b2)/(2 b3).
-    J = np.array([[-1 / (2 * kappa), 0.0, b[1] / (2 * kappa**2)],
-                  [0.0, -1 / (2 * kappa), b[2] / (2 * kappa**2)]])
-    sub = cov_b[np.ix_([1, 2, 3], [1, 2, 3])]
+    a = complex(-b[0], -b[1]) / (2 * kappa)
+    # Delta method for a = −(b1 + i b2)/(2κ).
+    J = np.array([[-1 / (2 * kappa), 0.0, b[0] / (2 * kappa**2)],
+                  [0.0, -1 / (2 * kappa), b[1] / (2 * kappa**2)]])
+    sub = cov_b[:3, :3]
     cov_a = J @ sub @ J.T
+    # The floor of the most recent group (the largest label): the offset now.
+    off = first - 1
     centre = zi.mean()
     reach = float(np.abs(zi - centre).max())
     if abs(a - centre) > (1 + rules.region_margin) * reach:
@@ -2275,8 +2298,8 @@ def _column_victim(
     else:
         reason, msg = RejectionReason.NONE, "accepted"
     values = NullFitValues(z_star=a, covariance=0.5 * (cov_a + cov_a.T),
-                           floor=float(b[0] - kappa * abs(a) ** 2),
-                           floor_stderr=float(math.sqrt(cov_b[0, 0])), curvature=kappa,
+                           floor=float(b[off] - kappa * abs(a) ** 2),
+                           floor_stderr=float(math.sqrt(cov_b[off, off])), curvature=kappa,
                            curvature_stderr=sk)
     verdict = Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
     est = NullEstimate(method="paraboloid-column", verdict=verdict, reason=reason, message=msg,
@@ -2285,10 +2308,10 @@ def _column_victim(
                        _values=values)
     if verdict is Verdict.ACCEPTED:
         for j, k in enumerate(others):
-            g = complex(b[4 + 4 * j], b[5 + 4 * j])
+            g = complex(b[first + 4 * j], b[first + 1 + 4 * j])
             # 2κ·Re(conj(z_i)·c·z_k) = 2κ[c_r·Re(conj z_i z_k) − c_i·Im(conj z_i z_k)]
             coup[k] = complex(g.real, -g.imag) / (2 * kappa)
-            idx = [4 + 4 * j, 5 + 4 * j]
+            idx = [first + 4 * j, first + 1 + 4 * j]
             coup_err[k] = float(math.sqrt(np.trace(cov_b[np.ix_(idx, idx)])) / (2 * kappa))
     return est, coup, coup_err
 

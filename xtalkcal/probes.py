@@ -119,12 +119,18 @@ class ProbeSignals:
         Shots behind each value.
     successes : ndarray (n_points, n_victims)
         For probability signals: shots counted as the error event (else −1).
+    common_stderr : ndarray (n_victims,)
+        Error shared by every point of the batch (Stark: the reference phase each
+        point is referred to; 0 for probability signals). It is not in ``stderr``: a fit
+        absorbs it with one offset per batch, and adding it to every point as if it were
+        independent would let it bias a fit that spans several batches.
     """
 
     signal: np.ndarray
     stderr: np.ndarray
     shots: np.ndarray
     successes: np.ndarray
+    common_stderr: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
@@ -329,6 +335,7 @@ class ColumnProbe:
         err = np.zeros((n_points, nv))
         nshots = np.zeros((n_points, nv), dtype=np.int64)
         succ = np.full((n_points, nv), -1, dtype=np.int64)
+        common = np.zeros(nv)
         for iv, (v, m) in enumerate(zip(self.victims, self.methods, strict=True)):
             c = counts.of(v).reshape(n_points, nq, ncyc, -1).sum(axis=2)
             if m in ("leakage", "rotation"):
@@ -348,12 +355,18 @@ class ColumnProbe:
                 phi, dphi = _ramsey_phase(c, shots * ncyc)
                 r = reference.of(v).reshape(1, nq, ncyc, -1).sum(axis=2)
                 phi0, dphi0 = _ramsey_phase(r, reference.shots * ncyc)
-                d = np.angle(np.exp(1j * (phi - phi0)))
                 sign = self._stark_sign(v)
-                sig[:, iv] = sign * d
-                err[:, iv] = np.sqrt(dphi**2 + dphi0**2)
+                d = sign * np.angle(np.exp(1j * (phi - phi0)))
+                # With the sign of δ = Ω²α/(2Δ(Δ−α)) taken out, the Stark phase is ≥ 0
+                # for any field (it vanishes only at the null): a reading below −π/2 is
+                # a phase that went past π, so readings are unwrapped onto [−π/2, 3π/2).
+                # That doubles the range a ring can span around a strong, sensitive null
+                # (or with the other victims' rings leaking in) before readings alias.
+                sig[:, iv] = np.where(d < -np.pi / 2, d + 2 * np.pi, d)
+                err[:, iv] = dphi
+                common[iv] = float(dphi0[0])
                 nshots[:, iv] = shots * nq * ncyc
-        return ProbeSignals(sig, err, nshots, succ)
+        return ProbeSignals(sig, err, nshots, succ, common)
 
     def _stark_sign(self, victim: str) -> float:
         """Sign of the Stark shift δ = Ω²α/(2Δ(Δ−α)) times the train's phase convention."""
