@@ -70,13 +70,13 @@ def test_stark_readings_past_pi_are_unwrapped(demo_rig):
     """A sensitive victim (q1 is 65 MHz above d3's tone) read beyond π: the phase keeps
     following δ = Ω²α/(2Δ(Δ−α)) (Krantz et al., Appl. Phys. Rev. 6, 021318, 2019)
     instead of aliasing to a negative reading."""
-    from xtalkcal.calibration import _stark_gain, measure_probe
+    from xtalkcal.calibration import measure_probe
 
     probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=62, merged=True)
     z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
     r = np.array([0.03, 0.06, 0.1])  # predicted phases ~0.35, 1.4 and 3.9 rad
     s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "wrap")
-    predicted = _stark_gain(probe, "q1") * r**2
+    predicted = probe.stark_gain("q1") * r**2
     assert predicted[-1] > math.pi + 0.5
     assert s.signal[:, 0] == pytest.approx(predicted, rel=0.06)
     # the reference's error is shared by the batch, kept apart from the per-point errors
@@ -207,6 +207,68 @@ def test_column_parallel_costs_one_pass_per_method_group(d4_result):
     _, res = d4_result
     assert set(res.sweeps) == {"d4-res", "d4-stark"}
     assert res.sweeps["d4-stark"].sizes["victim"] == 7
+
+
+def test_leakage_null_raises_the_amplification_as_it_sharpens(d4_result):
+    rig, res = d4_result
+    leak = res.pair("d4", "q5")
+    ks = np.unique(res.sweeps["d4-res"]["repeats"].values)
+    assert ks[0] == 1 and leak.repeats == ks[-1] > 1  # reported at the last K
+    truth = rig.true_crosstalk("q5", "d4", leak.freq_ghz)
+    assert abs(leak.x - truth) < 4 * leak.stderr
+
+
+def test_resonant_tones_ring_during_the_stark_pass(d4_result):
+    """The leakage victim's tone varies during d4's Stark pass: the column fit measures
+    how q5's line reaches the Stark victims at d4's frequency (truth: the simulator)."""
+    rig, res = d4_result
+    ds = res.sweeps["d4-stark"]
+    assert list(ds["companion"].values) == ["q5"]
+    assert np.ptp(ds["tone_re"].values) > 0
+    victims, sources, C, err = res.couplings["d4-stark"]
+    k = sources.index("q5")
+    f = ds.attrs["frequency_ghz"]
+    for i, v in enumerate(victims):
+        t = rig.true_crosstalk(v, "d5", f)
+        assert abs(C[i, k] - t) < 4 * err[i, k] + 2e-3, v
+    # a Stark victim's null is that of the aggressor alone, not shifted by q5's tone
+    for p in res.pairs:
+        if p.method == "stark" and p.nulled:
+            t = rig.true_crosstalk(p.victim, "d4", p.freq_ghz)
+            assert abs(p.x - t) < max(4 * p.stderr, 10 ** (-52 / 20)), p
+
+
+def test_stark_windows_keep_sensitive_victims_in_range(demo_chip):
+    from xtalkcal.calibration import STARK_PHASE_MAX, STRONGEST_DB, stark_windows
+    from xtalkcal.probes import PulseShape
+
+    shape = PulseShape(32.0, 8.0)
+    victims = ("q0", "q1", "q2", "q4", "q5", "q6", "q7", "q8")
+    methods = ("stark",) * len(victims)
+    win = stark_windows(demo_chip, "d3", victims, methods, 0.64, 187, shape)
+    probe = ColumnProbe(demo_chip, "d3", victims, amplitude=0.64, repeats=187,
+                        methods=methods, shape=shape, merged=True, stark_windows_ns=win)
+    zmax = 1.5 * 0.64 * 10 ** (STRONGEST_DB / 20)
+    for v, w in zip(victims, win, strict=True):
+        assert probe.stark_gain(v) * zmax**2 <= STARK_PHASE_MAX * 1.05, v
+        if w == 0:  # whole train: weakly responding victims keep their full sensitivity
+            assert probe.stark_window(v)[1] - probe.stark_window(v)[0] > probe.train_ns()
+    assert win[victims.index("q1")] > 0  # q1 sits 65 MHz from d3's tone
+
+
+def test_windowed_stark_probe_follows_the_stark_formula(demo_rig):
+    """A shortened Ramsey window inside the train: the phase still follows
+    δ = Ω²α/(2Δ(Δ−α)) (Krantz et al. 2019) over the window's share of the train."""
+    from xtalkcal.calibration import measure_probe
+
+    probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=187,
+                        merged=True, stark_windows_ns=(1500.0,))
+    full = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=187, merged=True)
+    assert probe.stark_gain("q1") == pytest.approx(full.stark_gain("q1") * 1500 / 5984, rel=0.02)
+    z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
+    r = np.array([0.04, 0.07])
+    s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "win")
+    assert s.signal[:, 0] == pytest.approx(probe.stark_gain("q1") * r**2, rel=0.06)
 
 
 def test_interrupted_calibration_resumes_identically(tmp_path):

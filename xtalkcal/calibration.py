@@ -18,7 +18,7 @@ stderr of X reaches the protocol's target or the shot budget is spent.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Collection, Mapping
+from collections.abc import Callable, Collection, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Any
@@ -32,7 +32,6 @@ from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
 from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
 from xtalkcal.sweep import BatchRunner
-from xtalkcal.timeline import envelope_values
 
 __all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "ring_around"]
 
@@ -40,6 +39,15 @@ __all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "rin
 # the near-quadratic part of sin² (< 10 % off), Stark phases well inside ±π/2.
 RISE_PROBABILITY = 0.2
 RISE_STARK_RAD = 0.6
+# Margin of the null search's stopping rule: k with e^{−k²/2} = 1 % (a circular Gaussian
+# error exceeds k·σ with probability e^{−k²/2}).
+NULL_CONFIDENCE = math.sqrt(2 * math.log(100.0))
+# A raised amplification keeps each unfinished victim's ring this many null errors wide.
+RING_MARGIN = 4.0
+# Largest Stark phase (rad) a victim's Ramsey window may reach at 1.5× the strongest
+# planned null: inside the unwrapped range [−π/2, 3π/2) of the probe's readings, with room
+# for the other tones' leak.
+STARK_PHASE_MAX = 1.5
 # Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
 STRONGEST_DB = -20.0
 _RULES = VerdictRules(mismatch_pvalue=0.0)
@@ -92,10 +100,11 @@ class CalibrationResult:
     shots: int = 0
     rig_seconds: float = 0.0
     risk: list[dict[str, Any]] = field(default_factory=list)
-    # Per sweep key: (victims, C, stderr) with C[i, k] the field at victim i from victim
-    # k's line at the aggressor's frequency (X_ik(f_j)), measured in the column sweep.
-    couplings: dict[str, tuple[tuple[str, ...], np.ndarray, np.ndarray]] = field(
-        default_factory=dict)
+    # Per sweep key: (victims, sources, C, stderr) with C[i, k] the field at victim i from
+    # the line of qubit sources[k] at the aggressor's frequency (X_ik(f_j)), measured in
+    # the column sweep (sources: the pass's victims, then its companion tones).
+    couplings: dict[str, tuple[tuple[str, ...], tuple[str, ...], np.ndarray, np.ndarray]] = (
+        field(default_factory=dict))
 
     def pair(self, aggressor: str, victim: str) -> PairResult:
         for p in self.pairs:
@@ -115,11 +124,11 @@ def measured_couplings(result: CalibrationResult):
     """
     chip = result.chip
     table: dict[tuple[str, str, float], complex] = {}
-    for key, (victims, C, _err) in result.couplings.items():
+    for key, (victims, sources, C, _err) in result.couplings.items():
         f = float(result.sweeps[key].attrs["frequency_ghz"])
         for i, v in enumerate(victims):
-            for k, u in enumerate(victims):
-                if i != k and np.isfinite(C[i, k]):
+            for k, u in enumerate(sources):
+                if u != v and np.isfinite(C[i, k]):
                     table[(v, chip.line_of(u).name, round(f, 9))] = complex(C[i, k])
 
     def get(victim: str, line: str, freq_ghz: float) -> complex:
@@ -269,18 +278,27 @@ def ring_around(center: np.ndarray, radius: np.ndarray, n: int, phase0: float = 
     return np.vstack([center[None, :], ring])
 
 
-def _stark_gain(probe: ColumnProbe, victim: str) -> float:
-    """Stark phase (rad) per |z|² of the victim's own line playing the train (nominal chip)."""
-    chip = probe.chip
-    q = chip.qubit(victim)
-    g = chip.line_of(victim).rabi_mhz * 1e-3
-    d, a = probe.freq_ghz - q.f01_ghz, q.anharmonicity_ghz
-    coef = a / (2 * d * (d - a))  # δ = Ω²·coef (Krantz et al. 2019)
-    e2 = 0.0
-    for _, length, env in probe._train_slots():
-        t = np.linspace(0, length, 2001)
-        e2 += float(np.trapezoid(np.abs(envelope_values(env, length, t)) ** 2, t))
-    return abs(2 * np.pi * g * g * coef * e2)
+def stark_windows(chip: Chip, line: str, victims: Sequence[str], methods: Sequence[str],
+                  amplitude: float, repeats: int, shape: PulseShape) -> tuple[float, ...]:
+    """Ramsey window per victim of a merged Stark train (0: the whole train).
+
+    A victim whose phase would respond more strongly than ``STARK_PHASE_MAX`` rad at 1.5×
+    the strongest null we plan for (nominal chip, :meth:`ColumnProbe.stark_gain`) gets a
+    window shortened in proportion, so that a long train serves the weakly responding
+    victims without carrying the strongly responding ones past the unwrapped range.
+    """
+    victims, methods = tuple(victims), tuple(methods)
+    full = ColumnProbe(chip, line, victims, amplitude=amplitude, repeats=repeats,
+                       methods=methods, shape=shape, merged=True)
+    g_max = STARK_PHASE_MAX / (1.5 * amplitude * 10 ** (STRONGEST_DB / 20)) ** 2
+    out = []
+    for v, m in zip(victims, methods, strict=True):
+        g = full.stark_gain(v) if m == "stark" else 0.0
+        if g <= g_max:
+            out.append(0.0)
+        else:
+            out.append(float(max(round(full.train_ns() * g_max / g), 4 * shape.sigma_ns)))
+    return tuple(out)
 
 
 def calibrate_chip(
@@ -334,16 +352,19 @@ def calibrate_chip(
             passes = [group] if column_parallel else [[v] for v in group]
             for victims_of_pass in passes:
                 if victims_of_pass:
-                    # Column-parallel: the tones already found for this aggressor play
-                    # during later passes, so their leaks are nulled too.
-                    fixed = tuple(
-                        (chip.line_of(p.victim).name, -p.x * pass_amplitude(protocol, chip, line))
+                    # Column-parallel: the tones already found for this aggressor (in
+                    # the other pass, whose victims cannot be read out in this one)
+                    # ring around their nulls during later passes, so that the column
+                    # fit measures their leak onto this pass's victims (the multi-victim
+                    # solve needs it) instead of folding it into these victims' nulls.
+                    companions = tuple(
+                        (p.victim, -p.x * pass_amplitude(protocol, chip, line))
                         for p in result.pairs
                         if column_parallel and p.aggressor == line and p.accepted and p.nulled
                     )
                     _calibrate_pass(rig, runner, protocol, result, line, victims_of_pass,
                                     [methods[v] for v in victims_of_pass], shape,
-                                    stark=(gi == 1), say=say, fixed=fixed,
+                                    stark=(gi == 1), say=say, companions=companions,
                                     key_prefix=key_prefix,
                                     force=tuple((null_victims or {}).get(line, ())))
     result.shots = runner.shots_executed + runner.shots_resumed
@@ -377,7 +398,7 @@ def survey_radii(probe: ColumnProbe) -> np.ndarray:
     out = np.empty(len(probe.victims))
     for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
         if m == "stark":
-            out[i] = math.sqrt(RISE_STARK_RAD * 2 / _stark_gain(probe, v))
+            out[i] = math.sqrt(RISE_STARK_RAD * 2 / probe.stark_gain(v))
         else:
             out[i] = probe.amplitude * 10 ** (STRONGEST_DB / 20) * 1.5
         out[i] = min(out[i], 0.45 * chip.amplitude_limit(chip.line_of(v).name))
@@ -390,7 +411,7 @@ def pass_amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
 
 
 def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
-                    fixed=(), key_prefix="", force=()):
+                    companions=(), key_prefix="", force=()):
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, line)
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
@@ -403,37 +424,55 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
         theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
         K = max(1, min(int((math.pi / 4) / theta), int(protocol.survey.max_train_ns // spacing)))
+    comp_names = tuple(q for q, _ in companions)
+    windows = stark_windows(chip, line, victims, methods, amp, K, shape) if stark else ()
     probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
-                        methods=tuple(methods), shape=shape, merged=stark, fixed=fixed)
+                        methods=tuple(methods), shape=shape, merged=stark,
+                        companions=comp_names, stark_windows_ns=windows)
+    k_max = max(K, int(protocol.survey.max_train_ns // spacing))
     f = probe.freq_ghz
     V = len(victims)
     radius = survey_radii(probe)
+    # Companion tones: a ring around their nulls as wide as a resonant victim's survey
+    # ring (their own signal does not matter here; the ring only has to reach the
+    # victims through the couplings).
+    comp_centre = np.array([z for _, z in companions], dtype=complex)
+    comp_radius = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
+                                0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
+                            for q, z in companions])
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
     pts_all: list[np.ndarray] = []
+    comp_all: list[np.ndarray] = []
     sig_all: list[np.ndarray] = []
     err_all: list[np.ndarray] = []
     shots_all: list[np.ndarray] = []
     round_all: list[np.ndarray] = []
+    k_all: list[np.ndarray] = []  # amplification K of each point
 
     def measure(points: np.ndarray, shots: int, key: str, rnd: int) -> None:
         s = measure_probe(runner, probe, points, shots, key_prefix + key)
-        pts_all.append(points)
+        k_all.append(np.full(points.shape[0], probe.repeats))
+        pts_all.append(points[:, :V])
+        comp_all.append(points[:, V:])
         sig_all.append(s.signal)
         err_all.append(s.stderr)
         shots_all.append(s.shots)
         round_all.append(np.full(points.shape[0], rnd))
 
-    def fit():
-        Z = np.vstack(pts_all).T  # (V, n)
-        S = np.vstack(sig_all).T
-        E = np.vstack(err_all).T.copy()
+    def fit(k: int | None = None):
+        """Column fit of the points taken at amplification ``k`` (default: the current)."""
+        kk = np.concatenate(k_all)
+        use = kk == (probe.repeats if k is None else k)
+        Z = np.vstack(pts_all).T[:, use]  # (V, n)
+        S = np.vstack(sig_all).T[:, use]
+        E = np.vstack(err_all).T[:, use].copy()
         # Once a victim has two rings centred near its null, the wide survey ring is
         # dropped from its fit (a weight of ~0): signals are symmetric in |z − z*| but
         # not exactly quadratic, and mixing radii far apart would bias z*.
-        rnd = np.concatenate(round_all)
-        if rnd.max() >= 2:
+        rnd = np.concatenate(round_all)[use]
+        if rnd.max() >= 2 and (rnd == 0).any():
             E[np.ix_(searched, rnd == 0)] *= 1e6
         # The other victims' tones are in the model (fit_paraboloid_column): each null is
         # that of the aggressor's leak alone, and the couplings between the victims'
@@ -444,20 +483,26 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # each round gets its own offset, which absorbs that shared error.
         groups = np.zeros(Z.shape, dtype=np.int64)
         groups[stark_rows] = rnd
-        return _ColumnFit(fit_paraboloid_column(Z, S, E, groups=groups, rules=_RULES))
+        tones = np.vstack(comp_all).T[:, use] if comp_names else None
+        return _ColumnFit(fit_paraboloid_column(Z, S, E, groups=groups, tones=tones,
+                                                rules=_RULES))
 
     searched = np.zeros(V, bool)  # victims whose null is being searched
     stark_rows = np.array([m == "stark" for m in methods])
-    n_ring = ring_points_for(V, protocol.survey.ring_points)
-    n_null = ring_points_for(V, protocol.null.points_per_ring)
     # Rings longer than the protocol asks for (to keep victims apart) share the same
     # shots per ring: every victim gets the information the protocol intends per round,
     # and a column's cost does not grow with its number of victims.
+    n_ring = ring_points_for(V + len(comp_names), protocol.survey.ring_points)
+    n_null = ring_points_for(V + len(comp_names), protocol.null.points_per_ring)
     survey_shots = _shots_per_point(protocol.survey.shots, protocol.survey.ring_points, n_ring)
     null_shots = _shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
                                   n_null)
-    measure(ring_around(np.zeros(V, complex), radius, n_ring), survey_shots,
-            f"{tag}-survey", 0)
+
+    def rings(centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0) -> np.ndarray:
+        return ring_around(np.concatenate([centre, comp_centre]),
+                           np.concatenate([rad, comp_radius]), n, phase0=phase0)
+
+    measure(rings(np.zeros(V, complex), radius, n_ring), survey_shots, f"{tag}-survey", 0)
     est = fit()
     survey_time = rig.now()
     thr = 10 ** (protocol.survey.threshold_db / 20)
@@ -473,13 +518,16 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             selected[i] = False
     say(f"{line}: K={K}, survey of {V} victims, {int(selected.sum())} above "
         f"{protocol.survey.threshold_db:g} dB")
-    target = 10 ** (protocol.null.target_residual_db / 20) * amp / 2
+    # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error| then
+    # stays below the target residual with ≥ 99 % probability (Rayleigh tail e^{−k²/2}).
+    target = 10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE
     centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
                        for i in range(V)])
     searched[:] = selected
     budget = protocol.null.shot_budget
     spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
-    rounds = 0
+    rounds = stage_rounds = 0
+    k_stages = 1
     while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
         rounds += 1
         est = fit()
@@ -499,30 +547,74 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 rad[i] = 0.0
         if done.all():
             break
-        pts = ring_around(centre, rad, n_null, phase0=math.pi / n_null * rounds)
+        stage_rounds += 1
+        tuned = _tuned_victim(probe)
+        if (not stark and selected.sum() == 1 and tuned is not None and selected[tuned]
+                and est.estimate(tuned).accepted and stage_rounds >= (2 if k_stages == 1 else 1)):
+            # Raise K as the null sharpens (curvature ∝ K², so the error of z* ∝ 1/K at
+            # equal shots), as far as keeps the ring (radius ∝ 1/K) RING_MARGIN errors
+            # wide, at most ×4 per round and within the longest train. Only for a pass
+            # with one victim to null, the one the pulse spacing makes the rotations
+            # add up coherently for (for the others, K pulses do not amplify K-fold).
+            e = est.estimate(tuned)
+            k_cur = probe.repeats
+            k_new = int(k_cur * rad[tuned] / (RING_MARGIN * e.position_stderr
+                                                * math.sqrt(_birge(e))))
+            k_new = min(k_new, 4 * k_cur, k_max)
+            if k_new > k_cur:
+                probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
+                                    methods=tuple(methods), shape=shape, merged=False,
+                                    companions=comp_names)
+                rad *= k_cur / k_new
+                stage_rounds, k_stages = 0, k_stages + 1
+                say(f"{line}: K raised to {k_new} for {victims[tuned]}")
+        pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
         measure(pts, null_shots, f"{tag}-null{rounds:02d}", rounds)
         spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     est = fit()
+    first = fit(K)  # survey-stage victims (and the couplings) from the points at the first K
+    if est.estimate(int(np.argmax(selected))).accepted is False:
+        est = first  # a raised K that did not yield a fit falls back on the first
     now = rig.now()
-    result.couplings[tag] = (tuple(victims), est.fit.couplings, est.fit.couplings_stderr)
+    result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
+                             first.fit.couplings_stderr)
     for i, v in enumerate(victims):
-        e = est.estimate(i)
+        e = est.estimate(i) if selected[i] else first.estimate(i)
+        reps = probe.repeats if selected[i] and est is not first else K
         nshots = int(np.vstack(shots_all)[:, i].sum())
         if e.accepted:
             x = -e.z_star / amp
             cov = np.asarray(e.covariance) * _birge(e) / amp**2
             result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
-                                           bool(selected[i]), nshots, K,
+                                           bool(selected[i]), nshots, reps,
                                            now if selected[i] else survey_time,
                                            "null" if selected[i] else "survey", tag,
                                            float(e.reduced_chi2)))
         else:
             result.pairs.append(PairResult(line, v, methods[i], f, False, e.reason.value, None,
-                                           None, False, nshots, K, survey_time, "survey", tag,
-                                           float(e.reduced_chi2)))
+                                           None, False, nshots, reps, survey_time,
+                                           "survey", tag, float(e.reduced_chi2)))
     Z = np.vstack(pts_all)
+    extra = {}
+    if comp_names:
+        T = np.vstack(comp_all)
+        extra = {
+            "tone_re": (("point", "companion"), T.real, {
+                "units": "fraction of full scale",
+                "long_name": "tone of a victim nulled in another pass, real part"}),
+            "tone_im": (("point", "companion"), T.imag, {
+                "units": "fraction of full scale", "long_name": "same, imaginary part"}),
+        }
+    final = [est.estimate(i) if selected[i] else first.estimate(i) for i in range(V)]
+    kap = np.array([e.curvature if e.accepted else math.nan for e in final])
+    kap_err = np.array([e.curvature_stderr * math.sqrt(_birge(e)) if e.accepted else math.nan
+                        for e in final])
     result.sweeps[tag] = xr.Dataset(
         {
+            **extra,
+            "curvature": (("victim",), kap, {"long_name": "fitted curvature κ of the signal",
+                                             "units": "signal per (fraction of full scale)²"}),
+            "curvature_stderr": (("victim",), kap_err, {"long_name": "standard error of κ"}),
             "z_re": (("point", "victim"), Z.real, {"units": "fraction of full scale",
                                                    "long_name": "cancellation tone, real part"}),
             "z_im": (("point", "victim"), Z.imag, {"units": "fraction of full scale",
@@ -531,18 +623,29 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             "stderr": (("point", "victim"), np.vstack(err_all), {"long_name": "standard error"}),
             "shots": (("point", "victim"), np.vstack(shots_all), {"units": "shots"}),
             "round": (("point",), np.concatenate(round_all), {"long_name": "search round"}),
-            "coupling_re": (("victim", "from_victim"), est.fit.couplings.real,
+            "repeats": (("point",), np.concatenate(k_all), {"long_name": "amplification K"}),
+            "coupling_re": (("victim", "from_victim"), first.fit.couplings.real,
                             {"long_name": "field at victim from from_victim's line, real part",
                              "units": "relative to the victim's own line"}),
-            "coupling_im": (("victim", "from_victim"), est.fit.couplings.imag,
+            "coupling_im": (("victim", "from_victim"), first.fit.couplings.imag,
                             {"long_name": "same, imaginary part",
                              "units": "relative to the victim's own line"}),
         },
-        coords={"victim": list(victims), "from_victim": list(victims)},
-        attrs={"aggressor": line, "frequency_ghz": f, "repeats": K, "aggressor_amplitude": amp,
+        coords={"victim": list(victims), "from_victim": list(victims) + list(comp_names),
+                **({"companion": list(comp_names)} if comp_names else {})},
+        attrs={"aggressor": line, "frequency_ghz": f, "repeats": probe.repeats,
+               "aggressor_amplitude": amp,
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
     )
+
+
+def _tuned_victim(probe: ColumnProbe) -> int | None:
+    """Index of the victim whose transition the probe's pulse spacing is coherent for."""
+    for m in ("leakage", "rotation"):
+        if m in probe.methods:
+            return probe.methods.index(m)
+    return None
 
 
 def _shots_per_point(nominal: int, nominal_points: int, points: int) -> int:

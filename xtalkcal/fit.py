@@ -2142,12 +2142,12 @@ class ColumnNullFit:
     estimates : tuple of NullEstimate
         Per victim: the null of the aggressor's leak alone (the other victims' tones
         modelled, not absorbed).
-    couplings : ndarray (V, V) complex
+    couplings : ndarray (V, V + C) complex
         ``couplings[i, k]``: field at victim i from victim k's line relative to victim
         i's own line, at the sweep's frequency (the crosstalk element X_{i,k} at the
-        aggressor's frequency). NaN where not determined (diagonal, victims whose tone
-        did not vary, rejected fits).
-    couplings_stderr : ndarray (V, V)
+        aggressor's frequency); columns V.. are the signal-less ``tones``. NaN where not
+        determined (diagonal, tones that did not vary, rejected fits).
+    couplings_stderr : ndarray (V, V + C)
         sqrt of the trace of each coupling's 2×2 covariance.
     """
 
@@ -2162,6 +2162,7 @@ def fit_paraboloid_column(
     sigma: ArrayLike,
     *,
     groups: ArrayLike | None = None,
+    tones: ArrayLike | None = None,
     rules: VerdictRules = DEFAULT_RULES,
 ) -> ColumnNullFit:
     """Fit every victim's null of a column sweep, with the other victims' tones in the model.
@@ -2188,6 +2189,12 @@ def fit_paraboloid_column(
         reference measurement per batch, so that the reference's error is common to the
         batch and must not be averaged as if it were independent per point. Default: one
         offset for all points.
+    tones : complex array (C, n), optional
+        Further cancellation tones that vary over the sweep on other lines but carry no
+        signal of their own (e.g. the tones of victims nulled in another pass, which
+        cannot be read out in this one): modelled in every victim's fit like the other
+        victims' tones, so their couplings come out and their leak does not shift the
+        nulls.
     rules : VerdictRules
         ``min_points`` (at least parameters + 1), ``min_curvature_snr`` and
         ``region_margin`` apply; ``mismatch_pvalue`` does not (the caller scales by the
@@ -2206,6 +2213,11 @@ def fit_paraboloid_column(
     if not (np.all(np.isfinite(Z)) and np.all(np.isfinite(S)) and np.all(E > 0)):
         raise FitInputError("z and s must be finite and sigma positive")
     V, n = Z.shape
+    if tones is not None:
+        T = np.atleast_2d(np.asarray(tones, dtype=complex))
+        if T.shape[1:] != (n,) or not np.all(np.isfinite(T)):
+            raise FitInputError(f"tones must be finite, of shape (C, {n}), got {T.shape}")
+        Z = np.vstack([Z, T])  # rows V.. are tones without a signal
     if groups is None:
         G = np.zeros((V, n), dtype=np.int64)
     else:
@@ -2215,8 +2227,9 @@ def fit_paraboloid_column(
         if G.shape != (V, n) or not np.issubdtype(G.dtype, np.integer):
             raise FitInputError(f"groups must be integer labels of shape ({n},) or ({V}, {n}),"
                                 f" got {G.dtype} {G.shape}")
-    coup = np.full((V, V), np.nan + 0j)
-    coup_err = np.full((V, V), np.nan)
+    W = Z.shape[0]
+    coup = np.full((V, W), np.nan + 0j)
+    coup_err = np.full((V, W), np.nan)
     out: list[NullEstimate] = []
     for i in range(V):
         # Points weighted down by more than 1e3 in sigma are left out of victim i's fit

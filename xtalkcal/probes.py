@@ -37,7 +37,7 @@ import numpy as np
 
 from xtalkcal.chip import Chip
 from xtalkcal.rig import Counts
-from xtalkcal.timeline import Envelope, Timeline, Tone, pulse_area_ns
+from xtalkcal.timeline import Envelope, Timeline, Tone, envelope_values, pulse_area_ns
 
 __all__ = [
     "Method",
@@ -164,10 +164,24 @@ class ColumnProbe:
         it depends on arg w, not only on |w|, and shifts the apparent null. Cycling the
         preparation phase through 0 and π flips the sign of that term and cancels it
         (measured on the demo chip: a −52 dB bias of the leakage null without it).
+    companions : tuple of str
+        Qubits (not victims of this probe, not read out for a signal) whose own lines
+        play a cancellation tone that varies from point to point: columns
+        ``len(victims):`` of the ``z`` given to :meth:`timelines`. A column fit then
+        measures how those lines reach the victims (victims nulled in another pass,
+        whose tones will play in use, are measured this way instead of being held
+        fixed, which would fold their leak into the victims' nulls).
     merged : bool
         Play the K pulses as one flat-top pulse K·duration long with cosine ramps of
         2σ (the amplification of a Stark probe is its drive time; one long pulse
         gives the same accumulated phase with far fewer edges).
+    stark_windows_ns : tuple of float
+        Per victim (merged trains, Stark victims): length of the victim's Ramsey
+        window, centred on the flat top; 0 (or missing) means the whole train. The
+        victims of one aggressor differ by two orders of magnitude in how strongly
+        their phase responds to a field (the Stark coefficient goes as 1/(Δ(Δ−α))): one
+        train long enough for the weakest would carry the strongest far past ±π, so
+        each victim's phase is accumulated only over its own window.
     """
 
     chip: Chip
@@ -182,9 +196,20 @@ class ColumnProbe:
     merged: bool = False
     phase_cycle: tuple[float, ...] = (0.0, math.pi)
     fixed: tuple[tuple[str, complex], ...] = ()
+    companions: tuple[str, ...] = ()
+    stark_windows_ns: tuple[float, ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "victims", tuple(self.victims))
+        object.__setattr__(self, "companions", tuple(self.companions))
+        if set(self.companions) & set(self.victims):
+            raise ValueError("a companion cannot also be a victim of the probe")
+        win = tuple(float(w) for w in self.stark_windows_ns)
+        object.__setattr__(self, "stark_windows_ns", win)
+        if win and (len(win) != len(self.victims) or not all(w >= 0 for w in win)):
+            raise ValueError("stark_windows_ns needs one length ≥ 0 (ns) per victim")
+        if any(win) and not self.merged:
+            raise ValueError("Stark windows need a merged train")
         if not self.methods:
             object.__setattr__(
                 self, "methods",
@@ -261,13 +286,41 @@ class ColumnProbe:
         """Timelines per probe point: quadratures × preparation phases."""
         return len(self.quadratures) * len(self.phase_cycle)
 
+    def stark_window(self, victim: str) -> tuple[float, float]:
+        """(start, end) in ns of the victim's Ramsey window: between its π/2 pulses."""
+        i = self.victims.index(victim)
+        w = self.stark_windows_ns[i] if self.stark_windows_ns else 0.0
+        t0, length = self.train_start_ns(), self.train_ns()
+        if w <= 0 or w >= length:
+            return t0 - self.gap_ns, self.duration_ns() - self.shape.duration_ns
+        mid = t0 + 0.5 * length
+        return mid - 0.5 * w, mid + 0.5 * w
+
+    def stark_gain(self, victim: str) -> float:
+        """Stark phase (rad) per |w|² of field at the victim (its own line's units), nominal.
+
+        ``δ = Ω²·α/(2Δ(Δ−α))`` (Krantz et al., Appl. Phys. Rev. 6, 021318, 2019)
+        integrated over the train's envelope within the victim's Ramsey window.
+        """
+        chip = self.chip
+        q = chip.qubit(victim)
+        g = chip.line_of(victim).rabi_mhz * 1e-3
+        d, a = self.freq_ghz - q.f01_ghz, q.anharmonicity_ghz
+        coef = a / (2 * d * (d - a))  # δ = Ω²·coef
+        lo, hi = self.stark_window(victim)
+        e2 = 0.0
+        for start, length, env in self._train_slots():
+            t = np.linspace(0, length, 4001)
+            inside = (t + start >= lo) & (t + start <= hi)
+            e2 += float(np.trapezoid(np.abs(envelope_values(env, length, t)) ** 2 * inside, t))
+        return abs(2 * np.pi * g * g * coef * e2)
+
     def _prep_and_analysis(self, theta: float, psi: float = 0.0
                            ) -> tuple[list[Tone], list[Tone]]:
         chip, shape = self.chip, self.shape
         env = shape.envelope
         prep: list[Tone] = []
         post: list[Tone] = []
-        t_end = self.duration_ns() - shape.duration_ns
         for v, m in zip(self.victims, self.methods, strict=True):
             line = chip.line_of(v).name
             f01 = chip.qubit(v).f01_ghz
@@ -276,25 +329,28 @@ class ColumnProbe:
                 prep.append(Tone(line, 0.0, shape.duration_ns, f01, a, psi, env))
             elif m == "stark":
                 a = pi_pulse_amplitude(chip, v, shape, math.pi / 2)
-                prep.append(Tone(line, 0.0, shape.duration_ns, f01, a, psi, env))
-                post.append(Tone(line, t_end, shape.duration_ns, f01, a, theta + psi, env))
+                lo, hi = self.stark_window(v)
+                prep.append(Tone(line, lo - shape.duration_ns, shape.duration_ns, f01, a, psi,
+                                 env))
+                post.append(Tone(line, hi, shape.duration_ns, f01, a, theta + psi, env))
         return prep, post
 
     def timelines(self, z: np.ndarray, *, aggressor_on: bool = True,
                   label: str = "") -> list[Timeline]:
-        """Timelines for cancellation settings ``z`` (n_points, n_victims), complex.
+        """Timelines for cancellation settings ``z`` (n_points, n_victims + n_companions).
 
         Each point yields one timeline per Ramsey quadrature (one or two), ordered
         point-major. With ``aggressor_on=False`` the aggressor pulses are left out
         (cancellation tones still play).
         """
         z = np.atleast_2d(np.asarray(z, dtype=complex))
-        if z.shape[1] != len(self.victims):
-            raise ValueError(f"z must have {len(self.victims)} columns, got {z.shape}")
+        width = len(self.victims) + len(self.companions)
+        if z.shape[1] != width:
+            raise ValueError(f"z must have {width} columns, got {z.shape}")
         chip = self.chip
         f = self.freq_ghz
         slots = self._train_slots()
-        lines = [chip.line_of(v).name for v in self.victims]
+        lines = [chip.line_of(v).name for v in self.victims + self.companions]
         readout = tuple(self.victims) + (chip.line(self.aggressor).qubit,)
         out: list[Timeline] = []
         for p in range(z.shape[0]):
@@ -316,7 +372,8 @@ class ColumnProbe:
 
     def reference_timelines(self, label: str = "ref") -> list[Timeline]:
         """The same sequence with no aggressor and no cancellation (Stark reference)."""
-        return self.timelines(np.zeros((1, len(self.victims))), aggressor_on=False, label=label)
+        width = len(self.victims) + len(self.companions)
+        return self.timelines(np.zeros((1, width)), aggressor_on=False, label=label)
 
     # ---------------------------------------------------------------- signals
     def signals(self, counts: Counts, n_points: int,

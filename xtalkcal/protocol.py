@@ -21,12 +21,12 @@ are those of ``protocols/full.toml``. Field by field::
     shots = 1000                 # per timeline
     threshold_db = -40.0         # pairs whose |X| may exceed this are nulled
     ring_points = 6              # cancellation-tone points on a ring around 0
-    max_train_ns = 2000.0        # longest aggressor train (sets K for Stark victims)
+    max_train_ns = 6000.0        # longest aggressor train (sets K for Stark victims)
 
     [null]                       # column-parallel null search
     shots_per_point = 1000
     points_per_ring = 8
-    target_residual_db = -50.0   # stop when stderr(X) is this far below 1
+    target_residual_db = -50.0   # stop when |error of X| < this with 99 % probability
     max_rounds = 8
     shot_budget = 2000000        # per aggressor column
 
@@ -75,7 +75,7 @@ class SurveySettings:
     shots: int = 1000
     threshold_db: float = -40.0
     ring_points: int = 6
-    max_train_ns: float = 2000.0
+    max_train_ns: float = 6000.0
 
 
 @dataclass(frozen=True)
@@ -166,7 +166,7 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
         shots=st.integer("shots", 1000, lo=10, hi=10_000_000),
         threshold_db=st.number("threshold_db", -40.0, lo=-120.0, hi=0.0, unit="dB"),
         ring_points=st.integer("ring_points", 6, lo=3, hi=64),
-        max_train_ns=st.number("max_train_ns", 2000.0, lo=50.0, hi=1e5, unit="ns"),
+        max_train_ns=st.number("max_train_ns", 6000.0, lo=50.0, hi=1e5, unit="ns"),
     )
     st.reject_unknown()
 

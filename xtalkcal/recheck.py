@@ -36,6 +36,7 @@ from xtalkcal.calibration import (
     pass_amplitude,
     ring_around,
     ring_points_for,
+    stark_windows,
     survey_radii,
 )
 from xtalkcal.drift import (
@@ -83,8 +84,8 @@ class DueReport:
 
 
 def _pass_couplings(ledger: Ledger | None, entry: LedgerEntry
-                    ) -> tuple[tuple[str, ...], np.ndarray] | None:
-    """(victims, C) of the calibration pass that produced ``entry``, from its stored sweep."""
+                    ) -> tuple[tuple[str, ...], tuple[str, ...], np.ndarray] | None:
+    """(victims, sources, C) of the calibration pass behind ``entry``, from its stored sweep."""
     if ledger is None or not entry.sweep_id:
         return None
     try:
@@ -94,7 +95,8 @@ def _pass_couplings(ledger: Ledger | None, entry: LedgerEntry
     if "coupling_re" not in ds:
         return None
     names = tuple(str(v) for v in ds["victim"].values)
-    return names, ds["coupling_re"].values + 1j * ds["coupling_im"].values
+    sources = tuple(str(v) for v in ds["from_victim"].values)
+    return names, sources, ds["coupling_re"].values + 1j * ds["coupling_im"].values
 
 
 def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, float] | None:
@@ -108,6 +110,10 @@ def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, 
     if entry.victim not in list(ds["victim"].values):
         return None
     s = ds.sel(victim=entry.victim)
+    if "curvature" in ds and math.isfinite(float(s.curvature)):
+        # The column fit's own κ (other tones and per-batch offsets modelled).
+        k = float(s.curvature)
+        return k, max(float(s.curvature_stderr), 0.25 * k)
     z = s.z_re.values + 1j * s.z_im.values
     rnd = ds["round"].values
     keep = rnd >= 1 if rnd.max() >= 2 else np.ones(rnd.shape, bool)
@@ -171,9 +177,13 @@ def recheck_column(
         K = max(e.amplification for e in entries)
         others = tuple((chip.line_of(v).name, -e.value * amp) for v, e in column.items()
                        if v not in group)
+        methods = tuple(e.method for e in entries)
+        # the calibration's windows (a pure function of the nominal chip and the train)
+        windows = (stark_windows(chip, aggressor, group, methods, amp, K, shape) if stark
+                   else ())
         probe = ColumnProbe(chip, aggressor, tuple(group), amplitude=amp, repeats=K,
-                            methods=tuple(e.method for e in entries), shape=shape,
-                            merged=stark, fixed=others)
+                            methods=methods, shape=shape, merged=stark, fixed=others,
+                            stark_windows_ns=windows)
         z_stored = np.array([-e.value * amp for e in entries])
         priors = [_sweep_curvature(ledger, e) for e in entries]
         # The calibration's rule: where the signal rises by a set amount; without a
@@ -202,10 +212,10 @@ def recheck_column(
                 # The calibration's column fit measured how the other victims' lines
                 # reach this victim at this frequency; take their (known) leak out of
                 # the signal so that what is left is this pair's own paraboloid.
-                names, C = C_info
+                names, sources, C = C_info
                 iv = names.index(v)
                 lead = np.zeros(pts.shape[0], complex)
-                for k, u in enumerate(names):
+                for k, u in enumerate(sources):
                     if u != v and u in tone_of and np.isfinite(C[iv, k]):
                         lead += C[iv, k] * tone_of[u]
                 d = pts[:, i] - z_stored[i]
