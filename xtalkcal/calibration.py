@@ -362,14 +362,45 @@ def calibrate_chip(
                         for p in result.pairs
                         if column_parallel and p.aggressor == line and p.accepted and p.nulled
                     )
-                    _calibrate_pass(rig, runner, protocol, result, line, victims_of_pass,
-                                    [methods[v] for v in victims_of_pass], shape,
-                                    stark=(gi == 1), say=say, companions=companions,
-                                    key_prefix=key_prefix,
-                                    force=tuple((null_victims or {}).get(line, ())))
+                    force = tuple((null_victims or {}).get(line, ()))
+                    handoff = _calibrate_pass(rig, runner, protocol, result, line,
+                                              victims_of_pass,
+                                              [methods[v] for v in victims_of_pass], shape,
+                                              stark=(gi == 1), say=say, companions=companions,
+                                              key_prefix=key_prefix, force=force,
+                                              split=column_parallel)
+                    _null_one_by_one(rig, runner, protocol, result, line, handoff, methods,
+                                     shape, say=say, key_prefix=key_prefix)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
+
+
+def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shape, *, say,
+                     key_prefix):
+    """Null the resonant victims a split survey handed over, one pass each.
+
+    Each pass starts at the survey's estimate, with the K its own victim allows, and the
+    column's other tones ringing (those nulled already around their nulls, those still
+    waiting around their survey estimates), so the couplings between them come out.
+    """
+    chip = rig.chip
+    amp = pass_amplitude(protocol, chip, line)
+    waiting = {v: z for v, z, _, _ in handoff}
+    for v, z0, kappa, k_survey in handoff:
+        del waiting[v]
+        one = ColumnProbe(chip, line, (v,), amplitude=amp, repeats=1, methods=(methods[v],),
+                          shape=shape)
+        theta = one.expected_rotation_per_pulse(v, STRONGEST_DB)
+        K = max(k_survey, min(int((math.pi / 4) / theta),
+                              int(protocol.survey.max_train_ns // one.spacing_ns)))
+        rad = math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2))
+        companions = tuple(
+            (p.victim, -p.x * amp) for p in result.pairs
+            if p.aggressor == line and p.accepted and p.nulled) + tuple(waiting.items())
+        _calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
+                        stark=False, say=say, companions=companions, key_prefix=key_prefix,
+                        force=(v,), start=PassStart((z0,), (rad,), K))
 
 
 def measure_probe(runner: BatchRunner, probe: ColumnProbe, points: np.ndarray, shots: int,
@@ -410,14 +441,37 @@ def pass_amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
     return protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
 
 
+@dataclass(frozen=True)
+class PassStart:
+    """Where a pass without a survey starts (refinement from known nulls).
+
+    ``centres`` and ``radii`` per victim (fraction of full scale), ``repeats`` the
+    amplification K to use.
+    """
+
+    centres: tuple[complex, ...]
+    radii: tuple[float, ...]
+    repeats: int
+
+
 def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
-                    companions=(), key_prefix="", force=()):
+                    companions=(), key_prefix="", force=(), start: PassStart | None = None,
+                    split=False):
+    """One pass: survey (unless ``start``), then the null rounds; results into ``result``.
+
+    With ``split`` a resonant pass that selects more than one victim stops after its
+    survey and returns ``[(victim, z*, κ, K)]`` for them (their results are not
+    recorded): the caller nulls each in a pass of its own, whose pulse spacing makes
+    that victim's rotations add up coherently so that K can be raised for it.
+    """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, line)
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
                        methods=tuple(methods), shape=shape)
     spacing = base.spacing_ns
-    if stark:
+    if start is not None:
+        K = int(start.repeats)
+    elif stark:
         K = max(1, int(protocol.survey.max_train_ns // shape.duration_ns))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
@@ -502,33 +556,50 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         return ring_around(np.concatenate([centre, comp_centre]),
                            np.concatenate([rad, comp_radius]), n, phase0=phase0)
 
-    measure(rings(np.zeros(V, complex), radius, n_ring), survey_shots, f"{tag}-survey", 0)
-    est = fit()
-    survey_time = rig.now()
-    thr = 10 ** (protocol.survey.threshold_db / 20)
-    selected = np.zeros(V, bool)
-    for i in range(V):
-        e = est.estimate(i)
-        if e.accepted:
-            x = -e.z_star / amp
-            sx = e.position_stderr * math.sqrt(_birge(e)) / amp
-            selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
-        else:
-            # "No signal" means |X| is small against the ring: bound it from the floor.
-            selected[i] = False
-    say(f"{line}: K={K}, survey of {V} victims, {int(selected.sum())} above "
-        f"{protocol.survey.threshold_db:g} dB")
     # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error| then
     # stays below the target residual with ≥ 99 % probability (Rayleigh tail e^{−k²/2}).
     target = 10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE
-    centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
-                       for i in range(V)])
+    rounds = stage_rounds = 0
+    k_stages = 1
+    if start is None:
+        measure(rings(np.zeros(V, complex), radius, n_ring), survey_shots, f"{tag}-survey", 0)
+        est = fit()
+        survey_time = rig.now()
+        thr = 10 ** (protocol.survey.threshold_db / 20)
+        selected = np.zeros(V, bool)
+        for i in range(V):
+            e = est.estimate(i)
+            if e.accepted:
+                x = -e.z_star / amp
+                sx = e.position_stderr * math.sqrt(_birge(e)) / amp
+                selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
+            else:
+                # "No signal" means |X| is small against the ring: bound it from the floor.
+                selected[i] = False
+        say(f"{line}: K={K}, survey of {V} victims, {int(selected.sum())} above "
+            f"{protocol.survey.threshold_db:g} dB")
+        centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
+                           for i in range(V)])
+    else:
+        # A pass from known nulls (refinement): no survey, every victim searched, the
+        # first ring at the radius its stored curvature gives.
+        centre = np.asarray(start.centres, dtype=complex)
+        selected = np.ones(V, bool)
+        searched[:] = True
+        rad0 = np.minimum(np.asarray(start.radii, dtype=float), radius)
+        measure(rings(centre, rad0, n_null), null_shots, f"{tag}-null00", 1)
+        survey_time = rig.now()
+        rounds = stage_rounds = 1
+        say(f"{line}: K={K}, refining {V} victims from their current settings")
+    handoff = []
+    if split and not stark and start is None and selected.sum() > 1:
+        handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K)
+                   for i in range(V) if selected[i]]
     searched[:] = selected
     budget = protocol.null.shot_budget
     spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
-    rounds = stage_rounds = 0
-    k_stages = 1
-    while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
+    while (not handoff and selected.any() and rounds < protocol.null.max_rounds
+           and spent < budget):
         rounds += 1
         est = fit()
         rad = np.zeros(V)
@@ -579,6 +650,8 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
                              first.fit.couplings_stderr)
     for i, v in enumerate(victims):
+        if handoff and selected[i]:
+            continue  # nulled in passes of their own
         e = est.estimate(i) if selected[i] else first.estimate(i)
         reps = probe.repeats if selected[i] and est is not first else K
         nshots = int(np.vstack(shots_all)[:, i].sum())
@@ -638,6 +711,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
     )
+    return handoff
 
 
 def _tuned_victim(probe: ColumnProbe) -> int | None:

@@ -20,7 +20,7 @@ Setting it to zero for every i ∈ V gives ``(I + X_VV^offdiag)·r = −X_Vj`` w
 second-order all-on residual ``Σ_k X_ik·r_kj`` at victim i; the solve removes it.
 
 Approximations of the solve, all second order in the crosstalk and absorbed by the
-closed-loop refinement (re-nulling with all compensations on, done elsewhere):
+closed-loop refinement (re-nulling with all compensations on, :mod:`xtalkcal.refine`):
 
 * ``X_ik`` should be taken at the aggressor's frequency f_j; the matrix holds it at line
   k's own frequency f_k, and that value is used unless ``couplings`` is a callable
@@ -68,7 +68,7 @@ hand edit of ``magnitude_db`` alone would otherwise be silently ignored)::
                                              # one standard error leaves; null if 0
           "measured_at_s": 12.3,             # rig clock (s) of the underlying estimate
           "method": "leakage",               # how X was measured (leakage/rotation/stark/…)
-          "solve": "pairwise",               # "pairwise" (r = −X) or "multi-victim"
+          "solve": "pairwise",               # "pairwise" (r = −X), "multi-victim", "closed-loop"
           "source": "ledger:3.1"             # where X came from (ledger entry, calibration)
         }, ...
       ]
@@ -160,7 +160,7 @@ __all__ = [
 
 SETTINGS_SCHEMA = "xtalkcal-settings/1"
 
-Solve = Literal["pairwise", "multi-victim"]
+Solve = Literal["pairwise", "multi-victim", "closed-loop"]
 SOLVES: tuple[str, ...] = get_args(Solve)
 
 CSV_COLUMNS: tuple[str, ...] = (
@@ -361,7 +361,7 @@ class PairSetting:
         Rig clock of the underlying estimate (s).
     method : str
         How the crosstalk was measured (``leakage``, ``rotation``, ``stark``, ...).
-    solve : {"pairwise", "multi-victim"}
+    solve : {"pairwise", "multi-victim", "closed-loop"}
         r = −X, or the solution of the multi-victim system.
     source : str
         Where the crosstalk estimate came from (``ledger:<entry id>``, ``calibration:null``).
