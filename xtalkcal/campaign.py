@@ -35,11 +35,17 @@ from xtalkcal.calibration import (
     ledger_sweeps,
     measured_couplings,
 )
-from xtalkcal.compensation import CompensationSettings, apply_to_timeline, multi_victim_settings
+from xtalkcal.compensation import (
+    CompensationSettings,
+    apply_to_timeline,
+    multi_victim_settings,
+    pairwise_settings,
+)
 from xtalkcal.drift import Schedule
 from xtalkcal.ledger import Ledger
 from xtalkcal.protocol import Protocol
 from xtalkcal.recheck import PairCheck, recheck_column, run_due, schedule_after_calibration
+from xtalkcal.refine import Refinement, refine_settings
 from xtalkcal.rig import Rig
 from xtalkcal.sweep import BatchRunner
 from xtalkcal.verify import SimultaneousRBReport, draw_sequences, simultaneous_rb
@@ -75,6 +81,10 @@ class CampaignResult:
     drift_actions: dict[str, int] = field(default_factory=dict)
     shots: dict[str, int] = field(default_factory=dict)
     tolerance_db: float = -45.0
+    refinement: Refinement | None = None
+    # Simulator only: worst true field (dB) at a victim with all of its aggressor's tones
+    # on, for the pairwise, multi-victim and closed-loop settings.
+    all_on_db: dict[str, float] = field(default_factory=dict)
 
 
 def _db(x: complex) -> float:
@@ -96,6 +106,23 @@ def _all_on_field(truth: Truth, chip, snapshot, pair: tuple[str, str], t_s: floa
     return w
 
 
+def settings_all_on_db(truth: Truth, chip, settings: CompensationSettings, t_s: float
+                       ) -> float:
+    """Worst true all-on field (dB) over the pairs of ``settings`` (simulator truth).
+
+    Field at victim i from aggressor j, in units of i's own line, with every tone of
+    ``settings`` for j playing: X_ij(f_j) + r_ij + Σ_k X_ik(f_j)·r_kj.
+    """
+    worst = -np.inf
+    for p in settings:
+        w = truth(p.victim, p.aggressor_line, p.frequency_ghz, t_s) + p.ratio
+        for q in settings.for_aggressor(p.aggressor_line):
+            if q.victim != p.victim:
+                w += truth(p.victim, q.victim_line, p.frequency_ghz, t_s) * q.ratio
+        worst = max(worst, 20 * np.log10(max(abs(w), 1e-15)))
+    return float(worst)
+
+
 def run_campaign(
     rig: Rig,
     protocol: Protocol,
@@ -111,6 +138,7 @@ def run_campaign(
     truth: Truth | None = None,
     step_h: float = 0.5,
     watch: Sequence[str] | None = None,
+    refine_rounds: int = 2,
     progress: Callable[[int], None] | None = None,
     say: Callable[[str], None] = print,
 ) -> CampaignResult:
@@ -136,6 +164,8 @@ def run_campaign(
         Time step of the drift watch (h): the schedule is asked what is due each step.
     watch : sequence of str, optional
         Aggressor lines whose pairs the drift watch follows (default all calibrated).
+    refine_rounds : int
+        Largest number of closed-loop refinement rounds (:func:`xtalkcal.refine.refine_settings`).
     """
     out = Path(out)
     runner = BatchRunner(rig, out / "record", progress=progress)
@@ -146,11 +176,28 @@ def run_campaign(
     led = Ledger.create(out / "ledger", chip=chip.name, exist_ok=True)
     led.append(ledger_entries(cal, run_tag="cal0"), sweeps=ledger_sweeps(cal, run_tag="cal0"))
 
-    say("2/4 compensation settings (multi-victim solve with the measured couplings)")
-    settings = multi_victim_settings(cal, chip, couplings=measured_couplings(cal))
+    say("2/4 compensation settings: multi-victim solve, then closed-loop refinement")
+    first = multi_victim_settings(cal, chip, couplings=measured_couplings(cal))
+    before = runner.shots_executed
+    ref = refine_settings(rig, protocol, cal, first, runner=runner, rounds=refine_rounds)
+    shots["refinement"] = runner.shots_executed - before
+    for k, r in enumerate(ref.results, start=1):
+        # measured near the operating point, every other tone ringing: the current matrix
+        led.append(ledger_entries(r, run_tag=f"refine{k}"),
+                   sweeps=ledger_sweeps(r, run_tag=f"refine{k}"))
+    settings = ref.settings if ref.results else first
+    say(f"    {len(ref.results)} refinement round(s), largest moves "
+        + ", ".join(f"{m:.1f}σ" for m in ref.moves) + (" (converged)" if ref.converged else ""))
     settings.write_json(out / "settings.json")
     settings.write_csv(out / "settings.csv")
-    result = CampaignResult(cal, settings, tolerance_db=protocol.recheck.tolerance_db)
+    result = CampaignResult(cal, settings, tolerance_db=protocol.recheck.tolerance_db,
+                            refinement=ref)
+    if truth is not None:
+        t = rig.now()
+        result.all_on_db = {
+            "pairwise": settings_all_on_db(truth, chip, pairwise_settings(cal, chip), t),
+            "multi-victim": settings_all_on_db(truth, chip, first, t),
+            "closed-loop": settings_all_on_db(truth, chip, settings, t)}
 
     say("3/4 verification: residuals re-measured with all compensation on")
     snap = led.current()

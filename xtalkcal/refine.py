@@ -19,8 +19,8 @@ each group of victims is measured again with
 so that the column fit (:func:`xtalkcal.fit.fit_paraboloid_column`) returns, near the
 operating point, each victim's null of the aggressor alone and the couplings from every
 other tone of the column — both directions. The multi-victim solve on those gives new
-settings; the loop repeats from them until no setting moves by more than
-``CONVERGED_SIGMA`` of its own standard error, or ``rounds`` is reached. Every pass is
+settings; the loop repeats from them until the settings' moves are what noise alone
+explains (:func:`converged_sigma`), or ``rounds`` is reached. Every pass is
 an ordinary calibration pass (same batches, same records, same fit verdicts), so its
 result goes to the ledger like a calibration's.
 """
@@ -48,11 +48,17 @@ from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
 from xtalkcal.sweep import BatchRunner
 
-__all__ = ["Refinement", "refine_settings", "CONVERGED_SIGMA"]
+__all__ = ["Refinement", "refine_settings", "converged_sigma"]
 
-# A refinement round has converged when no setting moved by more than this many of its
-# own standard errors (the move is then indistinguishable from the measurement's noise).
-CONVERGED_SIGMA = 2.0
+# A refinement round has converged when its moves look like noise: the difference of two
+# estimates of a setting has a circular error of about √2·σ, and the largest of N such
+# moves exceeds k·√2·σ with probability ≈ N·e^{−k²/2}; k is taken for CONVERGED_RISK.
+CONVERGED_RISK = 0.05
+
+
+def converged_sigma(n_pairs: int) -> float:
+    """Largest move (in σ of the new setting) that N pairs' noise alone explains."""
+    return math.sqrt(2.0) * math.sqrt(2.0 * math.log(max(n_pairs, 1) / CONVERGED_RISK))
 
 
 @dataclass
@@ -169,7 +175,7 @@ def refine_settings(
         out.moves.append(float(move))
         current = new
         say(f"refinement round {rnd}: largest move {move:.1f} σ")
-        if move <= CONVERGED_SIGMA:
+        if move <= converged_sigma(len(new.pairs)):
             out.converged = True
             break
     out.settings = current

@@ -144,6 +144,15 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
             line += (f"; true residual within tolerance {100 * within:.1f} % of "
                      f"(pair, time) samples")
         lines.insert(0, line)
+    ref = getattr(campaign, "refinement", None)
+    if ref is not None and ref.results:
+        line = (f"- closed-loop refinement: {len(ref.results)} round(s), largest setting move "
+                + ", ".join(f"{m:.1f} σ" for m in ref.moves)
+                + ("; converged" if ref.converged else "; stopped at the round limit"))
+        if campaign.all_on_db:
+            line += ("; worst true field at a victim with all of its aggressor's tones on: "
+                     + ", ".join(f"{k} {v:.1f} dB" for k, v in campaign.all_on_db.items()))
+        lines.insert(0, line)
     if campaign.shots:
         lines.insert(0, "- shots by step: " + ", ".join(f"{k} {v:,}"
                                                        for k, v in campaign.shots.items()))
