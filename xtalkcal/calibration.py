@@ -12,7 +12,24 @@ come out), and, for Stark victims, the reference without aggressor.
 Null search: rounds of rings around each victim's current estimate, at the radius
 where the signal rises by a set amount above the floor (information grows with the
 radius until the signal saturates), refitted on all points of the pass, until the
-stderr of X reaches the protocol's target or the shot budget is spent.
+null's error stays below the protocol's target residual with 99 % probability, or
+the rounds or the shot budget run out.
+
+What keeps the column-parallel nulls as good as pair-by-pair ones:
+
+* Every other tone that varies during a pass is in each victim's model (the column
+  fit), so each null is that of the aggressor alone and the couplings between the
+  victims' lines at the aggressor's frequency come out. The resonant victims' tones
+  found in the first pass ring during the Stark pass ("companions") for the same
+  reason, rather than being held fixed.
+* Stark signals are referred to one reference per batch: each batch gets its own offset.
+* A long Stark train (``max_train_ns``) serves the victims whose phase responds weakly;
+  those that respond strongly (small detuning) accumulate phase only over a shorter
+  Ramsey window of their own (:func:`stark_windows`), so none is carried past the
+  unwrapped range.
+* Resonant victims: K pulses amplify K-fold only for the victim the pulse spacing is
+  coherent for, so when a survey selects several, each is nulled in a pass of its own,
+  and a pass raises K as its null sharpens (curvature ∝ K²).
 """
 
 from __future__ import annotations
