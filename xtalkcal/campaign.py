@@ -91,19 +91,40 @@ def _db(x: complex) -> float:
     return float(20 * np.log10(max(abs(x), 1e-15)))
 
 
-def _all_on_field(truth: Truth, chip, snapshot, pair: tuple[str, str], t_s: float) -> complex:
-    """True field at the victim from the aggressor with all its cancellation tones in use.
+def _field_with(truth: Truth, settings: CompensationSettings, pair: tuple[str, str],
+                t_s: float) -> complex:
+    """True field at the victim of ``pair`` with every tone of ``settings`` for its aggressor.
 
-    In units of the victim's own line: X_ij(f_j) + r_ij + Σ_k X_ik(f_j)·r_kj, with
-    r = −X_current for every nulled pair of the aggressor (what the re-checks play).
+    In units of the victim's own line: X_ij(f_j) + r_ij + Σ_k X_ik(f_j)·r_kj.
     """
-    a, v = pair
-    f = snapshot[pair].frequency_ghz
-    w = truth(v, a, f, t_s) - snapshot[pair].value
-    for (aa, k), e in snapshot.entries.items():
-        if aa == a and k != v and e.kind != "survey":
-            w += truth(v, chip.line_of(k).name, f, t_s) * -e.value
+    p = settings.pair(*pair)
+    w = truth(p.victim, p.aggressor_line, p.frequency_ghz, t_s) + p.ratio
+    for q in settings.for_aggressor(p.aggressor_line):
+        if q.victim != p.victim:
+            w += truth(p.victim, q.victim_line, p.frequency_ghz, t_s) * q.ratio
     return w
+
+
+def settings_in_use(snapshot, chip, couplings) -> CompensationSettings:
+    """The settings a lab would push after a ledger change: the multi-victim solve of the
+    current matrix (every pair in use, not the survey-only ones) with the measured
+    couplings at the aggressors' frequencies."""
+    pairs = [k for k, e in snapshot.entries.items() if e.kind != "survey"]
+    return multi_victim_settings(snapshot, chip, pairs=pairs, couplings=couplings)
+
+
+def _couplings_of(results: Sequence[CalibrationResult]):
+    """Coupling lookup from several results, the first that measured a coupling wins."""
+    fns = [measured_couplings(r) for r in results]
+
+    def get(victim: str, line: str, freq_ghz: float) -> complex:
+        for fn in fns:
+            x = fn(victim, line, freq_ghz)
+            if x != 0:
+                return x
+        return 0j
+
+    return get
 
 
 def settings_all_on_db(truth: Truth, chip, settings: CompensationSettings, t_s: float
@@ -113,14 +134,8 @@ def settings_all_on_db(truth: Truth, chip, settings: CompensationSettings, t_s: 
     Field at victim i from aggressor j, in units of i's own line, with every tone of
     ``settings`` for j playing: X_ij(f_j) + r_ij + Σ_k X_ik(f_j)·r_kj.
     """
-    worst = -np.inf
-    for p in settings:
-        w = truth(p.victim, p.aggressor_line, p.frequency_ghz, t_s) + p.ratio
-        for q in settings.for_aggressor(p.aggressor_line):
-            if q.victim != p.victim:
-                w += truth(p.victim, q.victim_line, p.frequency_ghz, t_s) * q.ratio
-        worst = max(worst, 20 * np.log10(max(abs(w), 1e-15)))
-    return float(worst)
+    return max((_db(_field_with(truth, settings, p.key, t_s)) for p in settings),
+               default=-np.inf)
 
 
 def run_campaign(
@@ -232,6 +247,10 @@ def run_campaign(
         before = runner.shots_executed
         actions = {"rechecks": 0, "recentred": 0, "recalibrated columns": 0}
         pairs = list(schedule.pairs())
+        # the truth compares the field with the settings a lab would derive from the
+        # ledger after each step (multi-victim solve, couplings measured in the
+        # refinement's passes, which see every direction, else in the calibration's)
+        coupling_lookup = _couplings_of(list(reversed(ref.results)) + [cal])
         while rig.now() < t_end:
             advance(step_h * 3600.0)
             rep = run_due(rig, protocol, led, schedule, runner=runner)
@@ -240,12 +259,13 @@ def run_campaign(
             actions["recalibrated columns"] += len(rep.recalibrated)
             checked = {(c.aggressor, c.victim): c for c in rep.checked}
             cur = led.current()
+            in_use = settings_in_use(cur, chip, coupling_lookup) if truth is not None else None
+            keys = {p.key for p in in_use} if in_use is not None else set(pairs)
             for pair in pairs:
-                if pair not in cur:
+                if pair not in cur or pair not in keys:
                     continue
-                cur[pair]
-                tr = None if truth is None else _db(_all_on_field(truth, chip, cur, pair,
-                                                                  rig.now()))
+                tr = None if in_use is None else _db(_field_with(truth, in_use, pair,
+                                                                 rig.now()))
                 c = checked.get(pair)
                 result.drift.append(DriftSample(
                     rig.now(), pair[0], pair[1], tr,

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import matplotlib.pyplot as plt
+import matplotlib.ticker as mticker
 import numpy as np
 import xarray as xr
 from matplotlib.patches import Ellipse
@@ -175,7 +177,11 @@ def plot_gate_errors(rb, ax=None):
     ax.set_xticks(range(len(qubits)), qubits)
     ax.set_ylabel("error per gate (10⁻⁴)")
     ax.set_yscale("log")
-    ax.set_title("randomized benchmarking: simultaneous gates before and after compensation")
+    ax.yaxis.set_minor_locator(mticker.LogLocator(subs=(2.0, 5.0)))
+    ax.yaxis.set_major_formatter(mticker.FormatStrFormatter("%g"))
+    ax.yaxis.set_minor_formatter(mticker.FormatStrFormatter("%g"))
+    ax.tick_params(axis="y", which="both", labelsize=8)
+    ax.set_title("simultaneous RB: error per gate, before and after compensation", fontsize=10)
     ax.legend(fontsize=8)
     return ax
 
@@ -215,10 +221,16 @@ def plot_drift(samples, tolerance_db: float, *, pairs=None, axes=None):
                         label=f"re-check: {dec}")
         ax.axhspan(tolerance_db, 0, color="#c44e52", alpha=0.08)
         ax.axhline(tolerance_db, color="#c44e52", lw=0.8, ls="--")
-        ax.set_ylim(-75, -25)
+        ax.set_ylim(-90, -25)
         ax.set_ylabel("dB", fontsize=8)
         ax.text(0.01, 0.85, f"{p[0]} → {p[1]}", transform=ax.transAxes, fontsize=8)
-    axes[0].legend(fontsize=7, loc="upper right", ncol=4)
+    # one legend for every kind of mark drawn in any panel
+    handles: dict[str, Any] = {}
+    for ax in axes:
+        for h, lab in zip(*ax.get_legend_handles_labels(), strict=True):
+            handles.setdefault(lab, h)
+    axes[0].legend(list(handles.values()), list(handles), fontsize=7, loc="upper right",
+                   ncol=4)
     axes[-1].set_xlabel("time since calibration (h)")
     axes[0].set_title(f"drift watch: residual of the compensation in use "
                       f"(tolerance {tolerance_db:g} dB shaded above)")

@@ -787,7 +787,8 @@ class SimultaneousRBReport:
         conds = list(self.comparisons[0].simultaneous)
         head = f"{'qubit':6s} {'isolated':>16s}" + "".join(f" {c:>16s} {'ratio':>11s}"
                                                           for c in conds)
-        lines = ["error per gate (1e-4), ± stderr", head]
+        lines = ["error per gate (1e-4), ± stderr; ratio = simultaneous/isolated, ± a paired "
+                 "bootstrap over the shared sequences (their variance largely cancels)", head]
         for c in self.comparisons:
             iso = c.isolated
             row = (f"{c.qubit:6s} {1e4 * iso.error_per_gate:8.2f} ± "
