@@ -354,7 +354,7 @@ def test_demo_runs_end_to_end_reduced(tmp_path):
                  "drift.png", "settings.json", "settings.csv", "schedule.json"):
         assert (out / name).stat().st_size > 0, name
     md = (out / "report.md").read_text()
-    assert "verification:" in md and "drift watch:" in md and "randomized benchmarking" in md
+    assert "verification (" in md and "drift watch:" in md and "randomized benchmarking" in md
     assert "closed-loop refinement:" in md and "closed-loop" in md.split("refinement:")[1]
     from xtalkcal.compensation import CompensationSettings
     from xtalkcal.ledger import Ledger
