@@ -30,6 +30,16 @@ def test_bad_file_gives_one_line_and_exit_2(tmp_path, capsys):
     assert "chip.toml" in err and "qubits[0].f01_ghz" in err and "accepted" in err
 
 
+def test_check_reports_every_file(tmp_path, capsys):
+    bad = tmp_path / "bad.toml"
+    bad.write_text('name = "x"\n[[qubits]]\nname = "a"\nf01_ghz = 5000\n'
+                   'anharmonicity_ghz = -0.2\n')
+    assert main(["check", str(bad), "protocols/full.toml", str(bad)]) == 2
+    cap = capsys.readouterr()
+    assert cap.err.count("\n") == 2 and cap.err.count("bad.toml") == 2
+    assert "protocols/full.toml: protocol 'full' — OK" in cap.out
+
+
 def test_bad_device_file_one_line(tmp_path, capsys):
     text = open(demo_device_path()).read().replace("crosstalk_db = -", "crosstalk_db = ", 1)
     p = tmp_path / "dev.toml"

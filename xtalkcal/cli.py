@@ -43,26 +43,38 @@ def _detect_format(path: str) -> str:
 
 @_command("check")
 def _cmd_check(args: argparse.Namespace) -> int:
+    bad = 0
+    for path in args.files:
+        try:
+            _check_one(path)
+        except XtalkcalError as exc:  # report it and go on with the next file
+            if args.debug:
+                raise
+            print(f"xtalkcal: error: {exc}", file=sys.stderr)
+            bad += 1
+    return EXIT_USAGE if bad else EXIT_OK
+
+
+def _check_one(path: str) -> None:
+    """Validate one chip, protocol or simulated-device file; print one line if it is OK."""
     from xtalkcal.chip import load_chip
 
-    for path in args.files:
-        fmt = _detect_format(path)
-        if fmt == "xtalkcal-simdevice":
-            from simulated_device.device import load_device
+    fmt = _detect_format(path)
+    if fmt == "xtalkcal-simdevice":
+        from simulated_device.device import load_device
 
-            dev = load_device(path)
-            print(f"{path}: simulated device {dev.name!r}: {len(dev.qubits)} qubits, "
-                  f"{len(dev.couplings)} couplings — OK")
-        elif fmt == "xtalkcal-protocol":
-            from xtalkcal.protocol import load_protocol
+        dev = load_device(path)
+        print(f"{path}: simulated device {dev.name!r}: {len(dev.qubits)} qubits, "
+              f"{len(dev.couplings)} couplings — OK")
+    elif fmt == "xtalkcal-protocol":
+        from xtalkcal.protocol import load_protocol
 
-            proto = load_protocol(path)
-            print(f"{path}: protocol {proto.name!r} — OK")
-        else:
-            chip = load_chip(path)
-            print(f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
-                  f"{len(chip.lines)} lines — OK")
-    return EXIT_OK
+        proto = load_protocol(path)
+        print(f"{path}: protocol {proto.name!r} — OK")
+    else:
+        chip = load_chip(path)
+        print(f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
+              f"{len(chip.lines)} lines — OK")
 
 
 @_command("export-chip")
