@@ -68,3 +68,44 @@ def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
                  "--schedule", str(sched)]) == 0
     left = {(p["aggressor"], p["victim"]) for p in json.loads(sched.read_text())["pairs"]}
     assert ("d4", "q5") not in left
+
+
+def test_a_broken_recheck_is_confirmed_before_the_column_is_recalibrated(tmp_path):
+    """A stored null moved far off (as after a wrong edit or a jump of the chip): the first
+    re-check finds the landscape broken and only schedules a confirmation at the shortest
+    interval; the second broken re-check in a row recalibrates the column, whose fresh
+    null is then close to the simulator's truth again."""
+    import dataclasses
+    import math
+
+    from simulated_device import SimRig, demo_device_path
+    from xtalkcal.calibration import calibrate_chip, ledger_entries, ledger_sweeps
+    from xtalkcal.drift import RecheckDecision, Schedule
+    from xtalkcal.protocol import protocol_from_dict
+    from xtalkcal.recheck import run_due, schedule_after_calibration
+
+    proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
+                                "survey": {"shots": 500}, "null": {"max_rounds": 3}})
+    rig = SimRig(demo_device_path(), seed=5, drift=False)
+    res = calibrate_chip(rig, proto, aggressors=["d4"])
+    led = Ledger.create(tmp_path / "ledger", chip=rig.chip.name)
+    entries = ledger_entries(res, run_tag="cal")
+    # the stored null of d4 → q5 moved by 3× its own magnitude
+    entries = [dataclasses.replace(e, value=e.value * 4) if e.victim == "q5" else e
+               for e in entries]
+    led.append(entries, sweeps=ledger_sweeps(res, run_tag="cal"))
+    schedule = Schedule(proto.recheck)
+    schedule_after_calibration(schedule, res, rig.now())
+    rig.wait(proto.recheck.interval_hours * 3600.0 + 1.0)
+    first = run_due(rig, proto, led, schedule)
+    (c,) = [c for c in first.checked if c.victim == "q5"]
+    assert c.outcome.decision is RecheckDecision.BROKEN
+    assert first.confirming == [("d4", "q5")] and not first.recalibrated
+    assert schedule.slot(("d4", "q5")).interval_h == proto.recheck.min_interval_hours
+    rig.wait(proto.recheck.min_interval_hours * 3600.0 + 1.0)
+    second = run_due(rig, proto, led, schedule)
+    assert second.recalibrated == ["d4"]
+    fresh = led.current()[("d4", "q5")]
+    truth = rig.true_crosstalk("q5", "d4", fresh.frequency_ghz)
+    assert 20 * math.log10(abs(fresh.value - truth)) < -45
+    assert schedule.slot(("d4", "q5")).interval_h >= proto.recheck.interval_hours
