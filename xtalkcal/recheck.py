@@ -12,8 +12,8 @@ from refitting the pair's calibration sweep stored in the ledger.
 :func:`run_due` is what a cron job runs: re-check whatever the schedule says is due,
 record the outcomes in the ledger (kind ``"recheck"``; a precise one becomes the
 current null, which re-centres the pair), recalibrate the columns of pairs that broke
-on two re-checks in a row (a first alarm is confirmed at the shortest interval) or
-drifted beyond doubt without a precise new null, and reschedule. A drift that the
+or drifted beyond doubt without a precise new null, and reschedule (a recalibrated pair
+restarts at the protocol's first interval at least). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 """
 
@@ -81,7 +81,6 @@ class DueReport:
     checked: list[PairCheck] = field(default_factory=list)
     recentred: list[Pair] = field(default_factory=list)
     recalibrated: list[str] = field(default_factory=list)  # aggressor lines
-    confirming: list[Pair] = field(default_factory=list)  # broken once: re-checked soon
     shots: int = 0
 
 
@@ -313,7 +312,6 @@ def run_due(
         ledger.append([c.entry for c in checks])
         for c in checks:
             pair = (c.aggressor, c.victim)
-            before = schedule.slot(pair).last_decision
             trend = pair_trend(ledger.history(*pair), tolerance_db=protocol.recheck.tolerance_db,
                                now_s=rig.now())
             nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
@@ -321,14 +319,8 @@ def run_due(
             say(f"{a} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), residual "
                 f"{c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
             decision = c.outcome.decision
-            if decision is RecheckDecision.BROKEN and before is RecheckDecision.BROKEN:
+            if decision is RecheckDecision.BROKEN:
                 recalibrate.add(a)
-            elif decision is RecheckDecision.BROKEN:
-                # A first alarm is confirmed before acting on it (common practice): the
-                # schedule has set the shortest interval, so the pair is re-checked soon,
-                # and only a second broken landscape in a row recalibrates the column — a
-                # column re-check costs about half a recalibration, a false alarm a whole.
-                report.confirming.append(pair)
             elif decision is RecheckDecision.DRIFTED or nxt.follow_up is not FollowUp.NONE:
                 if c.entry.verdict == "accepted":
                     # The re-check located the moved null precisely: its entry is now the
