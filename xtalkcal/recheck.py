@@ -297,11 +297,17 @@ def run_due(
         if not in_use(pair):
             # A later calibration judged it below threshold: no tone, nothing to check.
             schedule.remove(pair)
-    # A column's re-check costs the same whatever the number of victims on its rings
-    # (shots per ring are fixed), so when one pair of an aggressor is due, all its
-    # scheduled pairs are re-checked together.
-    for a in sorted({a for a, v in due if in_use((a, v))}):
-        victims = [v for aa, v in schedule.pairs() if aa == a]
+    # A re-check batch costs the same whatever the number of victims on its rings (shots
+    # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
+    # of the same batch — the aggressor's Stark victims, or its resonant ones — is
+    # re-checked with it; the other batch waits for its own due time.
+    def batch(pair: Pair) -> bool:
+        return snapshot[pair].method == "stark"
+
+    due_batches = {(a, batch((a, v))) for a, v in due if in_use((a, v))}
+    for a in sorted({a for a, _ in due_batches}):
+        victims = [v for aa, v in schedule.pairs()
+                   if aa == a and (a, batch((a, v))) in due_batches]
         if victims:
             by_agg[a] = victims
     recalibrate: set[str] = set()
