@@ -72,8 +72,18 @@ def plot_null_landscape(sweep: xr.Dataset, victim: str, *, z_star: complex | Non
     ax = ax or plt.subplots(figsize=(5.6, 5.0))[1]
     s = sweep.sel(victim=victim)
     x, y, sig = s.z_re.values, s.z_im.values, s.signal.values
-    sc = ax.scatter(x, y, c=sig, cmap="viridis", s=22, edgecolor="k", linewidth=0.3)
-    ax.figure.colorbar(sc, ax=ax, label=s.signal.attrs.get("long_name", "signal"))
+    k_final = sweep.attrs.get("repeats")
+    # Points taken at another amplification K (a raised-K null search) have signals on
+    # another scale: drawn hollow, out of the colour scale.
+    same = (sweep["repeats"].values == k_final if "repeats" in sweep
+            else np.ones(x.shape, bool))
+    if (~same).any():
+        ax.scatter(x[~same], y[~same], s=18, facecolor="none", edgecolor="0.5", linewidth=0.6,
+                   label="points at a lower K")
+    sc = ax.scatter(x[same], y[same], c=sig[same], cmap="viridis", s=22, edgecolor="k",
+                    linewidth=0.3)
+    ax.figure.colorbar(sc, ax=ax, label=s.signal.attrs.get("long_name", "signal")
+                       + f" at K = {k_final}")
     if z_star is not None:
         ax.plot(z_star.real, z_star.imag, marker="+", color="red", ms=14, mew=2,
                 label="fitted null")
@@ -93,7 +103,7 @@ def plot_null_landscape(sweep: xr.Dataset, victim: str, *, z_star: complex | Non
     ax.set_xlabel("cancellation tone Re z (full scale)")
     ax.set_ylabel("Im z (full scale)")
     ax.set_title(f"null search: {sweep.attrs.get('aggressor')} → {victim} "
-                 f"(K = {sweep.attrs.get('repeats')})")
+                 f"(K = {k_final} aggressor pulses)")
     return ax
 
 
