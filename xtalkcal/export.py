@@ -116,11 +116,11 @@ def format_table(result: CalibrationResult) -> str:
             stage = "nulled" if p.nulled else "survey"
             rows.append((p.magnitude_db, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
                          f"{p.magnitude_db:7.1f} dB {phase:7.1f}° "
-                         f"±{20 * math.log10(p.stderr):6.1f} dB  {stage}"))
+                         f"{20 * math.log10(p.stderr):7.1f} dB  {stage}"))
         else:
             rows.append((-999, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
                          f"{'rejected: ' + p.reason:>28}"))
     rows.sort(key=lambda r: -r[0])
     head = (f"{'line':>6}   {'victim':<6} {'method':<9} {'|X|':>10} {'arg X':>8} "
-            f"{'stderr':>10}  stage")
+            f"{'σ of X':>10}  stage")
     return "\n".join([head] + [r[1] for r in rows])
