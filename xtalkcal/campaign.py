@@ -85,6 +85,8 @@ class CampaignResult:
     # Simulator only: worst true field (dB) at a victim with all of its aggressor's tones
     # on, for the pairwise, multi-victim and closed-loop settings.
     all_on_db: dict[str, float] = field(default_factory=dict)
+    # Simulator only: per pair, the true field (dB) with every tone of ``settings`` on.
+    all_on_pair_db: dict[tuple[str, str], float] = field(default_factory=dict)
 
 
 def _db(x: complex) -> float:
@@ -213,6 +215,8 @@ def run_campaign(
             "pairwise": settings_all_on_db(truth, chip, pairwise_settings(cal, chip), t),
             "multi-victim": settings_all_on_db(truth, chip, first, t),
             "closed-loop": settings_all_on_db(truth, chip, settings, t)}
+        result.all_on_pair_db = {p.key: _db(_field_with(truth, settings, p.key, t))
+                                 for p in settings}
 
     say("3/4 verification: residuals re-measured with all compensation on")
     snap = led.current()

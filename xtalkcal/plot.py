@@ -158,7 +158,7 @@ def plot_verification(checks, calibration: CalibrationResult, *, truth=None, ax=
     if truth:
         tv = [truth.get((p.aggressor, p.victim)) for p, _ in rows]
         ax.plot([kk + 0.2 for kk, t in zip(k, tv, strict=True) if t is not None],
-                [t for t in tv if t is not None], "k_", ms=7, label="true residual")
+                [t for t in tv if t is not None], "k_", ms=7, label="true field, all tones on")
     tol = checks[0].outcome.tolerance_db if checks else None
     if tol is not None:
         ax.axhline(tol, color="k", lw=0.8, ls=":", label=f"tolerance {tol:g} dB")

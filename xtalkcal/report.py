@@ -113,7 +113,10 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
     lines: list[str] = []
     if campaign.verification:
         true_after = None
-        if truth:
+        if getattr(campaign, "all_on_pair_db", None):
+            # the true field with every tone of the settings on (what they are for)
+            true_after = dict(campaign.all_on_pair_db)
+        elif truth:
             settings = {(p.aggressor_line, p.victim): p.ratio for p in campaign.settings.pairs}
             true_after = {}
             for c in campaign.verification:
