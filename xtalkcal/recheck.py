@@ -170,10 +170,15 @@ def recheck_column(
     if missing:
         raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
     checks: list[PairCheck] = []
-    for stark in (False, True):
-        group = [v for v in wanted if (column[v].method == "stark") == stark]
+    # As in the calibration: the Stark victims in one batch, each resonant victim in a
+    # batch of its own (its pulse spacing and K: K pulses amplify K-fold only for the
+    # victim the spacing is coherent for).
+    groups = [[v] for v in wanted if column[v].method != "stark"]
+    groups.append([v for v in wanted if column[v].method == "stark"])
+    for group in groups:
         if not group:
             continue
+        stark = column[group[0]].method == "stark"
         entries = [column[v] for v in group]
         K = max(e.amplification for e in entries)
         others = tuple((chip.line_of(v).name, -e.value * amp) for v, e in column.items()
@@ -198,7 +203,7 @@ def recheck_column(
         shots = _shots_per_point(settings.shots_per_point, settings.points, n)
         pts = ring_around(z_stored, radius, n)
         sig = measure_probe(runner, probe, pts, shots,
-                            f"{key}-{aggressor}-{'stark' if stark else 'res'}")
+                            f"{key}-{aggressor}-{'stark' if stark else 'res-' + group[0]}")
         now = rig.now()
         C_info = _pass_couplings(ledger, entries[0])
         # Amplitude of every co-victim tone of the calibration pass in each timeline:
@@ -299,10 +304,10 @@ def run_due(
             schedule.remove(pair)
     # A re-check batch costs the same whatever the number of victims on its rings (shots
     # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
-    # of the same batch — the aggressor's Stark victims, or its resonant ones — is
-    # re-checked with it; the other batch waits for its own due time.
-    def batch(pair: Pair) -> bool:
-        return snapshot[pair].method == "stark"
+    # of the same batch (the aggressor's Stark victims; a resonant victim has a batch of
+    # its own) is re-checked with it; the other batches wait for their own due times.
+    def batch(pair: Pair) -> str:
+        return "stark" if snapshot[pair].method == "stark" else pair[1]
 
     due_batches = {(a, batch((a, v))) for a, v in due if in_use((a, v))}
     for a in sorted({a for a, _ in due_batches}):
