@@ -731,6 +731,18 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     return handoff
 
 
+def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
+    """How the nulled victims of one aggressor are measured again (refinement, re-checks).
+
+    As the calibration nulled them: each resonant victim in a pass of its own (its pulse
+    spacing and K — K pulses amplify K-fold only for the victim the spacing is coherent
+    for), the Stark victims together (one train). ``methods``: victim → method, in order.
+    """
+    groups = [[v] for v, m in methods.items() if m != "stark"]
+    stark = [v for v, m in methods.items() if m == "stark"]
+    return groups + ([stark] if stark else [])
+
+
 def _tuned_victim(probe: ColumnProbe) -> int | None:
     """Index of the victim whose transition the probe's pulse spacing is coherent for."""
     for m in ("leakage", "rotation"):

@@ -34,6 +34,7 @@ from xtalkcal.calibration import (
     ledger_entries,
     ledger_sweeps,
     measure_probe,
+    nulled_pass_groups,
     pass_amplitude,
     ring_around,
     ring_points_for,
@@ -170,14 +171,7 @@ def recheck_column(
     if missing:
         raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
     checks: list[PairCheck] = []
-    # As in the calibration: the Stark victims in one batch, each resonant victim in a
-    # batch of its own (its pulse spacing and K: K pulses amplify K-fold only for the
-    # victim the spacing is coherent for).
-    groups = [[v] for v in wanted if column[v].method != "stark"]
-    groups.append([v for v in wanted if column[v].method == "stark"])
-    for group in groups:
-        if not group:
-            continue
+    for group in nulled_pass_groups({v: column[v].method for v in wanted}):
         stark = column[group[0]].method == "stark"
         entries = [column[v] for v in group]
         K = max(e.amplification for e in entries)

@@ -40,6 +40,7 @@ from xtalkcal.calibration import (
     PassStart,
     _calibrate_pass,
     measured_couplings,
+    nulled_pass_groups,
     pass_amplitude,
 )
 from xtalkcal.compensation import CompensationSettings, multi_victim_settings
@@ -140,14 +141,8 @@ def refine_settings(
                 continue
             amp = pass_amplitude(protocol, chip, line)
             cal = {v: calibration.pair(line, v) for v in pairs}
-            # As in the calibration: each resonant victim in a pass of its own (its pulse
-            # spacing, its K), the Stark victims together; every other tone of the
-            # column rings as a companion.
-            groups = [[v] for v in pairs if cal[v].method != "stark"]
-            groups.append([v for v in pairs if cal[v].method == "stark"])
-            for group in groups:
-                if not group:
-                    continue
+            # as the calibration nulled them; every other tone of the column rings
+            for group in nulled_pass_groups({v: cal[v].method for v in pairs}):
                 stark = cal[group[0]].method == "stark"
                 other = [v for v in pairs if v not in group]
                 K = max(cal[v].repeats for v in group)
