@@ -70,9 +70,17 @@ from typing import Any
 import numpy as np
 
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
-from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits, read_limits
-from xtalkcal.exceptions import ConfigError
-from xtalkcal.tomlfields import Fields, load_toml
+from xtalkcal.chip import (
+    Chip,
+    DriveLine,
+    Qubit,
+    SafetyLimits,
+    read_coherence,
+    read_drive_lines,
+    read_limits,
+    read_transmon_nominal,
+)
+from xtalkcal.tomlfields import INVALID, Fields, load_toml, read_header, valid
 
 __all__ = [
     "QubitTruth",
@@ -228,19 +236,15 @@ class DeviceSpec:
 
 
 def load_device(path: str | Path) -> DeviceSpec:
-    """Load and validate a device file (ConfigError names the file and field)."""
+    """Load a simulated-device file: all its problems in one ConfigError, a line each."""
     data, source = load_toml(path)
     return device_from_dict(data, source=source)
 
 
 def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> DeviceSpec:
-    """Validate a device given as a TOML-shaped dictionary."""
-    top = Fields(data, source)
-    fmt = top.string("format", DEVICE_FORMAT)
-    if fmt != DEVICE_FORMAT:
-        raise top.error("format", f"expected {DEVICE_FORMAT!r} (is this a chip file?)")
-    top.integer("version", DEVICE_VERSION, lo=1, hi=DEVICE_VERSION)
-    name = top.string("name")
+    """Validate a device given as a TOML-shaped dictionary (errors as :func:`load_device`)."""
+    top, name = read_header(data, source, kind=DEVICE_FORMAT, version=DEVICE_VERSION,
+                            hint=" (is this a chip file?)")
     seed = top.integer("seed", 0, lo=0)
     n_levels = top.integer("levels", 3, lo=2, hi=8)
     rep = top.number("repetition_us", 100.0, lo=0.1, hi=1e5, unit="µs")
@@ -263,110 +267,47 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
 
     limits = read_limits(top.table("limits", None))
 
-    qubits: list[QubitTruth] = []
-    qtabs = top.tables("qubits")
-    if not qtabs:
-        raise top.error("qubits", "at least one [[qubits]] block is required")
-    for qt in qtabs:
-        qname = qt.string("name")
-        if any(q.name == qname for q in qubits):
-            raise qt.error("name", f"duplicate qubit name {qname!r}")
-        has_duffing = "f01_ghz" in qt.data or "anharmonicity_ghz" in qt.data
-        has_charge = "ej_ghz" in qt.data or "ec_ghz" in qt.data
-        if has_duffing == has_charge:
-            raise qt.error(
-                "f01_ghz",
-                "give either f01_ghz + anharmonicity_ghz (Duffing) or ej_ghz + ec_ghz "
-                "(charge basis), not both and not neither",
-            )
-        ej = ec = None
-        if has_duffing:
-            f01 = qt.number("f01_ghz", lo=0.5, hi=20.0, unit="GHz")
-            alpha = qt.number("anharmonicity_ghz", lo=-1.0, hi=0.0, hi_open=True, unit="GHz")
-            levels = duffing_levels(f01, alpha, n_levels)
-        else:
-            ej = qt.number("ej_ghz", lo=0.1, hi=500.0, unit="GHz")
-            ec = qt.number("ec_ghz", lo=0.01, hi=5.0, unit="GHz")
-            if ej / ec < 10:
-                raise qt.error("ej_ghz", f"EJ/EC = {ej / ec:.3g} < 10 is not a transmon")
-            levels = charge_basis_levels(ej, ec, n_levels=n_levels)
-        t1 = qt.number("t1_us", lo=0.0, lo_open=True, unit="µs")
-        t2 = qt.number("t2_us", lo=0.0, lo_open=True, unit="µs")
-        if t2 > 2 * t1 * (1 + 1e-12):
-            raise qt.error("t2_us", f"T2 = {t2:g} µs exceeds 2·T1 = {2 * t1:g} µs (unphysical)")
-        ro = qt.matrix("readout", None)
-        if ro is None:
-            ro_arr = np.eye(min(n_levels, 3))
-        else:
-            ro_arr = np.asarray(ro, float)
-            if ro_arr.shape[0] != ro_arr.shape[1] or ro_arr.shape[0] < 2:
-                raise qt.error("readout", f"expected a square matrix, got shape {ro_arr.shape}")
-            if np.any(ro_arr < 0) or np.any(np.abs(ro_arr.sum(axis=1) - 1) > 1e-6):
-                raise qt.error(
-                    "readout",
-                    "rows are P(assigned | level): entries ≥ 0 and each row summing to 1",
-                )
-            if ro_arr.shape[0] > n_levels:
-                raise qt.error(
-                    "readout", f"{ro_arr.shape[0]} rows but only levels = {n_levels} are simulated"
-                )
-        qt.reject_unknown()
-        qubits.append(QubitTruth(qname, levels, t1, t2, ro_arr, ej, ec))
+    qubits = [_read_qubit(qname, qt, n_levels) for qname, qt in top.named_tables("qubits", "qubit")]
     qnames = [q.name for q in qubits]
 
     lines: list[LineTruth] = []
-    for lt in top.tables("lines"):
-        lname = lt.string("name")
-        if any(ln.name == lname for ln in lines):
-            raise lt.error("name", f"duplicate line name {lname!r}")
-        target = lt.string("qubit")
-        if target not in qnames:
-            raise lt.error("qubit", f"{target!r} is not a qubit; known: {', '.join(qnames)}")
-        if any(ln.qubit == target for ln in lines):
-            raise lt.error("qubit", f"qubit {target!r} already has a drive line")
-        lines.append(
-            LineTruth(
-                lname,
-                target,
-                lt.number("rabi_mhz", lo=1e-3, hi=1000.0, unit="MHz"),
-                lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
-                lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm"),
-                lt.number("self_delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
-                lt.number("self_slope_db_per_ghz", 0.0, lo=-60.0, hi=60.0, unit="dB/GHz"),
-            )
-        )
+    for ln, lt in read_drive_lines(top, qnames):
+        lines.append(LineTruth(
+            ln.name,
+            ln.qubit,
+            ln.rabi_mhz,
+            ln.max_amplitude,
+            ln.full_scale_dbm,
+            lt.number("self_delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
+            lt.number("self_slope_db_per_ghz", 0.0, lo=-60.0, hi=60.0, unit="dB/GHz"),
+        ))
         lt.reject_unknown()
-    missing = [q for q in qnames if not any(ln.qubit == q for ln in lines)]
-    if missing:
-        raise top.error("lines", f"qubit(s) {', '.join(missing)} have no drive line")
-    lnames = [ln.name for ln in lines]
+    own_qubit = {ln.name: ln.qubit for ln in lines}
 
     couplings: list[CouplingTruth] = []
     for ct in top.tables("couplings", None):
-        line = ct.string("line")
-        if line not in lnames:
-            raise ct.error("line", f"{line!r} is not a line; known: {', '.join(lnames)}")
-        qubit = ct.string("qubit")
-        if qubit not in qnames:
-            raise ct.error("qubit", f"{qubit!r} is not a qubit; known: {', '.join(qnames)}")
-        if next(ln for ln in lines if ln.name == line).qubit == qubit:
-            raise ct.error("qubit", "a line's coupling to its own qubit is set by rabi_mhz")
-        if any(c.line == line and c.qubit == qubit for c in couplings):
-            raise ct.error("qubit", f"coupling {line} → {qubit} is listed twice")
+        line = ct.reference("line", list(own_qubit), "line")
+        qubit = ct.reference("qubit", qnames, "qubit")
+        if valid(line, qubit, own_qubit.get(line)) and own_qubit.get(line) == qubit:
+            qubit = ct.reject("qubit", "a line's coupling to its own qubit is set by its "
+                                       "rabi_mhz; accepted: another qubit")
+        elif valid(line, qubit) and any(c.line == line and c.qubit == qubit for c in couplings):
+            qubit = ct.reject("qubit", f"coupling {line} → {qubit} is listed twice; "
+                                       "accepted: one [[couplings]] block per pair")
+        phase_deg = ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")
         couplings.append(
             CouplingTruth(
                 line,
                 qubit,
                 ct.number("crosstalk_db", lo=-150.0, hi=0.0, unit="dB"),
-                math.radians(ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")),
+                math.radians(phase_deg) if valid(phase_deg) else phase_deg,
                 ct.number("delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
                 ct.number("phase_rate_rad_per_hour", None),
             )
         )
         ct.reject_unknown()
     top.reject_unknown()
-    if not top.data.get("qubits"):
-        raise ConfigError(source, "qubits", "empty")
+    top.finish()
     return DeviceSpec(
         name=name,
         seed=seed,
@@ -382,3 +323,58 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         drift=drift,
         source=source,
     )
+
+
+def _read_qubit(qname: Any, qt: Fields, n_levels: Any) -> QubitTruth:
+    """One ``[[qubits]]`` block; its levels are computed only from valid values."""
+    f01, alpha = read_transmon_nominal(qt, required=False)
+    ej = qt.number("ej_ghz", None, lo=0.1, hi=500.0, unit="GHz")
+    ec = qt.number("ec_ghz", None, lo=0.01, hi=5.0, unit="GHz")
+    duffing, charge = {"f01_ghz": f01, "anharmonicity_ghz": alpha}, {"ej_ghz": ej, "ec_ghz": ec}
+    is_duffing = any(v is not None for v in duffing.values())
+    if is_duffing == any(v is not None for v in charge.values()):
+        qt.report(
+            "f01_ghz",
+            "give either f01_ghz + anharmonicity_ghz (Duffing) or ej_ghz + ec_ghz "
+            "(charge basis), not both and not neither",
+        )
+        chosen: dict[str, Any] = {}
+    else:
+        chosen = duffing if is_duffing else charge
+        for key in [k for k, v in chosen.items() if v is None]:
+            chosen[key] = qt.reject(key, f"missing (required with {' and '.join(chosen)})")
+    levels: Any = INVALID
+    if chosen and valid(n_levels, *chosen.values()):
+        if is_duffing:
+            levels = duffing_levels(f01, alpha, n_levels)
+        elif ej / ec < 10:
+            qt.report("ej_ghz", f"EJ/EC = {ej / ec:.3g} < 10 is not a transmon; "
+                                "accepted: ej_ghz ≥ 10·ec_ghz")
+        else:
+            levels = charge_basis_levels(ej, ec, n_levels=n_levels)
+    t1, t2 = read_coherence(qt, required=True)
+    ro = qt.matrix("readout", None)
+    if ro is None:
+        ro_arr: Any = np.eye(min(n_levels, 3)) if valid(n_levels) else INVALID
+    elif valid(ro):
+        ro_arr = _check_readout(qt, np.asarray(ro, float), n_levels)
+    else:
+        ro_arr = INVALID
+    qt.reject_unknown()
+    return QubitTruth(qname, levels, t1, t2, ro_arr, ej, ec)
+
+
+def _check_readout(qt: Fields, ro: np.ndarray, n_levels: Any) -> Any:
+    """The assignment matrix P(assigned | level), or INVALID after reporting why not."""
+    if ro.shape[0] != ro.shape[1] or ro.shape[0] < 2:
+        return qt.reject("readout", f"expected a square matrix of at least 2×2, got shape "
+                                    f"{ro.shape}")
+    if np.any(ro < 0) or np.any(np.abs(ro.sum(axis=1) - 1) > 1e-6):
+        return qt.reject(
+            "readout", "rows are P(assigned | level): entries ≥ 0 and each row summing to 1"
+        )
+    if valid(n_levels) and ro.shape[0] > n_levels:
+        return qt.reject(
+            "readout", f"{ro.shape[0]} rows but only levels = {n_levels} are simulated"
+        )
+    return ro

@@ -14,6 +14,7 @@ from xtalkcal.chip import chip_from_dict, load_chip
 from xtalkcal.exceptions import ConfigError, SafetyLimitError, TimelineError
 from xtalkcal.safety import check_timelines
 from xtalkcal.timeline import Envelope, Timeline, Tone, envelope_values, pulse_area_ns
+from xtalkcal.tomlfields import FieldErrors
 
 GOOD = {
     "format": "xtalkcal-chip",
@@ -63,6 +64,8 @@ def test_bad_chip_names_file_and_field(mutate, field, words):
     with pytest.raises(ConfigError) as info:
         chip_from_dict(_bad(mutate), source="my_chip.toml")
     msg = str(info.value)
+    # one mistake, one message: no follow-on complaint that only repeats it
+    assert isinstance(info.value, FieldErrors) and len(info.value.errors) == 1
     assert msg.startswith("my_chip.toml: ")
     assert field in msg
     assert words in msg

@@ -21,12 +21,14 @@ def test_version_via_subprocess():
     assert r.returncode == 0 and r.stdout.startswith("xtalkcal ")
 
 
-def test_bad_file_gives_one_line_and_exit_2(tmp_path, capsys):
+def test_bad_file_gives_one_line_per_problem_and_exit_2(tmp_path, capsys):
+    # two problems: the frequency, and a qubit without a drive line
     p = tmp_path / "chip.toml"
     p.write_text('name = "x"\n[[qubits]]\nname = "a"\nf01_ghz = 5000\nanharmonicity_ghz = -0.2\n')
     assert main(["check", str(p)]) == 2
     err = capsys.readouterr().err
-    assert err.count("\n") == 1 and "Traceback" not in err
+    assert err.count("\n") == 2 and "Traceback" not in err
+    assert err.count("xtalkcal: error:") == 2
     assert "chip.toml" in err and "qubits[0].f01_ghz" in err and "accepted" in err
 
 
@@ -36,7 +38,7 @@ def test_check_reports_every_file(tmp_path, capsys):
                    'anharmonicity_ghz = -0.2\n')
     assert main(["check", str(bad), "protocols/full.toml", str(bad)]) == 2
     cap = capsys.readouterr()
-    assert cap.err.count("\n") == 2 and cap.err.count("bad.toml") == 2
+    assert cap.err.count("\n") == 4 and cap.err.count("bad.toml") == 4
     assert "protocols/full.toml: protocol 'full' — OK" in cap.out
 
 

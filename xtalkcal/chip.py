@@ -35,12 +35,12 @@ Chip file (TOML), field by field::
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from xtalkcal.tomlfields import Fields, load_toml
+from xtalkcal.tomlfields import REQUIRED, Fields, load_toml, read_header, valid
 
 __all__ = ["Qubit", "DriveLine", "SafetyLimits", "Chip", "load_chip", "chip_from_dict"]
 
@@ -235,114 +235,157 @@ def read_limits(lim: Fields) -> SafetyLimits:
     return limits
 
 
+def read_transmon_nominal(qt: Fields, *, required: bool = True) -> tuple[Any, Any]:
+    """``f01_ghz`` and ``anharmonicity_ghz`` of a ``[[qubits]]`` block (chip and device files).
+
+    Returns
+    -------
+    f01_ghz, anharmonicity_ghz : float, None (absent and not required) or INVALID
+    """
+    default = REQUIRED if required else None
+    f01 = qt.number("f01_ghz", default, lo=F01_RANGE_GHZ[0], hi=F01_RANGE_GHZ[1], unit="GHz")
+    alpha = qt.number(
+        "anharmonicity_ghz",
+        default,
+        lo=ANHARMONICITY_RANGE_GHZ[0],
+        hi=ANHARMONICITY_RANGE_GHZ[1],
+        hi_open=True,
+        unit="GHz",
+    )
+    return f01, alpha
+
+
+def read_coherence(qt: Fields, *, required: bool) -> tuple[Any, Any]:
+    """``t1_us`` and ``t2_us`` of a ``[[qubits]]`` block, T2 ≤ 2·T1 checked.
+
+    Returns
+    -------
+    t1_us, t2_us : float, None (absent and not required) or INVALID
+    """
+    default = REQUIRED if required else None
+    t1 = qt.number("t1_us", default, lo=0.0, lo_open=True, unit="µs")
+    t2 = qt.number("t2_us", default, lo=0.0, lo_open=True, unit="µs")
+    if valid(t1, t2) and t1 is not None and t2 is not None and t2 > 2 * t1 * (1 + 1e-9):
+        qt.report("t2_us", f"T2 = {t2:g} µs exceeds 2·T1 = {2 * t1:g} µs (unphysical); "
+                           "accepted: t2_us ≤ 2·t1_us")
+    return t1, t2
+
+
+def read_drive_lines(top: Fields, qnames: Sequence[Any]) -> list[tuple[DriveLine, Fields]]:
+    """The ``[[lines]]`` blocks (chip and device files): exactly one drive line per qubit.
+
+    Parameters
+    ----------
+    top : Fields
+        The file's top-level table.
+    qnames : sequence of str
+        The qubit names read so far (some may be INVALID).
+
+    Returns
+    -------
+    list of (DriveLine, Fields)
+        Each line (fields that were wrong are INVALID) with its block, which the caller
+        may read further and must close with ``reject_unknown``.
+    """
+    blocks = top.named_tables("lines", "line", required=False)
+    targets = top.one_each("lines", [lt for _, lt in blocks], "qubit", qnames,
+                           noun="qubit", block_noun="drive line")
+    return [
+        (
+            DriveLine(
+                lname,
+                target,
+                lt.number("rabi_mhz", lo=RABI_RANGE_MHZ[0], hi=RABI_RANGE_MHZ[1], unit="MHz"),
+                lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
+                lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm"),
+            ),
+            lt,
+        )
+        for (lname, lt), target in zip(blocks, targets, strict=True)
+    ]
+
+
 def load_chip(path: str | Path) -> Chip:
     """Load and validate a chip file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The chip file (TOML).
 
     Raises
     ------
     ConfigError
-        Naming the file, the field and what would be accepted.
+        A :class:`~xtalkcal.tomlfields.FieldErrors` listing every problem found, one line
+        each, naming the file, the field and what would be accepted.
     """
     data, source = load_toml(path)
     return chip_from_dict(data, source=source)
 
 
 def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip:
-    """Validate a chip given as a TOML-shaped dictionary."""
-    top = Fields(data, source)
-    fmt = top.string("format", CHIP_FORMAT)
-    if fmt != CHIP_FORMAT:
-        raise top.error("format", f"expected {CHIP_FORMAT!r} (is this a device or protocol file?)")
-    top.integer("version", CHIP_VERSION, lo=1, hi=CHIP_VERSION)
-    name = top.string("name")
-
+    """Validate a chip given as a TOML-shaped dictionary (errors as :func:`load_chip`)."""
+    top, name = read_header(data, source, kind=CHIP_FORMAT, version=CHIP_VERSION,
+                            hint=" (is this a device or protocol file?)")
     lim = top.table("limits", None)
     limits = read_limits(lim)
 
     qubits: list[Qubit] = []
-    qtables = top.tables("qubits")
-    if not qtables:
-        raise top.error("qubits", "at least one [[qubits]] block is required")
-    for qt in qtables:
-        qname = qt.string("name")
-        f01 = qt.number("f01_ghz", lo=F01_RANGE_GHZ[0], hi=F01_RANGE_GHZ[1], unit="GHz")
-        alpha = qt.number(
-            "anharmonicity_ghz",
-            lo=ANHARMONICITY_RANGE_GHZ[0],
-            hi=ANHARMONICITY_RANGE_GHZ[1],
-            hi_open=True,
-            unit="GHz",
-        )
+    for qname, qt in top.named_tables("qubits", "qubit"):
+        f01, alpha = read_transmon_nominal(qt)
         f12 = qt.number("f12_ghz", None, lo=F01_RANGE_GHZ[0], hi=F01_RANGE_GHZ[1], unit="GHz")
-        if f12 is None:
+        if f12 is None and valid(f01, alpha):
             f12 = f01 + alpha
-        elif abs((f12 - f01) - alpha) > 0.05:
-            raise qt.error(
+        elif f12 is not None and valid(f01, alpha, f12) and abs((f12 - f01) - alpha) > 0.05:
+            qt.report(
                 "f12_ghz",
                 f"{f12:g} GHz disagrees with f01_ghz + anharmonicity_ghz = {f01 + alpha:g} GHz "
                 "by more than 50 MHz; accepted: omit it, or give a consistent value",
             )
-        t1 = qt.number("t1_us", None, lo=0.0, lo_open=True, unit="µs")
-        t2 = qt.number("t2_us", None, lo=0.0, lo_open=True, unit="µs")
-        if t1 is not None and t2 is not None and t2 > 2 * t1 * (1 + 1e-9):
-            raise qt.error("t2_us", f"T2 = {t2:g} µs exceeds 2·T1 = {2 * t1:g} µs (unphysical)")
+        t1, t2 = read_coherence(qt, required=False)
         qt.reject_unknown()
-        if any(q.name == qname for q in qubits):
-            raise qt.error("name", f"duplicate qubit name {qname!r}; names must be unique")
         qubits.append(Qubit(qname, f01, alpha, f12, t1, t2))
     qnames = [q.name for q in qubits]
 
-    lines: list[DriveLine] = []
-    for lt in top.tables("lines"):
-        lname = lt.string("name")
-        target = lt.string("qubit")
-        if target not in qnames:
-            raise lt.error("qubit", f"{target!r} is not a qubit of this chip; "
-                                    f"known: {', '.join(qnames)}")
-        rabi = lt.number("rabi_mhz", lo=RABI_RANGE_MHZ[0], hi=RABI_RANGE_MHZ[1], unit="MHz")
-        amax = lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True)
-        fs = lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm")
+    line_blocks = read_drive_lines(top, qnames)
+    for _, lt in line_blocks:
         lt.reject_unknown()
-        if any(ln.name == lname for ln in lines):
-            raise lt.error("name", f"duplicate line name {lname!r}; names must be unique")
-        if any(ln.qubit == target for ln in lines):
-            raise lt.error("qubit",
-                           f"qubit {target!r} already has a drive line; one line per qubit")
-        lines.append(DriveLine(lname, target, rabi, amax, fs))
-    missing = [q for q in qnames if not any(ln.qubit == q for ln in lines)]
-    if missing:
-        raise top.error("lines", f"qubit(s) {', '.join(missing)} have no drive line; "
-                                 "add [[lines]] blocks")
-    if limits.max_average_power_dbm is not None:
-        unknown_fs = [ln.name for ln in lines if ln.full_scale_dbm is None]
+    lines = [ln for ln, _ in line_blocks]
+    if limits.max_average_power_dbm is not None and valid(limits.max_average_power_dbm):
+        unknown_fs = [ln.name if valid(ln.name) else lt.path
+                      for ln, lt in line_blocks if ln.full_scale_dbm is None]
         if unknown_fs:
-            raise lim.error(
+            lim.report(
                 "max_average_power_dbm",
-                f"needs full_scale_dbm on every line (missing on {', '.join(unknown_fs)})",
+                f"needs full_scale_dbm on every line (missing on {', '.join(unknown_fs)}); "
+                "accepted: give each line's full_scale_dbm",
             )
 
     ro = top.table("readout", None)
-    groups_raw = ro.data.get("groups")
-    if groups_raw is None:
-        ro._read.add("groups")
-        groups: tuple[tuple[str, ...], ...] = (tuple(qnames),)
-    else:
-        ro._read.add("groups")
-        if not isinstance(groups_raw, list) or not all(isinstance(g, list) for g in groups_raw):
-            raise ro.error("groups", "expected a list of lists of qubit names")
-        seen: set[str] = set()
-        for g in groups_raw:
-            for qn in g:
-                if qn not in qnames:
-                    raise ro.error("groups", f"{qn!r} is not a qubit of this chip")
-                if qn in seen:
-                    raise ro.error("groups", f"qubit {qn!r} appears in two groups")
-                seen.add(qn)
-        left = [q for q in qnames if q not in seen]
-        if left:
-            raise ro.error("groups", f"qubit(s) {', '.join(left)} are in no readout group")
-        groups = tuple(tuple(g) for g in groups_raw)
+    groups = ro.name_lists("groups", None)
+    if groups is None:
+        groups = [qnames]
+    elif valid(groups, *qnames):
+        _check_partition(ro, "groups", groups, qnames)
     ro.reject_unknown()
     top.reject_unknown()
-    return Chip(name, tuple(qubits), tuple(lines), groups, limits, source)
+    top.finish()
+    return Chip(name, tuple(qubits), tuple(lines), tuple(tuple(g) for g in groups), limits,
+                source)
 
+
+def _check_partition(ro: Fields, key: str, groups: list[list[str]], qnames: list[str]) -> None:
+    """Report every way in which the readout groups fail to split the qubits."""
+    seen: set[str] = set()
+    for g in groups:
+        for qn in g:
+            if qn not in qnames:
+                ro.report(key, f"{qn!r} is not a qubit of this chip; known: {', '.join(qnames)}")
+            elif qn in seen:
+                ro.report(key, f"qubit {qn!r} appears in two groups; accepted: each qubit in "
+                               "exactly one group")
+            seen.add(qn)
+    left = [q for q in qnames if q not in seen]
+    if left:
+        ro.report(key, f"qubit(s) {', '.join(left)} are in no readout group; accepted: each "
+                       "qubit in exactly one group")

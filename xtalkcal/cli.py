@@ -1,7 +1,7 @@
 """The ``xtalkcal`` command line: a thin shell over the library.
 
-User mistakes (bad files, limits exceeded, unknown names) print one line naming
-the file and field and exit with status 2; a calibration whose fits are rejected
+User mistakes (bad files, limits exceeded, unknown names) print one line per problem
+naming the file and field and exit with status 2; a calibration whose fits are rejected
 exits with status 1; success is 0. No traceback is shown unless ``--debug``.
 """
 
@@ -41,6 +41,14 @@ def _detect_format(path: str) -> str:
     return str(data.get("format", ""))
 
 
+def _print_errors(exc: XtalkcalError) -> None:
+    """One line per problem (a file's readers collect all of its problems)."""
+    from xtalkcal.tomlfields import FieldErrors
+
+    for problem in exc.errors if isinstance(exc, FieldErrors) else (exc,):
+        print(f"xtalkcal: error: {problem}", file=sys.stderr)
+
+
 @_command("check")
 def _cmd_check(args: argparse.Namespace) -> int:
     bad = 0
@@ -50,7 +58,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
         except XtalkcalError as exc:  # report it and go on with the next file
             if args.debug:
                 raise
-            print(f"xtalkcal: error: {exc}", file=sys.stderr)
+            _print_errors(exc)
             bad += 1
     return EXIT_USAGE if bad else EXIT_OK
 
@@ -137,17 +145,42 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     if runner.progress is not None:
         runner.progress.close()
     _atomic_write(out, dumps(result) + "\n")
+    said = None
     if args.ledger:
-        _record_in_ledger(args.ledger, rig.chip.name, result)
+        said = _record_in_ledger(args.ledger, rig.chip.name, result,
+                                 resumed_from=args.record if runner.shots_resumed else None)
     print(format_table(result))
     n_rej = sum(not p.accepted and p.nulled for p in result.pairs)
     print(f"\n{len(result.pairs)} pairs, {result.shots} shots, "
-          f"{result.rig_seconds:.1f} s of rig time; wrote {out}")
+          f"{result.rig_seconds:.1f} s of rig time{_resumed_note(runner, args.record)}; "
+          f"wrote {out}")
+    if said:
+        print(said)
     return EXIT_FAILED if n_rej else EXIT_OK
 
 
-def _record_in_ledger(path: str, chip: str, result) -> None:
-    """Append a calibration (entries and raw sweeps) to the chip's ledger, one commit."""
+def _resumed_note(runner, record) -> str:
+    """What came from the record and what was measured now ('' if nothing was resumed)."""
+    if not runner.shots_resumed:
+        return ""
+    return (f" ({runner.shots_resumed} shots, {runner.rig_seconds_resumed:.1f} s resumed "
+            f"from {record}; {runner.shots_executed} shots, "
+            f"{runner.rig_seconds_executed:.1f} s newly executed)")
+
+
+def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None = None) -> str:
+    """Append a calibration (entries and raw sweeps) to the chip's ledger, one commit.
+
+    A calibration resumed from a ``--record`` folder may repeat one whose estimates the
+    ledger holds already (the first run finished, or the same run is started again): an
+    estimate counts as held if the ledger has an entry with the same pair, frequency,
+    value, covariance, shots, verdict and pass (the same numbers from the same data,
+    whatever run tag it was stored under; see `_measurement_key`). Those are not appended
+    again; only what was measured anew is, with its sweeps (a sweep identical to one stored
+    is linked, not copied).
+    Returns one line saying what was done.
+    """
+    import dataclasses
     import datetime as dt
 
     from xtalkcal.calibration import ledger_entries, ledger_sweeps
@@ -157,10 +190,69 @@ def _record_in_ledger(path: str, chip: str, result) -> None:
     if led.chip != chip:
         raise XtalkcalConfigError("command line", "--ledger",
                                   f"{path} belongs to chip {led.chip!r}, not {chip!r}")
-    tag = "cal-" + dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S")
-    receipt = led.append(ledger_entries(result, run_tag=tag),
-                         sweeps=ledger_sweeps(result, run_tag=tag))
+    tag = _fresh_tag(led, "cal-" + dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S"))
+    entries = ledger_entries(result, run_tag=tag)
+    sweeps = ledger_sweeps(result, run_tag=tag)
+    held: dict[tuple, object] = {}
+    if resumed_from is not None:
+        for e in led.entries():
+            held.setdefault(_measurement_key(e), e)
+    old = [held[k] for k in map(_measurement_key, entries) if k in held]
+    if old:
+        entries = [e for e in entries if _measurement_key(e) not in held]
+        # Sweeps of this run already stored under an earlier tag of the same record.
+        stored = set(led.sweep_ids())
+        relink: dict[str, str] = {}
+        for sid, ds in list(sweeps.items()):
+            key = sid[len(tag) + 1:]
+            for old_tag in sorted({e.tag for e in old}):
+                twin = f"{old_tag}/{key}" if old_tag else key
+                if twin in stored and led.sweep(twin).identical(ds):
+                    relink[sid] = twin
+                    del sweeps[sid]
+                    break
+        entries = [dataclasses.replace(e, sweep_id=relink.get(e.sweep_id, e.sweep_id))
+                   for e in entries]
+    old_tags = ", ".join(sorted({e.tag for e in old if e.tag})) or "untagged"
+    if old and not entries and not sweeps:
+        seqs = sorted({e.seq for e in old})
+        where = f"commit {seqs[0]}" if len(seqs) == 1 else f"commits {', '.join(map(str, seqs))}"
+        return (f"ledger {path}: already holds all {len(old)} estimates of this run "
+                f"(resumed from {resumed_from}; {where}, tag {old_tags}); nothing appended")
+    receipt = led.append(entries, sweeps=sweeps)
     log.info("ledger %s: commit %s", path, receipt)
+    line = (f"ledger {path}: appended {len(entries)} estimates and {len(sweeps)} sweeps "
+            f"(commit {receipt.seq}, tag {tag})")
+    if old:
+        line += (f"; {len(old)} estimates resumed from {resumed_from} were already there "
+                 f"(tag {old_tags}) and were not appended again")
+    return line
+
+
+def _fresh_tag(led, base: str) -> str:
+    """A run tag no entry or sweep of the ledger uses yet (two runs in the same second)."""
+    used = {e.tag for e in led.entries()} | {s.split("/", 1)[0] for s in led.sweep_ids()}
+    tag, n = base, 1
+    while tag in used:
+        n += 1
+        tag = f"{base}-{n}"
+    return tag
+
+
+def _measurement_key(e) -> tuple:
+    """What makes two ledger entries the same estimate from the same raw data.
+
+    Not when, under which tag or by which rig description they were stored: a rerun that
+    resumes from the record reads the rig clock and the rig's description anew (neither is
+    in the record), while the numbers come out bit for bit the same. ``repr`` keeps NaN
+    (rejected fits) equal to itself.
+    """
+    sweep = e.sweep_id
+    if e.tag and sweep.startswith(e.tag + "/"):
+        sweep = sweep[len(e.tag) + 1:]
+    return (e.aggressor, e.victim, e.method, e.kind, e.verdict, e.reason, e.shots,
+            e.amplification, sweep, repr(e.frequency_ghz), repr(e.value), repr(e.covariance),
+            repr(e.quality))
 
 
 @_command("demo")
@@ -294,20 +386,38 @@ def _default_protocol() -> str:
     return str(here)
 
 
+class _DefaultsFormatter(argparse.HelpFormatter):
+    """Help that shows each option's default, except where there is nothing to show
+    (None, a switch that is off, required options) or the help already says it."""
+
+    def _get_help_string(self, action: argparse.Action) -> str | None:
+        text = action.help or ""
+        default = action.default
+        if (default is None or default is False or default is argparse.SUPPRESS
+                or action.required or not action.option_strings
+                or "(default" in text or "%(default)" in text):
+            return action.help
+        return f"{text} (default: %(default)s)" if text else "(default: %(default)s)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for documentation and tests)."""
     p = argparse.ArgumentParser(
         prog="xtalkcal",
         description="Measure, cancel and track microwave drive crosstalk on transmon chips.",
+        formatter_class=_DefaultsFormatter,
     )
     p.add_argument("--version", action="version", version=f"xtalkcal {__version__}")
     p.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
-    c = sub.add_parser("check", help="validate chip, device or protocol files")
+    def add(name: str, help: str) -> argparse.ArgumentParser:
+        return sub.add_parser(name, help=help, formatter_class=_DefaultsFormatter)
+
+    c = add("check", help="validate chip, device or protocol files")
     c.add_argument("files", nargs="+", help="TOML files to validate")
 
-    k = sub.add_parser("calibrate", help="survey the matrix and null every significant pair")
+    k = add("calibrate", help="survey the matrix and null every significant pair")
     k.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
     k.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
@@ -320,7 +430,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the chip's ledger directory to append the estimates to (created if new)")
     k.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
-    d = sub.add_parser("demo", help="the whole job on the bundled simulated chip, with a report")
+    d = add("demo", help="the whole job on the bundled simulated chip, with a report")
     d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
     d.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
     d.add_argument("--seed", type=int, default=None, help="simulator seed")
@@ -336,7 +446,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--rb-draws", type=int, default=6, help="random sequences per length")
     d.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
-    u = sub.add_parser("due", help="re-check whatever is due now and exit (for cron)")
+    u = add("due", help="re-check whatever is due now and exit (for cron)")
     u.add_argument("--ledger", required=True, help="the chip's ledger directory")
     u.add_argument("--schedule", required=True, help="schedule file (JSON; created if new)")
     u.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
@@ -344,7 +454,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     u.add_argument("--seed", type=int, default=None, help="simulator seed")
 
-    e = sub.add_parser("export-chip", help="write the nominal chip file of a simulated device")
+    e = add("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
     e.add_argument("-o", "--output", required=True, help="chip file to write")
     return p
@@ -364,7 +474,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except XtalkcalError as exc:
         if args.debug:
             raise
-        print(f"xtalkcal: error: {exc}", file=sys.stderr)
+        _print_errors(exc)
         return EXIT_USAGE
     except KeyboardInterrupt:
         print("xtalkcal: interrupted", file=sys.stderr)

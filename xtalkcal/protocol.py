@@ -47,7 +47,7 @@ from pathlib import Path
 from typing import Any
 
 from xtalkcal.probes import METHODS, MethodWindows
-from xtalkcal.tomlfields import Fields, load_toml
+from xtalkcal.tomlfields import load_toml, read_header, valid
 
 __all__ = [
     "PulseSettings",
@@ -119,19 +119,14 @@ class Protocol:
 
 
 def load_protocol(path: str | Path) -> Protocol:
-    """Load and validate a protocol file (ConfigError names file and field)."""
+    """Load and validate a protocol file; every problem in it is reported at once."""
     data, source = load_toml(path)
     return protocol_from_dict(data, source=source)
 
 
 def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Protocol:
-    """Validate a protocol given as a TOML-shaped dictionary."""
-    top = Fields(data, source)
-    fmt = top.string("format", PROTOCOL_FORMAT)
-    if fmt != PROTOCOL_FORMAT:
-        raise top.error("format", f"expected {PROTOCOL_FORMAT!r}")
-    top.integer("version", PROTOCOL_VERSION, lo=1, hi=PROTOCOL_VERSION)
-    name = top.string("name")
+    """Validate a protocol given as a TOML-shaped dictionary (errors as :func:`load_protocol`)."""
+    top, name = read_header(data, source, kind=PROTOCOL_FORMAT, version=PROTOCOL_VERSION)
 
     pt = top.table("pulse", None)
     pulse = PulseSettings(
@@ -139,26 +134,27 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
         sigma_ns=pt.number("sigma_ns", 8.0, lo=0.5, hi=250.0, unit="ns"),
         aggressor_fraction=pt.number("aggressor_fraction", 0.8, lo=0.0, hi=1.0, lo_open=True),
     )
-    if pulse.duration_ns < 2 * pulse.sigma_ns:
-        raise pt.error("duration_ns", "must be at least 2·sigma_ns")
+    if valid(pulse.duration_ns, pulse.sigma_ns) and pulse.duration_ns < 2 * pulse.sigma_ns:
+        pt.report("duration_ns", f"{pulse.duration_ns:g} ns is shorter than 2·sigma_ns = "
+                                 f"{2 * pulse.sigma_ns:g} ns; accepted: duration_ns ≥ 2·sigma_ns")
     pt.reject_unknown()
 
     mt = top.table("methods", None)
+    leak_mhz = mt.number("leakage_window_mhz", 60.0, lo=0.0, hi=1000.0, unit="MHz")
+    rot_mhz = mt.number("rotation_window_mhz", 60.0, lo=0.0, hi=1000.0, unit="MHz")
     windows = MethodWindows(
-        leakage_window_ghz=mt.number("leakage_window_mhz", 60.0, lo=0.0, hi=1000.0,
-                                     unit="MHz") * 1e-3,
-        rotation_window_ghz=mt.number("rotation_window_mhz", 60.0, lo=0.0, hi=1000.0,
-                                      unit="MHz") * 1e-3,
+        leakage_window_ghz=leak_mhz * 1e-3 if valid(leak_mhz) else leak_mhz,
+        rotation_window_ghz=rot_mhz * 1e-3 if valid(rot_mhz) else rot_mhz,
     )
     overrides = []
     for ot in mt.tables("overrides", None):
         overrides.append((ot.string("aggressor"), ot.string("victim"),
                           ot.string("method", choices=METHODS)))
         ot.reject_unknown()
-    only = mt.string_list("only", None) or []
-    for m in only:
+    only = mt.string_list("only", [])
+    for m in only if valid(only) else ():
         if m not in METHODS:
-            raise mt.error("only", f"{m!r} is not one of {METHODS}")
+            mt.report("only", f"{m!r} is not one of {', '.join(map(repr, METHODS))}")
     mt.reject_unknown()
 
     st = top.table("survey", None)
@@ -189,10 +185,12 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
         points=rt.integer("points", 4, lo=3, hi=64),
         shots_per_point=rt.integer("shots_per_point", 8000, lo=10, hi=10_000_000),
     )
-    if not recheck.min_interval_hours <= recheck.interval_hours <= recheck.max_interval_hours:
-        raise rt.error("interval_hours", "must lie between min_interval_hours and "
-                                         "max_interval_hours")
+    lo_h, hi_h = recheck.min_interval_hours, recheck.max_interval_hours
+    if valid(lo_h, recheck.interval_hours, hi_h) and not lo_h <= recheck.interval_hours <= hi_h:
+        rt.report("interval_hours", f"accepted: min_interval_hours ≤ x ≤ max_interval_hours "
+                                    f"({lo_h:g} to {hi_h:g} h), got {recheck.interval_hours:g}")
     rt.reject_unknown()
     top.reject_unknown()
-    return Protocol(name, pulse, windows, tuple(overrides), survey, null, recheck, tuple(only),
-                    source)
+    top.finish()
+    return Protocol(name, pulse, windows, tuple(overrides), survey, null, recheck,
+                    tuple(only), source)

@@ -45,6 +45,18 @@ class BatchRunner:
         Directory for the batch record; ``None`` keeps nothing on disk.
     progress : callable, optional
         Called with the number of shots of each completed batch (a progress bar).
+
+    Attributes
+    ----------
+    shots_executed, shots_resumed : int
+        Shots run on the rig by this runner, and shots answered from the record.
+    batches, batches_resumed : int
+        Batches executed, and batches answered from the record.
+    rig_seconds_executed, rig_seconds_resumed : float
+        Rig time (``finished_s - started_s``) of the batches executed, and of the resumed
+        batches as they took when they were first recorded.
+    rig_seconds : float
+        Their sum: the rig time the whole set of batches cost (read only).
     """
 
     def __init__(self, rig: Rig, run_dir: str | Path | None = None, *, progress=None) -> None:
@@ -56,7 +68,14 @@ class BatchRunner:
         self.shots_executed = 0
         self.shots_resumed = 0
         self.batches = 0
-        self.rig_seconds = 0.0
+        self.batches_resumed = 0
+        self.rig_seconds_executed = 0.0
+        self.rig_seconds_resumed = 0.0
+
+    @property
+    def rig_seconds(self) -> float:
+        """Rig time of every batch returned: executed now plus resumed from the record."""
+        return self.rig_seconds_executed + self.rig_seconds_resumed
 
     def _path(self, key: str) -> Path | None:
         if self.run_dir is None:
@@ -75,6 +94,10 @@ class BatchRunner:
             counts, recorded = _read(path)
             if recorded == digest:
                 self.shots_resumed += len(timelines) * shots
+                self.batches_resumed += 1
+                # The rig time the batch took when it was recorded: a resumed calibration
+                # costs what its batches cost, wherever they were measured.
+                self.rig_seconds_resumed += counts.finished_s - counts.started_s
                 return counts
             # Same key, different request (e.g. a later calibration reusing a run folder):
             # the record must not stand in for a measurement it is not.
@@ -84,7 +107,7 @@ class BatchRunner:
         counts = self.rig.run(timelines, shots)
         self.batches += 1
         self.shots_executed += len(timelines) * shots
-        self.rig_seconds += counts.finished_s - counts.started_s
+        self.rig_seconds_executed += counts.finished_s - counts.started_s
         if path is not None:
             _write_atomic(path, counts, digest)
         if self.progress is not None:

@@ -1,17 +1,24 @@
-"""Typed, located reading of TOML tables.
+"""Typed, located reading of TOML tables that collects every problem of a file.
 
 Every value read through :class:`Fields` knows the file and the dotted field
-path it came from, so a bad value produces one :class:`ConfigError` line that
-names the file, the field and what would be accepted.
+path it came from. A bad value does not stop the reading: it is reported (one
+:class:`~xtalkcal.exceptions.ConfigError` naming the file, the field and what
+would be accepted), the reader returns :data:`INVALID` in its place, and
+:meth:`Fields.finish` raises one :class:`FieldErrors` listing all of them.
+
+Checks that combine several values run only when those values are valid
+(:func:`valid`), so one mistake gives one message, not a cascade.
 """
 
 from __future__ import annotations
 
+import json
 import math
+import re
 import sys
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, Final, NoReturn
 
 from xtalkcal.exceptions import ConfigError
 
@@ -20,13 +27,67 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - exercised on 3.10 only
     import tomli as tomllib
 
-__all__ = ["Fields", "load_toml"]
+__all__ = [
+    "Fields",
+    "FieldErrors",
+    "INVALID",
+    "REQUIRED",
+    "valid",
+    "load_toml",
+    "read_header",
+]
 
-_MISSING = object()
+# Keys TOML allows unquoted; any other key (a typo with a space, a newline) is shown quoted
+# so that every message stays on one line and names the key exactly.
+_BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+REQUIRED: Final = object()
+"""Default of a reader's ``default`` parameter: the field must be given."""
+
+
+class _Invalid:
+    """Type of :data:`INVALID`."""
+
+    __slots__ = ()
+
+    def __repr__(self) -> str:
+        return "INVALID"
+
+
+INVALID: Final = _Invalid()
+"""Stands for a value whose problem has been reported (or that depends on one)."""
+
+
+def valid(*values: Any) -> bool:
+    """True when none of ``values`` is :data:`INVALID`."""
+    return all(v is not INVALID for v in values)
+
+
+class FieldErrors(ConfigError):
+    """Every problem found in one file, one ``file: field: problem`` line each.
+
+    The ``source``, ``field`` and ``problem`` attributes are those of the first
+    problem, so callers written for a single :class:`ConfigError` keep working.
+
+    Parameters
+    ----------
+    errors : sequence of ConfigError
+        The problems, in the order they were found (at least one).
+    """
+
+    def __init__(self, errors: Sequence[ConfigError]) -> None:
+        if not errors:
+            raise ValueError("FieldErrors needs at least one error")
+        first = errors[0]
+        super().__init__(first.source, first.field, first.problem)
+        self.errors: tuple[ConfigError, ...] = tuple(errors)
+        self.args = ("\n".join(str(e) for e in self.errors),)
 
 
 def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     """Read a TOML file.
+
+    An unreadable file or a syntax error raises at once: nothing after it can be checked.
 
     Returns
     -------
@@ -51,8 +112,50 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         raise ConfigError(source, "(syntax)", f"not valid TOML: {exc}") from None
 
 
+def read_header(
+    data: Mapping[str, Any], source: str, *, kind: str, version: int, hint: str = ""
+) -> tuple[Fields, Any]:
+    """Start reading a file of our own: check ``format`` and ``version``, read ``name``.
+
+    Parameters
+    ----------
+    data : Mapping
+        The parsed document.
+    source : str
+        File name used in error messages.
+    kind : str
+        The expected ``format`` value (absent means this kind).
+    version : int
+        The newest schema version understood.
+    hint : str
+        Appended to the message for a wrong ``format``, e.g. ``" (is this a chip file?)"``.
+
+    Returns
+    -------
+    top, name : Fields, str or INVALID
+        The top-level table and the file's ``name``.
+
+    Raises
+    ------
+    FieldErrors
+        At once if the document is not a table or is another kind of file: checking its
+        fields against this schema would only produce misleading messages.
+    """
+    top = Fields(data, source)
+    fmt = top.string("format", kind)
+    if not valid(fmt):
+        top.finish()
+    if fmt != kind:
+        top.stop("format", f"expected {kind!r}{hint}")
+    top.integer("version", version, lo=1, hi=version)
+    return top, top.string("name")
+
+
 class Fields:
     """A view of one TOML table that reads checked values and remembers where it is.
+
+    All tables of one file share one list of problems; a reader that finds a
+    problem reports it there and returns :data:`INVALID`.
 
     Parameters
     ----------
@@ -62,36 +165,77 @@ class Fields:
         File name used in error messages.
     path : str
         Dotted path of this table inside the file ("" for the top level).
+
+    Raises
+    ------
+    FieldErrors
+        If ``data`` is not a table (nothing in it can be read).
     """
 
     def __init__(self, data: Mapping[str, Any], source: str, path: str = "") -> None:
-        if not isinstance(data, Mapping):
-            raise ConfigError(source, path or "(top level)", "expected a table")
-        self.data = data
         self.source = source
         self.path = path
+        self.problems: list[ConfigError] = []
         self._read: set[str] = set()
+        self._bad: set[str] = set()
+        # A stand-in for a table that is missing or not a table: its problem is reported
+        # once, and every read from it gives INVALID without a further message.
+        self._broken = False
+        if not isinstance(data, Mapping):  # nothing in it can be read: stop here
+            raise FieldErrors([ConfigError(source, path or "(top level)", "expected a table")])
+        self.data = data
 
+    def _child(self, data: Mapping[str, Any], path: str, *, broken: bool = False) -> Fields:
+        child = Fields(data, self.source, path)
+        child.problems = self.problems
+        child._broken = broken
+        return child
+
+    # ------------------------------------------------------------------ problems
     def where(self, key: str) -> str:
-        """Dotted path of ``key`` inside the file."""
-        return f"{self.path}.{key}" if self.path else key
+        """Dotted path of ``key`` inside the file (quoted as in TOML unless a bare key)."""
+        text = key if _BARE_KEY.fullmatch(key) else json.dumps(key)
+        return f"{self.path}.{text}" if self.path else text
 
     def error(self, key: str, problem: str) -> ConfigError:
-        """Build the error for ``key`` (the caller raises it)."""
-        return ConfigError(self.source, self.where(key), problem)
+        """Build the error for ``key`` (without reporting it)."""
+        return ConfigError(_one_line(self.source), self.where(key), _one_line(problem))
 
+    def report(self, key: str, problem: str) -> None:
+        """Report a problem with ``key`` and go on reading."""
+        self._bad.add(key)
+        self.problems.append(self.error(key, problem))
+
+    def reported(self, key: str) -> bool:
+        """Whether ``key`` was reported as wrong (or this table is a stand-in)."""
+        return self._broken or key in self._bad
+
+    def stop(self, key: str, problem: str) -> NoReturn:
+        """Report a problem after which nothing more can be checked, and raise."""
+        self.report(key, problem)
+        raise FieldErrors(self.problems)
+
+    def finish(self) -> None:
+        """Raise one :class:`FieldErrors` listing every problem reported in this file."""
+        if self.problems:
+            raise FieldErrors(self.problems)
+
+    # ------------------------------------------------------------------ readers
     def _get(self, key: str, default: Any) -> Any:
         self._read.add(key)
+        if self._broken:
+            return INVALID
         if key in self.data:
             return self.data[key]
-        if default is _MISSING:
-            raise self.error(key, "missing (required)")
+        if default is REQUIRED:
+            self.report(key, "missing (required)")
+            return INVALID
         return default
 
     def number(
         self,
         key: str,
-        default: Any = _MISSING,
+        default: Any = REQUIRED,
         *,
         lo: float | None = None,
         hi: float | None = None,
@@ -101,69 +245,86 @@ class Fields:
     ) -> Any:
         """A finite real number within optional bounds (``None`` default allowed)."""
         value = self._get(key, default)
-        if value is None and default is None:
-            return None
+        if value is INVALID or (value is None and default is None):
+            return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise self.error(key, f"expected a number{_unit(unit)}, got {value!r}")
+            return self.reject(key, f"expected a number{_unit(unit)}, got {value!r}")
         value = float(value)
         if not math.isfinite(value):
-            raise self.error(key, f"expected a finite number{_unit(unit)}, got {value!r}")
-        accepted = _range_text(lo, hi, lo_open, hi_open, unit)
-        if lo is not None and (value < lo or (lo_open and value == lo)):
-            raise self.error(key, f"{value:g} is out of range; accepted: {accepted}")
-        if hi is not None and (value > hi or (hi_open and value == hi)):
-            raise self.error(key, f"{value:g} is out of range; accepted: {accepted}")
+            return self.reject(key, f"expected a finite number{_unit(unit)}, got {value!r}")
+        below = lo is not None and (value < lo or (lo_open and value == lo))
+        above = hi is not None and (value > hi or (hi_open and value == hi))
+        if below or above:
+            accepted = _range_text(lo, hi, lo_open, hi_open, unit)
+            return self.reject(key, f"{value:g} is out of range; accepted: {accepted}")
         return value
 
     def integer(
-        self, key: str, default: Any = _MISSING, *, lo: int | None = None, hi: int | None = None
+        self, key: str, default: Any = REQUIRED, *, lo: int | None = None, hi: int | None = None
     ) -> Any:
         """An integer within optional bounds."""
         value = self._get(key, default)
-        if value is None and default is None:
-            return None
+        if value is INVALID or (value is None and default is None):
+            return value
         if isinstance(value, bool) or not isinstance(value, int):
-            raise self.error(key, f"expected an integer, got {value!r}")
+            return self.reject(key, f"expected an integer, got {value!r}")
         if (lo is not None and value < lo) or (hi is not None and value > hi):
-            raise self.error(key, f"{value} is out of range; accepted: {_range_text(lo, hi)}")
+            return self.reject(
+                key, f"{value} is out of range; accepted: {_range_text(lo, hi)}"
+            )
         return value
 
     def string(
-        self, key: str, default: Any = _MISSING, *, choices: Iterable[str] | None = None
+        self, key: str, default: Any = REQUIRED, *, choices: Iterable[str] | None = None
     ) -> Any:
         """A non-empty string, optionally one of ``choices``."""
         value = self._get(key, default)
-        if value is None and default is None:
-            return None
+        if value is INVALID or (value is None and default is None):
+            return value
         if not isinstance(value, str) or not value.strip():
-            raise self.error(key, f"expected a non-empty string, got {value!r}")
+            return self.reject(key, f"expected a non-empty string, got {value!r}")
         if choices is not None:
             options = list(choices)
             if value not in options:
-                raise self.error(key, f"{value!r} is not one of {', '.join(map(repr, options))}")
+                return self.reject(
+                    key, f"{value!r} is not one of {', '.join(map(repr, options))}"
+                )
         return value
 
-    def boolean(self, key: str, default: Any = _MISSING) -> Any:
+    def boolean(self, key: str, default: Any = REQUIRED) -> Any:
         """A true/false value."""
         value = self._get(key, default)
+        if value is INVALID:
+            return value
         if not isinstance(value, bool):
-            raise self.error(key, f"expected true or false, got {value!r}")
+            return self.reject(key, f"expected true or false, got {value!r}")
         return value
 
-    def string_list(self, key: str, default: Any = _MISSING) -> Any:
+    def string_list(self, key: str, default: Any = REQUIRED) -> Any:
         """A list of non-empty strings."""
         value = self._get(key, default)
-        if value is None and default is None:
-            return None
+        if value is INVALID or (value is None and default is None):
+            return value
         if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value):
-            raise self.error(key, f"expected a list of names, got {value!r}")
+            return self.reject(key, f"expected a list of names, got {value!r}")
         return list(value)
 
-    def matrix(self, key: str, default: Any = _MISSING) -> Any:
+    def name_lists(self, key: str, default: Any = REQUIRED) -> Any:
+        """A list of lists of non-empty strings (groups of names)."""
+        value = self._get(key, default)
+        if value is INVALID or (value is None and default is None):
+            return value
+        if not isinstance(value, list) or not all(
+            isinstance(g, list) and all(isinstance(v, str) and v for v in g) for g in value
+        ):
+            return self.reject(key, f"expected a list of lists of names, got {value!r}")
+        return [list(g) for g in value]
+
+    def matrix(self, key: str, default: Any = REQUIRED) -> Any:
         """A rectangular list of lists of finite numbers."""
         value = self._get(key, default)
-        if value is None and default is None:
-            return None
+        if value is INVALID or (value is None and default is None):
+            return value
         ok = isinstance(value, list) and value and all(isinstance(r, list) for r in value)
         if ok:
             widths = {len(r) for r in value}
@@ -173,33 +334,153 @@ class Fields:
                 for x in r
             )
         if not ok:
-            raise self.error(key, "expected a rectangular array of finite numbers")
+            return self.reject(key, "expected a rectangular array of finite numbers")
         return [[float(x) for x in r] for r in value]
 
-    def table(self, key: str, default: Any = _MISSING) -> Fields:
-        """A sub-table as :class:`Fields` (an empty one if absent and a default is given)."""
-        value = self._get(key, default)
-        if value is default and default is not _MISSING:
-            value = {} if value is None else value
-        if not isinstance(value, Mapping):
-            raise self.error(key, f"expected a table, got {type(value).__name__}")
-        return Fields(value, self.source, self.where(key))
+    def table(self, key: str, default: Any = REQUIRED) -> Fields:
+        """A sub-table as :class:`Fields` (an empty one if absent and a default is given).
 
-    def tables(self, key: str, default: Any = _MISSING) -> list[Fields]:
-        """An array of tables (``[[key]]`` in TOML)."""
+        A missing or malformed table is reported and read as a stand-in whose every
+        value is :data:`INVALID`, so the rest of the file is still checked.
+        """
         value = self._get(key, default)
-        if value is default and default is not _MISSING:
+        if value is default and default is not REQUIRED:
+            value = {} if value is None else value
+        if value is INVALID:
+            return self._child({}, self.where(key), broken=True)
+        if not isinstance(value, Mapping):
+            self.report(key, f"expected a table, got {type(value).__name__}")
+            return self._child({}, self.where(key), broken=True)
+        return self._child(value, self.where(key))
+
+    def tables(self, key: str, default: Any = REQUIRED) -> list[Fields]:
+        """An array of tables (``[[key]]`` in TOML); empty if it is missing or malformed."""
+        value = self._get(key, default)
+        if value is default and default is not REQUIRED:
             value = [] if value is None else value
+        if value is INVALID:
+            return []
         if not isinstance(value, list) or not all(isinstance(v, Mapping) for v in value):
-            raise self.error(key, "expected an array of tables ([[" + key + "]] blocks)")
-        return [Fields(v, self.source, f"{self.where(key)}[{i}]") for i, v in enumerate(value)]
+            self.report(key, "expected an array of tables ([[" + key + "]] blocks)")
+            return []
+        return [self._child(v, f"{self.where(key)}[{i}]") for i, v in enumerate(value)]
+
+    def named_tables(
+        self, key: str, noun: str, *, required: bool = True
+    ) -> list[tuple[Any, Fields]]:
+        """``[[key]]`` blocks, each with a ``name`` unique among them.
+
+        Parameters
+        ----------
+        key : str
+            The array of tables.
+        noun : str
+            What a block is, for messages ("qubit").
+        required : bool
+            Whether at least one block must be given.
+
+        Returns
+        -------
+        list of (name, Fields)
+            Every block; a duplicate name is reported and comes back as :data:`INVALID`.
+        """
+        blocks = self.tables(key, [])
+        if required and not blocks and not self.reported(key):
+            self.report(key, f"at least one [[{key}]] block is required")
+        seen: set[str] = set()
+        named: list[tuple[Any, Fields]] = []
+        for block in blocks:
+            name = block.string("name")
+            if valid(name) and name in seen:
+                name = block.reject(
+                    "name", f"duplicate {noun} name {name!r}; names must be unique"
+                )
+            elif valid(name):
+                seen.add(name)
+            named.append((name, block))
+        return named
+
+    def reference(self, key: str, known: Sequence[Any], noun: str) -> Any:
+        """A name that must be one of ``known`` (names defined earlier in the file).
+
+        If ``known`` holds an :data:`INVALID` name, an unknown name may be that one: it
+        comes back as :data:`INVALID` without a message of its own.
+        """
+        value = self.string(key)
+        if not valid(value) or value in known:
+            return value
+        if not valid(*known):
+            return INVALID
+        names = ", ".join(known) or "(none)"
+        return self.reject(key, f"{value!r} is not a {noun} of this file; known: {names}")
+
+    def one_each(
+        self,
+        key: str,
+        blocks: Sequence[Fields],
+        field: str,
+        known: Sequence[Any],
+        *,
+        noun: str,
+        block_noun: str,
+    ) -> list[Any]:
+        """Read ``field`` of the ``[[key]]`` blocks so that each of ``known`` is named once.
+
+        Parameters
+        ----------
+        key : str
+            The array of tables the blocks come from (missing names are reported there).
+        blocks : sequence of Fields
+            The blocks.
+        field : str
+            The field of each block that names one of ``known``.
+        known : sequence of str
+            The names that must each be taken by exactly one block.
+        noun, block_noun : str
+            What the names and the blocks are, for messages ("qubit", "drive line").
+
+        Returns
+        -------
+        list
+            The name read from each block (:data:`INVALID` where it was wrong).
+        """
+        targets: list[Any] = []
+        for block in blocks:
+            target = block.reference(field, known, noun)
+            if valid(target) and target in targets:
+                target = block.reject(
+                    field, f"{noun} {target!r} already has a {block_noun}; "
+                    f"one {block_noun} per {noun}"
+                )
+            targets.append(target)
+        # With a name unread on either side, "no drive line" might only repeat that problem.
+        if not self.reported(key) and valid(*known, *targets):
+            missing = [k for k in known if k not in targets]
+            if missing:
+                self.report(key, f"{noun}(s) {', '.join(missing)} have no {block_noun}; "
+                                 f"add [[{key}]] blocks")
+        return targets
 
     def reject_unknown(self) -> None:
-        """Raise on keys that were never read (catches typos such as ``f01_gz``)."""
-        unknown = sorted(set(self.data) - self._read)
-        if unknown:
-            known = ", ".join(sorted(self._read)) or "(none)"
-            raise self.error(unknown[0], f"unknown field; accepted here: {known}")
+        """Report every key that was never read (catches typos such as ``f01_gz``)."""
+        known = ", ".join(sorted(self._read)) or "(none)"
+        for key in sorted(set(self.data) - self._read):
+            self.report(key, f"unknown field; accepted here: {known}")
+
+    def reject(self, key: str, problem: str) -> Any:
+        """Report a problem with ``key`` and return :data:`INVALID` in place of its value."""
+        self.report(key, problem)
+        return INVALID
+
+
+_LINE_BREAKS = "\n\r\x0b\x0c\x1c\x1d\x1e\x85\u2028\u2029"  # what str.splitlines splits on
+
+
+def _one_line(text: str) -> str:
+    """``text`` with line breaks escaped: a message must stay one line (names may hold them)."""
+    for ch in _LINE_BREAKS:
+        text = text.replace(ch, ch.encode("unicode_escape").decode("ascii"))
+    return text
 
 
 def _unit(unit: str) -> str:
