@@ -5,11 +5,12 @@ from __future__ import annotations
 import math
 from typing import Any
 
+import matplotlib.colors as mcolors
 import matplotlib.pyplot as plt
 import matplotlib.ticker as mticker
 import numpy as np
 import xarray as xr
-from matplotlib.patches import Ellipse
+from matplotlib.patches import Ellipse, Patch, Rectangle
 
 from xtalkcal.calibration import CalibrationResult
 
@@ -29,38 +30,131 @@ def matrix_axes(result: CalibrationResult) -> tuple[list[str], list[str], np.nda
     return victims, lines, X
 
 
-def _grid(ax, victims, lines, data, cmap, vmin, vmax, label, fmt):
-    im = ax.imshow(data, cmap=cmap, vmin=vmin, vmax=vmax, origin="upper")
+# Kinds of heat-map cell besides a plain coloured value (a nulled pair), each drawn so
+# that it reads without colour too (hatch or frame), and named in the figure's key.
+_OWN, _REJECTED, _UNMEASURED, _SURVEY = "own", "rejected", "unmeasured", "survey"
+_KEY_LABELS = {
+    "value": "nulled: value from the null search",
+    _OWN: "own line (drives this qubit)",
+    _REJECTED: "rejected: no accepted value (reason in the matrix table)",
+    _UNMEASURED: "not measured",
+    _SURVEY: "survey estimate only: not nulled",
+}
+_OWN_FILL, _OWN_HATCH = "0.7", "////"
+_REJ_FILL, _REJ_HATCH = "white", "xxxx"
+_EMPTY_EDGE = "0.8"
+
+
+def _cell_kinds(result: CalibrationResult, victims: list[str], lines: list[str]) -> np.ndarray:
+    """Per (victim, line) cell: "value" (nulled), _SURVEY, _REJECTED, _OWN or _UNMEASURED."""
+    kinds = np.full((len(victims), len(lines)), _UNMEASURED, dtype=object)
+    for j, ln in enumerate(lines):
+        own = result.chip.line(ln).qubit
+        if own in victims:
+            kinds[victims.index(own), j] = _OWN
+    for p in result.pairs:
+        i, j = victims.index(p.victim), lines.index(p.aggressor)
+        if p.accepted and p.x is not None:
+            kinds[i, j] = "value" if p.nulled else _SURVEY
+        else:
+            kinds[i, j] = _REJECTED
+    return kinds
+
+
+def _relative_luminance(rgba) -> float:
+    """Relative luminance of an sRGB colour as defined in WCAG 2.1 (W3C)."""
+    c = np.asarray(rgba[:3], dtype=float)
+    lin = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+    return float(lin @ np.array([0.2126, 0.7152, 0.0722]))
+
+
+def _label_color(rgba) -> str:
+    """Black or white, whichever has the higher WCAG contrast ratio with the cell colour."""
+    lum = _relative_luminance(rgba)
+    return "black" if (lum + 0.05) / 0.05 >= 1.05 / (lum + 0.05) else "white"
+
+
+def _grid(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, fmt):
+    cmap = plt.get_cmap(cmap)
+    norm = mcolors.Normalize(vmin, vmax)
+    im = ax.imshow(data, cmap=cmap, norm=norm, origin="upper")
     ax.set_xticks(range(len(lines)), lines)
     ax.set_yticks(range(len(victims)), victims)
+    # thin cell borders, so that empty (not measured) cells still read as cells
+    ax.set_xticks(np.arange(len(lines) + 1) - 0.5, minor=True)
+    ax.set_yticks(np.arange(len(victims) + 1) - 0.5, minor=True)
+    ax.tick_params(which="minor", length=0)
+    ax.grid(which="minor", color=_EMPTY_EDGE, lw=0.5)
     ax.set_xlabel("aggressor line")
     ax.set_ylabel("victim qubit")
     for i in range(len(victims)):
         for j in range(len(lines)):
-            v = data[i, j]
-            if np.isfinite(v):
-                ax.text(j, i, fmt(v), ha="center", va="center", fontsize=7,
-                        color="white" if (v - vmin) / (vmax - vmin) < 0.55 else "black")
-    ax.figure.colorbar(im, ax=ax, label=label, shrink=0.85)
+            kind, v = kinds[i, j], data[i, j]
+            if kind == _OWN:
+                ax.add_patch(Rectangle((j - 0.5, i - 0.5), 1, 1, facecolor=_OWN_FILL,
+                                       edgecolor="white", hatch=_OWN_HATCH, lw=0))
+            elif kind == _REJECTED:
+                ax.add_patch(Rectangle((j - 0.5, i - 0.5), 1, 1, facecolor=_REJ_FILL,
+                                       edgecolor="0.35", hatch=_REJ_HATCH, lw=0))
+            elif kind in ("value", _SURVEY):
+                ink = _label_color(cmap(norm(v)))
+                ax.text(j, i, fmt(v), ha="center", va="center", fontsize=7, color=ink)
+                if kind == _SURVEY:
+                    ax.add_patch(Rectangle((j - 0.4, i - 0.4), 0.8, 0.8, fill=False,
+                                           edgecolor=ink, ls=(0, (1, 1.5)), lw=0.9))
+    finite = data[np.isfinite(data)]
+    low, high = bool((finite < vmin).any()), bool((finite > vmax).any())
+    extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
+        (low, high), "neither")
+    ax.figure.colorbar(im, ax=ax, label=label, shrink=0.85, extend=extend)
+    present = set(kinds.ravel())
+    handles = []
+    if _SURVEY in present:
+        # shown on the lightest colour of the map, where the dotted frame is black
+        swatch = max(cmap(np.linspace(0, 1, 65)), key=_relative_luminance)
+        if "value" in present:
+            handles.append(Patch(facecolor=swatch, lw=0, label=_KEY_LABELS["value"]))
+        handles.append(Patch(facecolor=swatch, edgecolor=_label_color(swatch),
+                             ls=(0, (1, 1.5)), lw=0.9, label=_KEY_LABELS[_SURVEY]))
+    if _REJECTED in present:
+        handles.append(Patch(facecolor=_REJ_FILL, edgecolor="0.35", hatch=_REJ_HATCH, lw=0,
+                             label=_KEY_LABELS[_REJECTED]))
+    if _OWN in present:
+        handles.append(Patch(facecolor=_OWN_FILL, edgecolor="white", hatch=_OWN_HATCH, lw=0,
+                             label=_KEY_LABELS[_OWN]))
+    if _UNMEASURED in present:
+        handles.append(Patch(facecolor="white", edgecolor=_EMPTY_EDGE, lw=0.8,
+                             label=_KEY_LABELS[_UNMEASURED]))
+    if handles:
+        ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.1), ncol=2,
+                  fontsize=7, frameon=False, handlelength=1.6, handleheight=1.3,
+                  columnspacing=1.2)
     return ax
 
 
 def plot_matrix_db(result: CalibrationResult, ax=None):
-    """Heat map of |X_ij| in dB (diagonal = own line, blank)."""
-    ax = ax or plt.subplots(figsize=(6.4, 5.2))[1]
+    """Heat map of |X_ij| in dB, with a key for the cells that carry no plain value.
+
+    Own-line cells are hatched grey, rejected pairs cross-hatched, pairs known only from
+    the survey (not nulled) framed with a dotted line, unmeasured cells left white.
+    """
+    ax = ax or plt.subplots(figsize=(6.4, 5.8))[1]
     victims, lines, X = matrix_axes(result)
-    db = 20 * np.log10(np.abs(X))
-    _grid(ax, victims, lines, db, "magma", -55, -20, "|X| (dB)", lambda v: f"{v:.0f}")
+    with np.errstate(divide="ignore"):
+        db = 20 * np.log10(np.abs(X))
+    _grid(ax, victims, lines, db, _cell_kinds(result, victims, lines), "magma", -55, -20,
+          "|X| (dB)", lambda v: f"{v:.0f}")
     ax.set_title(f"{result.chip.name}: crosstalk magnitude at each aggressor's frequency")
     return ax
 
 
 def plot_matrix_phase(result: CalibrationResult, ax=None):
-    """Heat map of arg X_ij in degrees."""
-    ax = ax or plt.subplots(figsize=(6.4, 5.2))[1]
+    """Heat map of arg X_ij in degrees, cells marked as in :func:`plot_matrix_db`."""
+    ax = ax or plt.subplots(figsize=(6.4, 5.8))[1]
     victims, lines, X = matrix_axes(result)
     ph = np.degrees(np.angle(X))
-    _grid(ax, victims, lines, ph, "twilight", -180, 180, "arg X (deg)", lambda v: f"{v:.0f}")
+    _grid(ax, victims, lines, ph, _cell_kinds(result, victims, lines), "twilight", -180, 180,
+          "arg X (deg)", lambda v: f"{v:.0f}")
     ax.set_title("crosstalk phase")
     return ax
 
