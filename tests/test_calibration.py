@@ -218,6 +218,30 @@ def test_leakage_null_raises_the_amplification_as_it_sharpens(d4_result):
     assert abs(leak.x - truth) < 4 * leak.stderr
 
 
+@pytest.mark.parametrize("seed", [11, 12])
+def test_resonant_victim_the_spacing_is_not_tuned_for_is_not_missed(seed):
+    """d7 has three rotation victims; the column's pulse spacing is coherent for q0 only.
+    For q6 (truly −29 dB) the two pulses of the survey add with its own detuning's phase
+    and may cancel (seed 12: no signal at all). It must be surveyed again with a spacing
+    of its own and nulled, as pair by pair would."""
+    import dataclasses
+
+    rig = SimRig(demo_device_path(), seed=seed, drift=False)
+    proto = load_protocol("protocols/full.toml")
+    proto = dataclasses.replace(proto, only_methods=("rotation", "leakage"))
+    res = calibrate_chip(rig, proto, aggressors=["d7"])
+    p = res.pair("d7", "q6")
+    truth = rig.true_crosstalk("q6", "d7", p.freq_ghz)
+    assert 20 * math.log10(abs(truth)) > -30
+    assert p.accepted and p.nulled, p
+    assert 20 * math.log10(abs(p.x - truth)) < -50
+    # the first ring of every pass over-determines each victim's column model
+    # (3 + an offset + 4 per other varying tone)
+    for key, ds in res.sweeps.items():
+        first = int((ds["round"] == ds["round"].min()).sum())
+        assert first >= 4 * ds.sizes["from_victim"] + 1, key
+
+
 def test_resonant_tones_ring_during_the_stark_pass(d4_result):
     """The leakage victim's tone varies during d4's Stark pass: the column fit measures
     how q5's line reaches the Stark victims at d4's frequency (truth: the simulator)."""

@@ -28,8 +28,10 @@ What keeps the column-parallel nulls as good as pair-by-pair ones:
   Ramsey window of their own (:func:`stark_windows`), so none is carried past the
   unwrapped range.
 * Resonant victims: K pulses amplify K-fold only for the victim the pulse spacing is
-  coherent for, so when a survey selects several, each is nulled in a pass of its own,
-  and a pass raises K as its null sharpens (curvature ∝ K²).
+  coherent for, so when a survey selects several (or one it is not tuned for), each is
+  nulled in a pass of its own, and a pass raises K as its null sharpens (curvature ∝ K²).
+  For another victim the K pulses may even cancel: one that shows no signal in the
+  column's survey is surveyed again alone, with a spacing of its own.
 """
 
 from __future__ import annotations
@@ -52,10 +54,16 @@ from xtalkcal.sweep import BatchRunner
 
 __all__ = ["PairResult", "CalibrationResult", "risk_map", "calibrate_chip", "ring_around"]
 
-# Rise of the signal above the floor at which rings are placed: probabilities stay in
-# the near-quadratic part of sin² (< 10 % off), Stark phases well inside ±π/2.
+# Rise of the signal above the floor at which rings are placed. Probabilities stay in
+# the near-quadratic part of sin² (< 10 % off). A Stark phase is quadratic in the field
+# (second-order shift, corrections ~ (Ω/Δ)² < 1e-2 here), so its information grows with
+# the radius as far as the unwrapped range [−π/2, 3π/2) of the readings allows: a rise
+# of 2 rad leaves room for noise and for the other tones' leak.
 RISE_PROBABILITY = 0.2
-RISE_STARK_RAD = 0.6
+RISE_STARK_RAD = 2.0
+# Survey rings of Stark victims (nothing known of the null yet): where the victim line's
+# own Stark phase reaches this.
+SURVEY_STARK_RAD = 1.2
 # Margin of the null search's stopping rule: k with e^{−k²/2} = 1 % (a circular Gaussian
 # error exceeds k·σ with probability e^{−k²/2}).
 NULL_CONFIDENCE = math.sqrt(2 * math.log(100.0))
@@ -386,8 +394,19 @@ def calibrate_chip(
                                               stark=(gi == 1), say=say, companions=companions,
                                               key_prefix=key_prefix, force=force,
                                               split=column_parallel)
-                    _null_one_by_one(rig, runner, protocol, result, line, handoff, methods,
-                                     shape, say=say, key_prefix=key_prefix)
+                    _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
+                                     methods, shape, say=say, key_prefix=key_prefix)
+                    for v in handoff.resurvey:
+                        # Surveyed again alone: a pulse spacing coherent for it and its
+                        # own selection (as pair by pair), the column's tones ringing.
+                        companions = tuple(
+                            (p.victim, -p.x * pass_amplitude(protocol, chip, line))
+                            for p in result.pairs
+                            if p.aggressor == line and p.accepted and p.nulled)
+                        _calibrate_pass(rig, runner, protocol, result, line, [v],
+                                        [methods[v]], shape, stark=False, say=say,
+                                        companions=companions, key_prefix=key_prefix,
+                                        force=force, split=True)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
@@ -403,15 +422,22 @@ def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shap
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, line)
-    waiting = {v: z for v, z, _, _ in handoff}
-    for v, z0, kappa, k_survey in handoff:
+    waiting = {v: z for v, z, *_ in handoff}
+    for v, z0, kappa, k_survey, sigma in handoff:
         del waiting[v]
         one = ColumnProbe(chip, line, (v,), amplitude=amp, repeats=1, methods=(methods[v],),
                           shape=shape)
         theta = one.expected_rotation_per_pulse(v, STRONGEST_DB)
-        K = max(k_survey, min(int((math.pi / 4) / theta),
-                              int(protocol.survey.max_train_ns // one.spacing_ns)))
-        rad = math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2))
+        k_max = int(protocol.survey.max_train_ns // one.spacing_ns)
+        # The K that keeps a null up to the strongest crosstalk unambiguous, or — the
+        # pass's own rule for raising K — the K whose ring (radius ∝ 1/K) stays
+        # RING_MARGIN survey errors wide, at most ×4 the survey's.
+        cap = survey_radii(one)[0]
+        r_survey = min(math.sqrt(RISE_PROBABILITY / max(kappa, 1e-12)), cap)
+        k_sharp = min(int(k_survey * r_survey / (RING_MARGIN * sigma)), 4 * k_survey)
+        K = max(k_survey, min(max(int((math.pi / 4) / theta), k_sharp), k_max))
+        rad = min(math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2)),
+                  cap)
         companions = tuple(
             (p.victim, -p.x * amp) for p in result.pairs
             if p.aggressor == line and p.accepted and p.nulled) + tuple(waiting.items())
@@ -438,7 +464,7 @@ def measure_probe(runner: BatchRunner, probe: ColumnProbe, points: np.ndarray, s
 def survey_radii(probe: ColumnProbe) -> np.ndarray:
     """Ring radius per victim before anything is known of its null (fraction of full scale).
 
-    Stark victims: where the victim line's own Stark phase reaches ~2×RISE_STARK_RAD
+    Stark victims: where the victim line's own Stark phase reaches SURVEY_STARK_RAD
     (nominal chip values); resonant victims: 1.5× the null of the strongest crosstalk we
     plan for. Never more than 45 % of the victim line's limit.
     """
@@ -446,7 +472,7 @@ def survey_radii(probe: ColumnProbe) -> np.ndarray:
     out = np.empty(len(probe.victims))
     for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
         if m == "stark":
-            out[i] = math.sqrt(RISE_STARK_RAD * 2 / probe.stark_gain(v))
+            out[i] = math.sqrt(SURVEY_STARK_RAD / probe.stark_gain(v))
         else:
             out[i] = probe.amplitude * 10 ** (STRONGEST_DB / 20) * 1.5
         out[i] = min(out[i], 0.45 * chip.amplitude_limit(chip.line_of(v).name))
@@ -476,10 +502,11 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                     split=False):
     """One pass: survey (unless ``start``), then the null rounds; results into ``result``.
 
-    With ``split`` a resonant pass that selects more than one victim stops after its
-    survey and returns ``[(victim, z*, κ, K)]`` for them (their results are not
-    recorded): the caller nulls each in a pass of its own, whose pulse spacing makes
-    that victim's rotations add up coherently so that K can be raised for it.
+    With ``split`` a resonant pass that selects more than one victim, or one that its
+    pulse spacing is not tuned for, stops after its survey and returns
+    ``[(victim, z*, κ, K)]`` for them (their results are not recorded): the caller nulls
+    each in a pass of its own, whose pulse spacing makes that victim's rotations add up
+    coherently so that K can be raised for it.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, line)
@@ -504,6 +531,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     f = probe.freq_ghz
     V = len(victims)
     radius = survey_radii(probe)
+    # Largest null ring: the survey's, except for Stark victims, whose rings may rise
+    # further than the survey's (quadratic phase) — up to 1.5× the rise at the nominal
+    # gain, in case a fitted curvature comes out low.
+    cap = radius.copy()
+    for i, m in enumerate(methods):
+        if m == "stark":
+            lim = 0.45 * chip.amplitude_limit(chip.line_of(victims[i]).name)
+            cap[i] = min(math.sqrt(1.5 * RISE_STARK_RAD / probe.stark_gain(victims[i])), lim)
     # Companion tones: a ring around their nulls as wide as a resonant victim's survey
     # ring (their own signal does not matter here; the ring only has to reach the
     # victims through the couplings).
@@ -539,12 +574,13 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         Z = np.vstack(pts_all).T[:, use]  # (V, n)
         S = np.vstack(sig_all).T[:, use]
         E = np.vstack(err_all).T[:, use].copy()
-        # Once a victim has two rings centred near its null, the wide survey ring is
-        # dropped from its fit (a weight of ~0): signals are symmetric in |z − z*| but
-        # not exactly quadratic, and mixing radii far apart would bias z*.
+        # Once a resonant victim has two rings centred near its null, the wide survey
+        # ring is dropped from its fit (a weight of ~0): sin² signals are symmetric in
+        # |z − z*| but not quadratic, and mixing radii far apart would bias z*. A Stark
+        # phase is quadratic at any radius the survey uses, so its survey points stay.
         rnd = np.concatenate(round_all)[use]
         if rnd.max() >= 2 and (rnd == 0).any():
-            E[np.ix_(searched, rnd == 0)] *= 1e6
+            E[np.ix_(searched & ~stark_rows, rnd == 0)] *= 1e6
         # The other victims' tones are in the model (fit_paraboloid_column): each null is
         # that of the aggressor's leak alone, and the couplings between the victims'
         # lines at this frequency come out too. Weak non-quadratic terms remain: the
@@ -563,8 +599,12 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     # Rings longer than the protocol asks for (to keep victims apart) share the same
     # shots per ring: every victim gets the information the protocol intends per round,
     # and a column's cost does not grow with its number of victims.
-    n_ring = ring_points_for(V + len(comp_names), protocol.survey.ring_points)
-    n_null = ring_points_for(V + len(comp_names), protocol.null.points_per_ring)
+    # A ring alone (the survey; the first ring at a raised K) must over-determine each
+    # victim's column model: 3 + an offset + 4 per other varying tone, plus 2 to spare.
+    tones_n = V + len(comp_names)
+    least = 4 * tones_n + 2
+    n_ring = ring_points_for(tones_n, max(protocol.survey.ring_points, least))
+    n_null = ring_points_for(tones_n, max(protocol.null.points_per_ring, least))
     survey_shots = _shots_per_point(protocol.survey.shots, protocol.survey.ring_points, n_ring)
     null_shots = _shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
                                   n_null)
@@ -609,8 +649,21 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         rounds = stage_rounds = 1
         say(f"{line}: K={K}, refining {V} victims from their current settings")
     handoff = []
-    if split and not stark and start is None and selected.sum() > 1:
-        handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K)
+    resurvey: list[str] = []
+    tuned = _tuned_victim(probe)
+    if split and not stark and start is None and V > 1:
+        # A resonant victim the pulse spacing is not tuned for sees K pulses add up with
+        # whatever phase its detuning gives them, possibly cancelling: a survey fit
+        # without signal says nothing of its |X| then. It is surveyed again alone.
+        resurvey = [victims[i] for i in range(V)
+                    if i != tuned and not selected[i] and not est.estimate(i).accepted]
+    # K can be raised only for the victim the pulse spacing is coherent for: any other
+    # selection (several victims, or one the spacing is not tuned for) is nulled in
+    # passes of its own.
+    if (split and not stark and start is None and selected.any()
+            and (selected.sum() > 1 or tuned is None or not selected[tuned])):
+        handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K,
+                    est.estimate(i).position_stderr * math.sqrt(_birge(est.estimate(i))))
                    for i in range(V) if selected[i]]
     searched[:] = selected
     budget = protocol.null.shot_budget
@@ -626,7 +679,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             if selected[i] and e.accepted:
                 centre[i] = e.z_star
                 rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
-                rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), radius[i])
+                rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), cap[i])
                 done[i] = e.position_stderr * math.sqrt(_birge(e)) <= target
             elif selected[i]:
                 rad[i] = radius[i]
@@ -653,7 +706,10 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
                                     methods=tuple(methods), shape=shape, merged=False,
                                     companions=comp_names)
-                rad *= k_cur / k_new
+                # The rise rule at the curvature the new K gives (κ ∝ K²): the ring
+                # shrinks as 1/K unless it was held at the cap, when it shrinks less.
+                rad[tuned] = min(math.sqrt(RISE_PROBABILITY / max(
+                    e.curvature * (k_new / k_cur) ** 2, 1e-12)), cap[tuned])
                 stage_rounds, k_stages = 0, k_stages + 1
                 say(f"{line}: K raised to {k_new} for {victims[tuned]}")
         pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
@@ -667,8 +723,8 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
                              first.fit.couplings_stderr)
     for i, v in enumerate(victims):
-        if handoff and selected[i]:
-            continue  # nulled in passes of their own
+        if (handoff and selected[i]) or v in resurvey:
+            continue  # nulled, or surveyed again, in passes of their own
         e = est.estimate(i) if selected[i] else first.estimate(i)
         reps = probe.repeats if selected[i] and est is not first else K
         nshots = int(np.vstack(shots_all)[:, i].sum())
@@ -728,7 +784,19 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                "methods": ",".join(methods), "rig": rig.describe(),
                "spacing_ns": probe.spacing_ns},
     )
-    return handoff
+    return _Handoff(handoff, resurvey)
+
+
+@dataclass(frozen=True)
+class _Handoff:
+    """Victims of a split resonant survey left to passes of their own.
+
+    ``nulls``: ``(victim, z*, κ, K, σ)`` of those selected, to be nulled one by one;
+    ``resurvey``: those the pass's pulse spacing could not see, to be surveyed alone.
+    """
+
+    nulls: list
+    resurvey: list
 
 
 def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
