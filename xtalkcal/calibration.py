@@ -479,6 +479,22 @@ def survey_radii(probe: ColumnProbe) -> np.ndarray:
     return out
 
 
+def ring_radius_caps(probe: ColumnProbe) -> np.ndarray:
+    """Largest ring radius per victim once its null is known (fraction of full scale).
+
+    The survey's radius (:func:`survey_radii`), except for Stark victims, whose rings may
+    rise further than the survey's (their phase is quadratic in the field): up to 1.5× the
+    rise ``RISE_STARK_RAD`` at the nominal gain, in case a fitted curvature comes out low.
+    """
+    chip = probe.chip
+    cap = survey_radii(probe)
+    for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
+        if m == "stark":
+            lim = 0.45 * chip.amplitude_limit(chip.line_of(v).name)
+            cap[i] = min(math.sqrt(1.5 * RISE_STARK_RAD / probe.stark_gain(v)), lim)
+    return cap
+
+
 def pass_amplitude(protocol: Protocol, chip: Chip, line: str) -> float:
     """Peak amplitude of the aggressor pulses of ``line`` (fraction of full scale)."""
     return protocol.pulse.aggressor_fraction * chip.amplitude_limit(line)
@@ -531,14 +547,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     f = probe.freq_ghz
     V = len(victims)
     radius = survey_radii(probe)
-    # Largest null ring: the survey's, except for Stark victims, whose rings may rise
-    # further than the survey's (quadratic phase) — up to 1.5× the rise at the nominal
-    # gain, in case a fitted curvature comes out low.
-    cap = radius.copy()
-    for i, m in enumerate(methods):
-        if m == "stark":
-            lim = 0.45 * chip.amplitude_limit(chip.line_of(victims[i]).name)
-            cap[i] = min(math.sqrt(1.5 * RISE_STARK_RAD / probe.stark_gain(victims[i])), lim)
+    cap = ring_radius_caps(probe)
     # Companion tones: a ring around their nulls as wide as a resonant victim's survey
     # ring (their own signal does not matter here; the ring only has to reach the
     # victims through the couplings).
