@@ -350,6 +350,14 @@ def test_interrupted_calibration_resumes_identically(tmp_path):
     assert runner2.shots_resumed > 0 and runner2.shots_executed > 0
     for a, b in zip(clean.pairs, again.pairs, strict=True):
         assert a.accepted == b.accepted and a.x == b.x
+    # Run once more from the complete record: nothing executed, and every estimate keeps
+    # the time its data were taken at (not the fresh rig's clock, which stays at 0).
+    runner3 = BatchRunner(SimRig(demo_device_path(), seed=3, drift=False), tmp_path)
+    third = calibrate_chip(runner3.rig, QUICK, runner=runner3, aggressors=lines)
+    assert runner3.shots_executed == 0 and runner3.rig_seconds > 0
+    assert max(p.measured_at_s for p in third.pairs) > 0
+    for a, b in zip(again.pairs, third.pairs, strict=True):
+        assert a.x == b.x and a.measured_at_s == b.measured_at_s
 
 
 def test_calibrate_cli_writes_the_matrix_json(tmp_path, capsys):

@@ -630,7 +630,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     if start is None:
         measure(rings(np.zeros(V, complex), radius, n_ring), survey_shots, f"{tag}-survey", 0)
         est = fit()
-        survey_time = rig.now()
+        survey_time = _data_time(runner, rig)
         thr = 10 ** (protocol.survey.threshold_db / 20)
         selected = np.zeros(V, bool)
         for i in range(V):
@@ -654,7 +654,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         searched[:] = True
         rad0 = np.minimum(np.asarray(start.radii, dtype=float), radius)
         measure(rings(centre, rad0, n_null), null_shots, f"{tag}-null00", 1)
-        survey_time = rig.now()
+        survey_time = _data_time(runner, rig)
         rounds = stage_rounds = 1
         say(f"{line}: K={K}, refining {V} victims from their current settings")
     handoff = []
@@ -728,7 +728,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     first = fit(K)  # survey-stage victims (and the couplings) from the points at the first K
     if est.estimate(int(np.argmax(selected))).accepted is False:
         est = first  # a raised K that did not yield a fit falls back on the first
-    now = rig.now()
+    now = _data_time(runner, rig)
     result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
                              first.fit.couplings_stderr)
     for i, v in enumerate(victims):
@@ -845,6 +845,12 @@ def _birge(e) -> float:
     """max(1, reduced chi-square): the factor that makes a covariance honest."""
     chi = e.reduced_chi2
     return max(1.0, float(chi)) if math.isfinite(chi) else 1.0
+
+
+def _data_time(runner: BatchRunner, rig: Rig) -> float:
+    """When the latest data were taken (rig clock, s): a resumed batch keeps its own time."""
+    t = runner.last_finished_s
+    return float(t) if t is not None else rig.now()
 
 
 def _slice(counts, a: int, b: int):

@@ -57,6 +57,9 @@ class BatchRunner:
         batches as they took when they were first recorded.
     rig_seconds : float
         Their sum: the rig time the whole set of batches cost (read only).
+    last_finished_s : float or None
+        Rig clock at the end of the latest batch returned, executed or resumed: when its
+        data were taken (a resumed batch keeps the time it was first measured at).
     """
 
     def __init__(self, rig: Rig, run_dir: str | Path | None = None, *, progress=None) -> None:
@@ -71,6 +74,7 @@ class BatchRunner:
         self.batches_resumed = 0
         self.rig_seconds_executed = 0.0
         self.rig_seconds_resumed = 0.0
+        self.last_finished_s: float | None = None
 
     @property
     def rig_seconds(self) -> float:
@@ -98,6 +102,7 @@ class BatchRunner:
                 # The rig time the batch took when it was recorded: a resumed calibration
                 # costs what its batches cost, wherever they were measured.
                 self.rig_seconds_resumed += counts.finished_s - counts.started_s
+                self.last_finished_s = counts.finished_s
                 return counts
             # Same key, different request (e.g. a later calibration reusing a run folder):
             # the record must not stand in for a measurement it is not.
@@ -108,6 +113,7 @@ class BatchRunner:
         self.batches += 1
         self.shots_executed += len(timelines) * shots
         self.rig_seconds_executed += counts.finished_s - counts.started_s
+        self.last_finished_s = counts.finished_s
         if path is not None:
             _write_atomic(path, counts, digest)
         if self.progress is not None:
