@@ -529,15 +529,15 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
                        methods=tuple(methods), shape=shape)
     spacing = base.spacing_ns
-    if start is not None:
-        K = int(start.repeats)
-    elif stark:
-        K = max(1, int(protocol.survey.max_train_ns // shape.duration_ns))
+    if stark:
+        k_survey = max(1, int(protocol.survey.max_train_ns // shape.duration_ns))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
         theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
-        K = max(1, min(int((math.pi / 4) / theta), int(protocol.survey.max_train_ns // spacing)))
+        k_survey = max(1, min(int((math.pi / 4) / theta),
+                              int(protocol.survey.max_train_ns // spacing)))
+    K = int(start.repeats) if start is not None else k_survey
     comp_names = tuple(q for q, _ in companions)
     windows = stark_windows(chip, line, victims, methods, amp, K, shape) if stark else ()
     probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
@@ -551,10 +551,14 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     # Companion tones: a ring around their nulls as wide as a resonant victim's survey
     # ring (their own signal does not matter here; the ring only has to reach the
     # victims through the couplings).
+    # Above the survey's K a resonant victim's ring shrinks as 1/K, and so do these: a
+    # companion's leak as wide as a survey ring would drive the victim far up its sin²
+    # fringe, where the column model (quadratic) no longer holds and biases the null.
     comp_centre = np.array([z for _, z in companions], dtype=complex)
-    comp_radius = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
-                                0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
-                            for q, z in companions])
+    comp_base = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
+                              0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
+                          for q, z in companions])
+    comp_radius = comp_base * min(1.0, k_survey / K)
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
@@ -690,6 +694,17 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
                 rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), cap[i])
                 done[i] = e.position_stderr * math.sqrt(_birge(e)) <= target
+                if methods[i] != "stark":
+                    # A sin² signal is not quadratic far up its fringe, and off-centre
+                    # on its ring that pulls the fitted null towards the ring's centre;
+                    # the error says nothing of it. Done only once the latest ring was
+                    # centred on the null to within RING_MARGIN of its radius and rose
+                    # no more than twice the rule's amount (a ring planned from another
+                    # K or spacing can rise much further).
+                    last = pts_all[-1]
+                    r_last = abs(last[1, i] - last[0, i])
+                    done[i] &= (abs(e.z_star - last[0, i]) <= r_last / RING_MARGIN
+                                and e.curvature * r_last**2 <= 2 * RISE_PROBABILITY)
             elif selected[i]:
                 rad[i] = radius[i]
                 done[i] = False
@@ -719,6 +734,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 # shrinks as 1/K unless it was held at the cap, when it shrinks less.
                 rad[tuned] = min(math.sqrt(RISE_PROBABILITY / max(
                     e.curvature * (k_new / k_cur) ** 2, 1e-12)), cap[tuned])
+                comp_radius = comp_base * min(1.0, k_survey / k_new)
                 stage_rounds, k_stages = 0, k_stages + 1
                 say(f"{line}: K raised to {k_new} for {victims[tuned]}")
         pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
