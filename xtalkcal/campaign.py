@@ -57,7 +57,7 @@ log = logging.getLogger(__name__)
 Truth = Callable[[str, str, float, float], complex]  # (victim, line, freq, t_s) -> X
 
 # Shots of the verification re-checks relative to a routine re-check.
-VERIFY_SHOTS_FACTOR = 2
+VERIFY_SHOTS_FACTOR = 4
 
 
 @dataclass(frozen=True)
