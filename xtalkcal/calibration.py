@@ -551,14 +551,10 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     # Companion tones: a ring around their nulls as wide as a resonant victim's survey
     # ring (their own signal does not matter here; the ring only has to reach the
     # victims through the couplings).
-    # Above the survey's K a resonant victim's ring shrinks as 1/K, and so do these: a
-    # companion's leak as wide as a survey ring would drive the victim far up its sin²
-    # fringe, where the column model (quadratic) no longer holds and biases the null.
     comp_centre = np.array([z for _, z in companions], dtype=complex)
-    comp_base = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
-                              0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
-                          for q, z in companions])
-    comp_radius = comp_base * min(1.0, k_survey / K)
+    comp_radius = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
+                                0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
+                            for q, z in companions])
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
@@ -734,7 +730,6 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 # shrinks as 1/K unless it was held at the cap, when it shrinks less.
                 rad[tuned] = min(math.sqrt(RISE_PROBABILITY / max(
                     e.curvature * (k_new / k_cur) ** 2, 1e-12)), cap[tuned])
-                comp_radius = comp_base * min(1.0, k_survey / k_new)
                 stage_rounds, k_stages = 0, k_stages + 1
                 say(f"{line}: K raised to {k_new} for {victims[tuned]}")
         pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
