@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import math
-import time
+import pydoc
 
 import numpy as np
 import pytest
@@ -15,8 +15,10 @@ from xtalkcal.design import grid_design, ring_design
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fit import (
     NullEstimate,
+    ParaboloidBatch,
     RejectedEstimateError,
     RejectionReason,
+    RingBatch,
     Verdict,
     binomial_signal,
     fit_null,
@@ -282,6 +284,39 @@ def test_rejected_estimate_has_no_numbers():
     assert np.isfinite(est.unchecked().z_star)
 
 
+def test_batch_arrays_are_masked_where_rejected_and_keep_their_docstrings():
+    # One sweep with a clear null beside one of pure noise, which is rejected.
+    rng = np.random.default_rng(32)
+    clean = _paraboloid_counts(rng, GRID, 100_000, kappa=800.0)
+    noise = rng.binomial(100_000, 0.05, 25)
+    batch = fit_paraboloid_counts(GRID, np.stack([clean, noise]), 100_000)
+    phi = np.linspace(0, 2 * np.pi, 8, endpoint=False)
+    ring_s = np.stack([0.1 + 0.05 * np.cos(phi - 0.3), 0.1 + rng.normal(0, 1e-3, 8)])
+    rings = fit_ring(phi, ring_s + rng.normal(0, 1e-4, (2, 8)), 1e-3)
+    cases = [
+        (batch, ParaboloidBatch, ("z_star", "covariance", "floor", "floor_stderr", "curvature",
+                                  "curvature_stderr")),
+        (rings, RingBatch, ("direction", "direction_stderr", "amplitude", "amplitude_stderr",
+                            "offset")),
+    ]
+    for result, cls, names in cases:
+        assert result.accepted.tolist() == [True, False]
+        text = pydoc.render_doc(cls, renderer=pydoc.plaintext)
+        for name in names:
+            masked, raw = getattr(result, name), result.unchecked(name)
+            assert np.isfinite(raw[1]).all()  # the rejected fit has numbers ...
+            assert np.isnan(masked[1]).all()  # ... that the attribute does not hand out
+            np.testing.assert_array_equal(masked[0], raw[0])
+            assert not masked.flags.writeable
+            attr = getattr(cls, name)
+            assert isinstance(attr, property) and attr.__doc__
+            assert f"{name}\n |      {attr.__doc__}" in text
+    assert ParaboloidBatch.z_star.__doc__ == "Null positions (NaN where rejected)."
+    assert NullEstimate.floor.__doc__ == "Signal at the null ``S0``."
+    assert "Signal at the null ``S0``." in pydoc.render_doc(NullEstimate, renderer=pydoc.plaintext)
+    assert batch.estimate(0).floor == batch.floor[0]
+
+
 def test_to_dict_is_json_and_round_trips():
     rng = np.random.default_rng(31)
     est = fit_null(GRID, _saturating_counts(rng, GRID, 2000), 2000)
@@ -353,16 +388,17 @@ def test_inputs_are_not_modified():
 # ---------------------------------------------------------------------------
 
 
-def test_vectorised_paraboloid_speed():
+def test_vectorised_paraboloid_fit_equals_one_fit_per_sweep():
+    """The batch fit is a vectorisation, not an approximation: each sweep's result equals
+    that sweep fitted alone. (Its speed is measured in benchmarks/bench_fit.py, not here:
+    timing has no place in a test on a shared machine.)"""
     rng = np.random.default_rng(50)
-    n_fits = 20_000
-    s = 0.02 + 40 * np.abs(GRID - Z_TRUE) ** 2 + rng.normal(0, 1e-3, (n_fits, 25))
-    best = math.inf
-    for _ in range(3):
-        t0 = time.perf_counter()
-        fit_paraboloid(GRID, s, 1e-3)
-        best = min(best, time.perf_counter() - t0)
-    assert n_fits / best >= 10_000, f"{n_fits / best:.0f} fits/s"
+    s = 0.02 + 40 * np.abs(GRID - Z_TRUE) ** 2 + rng.normal(0, 1e-3, (200, 25))
+    batch = fit_paraboloid(GRID, s, 1e-3)
+    for k in range(0, 200, 17):
+        one = fit_paraboloid(GRID, s[k], 1e-3)
+        assert np.allclose(batch.z_star[k], one.z_star, rtol=0, atol=1e-12)
+        assert np.allclose(batch.covariance[k], one.covariance, rtol=1e-9, atol=0)
 
 
 # ---------------------------------------------------------------------------

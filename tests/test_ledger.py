@@ -387,6 +387,25 @@ def test_unstorable_sweep_writes_nothing(tmp_path: Path, sweep: object, field: s
     assert len(Ledger(led.path).entries()) == 1
 
 
+@pytest.mark.parametrize(
+    ("text", "problem"),
+    [
+        ("a\x00b", "strings must not contain NUL characters"),
+        ("a\ud800", "strings must be encodable as UTF-8 (lone surrogates found)"),
+    ],
+)
+@pytest.mark.parametrize("dtype", [str, object])
+def test_unstorable_sweep_text_is_refused(
+    tmp_path: Path, text: str, problem: str, dtype: type
+) -> None:
+    led = Ledger.create(tmp_path / "l", chip="c")
+    sweep = xr.Dataset({"s": ("x", np.array(["ok", text], dtype=dtype))})
+    with pytest.raises(LedgerValidationError) as err:
+        led.append(sweeps={"bad": sweep})
+    assert (err.value.field, err.value.problem) == ("data", problem)
+    assert led.sweep_ids() == ()
+
+
 @pytest.mark.skipif(np.dtype(np.longdouble).itemsize <= 8, reason="longdouble is float64 here")
 def test_extended_precision_refused(tmp_path: Path) -> None:
     led = Ledger.create(tmp_path / "l", chip="c")

@@ -51,9 +51,9 @@ from __future__ import annotations
 
 import enum
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, Generic, Literal, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, Literal, TypeVar, overload
 
 import lmfit
 import numpy as np
@@ -280,6 +280,56 @@ class _Guarded(Generic[_V]):
         return self._values
 
 
+_T = TypeVar("_T")
+
+
+class _ReadOnly(property, Generic[_T]):
+    """A read-only attribute with a docstring, typed ``_T`` for type checkers.
+
+    A ``property`` subclass, so that ``help()``, IDEs and documentation tools list it as a
+    property with its docstring. The ``__get__`` overloads exist for type checkers only: at
+    run time the built-in ``property.__get__`` does the work.
+    """
+
+    def __init__(self, key: str, fget: Callable[[Any], Any], doc: str) -> None:
+        fget.__name__ = key
+        fget.__doc__ = doc
+        super().__init__(fget, doc=doc)
+        # CPython 3.11 (at least) drops ``doc`` for a property subclass; set it where lookups
+        # find it, or help() shows this class's docstring instead.
+        self.__doc__ = doc
+
+    if TYPE_CHECKING:
+
+        @overload
+        def __get__(self, instance: None, owner: type | None = None, /) -> _ReadOnly[_T]: ...
+
+        @overload
+        def __get__(self, instance: object, owner: type | None = None, /) -> _T: ...
+
+        def __get__(self, instance: object, owner: type | None = None, /) -> Any: ...
+
+
+class _Value(_ReadOnly[_T]):
+    """Field ``key`` of a guarded estimate's values; raises if the estimate is rejected."""
+
+    def __init__(self, key: str, doc: str) -> None:
+        def fget(estimate: _Guarded[Any]) -> Any:
+            return getattr(estimate._checked(), key)
+
+        super().__init__(key, fget, doc)
+
+
+class _Masked(_ReadOnly[_T]):
+    """Array ``key`` of a batch's raw fit results, NaN wherever the verdict is rejected."""
+
+    def __init__(self, key: str, doc: str) -> None:
+        def fget(batch: ParaboloidBatch | RingBatch) -> Any:
+            return _mask(batch._raw[key], batch.accepted)
+
+        super().__init__(key, fget, doc)
+
+
 @dataclass(frozen=True, eq=False, repr=False)
 class NullEstimate(_Guarded[NullFitValues]):
     """One null estimate: value, covariance, quality figure and verdict.
@@ -322,15 +372,21 @@ class NullEstimate(_Guarded[NullFitValues]):
     _values: NullFitValues = field(default=_NAN_VALUES, repr=False)
 
     # -- guarded values -------------------------------------------------
-    @property
-    def z_star(self) -> complex:
-        """Null position (fraction of the victim line's full scale)."""
-        return self._checked().z_star
-
-    @property
-    def covariance(self) -> NDArray[np.float64]:
-        """2x2 covariance of ``(Re z*, Im z*)``."""
-        return self._checked().covariance
+    z_star = _Value[complex]("z_star", "Null position (fraction of the victim line's full scale).")
+    covariance = _Value[NDArray[np.float64]]("covariance", "2x2 covariance of ``(Re z*, Im z*)``.")
+    floor = _Value[float]("floor", "Signal at the null ``S0``.")
+    floor_stderr = _Value[float]("floor_stderr", "Standard error of ``floor``.")
+    curvature = _Value[float](
+        "curvature", "``kappa`` at amplification 1 (signal per full-scale fraction squared)."
+    )
+    curvature_stderr = _Value[float]("curvature_stderr", "Standard error of ``curvature``.")
+    amplitude = _Value[float | None](
+        "amplitude", "Fringe amplitude ``A`` of the saturating model (None for the paraboloid)."
+    )
+    amplitude_stderr = _Value[float | None](
+        "amplitude_stderr",
+        "Standard error of ``amplitude`` (None for the paraboloid, NaN with ``A`` at its bound).",
+    )
 
     @property
     def z_star_stderr(self) -> tuple[float, float]:
@@ -342,33 +398,6 @@ class NullEstimate(_Guarded[NullFitValues]):
     def position_stderr(self) -> float:
         """1-sigma semi-major axis of the error ellipse of ``z*``."""
         return self._checked().position_stderr
-
-    @property
-    def floor(self) -> float:
-        """Signal at the null ``S0``."""
-        return self._checked().floor
-
-    @property
-    def floor_stderr(self) -> float:
-        return self._checked().floor_stderr
-
-    @property
-    def curvature(self) -> float:
-        """``kappa`` at amplification 1 (signal per full-scale fraction squared)."""
-        return self._checked().curvature
-
-    @property
-    def curvature_stderr(self) -> float:
-        return self._checked().curvature_stderr
-
-    @property
-    def amplitude(self) -> float | None:
-        """Fringe amplitude ``A`` of the saturating model (None for the paraboloid)."""
-        return self._checked().amplitude
-
-    @property
-    def amplitude_stderr(self) -> float | None:
-        return self._checked().amplitude_stderr
 
     # -- records --------------------------------------------------------
     def to_dict(self) -> dict[str, Any]:
@@ -497,27 +526,13 @@ class RingEstimate(_Guarded[RingValues]):
     dof: int
     _values: RingValues = field(default=_NAN_RING, repr=False)
 
-    @property
-    def direction(self) -> float:
-        """Angle of ``z* - centre`` (rad)."""
-        return self._checked().direction
-
-    @property
-    def direction_stderr(self) -> float:
-        return self._checked().direction_stderr
-
-    @property
-    def amplitude(self) -> float:
-        """First-harmonic amplitude of the ring signal (signal units)."""
-        return self._checked().amplitude
-
-    @property
-    def amplitude_stderr(self) -> float:
-        return self._checked().amplitude_stderr
-
-    @property
-    def offset(self) -> float:
-        return self._checked().offset
+    direction = _Value[float]("direction", "Angle of ``z* - centre`` (rad).")
+    direction_stderr = _Value[float]("direction_stderr", "Standard error of ``direction`` (rad).")
+    amplitude = _Value[float](
+        "amplitude", "First-harmonic amplitude of the ring signal (signal units)."
+    )
+    amplitude_stderr = _Value[float]("amplitude_stderr", "Standard error of ``amplitude``.")
+    offset = _Value[float]("offset", "Ring mean ``a0`` (signal units).")
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record. Numeric values only when accepted."""
@@ -600,34 +615,16 @@ class ParaboloidBatch:
     _raw: Mapping[str, NDArray[Any]] = field(repr=False)
     rules: VerdictRules = DEFAULT_RULES
 
-    def _get(self, key: str) -> NDArray[Any]:
-        return _mask(self._raw[key], self.accepted)
-
-    @property
-    def z_star(self) -> NDArray[np.complex128]:
-        """Null positions (NaN where rejected)."""
-        return self._get("z_star")
-
-    @property
-    def covariance(self) -> NDArray[np.float64]:
-        """Covariances of (Re z*, Im z*), shape ``shape + (2, 2)``."""
-        return self._get("covariance")
-
-    @property
-    def floor(self) -> NDArray[np.float64]:
-        return self._get("floor")
-
-    @property
-    def floor_stderr(self) -> NDArray[np.float64]:
-        return self._get("floor_stderr")
-
-    @property
-    def curvature(self) -> NDArray[np.float64]:
-        return self._get("curvature")
-
-    @property
-    def curvature_stderr(self) -> NDArray[np.float64]:
-        return self._get("curvature_stderr")
+    z_star = _Masked[NDArray[np.complex128]]("z_star", "Null positions (NaN where rejected).")
+    covariance = _Masked[NDArray[np.float64]](
+        "covariance", "Covariances of (Re z*, Im z*), shape ``shape + (2, 2)``."
+    )
+    floor = _Masked[NDArray[np.float64]]("floor", "Signals at the nulls ``S0``.")
+    floor_stderr = _Masked[NDArray[np.float64]]("floor_stderr", "Standard errors of ``floor``.")
+    curvature = _Masked[NDArray[np.float64]]("curvature", "``kappa`` at amplification 1.")
+    curvature_stderr = _Masked[NDArray[np.float64]](
+        "curvature_stderr", "Standard errors of ``curvature``."
+    )
 
     def reasons(self) -> NDArray[np.object_]:
         """Array of :class:`RejectionReason` with the batch shape."""
@@ -687,26 +684,17 @@ class RingBatch:
     dof: int
     _raw: Mapping[str, NDArray[Any]] = field(repr=False)
 
-    @property
-    def direction(self) -> NDArray[np.float64]:
-        """Angle of ``z* - centre`` (rad)."""
-        return _mask(self._raw["direction"], self.accepted)
-
-    @property
-    def direction_stderr(self) -> NDArray[np.float64]:
-        return _mask(self._raw["direction_stderr"], self.accepted)
-
-    @property
-    def amplitude(self) -> NDArray[np.float64]:
-        return _mask(self._raw["amplitude"], self.accepted)
-
-    @property
-    def amplitude_stderr(self) -> NDArray[np.float64]:
-        return _mask(self._raw["amplitude_stderr"], self.accepted)
-
-    @property
-    def offset(self) -> NDArray[np.float64]:
-        return _mask(self._raw["offset"], self.accepted)
+    direction = _Masked[NDArray[np.float64]]("direction", "Angle of ``z* - centre`` (rad).")
+    direction_stderr = _Masked[NDArray[np.float64]](
+        "direction_stderr", "Standard errors of ``direction`` (rad)."
+    )
+    amplitude = _Masked[NDArray[np.float64]](
+        "amplitude", "First-harmonic amplitudes of the ring signals (signal units)."
+    )
+    amplitude_stderr = _Masked[NDArray[np.float64]](
+        "amplitude_stderr", "Standard errors of ``amplitude``."
+    )
+    offset = _Masked[NDArray[np.float64]]("offset", "Ring means ``a0`` (signal units).")
 
     def reasons(self) -> NDArray[np.object_]:
         return np.asarray(_REASONS, dtype=object)[self.reason_codes]

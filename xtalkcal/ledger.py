@@ -380,16 +380,24 @@ _TEXT_FIELDS = (
 )
 
 
-def _check_text(where: str, name: str, value: str, *, required: bool, exact: bool) -> None:
-    """Raise unless ``value`` can be stored as an HDF5 UTF-8 string (and is a usable name)."""
+def _check_utf8(where: str, name: str, value: str, *, subject: str = "") -> None:
+    """Raise unless ``value`` can be stored as an HDF5 UTF-8 string.
+
+    ``subject`` opens the message (``"strings "`` for the elements of an array).
+    """
     if "\x00" in value:
-        raise LedgerValidationError(where, name, "must not contain NUL characters")
+        raise LedgerValidationError(where, name, f"{subject}must not contain NUL characters")
     try:
         value.encode("utf-8")
     except UnicodeEncodeError:
         raise LedgerValidationError(
-            where, name, "must be encodable as UTF-8 (lone surrogates found)"
+            where, name, f"{subject}must be encodable as UTF-8 (lone surrogates found)"
         ) from None
+
+
+def _check_text(where: str, name: str, value: str, *, required: bool, exact: bool) -> None:
+    """Raise unless ``value`` can be stored as an HDF5 UTF-8 string (and is a usable name)."""
+    _check_utf8(where, name, value)
     if required and not value.strip():
         raise LedgerValidationError(where, name, "must be a non-empty string")
     if exact and value != value.strip():
@@ -655,15 +663,7 @@ def _encode_array(arr: np.ndarray, where: str, field_name: str) -> _Blob:
                 "storable: reset_index first)",
             )
         for x in flat:
-            s = str(x)
-            if "\x00" in s:
-                raise LedgerValidationError(where, field_name, "strings must not contain NUL")
-            try:
-                s.encode("utf-8")
-            except UnicodeEncodeError:
-                raise LedgerValidationError(
-                    where, field_name, "strings must be encodable as UTF-8"
-                ) from None
+            _check_utf8(where, field_name, str(x), subject="strings ")
         data = np.empty(arr.shape, dtype=object)
         data[...] = arr
         meta["codec"] = "text"
