@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from scipy.linalg import expm
 
-from simulated_device import SimRig, ToneBatch, evolve_populations
+from simulated_device import SimRig, ToneBatch, demo_device_path, evolve_populations
 from xtalkcal.exceptions import FitInputError, TimelineError
 from xtalkcal.verify import (
     CLIFFORD_DECOMPOSITIONS,
@@ -370,3 +370,28 @@ def test_transform_hook_is_applied_to_every_timeline(demo_device):
     # same physics for q5 → equal survival within shot noise
     diff = data["survival"].sel(qubit="q5") - iso["survival"].sel(qubit="q5")
     assert float(np.abs(diff).max()) < 0.015
+
+
+def test_own_drive_trim_matches_the_simulators_second_order_factor():
+    """With every cancellation tone on, qubit j's own drive changes by
+    1 + Σ_k X_jk(f_j)·r_kj (the tones other lines play at f_j reach j too). The
+    amplitude-amplification measurement must find |that| − 1 (simulator truth)."""
+    from xtalkcal.verify import own_drive_trims
+
+    rig = SimRig(demo_device_path(), seed=5, drift=False)
+    chip = rig.chip
+
+    def transform(tl):  # compensation from the simulator's true matrix
+        extra = [t.scaled(rig.true_ratio(q, t.line, t.freq_ghz), chip.line_of(q).name)
+                 for t in tl.tones for q in chip.qubit_names
+                 if chip.line_of(q).name != t.line]
+        return replace(tl, tones=tl.tones + tuple(extra))
+
+    trims = own_drive_trims(rig, ["q1", "q5"], transform, shots=20000)
+    for q in ("q1", "q5"):
+        line, f = chip.line_of(q).name, chip.qubit(q).f01_ghz
+        factor = 1 + sum(rig.true_crosstalk(q, chip.line_of(v).name, f)
+                         * rig.true_ratio(v, line, f) for v in chip.qubit_names if v != q)
+        want = abs(factor) - 1
+        assert abs(want) > 3e-3  # a change worth trimming on this chip
+        assert abs(trims[q].change - want) < 0.1 * abs(want) + 3 * trims[q].stderr, q

@@ -140,8 +140,14 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
     if campaign.rb is not None:
         ax = plot_gate_errors(campaign.rb)
         figs.append(("Gate errors", _save(ax, out / "gate_errors.png")))
-        lines += ["", "## Simultaneous randomized benchmarking", "", "```",
-                  campaign.rb.table(), "```"]
+        lines += ["", "## Simultaneous randomized benchmarking", ""]
+        if campaign.trims:
+            lines += ["Own drive of each qubit with compensation on (the cancellation tones "
+                      "at its frequency reach it too), measured by amplitude amplification "
+                      "and divided out before benchmarking: "
+                      + ", ".join(f"{q} {100 * t.change:+.2f} % ± {100 * t.stderr:.2f} %"
+                                  for q, t in campaign.trims.items()) + ".", ""]
+        lines += ["```", campaign.rb.table(), "```"]
     if campaign.drift:
         axes = plot_drift(campaign.drift, campaign.tolerance_db)
         figs.append(("Drift watch", _save(axes[0], out / "drift.png")))
