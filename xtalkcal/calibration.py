@@ -382,11 +382,7 @@ def calibrate_chip(
                     # ring around their nulls during later passes, so that the column
                     # fit measures their leak onto this pass's victims (the multi-victim
                     # solve needs it) instead of folding it into these victims' nulls.
-                    companions = tuple(
-                        (p.victim, -p.x * pass_amplitude(protocol, chip, line))
-                        for p in result.pairs
-                        if column_parallel and p.aggressor == line and p.accepted and p.nulled
-                    )
+                    companions = _nulled_tones(result, protocol, line) if column_parallel else ()
                     force = tuple((null_victims or {}).get(line, ()))
                     handoff = _calibrate_pass(rig, runner, protocol, result, line,
                                               victims_of_pass,
@@ -399,13 +395,10 @@ def calibrate_chip(
                     for v in handoff.resurvey:
                         # Surveyed again alone: a pulse spacing coherent for it and its
                         # own selection (as pair by pair), the column's tones ringing.
-                        companions = tuple(
-                            (p.victim, -p.x * pass_amplitude(protocol, chip, line))
-                            for p in result.pairs
-                            if p.aggressor == line and p.accepted and p.nulled)
                         _calibrate_pass(rig, runner, protocol, result, line, [v],
                                         [methods[v]], shape, stark=False, say=say,
-                                        companions=companions, key_prefix=key_prefix,
+                                        companions=_nulled_tones(result, protocol, line),
+                                        key_prefix=key_prefix,
                                         force=force, split=True)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
@@ -438,12 +431,18 @@ def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shap
         K = max(k_survey, min(max(int((math.pi / 4) / theta), k_sharp), k_max))
         rad = min(math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2)),
                   cap)
-        companions = tuple(
-            (p.victim, -p.x * amp) for p in result.pairs
-            if p.aggressor == line and p.accepted and p.nulled) + tuple(waiting.items())
+        companions = _nulled_tones(result, protocol, line) + tuple(waiting.items())
         _calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
                         stark=False, say=say, companions=companions, key_prefix=key_prefix,
                         force=(v,), start=PassStart((z0,), (rad,), K))
+
+
+def _nulled_tones(result: CalibrationResult, protocol: Protocol, line: str
+                  ) -> tuple[tuple[str, complex], ...]:
+    """(victim, tone at its null) of every pair of ``line`` nulled so far."""
+    amp = pass_amplitude(protocol, result.chip, line)
+    return tuple((p.victim, -p.x * amp) for p in result.pairs
+                 if p.aggressor == line and p.accepted and p.nulled)
 
 
 def measure_probe(runner: BatchRunner, probe: ColumnProbe, points: np.ndarray, shots: int,
