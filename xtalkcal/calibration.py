@@ -708,7 +708,6 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         if done.all():
             break
         stage_rounds += 1
-        tuned = _tuned_victim(probe)
         if (not stark and selected.sum() == 1 and tuned is not None and selected[tuned]
                 and est.estimate(tuned).accepted and stage_rounds >= (2 if k_stages == 1 else 1)):
             # Raise K as the null sharpens (curvature ∝ K², so the error of z* ∝ 1/K at
@@ -814,8 +813,8 @@ class _Handoff:
     ``resurvey``: those the pass's pulse spacing could not see, to be surveyed alone.
     """
 
-    nulls: list
-    resurvey: list
+    nulls: list[tuple[str, complex, float, int, float]]
+    resurvey: list[str]
 
 
 def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
