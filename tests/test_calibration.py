@@ -48,6 +48,50 @@ def test_leakage_probe_nulls_at_the_true_ratio(demo_rig):
     assert s[1] < s[2] and s[1] < s[3]
 
 
+@pytest.mark.parametrize("line, victims", [("d7", ("q0", "q2", "q6")), ("d0", ("q2", "q7"))])
+def test_train_amplifies_every_resonant_victim_k_fold(demo_rig, line, victims):
+    """A train coherent for all of a column's resonant victims at once (spacing and
+    per-pulse phase step): 4K pulses at a field offset dz/4 from the true null give the
+    signal K pulses give at dz, for every victim (small angles: P ∝ (K·θ)²). Before the
+    phase step, d7's 50 ns spacing made q0's pulses alternate in sign (30 MHz × 50 ns =
+    1.5 cycles). Truth: the simulator."""
+    chip = demo_rig.chip
+    amp = 0.8 * chip.amplitude_limit(line)
+    one = ColumnProbe(chip, line, victims, amplitude=amp, repeats=8)
+    assert all(one.coherent(v) for v in victims)
+    f = one.freq_ghz
+    null = np.array([-demo_rig.true_crosstalk(v, line, f) * amp for v in victims])
+    dz = np.geomspace(0.01, 0.1, 6)
+    sig = {}
+    for k in (8, 32):
+        probe = ColumnProbe(chip, line, victims, amplitude=amp, repeats=k)
+        pts = np.vstack([null[None, :], null[None, :] + dz[:, None] * 8 / k])
+        s = probe.signals(demo_rig.run(probe.timelines(pts), 20000), len(pts))
+        sig[k] = (s.signal[1:] - s.signal[:1], s.stderr[1:])
+    compared = 0
+    for i, v in enumerate(victims):
+        for j in range(len(dz)):
+            a, b = sig[8][0][j, i], sig[32][0][j, i]
+            if 0.05 < a < 0.3:  # well above the floor, below the sin² turn-over
+                err = math.hypot(sig[8][1][j, i], sig[32][1][j, i])
+                assert abs(a - b) < 4 * err + 0.1 * a, (v, dz[j], a, b)
+                compared += 1
+    assert compared >= len(victims)
+
+
+def test_common_spacing_makes_detunings_whole_cycles():
+    from xtalkcal.probes import COHERENT_SLIP_RAD, _common_spacing, _slip_rad
+
+    assert _common_spacing(36.0, [0.0]) == 36.0  # one victim: the phase step does it all
+    t = _common_spacing(36.0, [0.0, 0.04, -0.01])  # 10 MHz grid: 100 ns
+    assert t == pytest.approx(100.0)
+    t = _common_spacing(36.0, [0.0, 0.064])  # 3 cycles of 64 MHz
+    assert t == pytest.approx(3 / 0.064)
+    for d in (0.023, -0.041, 0.0171):
+        t = _common_spacing(36.0, [0.0, d])
+        assert 36.0 <= t <= 4 * 36.0 and _slip_rad(t, d) <= COHERENT_SLIP_RAD
+
+
 def test_stark_probe_signal_grows_with_field(demo_rig):
     chip = demo_rig.chip
     probe = ColumnProbe(chip, "d1", ("q4",), amplitude=0.7, repeats=40, merged=True)

@@ -27,11 +27,12 @@ What keeps the column-parallel nulls as good as pair-by-pair ones:
   those that respond strongly (small detuning) accumulate phase only over a shorter
   Ramsey window of their own (:func:`stark_windows`), so none is carried past the
   unwrapped range.
-* Resonant victims: K pulses amplify K-fold only for the victim the pulse spacing is
-  coherent for, so when a survey selects several (or one it is not tuned for), each is
-  nulled in a pass of its own, and a pass raises K as its null sharpens (curvature ∝ K²).
-  For another victim the K pulses may even cancel: one that shows no signal in the
-  column's survey is surveyed again alone, with a spacing of its own.
+* Resonant victims: K pulses amplify K-fold for the victims the train is coherent for
+  (pulse spacing and per-pulse phase step, :attr:`ColumnProbe.phase_step_rad`: usually
+  all of a column's resonant victims at once), and a pass raises K for all of them as
+  their nulls sharpen (curvature ∝ K²). A victim the train cannot be made coherent for
+  is nulled in a pass of its own; for it the K pulses may even cancel, so one that shows
+  no signal in the column's survey is surveyed again alone.
 """
 
 from __future__ import annotations
@@ -75,6 +76,9 @@ RING_MARGIN = 4.0
 STARK_PHASE_MAX = 1.5
 # Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
 STRONGEST_DB = -20.0
+#: A victim joins a joint resonant null pass only if its null lies within this many
+#: final ring radii (RING_MARGIN target errors) of zero (see _calibrate_pass).
+JOINT_NULL_SPAN = 2.0
 _RULES = VerdictRules(mismatch_pvalue=0.0)
 
 
@@ -551,9 +555,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     # ring (their own signal does not matter here; the ring only has to reach the
     # victims through the couplings).
     comp_centre = np.array([z for _, z in companions], dtype=complex)
-    comp_radius = np.array([min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
-                                0.45 * chip.amplitude_limit(chip.line_of(q).name) - abs(z))
-                            for q, z in companions])
+    comp_radius = np.array([_companion_radius(amp, chip, q, z) for q, z in companions])
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
@@ -613,7 +615,6 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     least = 4 * tones_n + 2
     n_ring = ring_points_for(tones_n, max(protocol.survey.ring_points, least))
     n_null = ring_points_for(tones_n, max(protocol.null.points_per_ring, least))
-    survey_shots = _shots_per_point(protocol.survey.shots, protocol.survey.ring_points, n_ring)
     null_shots = _shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
                                   n_null)
 
@@ -627,7 +628,16 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     rounds = stage_rounds = 0
     k_stages = 1
     if start is None:
-        measure(rings(np.zeros(V, complex), radius, n_ring), survey_shots, f"{tag}-survey", 0)
+        # The survey ring is centred on 0, not on the nulls: each null's error then
+        # carries |z*|·δκ/κ, and κ is told apart from the offset only by the centre point
+        # (every ring point of a victim has the same |z|). A long ring (many victims)
+        # repeats its centre so that it keeps the share of the shots it has in a ring of
+        # the protocol's length.
+        copies = max(1, round(n_ring / max(protocol.survey.ring_points, 1)))
+        pts0 = rings(np.zeros(V, complex), radius, n_ring)
+        pts0 = np.vstack([pts0[:1]] * (copies - 1) + [pts0])
+        measure(pts0, _shots_per_point(protocol.survey.shots, protocol.survey.ring_points,
+                                       n_ring + copies - 1), f"{tag}-survey", 0)
         est = fit()
         survey_time = _data_time(runner, rig)
         thr = 10 ** (protocol.survey.threshold_db / 20)
@@ -658,26 +668,38 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         say(f"{line}: K={K}, refining {V} victims from their current settings")
     handoff = []
     resurvey: list[str] = []
-    tuned = _tuned_victim(probe)
-    if split and not stark and start is None and V > 1:
-        # A resonant victim the pulse spacing is not tuned for sees K pulses add up with
+    coherent = np.array([not stark and probe.coherent(v) for v in victims])
+    handed = np.zeros(V, bool)
+    if split and not stark and start is None:
+        # A resonant victim the train is not coherent for sees K pulses add up with
         # whatever phase its detuning gives them, possibly cancelling: a survey fit
-        # without signal says nothing of its |X| then. It is surveyed again alone.
-        resurvey = [victims[i] for i in range(V)
-                    if i != tuned and not selected[i] and not est.estimate(i).accepted]
-    # K can be raised only for the victim the pulse spacing is coherent for: any other
-    # selection (several victims, or one the spacing is not tuned for) is nulled in
-    # passes of its own.
-    if (split and not stark and start is None and selected.any()
-            and (selected.sum() > 1 or tuned is None or not selected[tuned])):
+        # without signal says nothing of its |X| then. It is surveyed again alone; one
+        # selected is nulled in a pass of its own (K can be raised only for the others).
+        resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
+                    and not est.estimate(i).accepted and V > 1]
+        handed = selected & ~coherent
+        # Victims nulled in the same shots share one model, in which each one's tone
+        # leaks onto the others (couplings c_ik). Its rings circle its own null z*_k, so
+        # telling the aggressor's leak from c_ik·z*_k needs rings as wide as |z*_k|, and
+        # a null ring shrinks as 1/K to a few target errors: a victim whose null lies
+        # far beyond that would make the others' errors stop falling as K rises. Such
+        # a victim is nulled in a pass of its own; here its tone rings wide around its
+        # survey estimate, like a companion's, which keeps the others' models apart.
+        joint = selected & coherent
+        big = joint & (np.abs(centre) > JOINT_NULL_SPAN * RING_MARGIN * target)
+        if joint.sum() > 1 and big.any():
+            keep = joint & ~big
+            if not keep.any():
+                keep[int(np.argmax(joint))] = True
+            handed |= joint & ~keep
         handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K,
                     est.estimate(i).position_stderr * math.sqrt(_birge(est.estimate(i))))
-                   for i in range(V) if selected[i]]
+                   for i in range(V) if handed[i]]
+        selected &= ~handed
     searched[:] = selected
     budget = protocol.null.shot_budget
     spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
-    while (not handoff and selected.any() and rounds < protocol.null.max_rounds
-           and spent < budget):
+    while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
         rounds += 1
         est = fit()
         rad = np.zeros(V)
@@ -703,48 +725,55 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             elif selected[i]:
                 rad[i] = radius[i]
                 done[i] = False
+            elif handed[i]:
+                rad[i] = _companion_radius(amp, chip, victims[i], centre[i])
             else:
                 rad[i] = 0.0
         if done.all():
             break
         stage_rounds += 1
-        if (not stark and selected.sum() == 1 and tuned is not None and selected[tuned]
-                and est.estimate(tuned).accepted and stage_rounds >= (2 if k_stages == 1 else 1)):
-            # Raise K as the null sharpens (curvature ∝ K², so the error of z* ∝ 1/K at
-            # equal shots), as far as keeps the ring (radius ∝ 1/K) RING_MARGIN errors
-            # wide, at most ×4 per round and within the longest train. Only for a pass
-            # with one victim to null, the one the pulse spacing makes the rotations
-            # add up coherently for (for the others, K pulses do not amplify K-fold).
-            e = est.estimate(tuned)
+        raise_k = [i for i in range(V) if selected[i]]
+        if (not stark and raise_k and coherent[raise_k].all()
+                and all(est.estimate(i).accepted for i in raise_k)
+                and stage_rounds >= (2 if k_stages == 1 else 1)):
+            # Raise K as the nulls sharpen (curvature ∝ K², so the error of z* ∝ 1/K at
+            # equal shots), as far as keeps every ring (radius ∝ 1/K) RING_MARGIN errors
+            # wide, at most ×4 per round and within the longest train. Only for victims
+            # the train is coherent for (for the others K pulses do not amplify K-fold).
             k_cur = probe.repeats
-            k_new = int(k_cur * rad[tuned] / (RING_MARGIN * e.position_stderr
-                                                * math.sqrt(_birge(e))))
+            k_new = min(int(k_cur * rad[i] / (RING_MARGIN * est.estimate(i).position_stderr
+                                              * math.sqrt(_birge(est.estimate(i)))))
+                        for i in raise_k)
             k_new = min(k_new, 4 * k_cur, k_max)
             if k_new > k_cur:
                 probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
                                     methods=tuple(methods), shape=shape, merged=False,
                                     companions=comp_names)
-                # The rise rule at the curvature the new K gives (κ ∝ K²): the ring
+                # The rise rule at the curvature the new K gives (κ ∝ K²): a ring
                 # shrinks as 1/K unless it was held at the cap, when it shrinks less.
-                rad[tuned] = min(math.sqrt(RISE_PROBABILITY / max(
-                    e.curvature * (k_new / k_cur) ** 2, 1e-12)), cap[tuned])
+                for i in raise_k:
+                    rad[i] = min(math.sqrt(RISE_PROBABILITY / max(
+                        est.estimate(i).curvature * (k_new / k_cur) ** 2, 1e-12)), cap[i])
                 stage_rounds, k_stages = 0, k_stages + 1
-                say(f"{line}: K raised to {k_new} for {victims[tuned]}")
+                say(f"{line}: K raised to {k_new} for "
+                    f"{', '.join(victims[i] for i in raise_k)}")
         pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
         measure(pts, null_shots, f"{tag}-null{rounds:02d}", rounds)
         spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
     est = fit()
     first = fit(K)  # survey-stage victims (and the couplings) from the points at the first K
-    if est.estimate(int(np.argmax(selected))).accepted is False:
-        est = first  # a raised K that did not yield a fit falls back on the first
+    # A victim whose fit at a raised K failed falls back on the points at the first K.
+    final = [est.estimate(i) if selected[i] and est.estimate(i).accepted
+             else first.estimate(i) for i in range(V)]
+    at_final_k = [selected[i] and est.estimate(i).accepted for i in range(V)]
     now = _data_time(runner, rig)
     result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
                              first.fit.couplings_stderr)
     for i, v in enumerate(victims):
-        if (handoff and selected[i]) or v in resurvey:
+        if handed[i] or v in resurvey:
             continue  # nulled, or surveyed again, in passes of their own
-        e = est.estimate(i) if selected[i] else first.estimate(i)
-        reps = probe.repeats if selected[i] and est is not first else K
+        e = final[i]
+        reps = probe.repeats if at_final_k[i] else K
         nshots = int(np.vstack(shots_all)[:, i].sum())
         if e.accepted:
             x = -e.z_star / amp
@@ -769,7 +798,6 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             "tone_im": (("point", "companion"), T.imag, {
                 "units": "fraction of full scale", "long_name": "same, imaginary part"}),
         }
-    final = [est.estimate(i) if selected[i] else first.estimate(i) for i in range(V)]
     kap = np.array([e.curvature if e.accepted else math.nan for e in final])
     kap_err = np.array([e.curvature_stderr * math.sqrt(_birge(e)) if e.accepted else math.nan
                         for e in final])
@@ -829,12 +857,10 @@ def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
     return groups + ([stark] if stark else [])
 
 
-def _tuned_victim(probe: ColumnProbe) -> int | None:
-    """Index of the victim whose transition the probe's pulse spacing is coherent for."""
-    for m in ("leakage", "rotation"):
-        if m in probe.methods:
-            return probe.methods.index(m)
-    return None
+def _companion_radius(amp: float, chip: Chip, victim: str, centre: complex) -> float:
+    """Ring radius of a tone that varies only to reach the other victims (a companion)."""
+    return min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
+               0.45 * chip.amplitude_limit(chip.line_of(victim).name) - abs(centre))
 
 
 def _shots_per_point(nominal: int, nominal_points: int, points: int) -> int:

@@ -22,15 +22,18 @@ Detuning windows: 60 MHz by default for both — about twice the spectral width
 1/(2πσ) of the 8 ns-σ Gaussian pulses used here, beyond which a resonant probe's
 signal falls off quickly (common practice; adjustable in the protocol file).
 
-Amplification: the train repeats the pulse K times with a spacing that makes the
-leaked drive add in phase at the transition the method watches (spacing·|f_j − ν| an
-integer), so the rotation grows like K·|w| and the signal near the null like K²|w|².
+Amplification: the train repeats the pulse K times, each pulse's tones advanced in phase
+so that the leaked drive adds in phase at the transition a reference victim watches, and
+with a spacing at which every other resonant victim's detuning from it slips by whole
+cycles (:attr:`ColumnProbe.phase_step_rad`): the rotation of each grows like K·|w| and
+its signal near the null like K²|w|², all in the same shots.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Literal
 
 import numpy as np
@@ -96,14 +99,39 @@ def pi_pulse_amplitude(chip: Chip, qubit: str, shape: PulseShape, angle: float =
     return angle / (2 * math.pi * rabi_ghz * shape.area_ns)
 
 
-def _coherent_spacing(duration_ns: float, gap_ns: float, detuning_ghz: float) -> float:
-    """Shortest spacing ≥ duration+gap with spacing·|detuning| an integer."""
-    base = duration_ns + gap_ns
-    d = abs(detuning_ghz)
-    if d * base < 0.05:  # the phase slip per pulse is already tiny
-        return base
-    n = math.ceil(base * d - 1e-9)
-    return n / d
+#: Largest phase slip per pulse (rad) at which a resonant victim counts as amplified
+#: coherently: 0.2 % of a cycle keeps 100 pulses within 6 % of K-fold (|Σ e^{ikε}|/K).
+COHERENT_SLIP_RAD = 2 * math.pi * 0.002
+#: Longest pulse spacing tried for making several resonant victims coherent at once, in
+#: multiples of the shortest (longer spacings lengthen the train for the same K).
+LONGEST_SPACING_FACTOR = 4.0
+
+
+def _slip_rad(spacing_ns: float, detuning_ghz: float) -> float:
+    """Phase slip per pulse (rad, in [0, π]) of a drive ``detuning_ghz`` off at ``spacing_ns``."""
+    cycles = spacing_ns * detuning_ghz
+    return abs(2 * math.pi * (cycles - round(cycles)))
+
+
+def _common_spacing(base_ns: float, detunings_ghz: list[float]) -> float:
+    """Shortest spacing ≥ ``base_ns`` at which every detuning slips ≤ COHERENT_SLIP_RAD.
+
+    Candidates are the whole-cycle spacings n/|δ| of each detuning up to
+    LONGEST_SPACING_FACTOR × ``base_ns``; if none suits them all, the one with the
+    smallest worst slip (the victims that still slip are then amplified less, and the
+    calibration nulls them in passes of their own).
+    """
+    top = LONGEST_SPACING_FACTOR * base_ns
+    cands = {base_ns}
+    for d in detunings_ghz:
+        if abs(d) * top >= 1:
+            n0 = max(1, math.ceil(base_ns * abs(d) - 1e-9))
+            cands.update(n / abs(d) for n in range(n0, int(top * abs(d)) + 1))
+    best = min(cands, key=lambda t: (max((_slip_rad(t, d) for d in detunings_ghz),
+                                          default=0.0) > COHERENT_SLIP_RAD, t))
+    if max((_slip_rad(best, d) for d in detunings_ghz), default=0.0) > COHERENT_SLIP_RAD:
+        best = min(cands, key=lambda t: (max(_slip_rad(t, d) for d in detunings_ghz), t))
+    return best
 
 
 @dataclass(frozen=True)
@@ -233,21 +261,58 @@ class ColumnProbe:
         """The aggressor frequency f_j: its own qubit's f01."""
         return self.chip.qubit(self.chip.line(self.aggressor).qubit).f01_ghz
 
-    @property
-    def spacing_ns(self) -> float:
-        """Pulse spacing: coherent at the transition of the most sensitive victim."""
+    @cached_property
+    def _train_plan(self) -> tuple[float, float, dict[str, float]]:
+        """(spacing ns, phase step rad per pulse, phase slip rad per pulse per victim)."""
         f = self.freq_ghz
-        best = None
+        detunings = {}
         for v, m in zip(self.victims, self.methods, strict=True):
             q = self.chip.qubit(v)
             if m == "leakage":
-                best = f - q.f12_ghz
-                break
-            if m == "rotation" and best is None:
-                best = f - q.f01_ghz
-        if best is None:
-            return self.shape.duration_ns + self.gap_ns
-        return _coherent_spacing(self.shape.duration_ns, self.gap_ns, best)
+                detunings[v] = f - q.f12_ghz
+            elif m == "rotation":
+                detunings[v] = f - q.f01_ghz
+        base = self.shape.duration_ns + self.gap_ns
+        if not detunings:
+            return base, 0.0, {}
+        # The reference: a leakage victim if any (the most sensitive signal), else the
+        # first rotation victim. Its phase is advanced exactly; the spacing only has to
+        # make the others' detunings from it whole cycles.
+        leak = [v for v, m in zip(self.victims, self.methods, strict=True) if m == "leakage"]
+        ref = detunings[leak[0] if leak else next(iter(detunings))]
+        spacing = _common_spacing(base, [d - ref for d in detunings.values()])
+        slips = {v: _slip_rad(spacing, d - ref) for v, d in detunings.items()}
+        step = 2 * math.pi * ref * spacing
+        return spacing, math.remainder(step, 2 * math.pi), slips
+
+    @property
+    def spacing_ns(self) -> float:
+        """Pulse spacing (ns): see :attr:`phase_step_rad`."""
+        return self._train_plan[0]
+
+    @property
+    def phase_step_rad(self) -> float:
+        """Phase (rad) added to every tone of pulse k+1 over pulse k.
+
+        In the frame of a resonant victim, pulse k's leaked drive carries the phase
+        φ_k − 2π·δ·t_k (δ = f_j − ν, ν the transition it watches; the convention of
+        :mod:`xtalkcal.timeline`). Advancing the phase of all of pulse k's tones
+        (aggressor and cancellation alike, so the field at every qubit only gains a
+        common phase and every null stays where it is) by 2π·δ_ref·t_k makes one
+        reference victim's pulses
+        add up in phase at any spacing; the spacing is then chosen so that the other
+        resonant victims' detunings from the reference are whole cycles per pulse
+        (``_common_spacing``), and all of them amplify K-fold in the same shots.
+        """
+        return self._train_plan[1]
+
+    def slip_rad(self, victim: str) -> float:
+        """Phase slip per pulse (rad) of a resonant victim's leaked drive, in [0, π]."""
+        return self._train_plan[2].get(victim, 0.0)
+
+    def coherent(self, victim: str) -> bool:
+        """Whether a resonant victim's K pulses add up in phase (its slip ≤ the tolerance)."""
+        return victim in self._train_plan[2] and self.slip_rad(victim) <= COHERENT_SLIP_RAD
 
     @property
     def has_stark(self) -> bool:
@@ -266,14 +331,16 @@ class ColumnProbe:
             return self.repeats * self.shape.duration_ns
         return (self.repeats - 1) * self.spacing_ns + self.shape.duration_ns
 
-    def _train_slots(self) -> list[tuple[float, float, Envelope]]:
+    def _train_slots(self) -> list[tuple[float, float, Envelope, float]]:
+        """(start ns, length ns, envelope, phase rad) of each aggressor pulse."""
         t0 = self.train_start_ns()
         if self.merged:
             ramp = min(2 * self.shape.sigma_ns, 0.5 * self.train_ns())
-            return [(t0, self.train_ns(), Envelope("flattop", ramp_ns=ramp))]
+            return [(t0, self.train_ns(), Envelope("flattop", ramp_ns=ramp), 0.0)]
         env = self.shape.envelope
-        return [(t0 + k * self.spacing_ns, self.shape.duration_ns, env)
-                for k in range(self.repeats)]
+        step = self.phase_step_rad
+        return [(t0 + k * self.spacing_ns, self.shape.duration_ns, env,
+                 math.remainder(k * step, 2 * math.pi)) for k in range(self.repeats)]
 
     def duration_ns(self) -> float:
         """End of the last pulse (readout time)."""
@@ -309,7 +376,7 @@ class ColumnProbe:
         coef = a / (2 * d * (d - a))  # δ = Ω²·coef
         lo, hi = self.stark_window(victim)
         e2 = 0.0
-        for start, length, env in self._train_slots():
+        for start, length, env, _ in self._train_slots():
             t = np.linspace(0, length, 4001)
             inside = (t + start >= lo) & (t + start <= hi)
             e2 += float(np.trapezoid(np.abs(envelope_values(env, length, t)) ** 2 * inside, t))
@@ -357,14 +424,14 @@ class ColumnProbe:
             for theta, psi in [(t, c) for t in self.quadratures for c in self.phase_cycle]:
                 prep, post = self._prep_and_analysis(theta, psi)
                 train: list[Tone] = []
-                for start, length, env in slots:
+                for start, length, env, ph in slots:
                     if aggressor_on and self.amplitude > 0:
                         train.append(Tone(self.aggressor, start, length, f,
-                                          self.amplitude, 0.0, env))
+                                          self.amplitude, ph, env))
                     for line, zz in list(zip(lines, z[p], strict=True)) + list(self.fixed):
                         if zz != 0:
                             train.append(Tone(line, start, length, f, abs(zz),
-                                              math.atan2(zz.imag, zz.real), env))
+                                              math.atan2(zz.imag, zz.real) + ph, env))
                 out.append(Timeline(tuple(prep + train + post), readout,
                                     readout_ns=self.duration_ns(),
                                     label=f"{label}p{p}q{theta:.3f}c{psi:.3f}"))
