@@ -263,14 +263,14 @@ def test_leakage_null_raises_the_amplification_as_it_sharpens(d4_result):
 
 
 @pytest.mark.parametrize("seed", [11, 12, 16])
-def test_resonant_victim_the_spacing_is_not_tuned_for_is_not_missed(seed):
-    """d7 has three rotation victims; the column's pulse spacing is coherent for q0 only.
-    For q6 (truly −29 dB) the two pulses of the survey add with its own detuning's phase
-    and may cancel (seed 12: no signal at all). It must be surveyed again with a spacing
-    of its own and nulled, as pair by pair would, and its stated error must be honest:
-    its own pass starts from a survey made at another spacing, whose curvature understates
-    its own, so the first ring rises far up the sin² fringe (seed 16: 7σ off before the
-    pass learnt not to stop on such a ring)."""
+def test_resonant_victim_of_a_shared_train_is_not_missed(seed):
+    """d7 has three rotation victims (30, 40 MHz below and 20 MHz above d7). With a pulse
+    spacing coherent for q0 only, q6's (truly −29 dB) two survey pulses could cancel
+    (seed 12: no signal at all). The train is now coherent for all three; q6 must be
+    found and nulled, and its stated error must be honest. Its null is far larger than
+    the others', so it gets a pass of its own, which starts from the shared survey: the
+    first ring can rise far up the sin² fringe (seed 16: 7σ off before the pass learnt
+    not to stop on such a ring)."""
     import dataclasses
 
     rig = SimRig(demo_device_path(), seed=seed, drift=False)

@@ -828,7 +828,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         attrs={"aggressor": line, "frequency_ghz": f, "repeats": probe.repeats,
                "aggressor_amplitude": amp,
                "methods": ",".join(methods), "rig": rig.describe(),
-               "spacing_ns": probe.spacing_ns},
+               "spacing_ns": probe.spacing_ns, "phase_step_rad": probe.phase_step_rad},
     )
     return _Handoff(handoff, resurvey)
 
