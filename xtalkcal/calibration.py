@@ -675,8 +675,9 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # whatever phase its detuning gives them, possibly cancelling: a survey fit
         # without signal says nothing of its |X| then. It is surveyed again alone; one
         # selected is nulled in a pass of its own (K can be raised only for the others).
-        resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
-                    and not est.estimate(i).accepted and V > 1]
+        if V > 1:
+            resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
+                        and not est.estimate(i).accepted]
         handed = selected & ~coherent
         # Victims nulled in the same shots share one model, in which each one's tone
         # leaks onto the others (couplings c_ik). Its rings circle its own null z*_k, so

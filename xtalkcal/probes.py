@@ -127,11 +127,9 @@ def _common_spacing(base_ns: float, detunings_ghz: list[float]) -> float:
         if abs(d) * top >= 1:
             n0 = max(1, math.ceil(base_ns * abs(d) - 1e-9))
             cands.update(n / abs(d) for n in range(n0, int(top * abs(d)) + 1))
-    best = min(cands, key=lambda t: (max((_slip_rad(t, d) for d in detunings_ghz),
-                                          default=0.0) > COHERENT_SLIP_RAD, t))
-    if max((_slip_rad(best, d) for d in detunings_ghz), default=0.0) > COHERENT_SLIP_RAD:
-        best = min(cands, key=lambda t: (max(_slip_rad(t, d) for d in detunings_ghz), t))
-    return best
+    worst = {t: max((_slip_rad(t, d) for d in detunings_ghz), default=0.0) for t in cands}
+    good = [t for t in cands if worst[t] <= COHERENT_SLIP_RAD]
+    return min(good) if good else min(cands, key=lambda t: (worst[t], t))
 
 
 @dataclass(frozen=True)
@@ -299,10 +297,10 @@ class ColumnProbe:
         :mod:`xtalkcal.timeline`). Advancing the phase of all of pulse k's tones
         (aggressor and cancellation alike, so the field at every qubit only gains a
         common phase and every null stays where it is) by 2π·δ_ref·t_k makes one
-        reference victim's pulses
-        add up in phase at any spacing; the spacing is then chosen so that the other
-        resonant victims' detunings from the reference are whole cycles per pulse
-        (``_common_spacing``), and all of them amplify K-fold in the same shots.
+        reference victim's pulses add up in phase at any spacing; the spacing is then
+        chosen so that the other resonant victims' detunings from the reference are
+        whole cycles per pulse (``_common_spacing``), and all of them amplify K-fold in
+        the same shots.
         """
         return self._train_plan[1]
 
