@@ -13,7 +13,9 @@ Null search: rounds of rings around each victim's current estimate, at the radiu
 where the signal rises by a set amount above the floor (information grows with the
 radius until the signal saturates), refitted on all points of the pass, until the
 null's error stays below the protocol's target residual with 99 % probability, or
-the rounds or the shot budget run out.
+the rounds or the shot budget run out. A victim selected on its survey's error bar
+alone (|X| + 2σ at the threshold) that a ring at a raised K shows to lie below the
+threshold is no longer searched.
 
 What keeps the column-parallel nulls as good as pair-by-pair ones:
 
@@ -625,8 +627,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error| then
     # stays below the target residual with ≥ 99 % probability (Rayleigh tail e^{−k²/2}).
     target = 10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE
-    rounds = stage_rounds = 0
-    k_stages = 1
+    rounds = 0
     if start is None:
         # The survey ring is centred on 0, not on the nulls: each null's error then
         # carries |z*|·δκ/κ, and κ is told apart from the offset only by the centre point
@@ -664,7 +665,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         rad0 = np.minimum(np.asarray(start.radii, dtype=float), radius)
         measure(rings(centre, rad0, n_null), null_shots, f"{tag}-null00", 1)
         survey_time = _data_time(runner, rig)
-        rounds = stage_rounds = 1
+        rounds = 1
         say(f"{line}: K={K}, refining {V} victims from their current settings")
     handoff = []
     resurvey: list[str] = []
@@ -686,8 +687,12 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # far beyond that would make the others' errors stop falling as K rises. Such
         # a victim is nulled in a pass of its own; here its tone rings wide around its
         # survey estimate, like a companion's, which keeps the others' models apart.
+        # Judged on the survey's lower 2σ bound: a victim surveyed with a wide error (its
+        # K set by another) is not sent away on noise alone.
         joint = selected & coherent
-        big = joint & (np.abs(centre) > JOINT_NULL_SPAN * RING_MARGIN * target)
+        sigma0 = np.array([est.estimate(i).position_stderr * math.sqrt(_birge(est.estimate(i)))
+                           if est.estimate(i).accepted else 0.0 for i in range(V)])
+        big = joint & (np.abs(centre) - 2 * sigma0 > JOINT_NULL_SPAN * RING_MARGIN * target)
         if joint.sum() > 1 and big.any():
             keep = joint & ~big
             if not keep.any():
@@ -700,9 +705,24 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     searched[:] = selected
     budget = protocol.null.shot_budget
     spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
+    # Victims selected only because their survey was imprecise (|X| + 2σ at the
+    # threshold), which the rings at a raised K have since shown to lie below it: no
+    # longer searched; their measurement at that K is kept (estimate, K, time).
+    cleared: dict[int, tuple[Any, int, float]] = {}
     while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
         rounds += 1
         est = fit()
+        if start is None and rounds >= 2:
+            for i in np.flatnonzero(selected):
+                e = est.estimate(i)
+                if e.accepted and victims[i] not in force and abs(e.z_star) / amp + 2 * (
+                        e.position_stderr * math.sqrt(_birge(e)) / amp) < thr:
+                    selected[i] = False
+                    cleared[int(i)] = (e, probe.repeats, _data_time(runner, rig))
+                    say(f"{line}: {victims[i]} below {protocol.survey.threshold_db:g} dB "
+                        f"at K={probe.repeats}, not nulled")
+            if not selected.any():
+                break
         rad = np.zeros(V)
         done = np.ones(V, bool)
         for i in range(V):
@@ -732,20 +752,24 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 rad[i] = 0.0
         if done.all():
             break
-        stage_rounds += 1
         raise_k = [i for i in range(V) if selected[i]]
         if (not stark and raise_k and coherent[raise_k].all()
-                and all(est.estimate(i).accepted for i in raise_k)
-                and stage_rounds >= (2 if k_stages == 1 else 1)):
-            # Raise K as the nulls sharpen (curvature ∝ K², so the error of z* ∝ 1/K at
-            # equal shots), as far as keeps every ring (radius ∝ 1/K) RING_MARGIN errors
-            # wide, at most ×4 per round and within the longest train. Only for victims
-            # the train is coherent for (for the others K pulses do not amplify K-fold).
+                and all(est.estimate(i).accepted for i in raise_k)):
+            # Raise K as the nulls sharpen, from the survey's estimates on (curvature ∝
+            # K², so the error of z* ∝ 1/K at equal shots): as far as keeps every ring
+            # (radius ∝ 1/K) RING_MARGIN errors wide, at most ×4 per round, or — if that
+            # is more — to the K that keeps a null up to the strongest crosstalk
+            # unambiguous for each victim being nulled (the survey's K was set by the
+            # column's most responsive victim, which may be nulled elsewhere); within
+            # the longest train. Only for victims the train is coherent for (for the
+            # others K pulses do not amplify K-fold).
             k_cur = probe.repeats
-            k_new = min(int(k_cur * rad[i] / (RING_MARGIN * est.estimate(i).position_stderr
-                                              * math.sqrt(_birge(est.estimate(i)))))
-                        for i in raise_k)
-            k_new = min(k_new, 4 * k_cur, k_max)
+            k_new = min(max(min(int(k_cur * rad[i] / (
+                RING_MARGIN * est.estimate(i).position_stderr
+                * math.sqrt(_birge(est.estimate(i))))), 4 * k_cur),
+                int((math.pi / 4) / probe.expected_rotation_per_pulse(victims[i], STRONGEST_DB)))
+                for i in raise_k)
+            k_new = min(k_new, k_max)
             if k_new > k_cur:
                 probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
                                     methods=tuple(methods), shape=shape, merged=False,
@@ -755,7 +779,6 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 for i in raise_k:
                     rad[i] = min(math.sqrt(RISE_PROBABILITY / max(
                         est.estimate(i).curvature * (k_new / k_cur) ** 2, 1e-12)), cap[i])
-                stage_rounds, k_stages = 0, k_stages + 1
                 say(f"{line}: K raised to {k_new} for "
                     f"{', '.join(victims[i] for i in raise_k)}")
         pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
@@ -775,13 +798,15 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             continue  # nulled, or surveyed again, in passes of their own
         e = final[i]
         reps = probe.repeats if at_final_k[i] else K
+        when = now if selected[i] else survey_time
+        if i in cleared:
+            e, reps, when = cleared[i]
         nshots = int(np.vstack(shots_all)[:, i].sum())
         if e.accepted:
             x = -e.z_star / amp
             cov = np.asarray(e.covariance) * _birge(e) / amp**2
             result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
-                                           bool(selected[i]), nshots, reps,
-                                           now if selected[i] else survey_time,
+                                           bool(selected[i]), nshots, reps, when,
                                            "null" if selected[i] else "survey", tag,
                                            float(e.reduced_chi2)))
         else:
