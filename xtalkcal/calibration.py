@@ -49,7 +49,7 @@ import numpy as np
 import xarray as xr
 
 from xtalkcal.chip import Chip
-from xtalkcal.fit import ColumnNullFit, VerdictRules, fit_paraboloid_column
+from xtalkcal.fit import ColumnNullFit, VerdictRules, fit_paraboloid_column, linearise_fringe
 from xtalkcal.probes import ColumnProbe, PulseShape, choose_method
 from xtalkcal.protocol import Protocol
 from xtalkcal.rig import Rig
@@ -603,8 +603,17 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         groups = np.zeros(Z.shape, dtype=np.int64)
         groups[stark_rows] = rnd
         tones = np.vstack(comp_all).T[:, use] if comp_names else None
-        return _ColumnFit(fit_paraboloid_column(Z, S, E, groups=groups, tones=tones,
-                                                rules=_RULES))
+        col = fit_paraboloid_column(Z, S, E, groups=groups, tones=tones, rules=_RULES)
+        # Resonant signals saturate as sin²: refit them unfolded about the floors just
+        # found (linearise_fringe), else an off-centre ring pulls each null towards its
+        # centre by several σ once K is raised.
+        rows = [i for i in range(V) if not stark_rows[i] and col.estimates[i].accepted]
+        if rows:
+            S, E = S.copy(), E.copy()
+            floors = np.array([col.estimates[i].floor for i in rows])[:, None]
+            S[rows], E[rows] = linearise_fringe(S[rows], E[rows], floors)
+            col = fit_paraboloid_column(Z, S, E, groups=groups, tones=tones, rules=_RULES)
+        return _ColumnFit(col)
 
     searched = np.zeros(V, bool)  # victims whose null is being searched
     stark_rows = np.array([m == "stark" for m in methods])
