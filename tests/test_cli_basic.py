@@ -60,3 +60,14 @@ def test_export_chip_matches_device(tmp_path, capsys, demo_device):
     chip = load_chip(out)
     assert chip.qubits == demo_device.chip().qubits
     assert [p.name for p in out.parent.iterdir()] == ["chip.toml"]  # no temp file left
+
+
+def test_built_in_protocol_defaults_are_those_of_full_toml():
+    """The CLI falls back on the built-in defaults when no protocol file is given (an
+    installed package need not carry protocols/): they must be full.toml's."""
+    import dataclasses
+
+    from xtalkcal.protocol import default_protocol, load_protocol
+
+    a, b = default_protocol(), load_protocol("protocols/full.toml")
+    assert dataclasses.replace(a, source=b.source) == b

@@ -134,10 +134,9 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
 def _cmd_calibrate(args: argparse.Namespace) -> int:
     from xtalkcal.calibration import calibrate_chip
     from xtalkcal.export import dumps, format_table
-    from xtalkcal.protocol import load_protocol
     from xtalkcal.sweep import BatchRunner
 
-    protocol = load_protocol(args.protocol)
+    protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
     out = Path(args.output)
     runner = BatchRunner(rig, args.record, progress=_progress_bar(args))
@@ -260,10 +259,9 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     from simulated_device import SimRig, demo_device_path
     from xtalkcal.campaign import run_campaign
     from xtalkcal.export import format_table
-    from xtalkcal.protocol import load_protocol
     from xtalkcal.report import write_report
 
-    protocol = load_protocol(args.protocol)
+    protocol = _load_protocol(args.protocol)
     rig = SimRig(demo_device_path(), seed=args.seed, drift=True)
     out = Path(args.out)
     if out.exists() and any(out.iterdir()) and not args.force:
@@ -304,10 +302,9 @@ def _cmd_due(args: argparse.Namespace) -> int:
 
     from xtalkcal.drift import Schedule
     from xtalkcal.ledger import Ledger
-    from xtalkcal.protocol import load_protocol
     from xtalkcal.recheck import run_due
 
-    protocol = load_protocol(args.protocol)
+    protocol = _load_protocol(args.protocol)
     if not Path(args.ledger).exists():
         raise XtalkcalConfigError("command line", "--ledger",
                                   f"{args.ledger} does not exist; run `xtalkcal calibrate "
@@ -381,9 +378,11 @@ def _atomic_write(path: Path, text: str) -> None:
         raise
 
 
-def _default_protocol() -> str:
-    here = Path(__file__).resolve().parent.parent / "protocols" / "full.toml"
-    return str(here)
+def _load_protocol(path: str | None):
+    """The protocol file given, or the built-in defaults (those of protocols/full.toml)."""
+    from xtalkcal.protocol import default_protocol, load_protocol
+
+    return load_protocol(path) if path else default_protocol()
 
 
 class _DefaultsFormatter(argparse.HelpFormatter):
@@ -418,8 +417,9 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("files", nargs="+", help="TOML files to validate")
 
     k = add("calibrate", help="survey the matrix and null every significant pair")
-    k.add_argument("--protocol", default=_default_protocol(),
-                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
+    k.add_argument("--protocol", default=None,
+                   help="protocol file (TOML) (default: the built-in defaults, those of "
+                        "protocols/full.toml)")
     k.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     k.add_argument("--seed", type=int, default=None, help="simulator seed")
@@ -433,8 +433,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = add("demo", help="the whole job on the bundled simulated chip, with a report")
     d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
-    d.add_argument("--protocol", default=_default_protocol(),
-                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
+    d.add_argument("--protocol", default=None,
+                   help="protocol file (TOML) (default: the built-in defaults, those of "
+                        "protocols/full.toml)")
     d.add_argument("--seed", type=int, default=None, help="simulator seed")
     d.add_argument("--aggressors", default=None,
                    help="comma-separated aggressor lines (default: all)")
@@ -451,8 +452,9 @@ def build_parser() -> argparse.ArgumentParser:
     u = add("due", help="re-check whatever is due now and exit (for cron)")
     u.add_argument("--ledger", required=True, help="the chip's ledger directory")
     u.add_argument("--schedule", required=True, help="schedule file (JSON; created if new)")
-    u.add_argument("--protocol", default=_default_protocol(),
-                   help="protocol file (TOML) (default: protocols/full.toml of xtalkcal)")
+    u.add_argument("--protocol", default=None,
+                   help="protocol file (TOML) (default: the built-in defaults, those of "
+                        "protocols/full.toml)")
     u.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     u.add_argument("--seed", type=int, default=None, help="simulator seed")

@@ -32,11 +32,11 @@ are those of ``protocols/full.toml``. Field by field::
 
     [recheck]                    # scheduled drift re-checks
     tolerance_db = -45.0         # residual |X + r| allowed before recalibrating
-    interval_hours = 6.0         # starting interval
+    interval_hours = 12.0        # starting interval
     min_interval_hours = 0.5
     max_interval_hours = 48.0
     points = 4                   # ring points per re-checked pair (plus the centre)
-    shots_per_point = 8000
+    shots_per_point = 2000
 """
 
 from __future__ import annotations
@@ -56,6 +56,7 @@ __all__ = [
     "RecheckSettings",
     "Protocol",
     "load_protocol",
+    "default_protocol",
     "protocol_from_dict",
 ]
 
@@ -90,11 +91,11 @@ class NullSettings:
 @dataclass(frozen=True)
 class RecheckSettings:
     tolerance_db: float = -45.0
-    interval_hours: float = 6.0
+    interval_hours: float = 12.0
     min_interval_hours: float = 0.5
     max_interval_hours: float = 48.0
     points: int = 4
-    shots_per_point: int = 8000
+    shots_per_point: int = 2000
 
 
 @dataclass(frozen=True)
@@ -122,6 +123,12 @@ def load_protocol(path: str | Path) -> Protocol:
     """Load and validate a protocol file; every problem in it is reported at once."""
     data, source = load_toml(path)
     return protocol_from_dict(data, source=source)
+
+
+def default_protocol() -> Protocol:
+    """The built-in defaults, those of ``protocols/full.toml`` (which need not be installed)."""
+    return protocol_from_dict({"format": PROTOCOL_FORMAT, "version": PROTOCOL_VERSION,
+                               "name": "full"}, source="built-in defaults")
 
 
 def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Protocol:
@@ -179,11 +186,11 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
     rt = top.table("recheck", None)
     recheck = RecheckSettings(
         tolerance_db=rt.number("tolerance_db", -45.0, lo=-120.0, hi=0.0, unit="dB"),
-        interval_hours=rt.number("interval_hours", 6.0, lo=0.0, lo_open=True, unit="h"),
+        interval_hours=rt.number("interval_hours", 12.0, lo=0.0, lo_open=True, unit="h"),
         min_interval_hours=rt.number("min_interval_hours", 0.5, lo=0.0, lo_open=True, unit="h"),
         max_interval_hours=rt.number("max_interval_hours", 48.0, lo=0.0, lo_open=True, unit="h"),
         points=rt.integer("points", 4, lo=3, hi=64),
-        shots_per_point=rt.integer("shots_per_point", 8000, lo=10, hi=10_000_000),
+        shots_per_point=rt.integer("shots_per_point", 2000, lo=10, hi=10_000_000),
     )
     lo_h, hi_h = recheck.min_interval_hours, recheck.max_interval_hours
     if valid(lo_h, recheck.interval_hours, hi_h) and not lo_h <= recheck.interval_hours <= hi_h:
