@@ -72,8 +72,9 @@ def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
 
 def test_a_broken_recheck_recalibrates_the_column(tmp_path):
     """A stored null moved far off (as after a wrong edit or a jump of the chip): the
-    re-check finds the landscape broken and recalibrates the column, whose fresh null is
-    close to the simulator's truth again; the pair restarts at the first interval."""
+    re-check finds the landscape broken, repeats itself once to confirm, and recalibrates
+    the column, whose fresh null is close to the simulator's truth again; the pair
+    restarts at the first interval."""
     import dataclasses
     import math
 
@@ -97,10 +98,48 @@ def test_a_broken_recheck_recalibrates_the_column(tmp_path):
     schedule_after_calibration(schedule, res, rig.now())
     rig.wait(proto.recheck.interval_hours * 3600.0 + 1.0)
     first = run_due(rig, proto, led, schedule)
-    (c,) = [c for c in first.checked if c.victim == "q5"]
+    c, repeat = [c for c in first.checked if c.victim == "q5"]
     assert c.outcome.decision is RecheckDecision.BROKEN
+    assert repeat.outcome.decision is RecheckDecision.BROKEN
     assert first.recalibrated == ["d4"]
     fresh = led.current()[("d4", "q5")]
     truth = rig.true_crosstalk("q5", "d4", fresh.frequency_ghz)
     assert 20 * math.log10(abs(fresh.value - truth)) < -45
     assert schedule.slot(("d4", "q5")).interval_h >= proto.recheck.interval_hours
+
+
+def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, monkeypatch):
+    """One re-check judged broken by chance (here: forced), its repeat within: the column
+    is not recalibrated, and both re-checks are in the ledger."""
+    import xtalkcal.recheck as rc
+    from simulated_device import SimRig, demo_device_path
+    from xtalkcal.calibration import calibrate_chip, ledger_entries, ledger_sweeps
+    from xtalkcal.drift import RecheckDecision, Schedule
+    from xtalkcal.protocol import protocol_from_dict
+
+    proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
+                                "survey": {"shots": 500}, "null": {"max_rounds": 3}})
+    rig = SimRig(demo_device_path(), seed=5, drift=False)
+    res = calibrate_chip(rig, proto, aggressors=["d4"])
+    led = Ledger.create(tmp_path / "ledger", chip=rig.chip.name)
+    led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
+    schedule = Schedule(proto.recheck)
+    rc.schedule_after_calibration(schedule, res, rig.now())
+    rig.wait(proto.recheck.interval_hours * 3600.0 + 1.0)
+    real = rc.analyse_recheck
+    calls = []
+
+    def first_one_broken(*a, **k):
+        out = real(*a, **k)
+        calls.append(out)
+        if len(calls) == 1:
+            import dataclasses
+            return dataclasses.replace(out, decision=RecheckDecision.BROKEN)
+        return out
+
+    monkeypatch.setattr(rc, "analyse_recheck", first_one_broken)
+    rep = rc.run_due(rig, proto, led, schedule)
+    decisions = [c.outcome.decision for c in rep.checked if c.victim == "q5"]
+    assert decisions[0] is RecheckDecision.BROKEN and decisions[1] is RecheckDecision.WITHIN
+    assert rep.recalibrated == []
+    assert [e.kind for e in led.history("d4", "q5")].count("recheck") == 2
