@@ -13,8 +13,8 @@ are those of ``protocols/full.toml``. Field by field::
     aggressor_fraction = 0.8     # aggressor peak amplitude as a fraction of its line's limit
 
     [methods]                    # which error signal per pair (xtalkcal.probes)
-    leakage_window_mhz = 60.0    # |f_aggressor − f12_victim| within this → leakage
-    rotation_window_mhz = 60.0   # |f_aggressor − f01_victim| within this → rotation
+    leakage_window_mhz = 35.0    # |f_aggressor − f12_victim| within this → leakage
+    rotation_window_mhz = 35.0   # |f_aggressor − f01_victim| within this → rotation
     # overrides = [{ aggressor = "d4", victim = "q5", method = "leakage" }]
 
     [survey]                     # one pass per aggressor, all victims together
@@ -147,8 +147,8 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
     pt.reject_unknown()
 
     mt = top.table("methods", None)
-    leak_mhz = mt.number("leakage_window_mhz", 60.0, lo=0.0, hi=1000.0, unit="MHz")
-    rot_mhz = mt.number("rotation_window_mhz", 60.0, lo=0.0, hi=1000.0, unit="MHz")
+    leak_mhz = mt.number("leakage_window_mhz", 35.0, lo=0.0, hi=1000.0, unit="MHz")
+    rot_mhz = mt.number("rotation_window_mhz", 35.0, lo=0.0, hi=1000.0, unit="MHz")
     windows = MethodWindows(
         leakage_window_ghz=leak_mhz * 1e-3 if valid(leak_mhz) else leak_mhz,
         rotation_window_ghz=rot_mhz * 1e-3 if valid(rot_mhz) else rot_mhz,
