@@ -656,7 +656,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             e = est.estimate(i)
             if e.accepted:
                 x = -e.z_star / amp
-                sx = e.position_stderr * math.sqrt(_birge(e)) / amp
+                sx = _sigma(e) / amp
                 selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
             else:
                 # "No signal" means |X| is small against the ring: bound it from the floor.
@@ -699,8 +699,8 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         # Judged on the survey's lower 2σ bound: a victim surveyed with a wide error (its
         # K set by another) is not sent away on noise alone.
         joint = selected & coherent
-        sigma0 = np.array([est.estimate(i).position_stderr * math.sqrt(_birge(est.estimate(i)))
-                           if est.estimate(i).accepted else 0.0 for i in range(V)])
+        sigma0 = np.array([_sigma(est.estimate(i)) if est.estimate(i).accepted else 0.0
+                           for i in range(V)])
         big = joint & (np.abs(centre) - 2 * sigma0 > JOINT_NULL_SPAN * RING_MARGIN * target)
         if joint.sum() > 1 and big.any():
             keep = joint & ~big
@@ -708,7 +708,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 keep[int(np.argmax(joint))] = True
             handed |= joint & ~keep
         handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K,
-                    est.estimate(i).position_stderr * math.sqrt(_birge(est.estimate(i))))
+                    _sigma(est.estimate(i)))
                    for i in range(V) if handed[i]]
         selected &= ~handed
     searched[:] = selected
@@ -724,8 +724,8 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         if start is None and rounds >= 2:
             for i in np.flatnonzero(selected):
                 e = est.estimate(i)
-                if e.accepted and victims[i] not in force and abs(e.z_star) / amp + 2 * (
-                        e.position_stderr * math.sqrt(_birge(e)) / amp) < thr:
+                if (e.accepted and victims[i] not in force
+                        and (abs(e.z_star) + 2 * _sigma(e)) / amp < thr):
                     selected[i] = False
                     cleared[int(i)] = (e, probe.repeats, _data_time(runner, rig))
                     say(f"{line}: {victims[i]} below {protocol.survey.threshold_db:g} dB "
@@ -740,7 +740,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
                 centre[i] = e.z_star
                 rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
                 rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), cap[i])
-                done[i] = e.position_stderr * math.sqrt(_birge(e)) <= target
+                done[i] = _sigma(e) <= target
                 if methods[i] != "stark":
                     # A sin² signal is not quadratic far up its fringe, and off-centre
                     # on its ring that pulls the fitted null towards the ring's centre;
@@ -773,12 +773,11 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
             # the longest train. Only for victims the train is coherent for (for the
             # others K pulses do not amplify K-fold).
             k_cur = probe.repeats
-            k_new = min(max(min(int(k_cur * rad[i] / (
-                RING_MARGIN * est.estimate(i).position_stderr
-                * math.sqrt(_birge(est.estimate(i))))), 4 * k_cur),
-                int((math.pi / 4) / probe.expected_rotation_per_pulse(victims[i], STRONGEST_DB)))
-                for i in raise_k)
-            k_new = min(k_new, k_max)
+            k_sharp = [min(int(k_cur * rad[i] / (RING_MARGIN * _sigma(est.estimate(i)))),
+                           4 * k_cur) for i in raise_k]
+            k_safe = [int((math.pi / 4) / probe.expected_rotation_per_pulse(
+                victims[i], STRONGEST_DB)) for i in raise_k]
+            k_new = min(min(map(max, k_sharp, k_safe)), k_max)
             if k_new > k_cur:
                 probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
                                     methods=tuple(methods), shape=shape, merged=False,
@@ -912,6 +911,11 @@ class _ColumnFit:
 
     def estimate(self, i: int):
         return self.fit.estimates[i]
+
+
+def _sigma(e) -> float:
+    """1σ semi-major axis of an estimate's null, made honest by its Birge ratio."""
+    return e.position_stderr * math.sqrt(_birge(e))
 
 
 def _birge(e) -> float:
