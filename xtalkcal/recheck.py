@@ -165,9 +165,9 @@ def take_out_co_victim_leak(signal: np.ndarray, stderr: np.ndarray, d: np.ndarra
         The other tones per point; ``c``, ``c_err`` (K,) their couplings and the
         couplings' √trace errors; ``ringing`` (K,) bool.
     """
-    lead = (c[:, None] * tones).sum(axis=0) if len(c) else np.zeros(d.shape, complex)
+    lead = (c[:, None] * tones).sum(axis=0)  # (0, n) when there are none: zeros
     moving = np.abs(tones - tones[:, :1]) * ringing[:, None]
-    lead_var = ((c_err[:, None] * moving) ** 2).sum(axis=0) if len(c) else 0.0
+    lead_var = ((c_err[:, None] * moving) ** 2).sum(axis=0)
     out = signal - kappa * (2 * np.real(np.conj(d) * lead) + np.abs(lead) ** 2)
     return out, np.hypot(stderr, math.sqrt(2) * kappa * np.abs(d) * np.sqrt(lead_var))
 
