@@ -49,6 +49,27 @@ Why this is crash safe (the argument the tests exercise):
    arrays that will be stored) happens before any file is created, so a rejected batch writes
    nothing.
 
+Integrity (why rot is seen, not read back as different data):
+
+7. Beside every commit file lies its digest file ``<first>-<last>.sha256.json`` holding the
+   SHA-256 and size of the whole commit file (a digest of the bytes, so it holds whatever
+   the codec). It is written (and ``fsync``'d) *before* the commit file is renamed into
+   place, so a visible commit always has one; a writer killed in between leaves a digest
+   file naming its temporary file, which readers ignore and the next writer deletes.
+   Readers check the digest of each file once per process (`Ledger.verify` checks all
+   again). Numeric datasets also carry HDF5's Fletcher-32 checksum per chunk, checked on
+   every read of a sweep, and the HDF5 1.10 metadata has checksums of its own.
+8. Sequence numbers run without gaps from 1 (appends take the next number, compactions keep
+   ranges), so a commit file deleted with its digest file is missed too, except the newest.
+9. Any damaged or missing commit makes every reader raise `LedgerError` naming *each* bad
+   file (the others are still checked); nothing is written into a damaged ledger. A file
+   moved into ``quarantine/`` (`quarantine_commit`) is set aside: its entries leave the
+   history and its sequence numbers no longer count as missing.
+10. Ledgers written before digests existed have none. The marker then lacks ``integrity``
+    and their files read as *unverified*, not as errors; the first write of this code
+    records the names of those legacy files in the marker, and from then on any other file
+    without a digest is an error.
+
 Limits (common practice for lock files and rename-based commits): the guarantees need a local
 POSIX file system that honours ``fsync`` and ``flock`` (ext4, xfs, APFS...). Network file
 systems may implement neither faithfully; keep ledgers on local disks or serialise writers
@@ -74,6 +95,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import hashlib
 import json
 import math
 import numbers
@@ -109,7 +131,11 @@ __all__ = [
     "LedgerEntry",
     "MatrixSnapshot",
     "CommitReceipt",
+    "CommitCheck",
+    "LedgerReport",
     "Ledger",
+    "verify_ledger",
+    "quarantine_commit",
     "utc_timestamp",
 ]
 
@@ -129,6 +155,11 @@ _MARKER_NAME = "xtalkcal-ledger.json"
 _LOCK_NAME = "ledger.lock"
 _TMP_PREFIX = ".tmp-"
 _FINAL_RE = re.compile(r"^(\d{10,})-(\d{10,})\.h5$")
+_DIGEST_SUFFIX = ".sha256.json"
+_DIGEST_RE = re.compile(r"^(\d{10,})-(\d{10,})\.sha256\.json$")
+_DIGEST_FORMAT = "xtalkcal-commit-digest"
+_QUARANTINE = "quarantine"
+_HASH_BLOCK = 1 << 20  # bytes read at a time while hashing
 # HDF5 1.10 object headers keep small groups compact (about a third of the default size) and
 # every h5py >= 3 ships a library that reads them.
 _LIBVER = ("v110", "v110")
@@ -158,6 +189,25 @@ class LedgerValidationError(LedgerError, ValueError):
     def __reduce__(self) -> tuple[Any, ...]:
         # OSError's own pickling would pass the formatted message as errno; keep our fields.
         return (type(self), (self.where, self.field, self.problem))
+
+
+class _Malformed(Exception):
+    """A commit file's content does not have the structure this code writes (decoding only;
+    the loader turns it into a `LedgerError` naming the file)."""
+
+
+def _attr(obj: h5py.HLObject, key: str, kind: type, where: str) -> Any:
+    """An HDF5 attribute that must exist and be a ``str`` or a (non-bool) integer."""
+    if key not in obj.attrs:
+        raise _Malformed(f"{where}: attribute {key!r} is missing")
+    value = obj.attrs[key]
+    if kind is int:
+        if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)):
+            raise _Malformed(f"{where}: attribute {key!r} must be an integer, got {value!r}")
+        return int(value)
+    if not isinstance(value, str):
+        raise _Malformed(f"{where}: attribute {key!r} must be a string, got {value!r}")
+    return str(value)
 
 
 # --------------------------------------------------------------------------------------------
@@ -580,6 +630,18 @@ def _columns_to_entries(cols: Columns) -> list[LedgerEntry]:
     ]
 
 
+def _checksum_args(data: np.ndarray, h5dtype: Any) -> dict[str, Any]:
+    """Dataset options adding HDF5's Fletcher-32 checksum per chunk where HDF5 allows it.
+
+    Filters need chunked storage, which scalar and empty datasets cannot have, and HDF5
+    refuses them on variable-length strings; those (and attributes) rely on the commit
+    file's SHA-256 alone.
+    """
+    if data.ndim == 0 or data.size == 0 or h5py.check_vlen_dtype(np.dtype(h5dtype)):
+        return {}
+    return {"chunks": True, "fletcher32": True}
+
+
 def _write_columns(f: h5py.File, cols: Columns) -> None:
     g = f.create_group("entries")
     n = len(cols["seq"])
@@ -592,21 +654,52 @@ def _write_columns(f: h5py.File, cols: Columns) -> None:
             data = np.empty((n, len(names)), dtype=dtype)
         for k, name in enumerate(names):
             data[:, k] = cols[name]
-        ds = g.create_dataset(table, shape=data.shape, dtype=dtype)
+        ds = g.create_dataset(table, shape=data.shape, dtype=dtype, **_checksum_args(data, dtype))
         if n:
             ds[...] = data
         ds.attrs["columns"] = json.dumps(list(names))
 
 
+_TABLE_KINDS = {"float64": "f", "int64": "i", "text": "O"}
+
+
+def _member(group: h5py.Group, name: str, kind: type, where: str) -> Any:
+    """``group[name]``, which must be an HDF5 group or dataset (``kind``)."""
+    obj = group.get(name)
+    if not isinstance(obj, kind):
+        what = "group" if kind is h5py.Group else "dataset"
+        found = "nothing" if obj is None else type(obj).__name__
+        raise _Malformed(f"{where}{name}: expected an HDF5 {what}, found {found}")
+    return obj
+
+
 def _read_columns(f: h5py.File) -> Columns:
+    """The entry table, every structural property checked (a corrupt table is refused, never
+    coerced: ``astype`` would turn wrong dtypes into numbers)."""
     cols: Columns = {}
-    g = f["entries"]
+    g = _member(f, "entries", h5py.Group, "/")
+    rows = None
     for table in g:
-        ds = g[table]
-        names = json.loads(ds.attrs["columns"])
-        data = ds.asstr()[()] if h5py.check_string_dtype(ds.dtype) else ds[()]
+        ds = _member(g, table, h5py.Dataset, "/entries/")
+        where = f"/entries/{table}"
+        if table not in _TABLE_KINDS:
+            raise _Malformed(f"{where}: unknown table; known: {', '.join(_TABLE_KINDS)}")
+        text = h5py.check_string_dtype(ds.dtype) is not None
+        if (_TABLE_KINDS[table] == "O") != text or (
+            not text and ds.dtype.kind != _TABLE_KINDS[table]
+        ):
+            raise _Malformed(f"{where}: dtype {ds.dtype} does not fit a {table} table")
+        names = json.loads(_attr(ds, "columns", str, where))
+        if ds.ndim != 2 or not isinstance(names, list) or len(names) != ds.shape[1]:
+            raise _Malformed(f"{where}: shape {ds.shape} does not match its columns attribute")
+        if rows is not None and ds.shape[0] != rows:
+            raise _Malformed(f"{where}: {ds.shape[0]} rows, the other tables have {rows}")
+        rows = ds.shape[0]
+        data = ds.asstr()[()] if text else ds[()]
         data = np.asarray(data).reshape(ds.shape)
         for k, name in enumerate(names):
+            if not isinstance(name, str) or name in cols:
+                raise _Malformed(f"{where}: column names must be distinct strings, got {name!r}")
             cols[name] = data[:, k]
     return cols
 
@@ -819,7 +912,9 @@ def _encode_sweep(sweep_id: str, ds: Any) -> _SweepPlan:
 
 
 def _write_blob(group: h5py.Group, name: str, blob: _Blob) -> None:
-    ds = group.create_dataset(name, shape=blob.data.shape, dtype=blob.h5dtype)
+    ds = group.create_dataset(
+        name, shape=blob.data.shape, dtype=blob.h5dtype, **_checksum_args(blob.data, blob.h5dtype)
+    )
     if blob.data.size:
         ds[...] = blob.data
     for key, val in blob.meta.items():
@@ -1096,6 +1191,99 @@ class CommitReceipt:
     sweep_ids: tuple[str, ...]
 
 
+CommitStatus = Literal["ok", "unverified", "bad", "missing", "quarantined"]
+
+
+@dataclass(frozen=True)
+class CommitCheck:
+    """The state of one commit file (or of a range of commits no file holds).
+
+    Parameters
+    ----------
+    file : str
+        Name of the commit file inside the ledger directory (for ``"missing"``: the name a
+        file holding the range would have).
+    first, last : int
+        Range of commit sequence numbers.
+    status : {"ok", "unverified", "bad", "missing", "quarantined"}
+        ``ok``: digest matches and the content decodes. ``unverified``: decodes, but was
+        written before digests existed. ``bad``: damaged (see ``problem``). ``missing``: no
+        file holds these commits. ``quarantined``: set aside in ``quarantine/``.
+    problem : str
+        What is wrong (``""`` unless bad or missing).
+    """
+
+    file: str
+    first: int
+    last: int
+    status: CommitStatus
+    problem: str = ""
+
+    @property
+    def failed(self) -> bool:
+        """True for a damaged or missing commit (readers refuse the ledger)."""
+        return self.status in ("bad", "missing")
+
+    def line(self, root: Path) -> str:
+        """One line for people, naming the file."""
+        seqs = f"commit {self.first}" if self.first == self.last else (
+            f"commits {self.first}..{self.last}")
+        text = {"ok": "OK (SHA-256 verified)",
+                "unverified": "OK, unverified (written before commit digests existed)",
+                "quarantined": "set aside in quarantine (not part of the history)"}
+        return f"{root / self.file}: {seqs}: {text.get(self.status) or self.problem}"
+
+
+@dataclass(frozen=True)
+class LedgerReport:
+    """What `Ledger.verify` found: one `CommitCheck` per commit file, in sequence order.
+
+    Parameters
+    ----------
+    path : pathlib.Path
+        The ledger directory.
+    chip : str
+        Chip the ledger belongs to.
+    commits : tuple of CommitCheck
+        Every commit file read, every quarantined file and every missing range.
+    """
+
+    path: Path
+    chip: str
+    commits: tuple[CommitCheck, ...]
+
+    @property
+    def failed(self) -> tuple[CommitCheck, ...]:
+        """The damaged and missing commits."""
+        return tuple(c for c in self.commits if c.failed)
+
+    @property
+    def ok(self) -> bool:
+        """True when every commit can be read (unverified legacy files included)."""
+        return not self.failed
+
+    def lines(self) -> list[str]:
+        """One line per commit file, then a summary line."""
+        out = [c.line(self.path) for c in self.commits]
+        n_ok = sum(c.status in ("ok", "unverified") for c in self.commits)
+        out.append(f"{self.path}: ledger of chip {self.chip!r}: {n_ok} commit files readable, "
+                   f"{len(self.failed)} damaged or missing")
+        return out
+
+    def error(self) -> LedgerError:
+        """The one-line error every reader raises for this state (call only if not ok)."""
+        bad = self.failed
+        listed = "; ".join(f"{c.file}: {c.problem}" for c in bad)
+        files = "s" if len(bad) > 1 else ""
+        return LedgerError(
+            f"{self.path}: {len(bad)} damaged or missing commit{files}, nothing was read: "
+            f"{listed}. The other {len(self.commits) - len(bad)} commit files are intact; "
+            f"to read them, move each damaged file with its {_DIGEST_SUFFIX} file into "
+            f"{self.path / _QUARANTINE}/ (xtalkcal.ledger.quarantine_commit), which removes "
+            f"its entries from the history; `xtalkcal check {self.path}` lists every commit"
+        )
+
+
 # --------------------------------------------------------------------------------------------
 # The ledger
 # --------------------------------------------------------------------------------------------
@@ -1109,6 +1297,7 @@ class _CommitFile:
     schema_version: int
     entries: tuple[LedgerEntry, ...]
     sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
+    verified: bool  # its digest matched (False: a legacy file without one)
 
 
 @dataclass(frozen=True)
@@ -1121,6 +1310,14 @@ class _View:
 
 class _Vanished(Exception):
     """A listed file disappeared before it could be opened (a compaction removed it)."""
+
+
+class _BadCommit(Exception):
+    """One commit file is damaged; ``problem`` says how (without the file name)."""
+
+    def __init__(self, problem: str) -> None:
+        self.problem = problem
+        super().__init__(problem)
 
 
 def _time_key(e: LedgerEntry) -> tuple[float, int, int]:
@@ -1163,7 +1360,16 @@ def _atomic_write_bytes(directory: Path, name: str, payload: bytes) -> None:
     _fsync_dir(directory)
 
 
-def _read_marker(path: Path) -> str:
+@dataclass(frozen=True)
+class _Marker:
+    """The ledger marker: chip, and which commit files may lack a digest."""
+
+    chip: str
+    info: Mapping[str, Any]
+    legacy_files: frozenset[str] | None  # None: a ledger from before digests existed
+
+
+def _read_marker(path: Path) -> _Marker:
     marker = path / _MARKER_NAME
     if not marker.is_file():
         raise LedgerError(
@@ -1172,12 +1378,12 @@ def _read_marker(path: Path) -> str:
         )
     try:
         info = json.loads(marker.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RecursionError) as exc:
         raise LedgerError(f"{marker}: unreadable ledger marker ({exc})") from exc
     if not isinstance(info, dict) or info.get("format") != _FORMAT:
         raise LedgerError(f"{marker}: not an xtalkcal ledger marker (format field)")
     version = info.get("schema_version")
-    if not isinstance(version, int) or version < 1:
+    if isinstance(version, bool) or not isinstance(version, int) or version < 1:
         raise LedgerError(f"{marker}: schema_version must be a positive integer, got {version!r}")
     if version > SCHEMA_VERSION:
         raise LedgerError(
@@ -1187,7 +1393,82 @@ def _read_marker(path: Path) -> str:
     chip = info.get("chip")
     if not isinstance(chip, str) or not chip:
         raise LedgerError(f"{marker}: chip must be a non-empty string")
-    return chip
+    legacy = None
+    if "integrity" in info:
+        integ = info["integrity"]
+        names = integ.get("legacy_files") if isinstance(integ, dict) else None
+        if (
+            not isinstance(integ, dict)
+            or integ.get("digest") != "sha256"
+            or not isinstance(names, list)
+            or not all(isinstance(n, str) and _FINAL_RE.match(n) for n in names)
+        ):
+            raise LedgerError(
+                f"{marker}: integrity: expected {{\"digest\": \"sha256\", \"legacy_files\": "
+                f"[commit file names]}}, got {integ!r}"
+            )
+        legacy = frozenset(names)
+    return _Marker(chip, MappingProxyType(info), legacy)
+
+
+def _write_marker(root: Path, info: Mapping[str, Any]) -> None:
+    payload = json.dumps(dict(info), ensure_ascii=False, indent=1).encode()
+    _atomic_write_bytes(root, _MARKER_NAME, payload)
+
+
+def _digest_name(first: int, last: int) -> str:
+    return f"{first:010d}-{last:010d}{_DIGEST_SUFFIX}"
+
+
+def _hash_file(path: Path) -> tuple[int, str]:
+    """(size in bytes, SHA-256 hex digest) of a file, read in blocks."""
+    h = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as fh:
+        while block := fh.read(_HASH_BLOCK):
+            h.update(block)
+            size += len(block)
+    return size, h.hexdigest()
+
+
+def _read_digest(path: Path) -> dict[str, Any]:
+    """A digest file's fields; raises `_BadCommit` if it is not one, OSError if unreadable."""
+    raw = path.read_bytes()
+    try:
+        info = json.loads(raw.decode("utf-8"))
+    except (ValueError, RecursionError) as exc:
+        raise _BadCommit(f"its digest file {path.name} is not valid JSON ({exc})") from None
+    ok = (
+        isinstance(info, dict)
+        and info.get("format") == _DIGEST_FORMAT
+        and isinstance(info.get("file"), str)
+        and isinstance(info.get("tmp"), str)
+        and isinstance(info.get("size"), int)
+        and isinstance(info.get("sha256"), str)
+        and re.fullmatch(r"[0-9a-f]{64}", info["sha256"]) is not None
+    )
+    if not ok:
+        raise _BadCommit(
+            f"its digest file {path.name} lacks the fields of {_DIGEST_FORMAT!r} "
+            "(format, file, tmp, size, sha256)"
+        )
+    return info
+
+
+def _check_digest(commit: Path, info: Mapping[str, Any]) -> None:
+    """Raise `_BadCommit` unless ``commit`` has the size and SHA-256 its digest file says."""
+    if info["file"] != commit.name:
+        raise _BadCommit(f"its digest file names another file, {info['file']!r}")
+    size, sha = _hash_file(commit)
+    if size != info["size"]:
+        raise _BadCommit(
+            f"{size} bytes, but {info['size']} were written (truncated or extended)"
+        )
+    if sha != info["sha256"]:
+        raise _BadCommit(
+            "SHA-256 mismatch: the file changed after it was written (bit rot, a bad disk "
+            "or an edit)"
+        )
 
 
 class Ledger:
@@ -1207,18 +1488,22 @@ class Ledger:
     Raises
     ------
     LedgerError
-        If the directory is not a ledger, holds a file with a newer schema version, or a
-        finalised file cannot be read.
+        If the directory is not a ledger, holds a file with a newer schema version, or any
+        commit file is damaged or missing (the message names each one; see `verify`).
     """
 
     def __init__(self, path: str | os.PathLike[str], *, lock_timeout_s: float = 60.0) -> None:
+        self._setup(path, lock_timeout_s)
+        self._refresh()
+
+    def _setup(self, path: str | os.PathLike[str], lock_timeout_s: float) -> None:
         self._path = Path(path)
-        self._chip = _read_marker(self._path)
+        self._marker = _read_marker(self._path)
+        self._chip = self._marker.chip
         self._lock_timeout_s = float(lock_timeout_s)
         self._lock = filelock.FileLock(str(self._path / _LOCK_NAME), timeout=lock_timeout_s)
         self._files: dict[str, _CommitFile] = {}
         self._view = _View()
-        self._refresh()
 
     @classmethod
     def create(
@@ -1264,7 +1549,7 @@ class Ledger:
             raise LedgerError(f"{root}: lock busy for {lock_timeout_s} s") from exc
         try:
             if (root / _MARKER_NAME).exists():
-                existing = _read_marker(root)
+                existing = _read_marker(root).chip
                 if not exist_ok:
                     raise LedgerError(f"{root}: a ledger already exists (chip {existing!r})")
                 if existing != chip:
@@ -1282,10 +1567,9 @@ class Ledger:
                     "schema_version": SCHEMA_VERSION,
                     "chip": chip,
                     "created_utc": utc_timestamp(),
+                    "integrity": {"digest": "sha256", "legacy_files": []},
                 }
-                _atomic_write_bytes(
-                    root, _MARKER_NAME, json.dumps(info, ensure_ascii=False, indent=1).encode()
-                )
+                _write_marker(root, info)
         finally:
             lock.release()
         return cls(root, lock_timeout_s=lock_timeout_s)
@@ -1341,67 +1625,215 @@ class Ledger:
                 )
         return keep, redundant
 
-    def _load(self, first: int, last: int, name: str) -> _CommitFile:
-        path = self._path / name
-        try:
-            fh = h5py.File(path, "r", locking=False)
-        except OSError as exc:
-            if not path.exists():
-                raise _Vanished(name) from exc
-            raise LedgerError(f"{path}: cannot be read as a ledger commit ({exc})") from exc
-        with fh:
-            attrs = fh.attrs
-            if attrs.get("format") != _FORMAT:
-                raise LedgerError(f"{path}: not an xtalkcal ledger commit file")
-            version = int(attrs.get("schema_version", 0))
-            if version > SCHEMA_VERSION:
-                raise LedgerError(
-                    f"{path}: schema_version {version} is newer than this xtalkcal reads "
-                    f"({SCHEMA_VERSION}); upgrade xtalkcal"
-                )
-            if version < 1:
-                raise LedgerError(f"{path}: schema_version must be >= 1, got {version}")
-            if attrs.get("chip") != self._chip:
-                raise LedgerError(
-                    f"{path}: belongs to chip {attrs.get('chip')!r}, ledger is {self._chip!r}"
-                )
-            if (int(attrs["seq_first"]), int(attrs["seq_last"])) != (first, last):
-                raise LedgerError(f"{path}: sequence range in file disagrees with its name")
-            entries = _columns_to_entries(_migrate(_read_columns(fh), version, str(path)))
-            sweeps = []
-            for g in _positional(fh["sweeps"]):
-                sweeps.append((str(g.attrs["sweep_id"]), g.name, int(g.attrs["seq"])))
-        for e in entries:
-            if not first <= e.seq <= last:
-                raise LedgerError(f"{path}: entry seq {e.seq} outside {first}..{last}")
-        entries.sort(key=lambda e: (e.seq, e.position))
-        return _CommitFile(
-            name,
-            first,
-            last,
-            version,
-            tuple(entries),
-            tuple((sid, gpath) for sid, gpath, _ in sweeps),
+    def _list_digests(self) -> dict[tuple[int, int], str]:
+        found = {}
+        with os.scandir(self._path) as it:
+            for item in it:
+                m = _DIGEST_RE.match(item.name)
+                if m:
+                    found[(int(m.group(1)), int(m.group(2)))] = item.name
+        return found
+
+    def _list_quarantine(self) -> list[tuple[int, int, str]]:
+        qdir = self._path / _QUARANTINE
+        if not qdir.is_dir():
+            return []
+        return sorted(
+            (int(m.group(1)), int(m.group(2)), m.group(0))
+            for m in map(_FINAL_RE.match, os.listdir(qdir))
+            if m
         )
 
-    def _refresh(self) -> None:
-        """Bring the in-memory view up to the finalised files on disk."""
-        for _ in range(_MAX_LIST_ATTEMPTS):
-            keep, _redundant = self._covering(self._list_final())
-            names = [n for _, _, n in keep]
-            if names == list(self._files):
-                return
+    def _load(self, first: int, last: int, name: str) -> _CommitFile:
+        """Check one commit file's digest and decode it.
+
+        Raises `_Vanished` if it was removed meanwhile (compaction) and `_BadCommit` for
+        anything else that is wrong with it, so that each file is judged on its own.
+        """
+        path = self._path / name
+        digest_path = self._path / _digest_name(first, last)
+        try:
             try:
-                files = {
-                    n: self._files[n] if n in self._files else self._load(f, la, n)
-                    for f, la, n in keep
-                }
+                digest = _read_digest(digest_path)
+            except FileNotFoundError:
+                digest = None
+            if digest is None:
+                if not path.exists():
+                    raise _Vanished(name)  # compaction deletes the commit file first
+                legacy = self._marker.legacy_files
+                if legacy is not None and name not in legacy:
+                    raise _BadCommit(
+                        f"its digest file {digest_path.name} is missing (every commit "
+                        "written since digests exist has one)"
+                    )
+            else:
+                _check_digest(path, digest)
+            with h5py.File(path, "r", locking=False) as fh:
+                version, entries, sweeps = self._decode(fh, first, last)
+        except FileNotFoundError as exc:
+            raise _Vanished(name) from exc
+        except (_BadCommit, _Vanished):
+            raise
+        except LedgerError as exc:
+            raise _BadCommit(str(exc).replace(f"{path}: ", "")) from exc
+        except _Malformed as exc:
+            raise _BadCommit(f"not a well-formed commit: {exc}") from exc
+        except (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,
+                RecursionError) as exc:
+            # h5py reports damaged files, missing members and wrong types this way.
+            raise _BadCommit(
+                f"cannot be decoded as a ledger commit ({type(exc).__name__}: {exc})"
+            ) from exc
+        return _CommitFile(
+            name, first, last, version, tuple(entries), tuple(sweeps), digest is not None
+        )
+
+    def _decode(
+        self, fh: h5py.File, first: int, last: int
+    ) -> tuple[int, list[LedgerEntry], list[tuple[str, str]]]:
+        """(schema version, entries, sweeps) of an open commit file; `_Malformed` if its
+        structure is not the one written here."""
+        if fh.attrs.get("format") != _FORMAT:
+            raise _Malformed("not an xtalkcal ledger commit file (format attribute)")
+        version = _attr(fh, "schema_version", int, "/")
+        if version > SCHEMA_VERSION:
+            raise _Malformed(
+                f"schema_version {version} is newer than this xtalkcal reads "
+                f"({SCHEMA_VERSION}); upgrade xtalkcal"
+            )
+        if version < 1:
+            raise _Malformed(f"schema_version must be >= 1, got {version}")
+        chip = _attr(fh, "chip", str, "/")
+        if chip != self._chip:
+            raise _Malformed(f"belongs to chip {chip!r}, the ledger is {self._chip!r}")
+        if (_attr(fh, "seq_first", int, "/"), _attr(fh, "seq_last", int, "/")) != (first, last):
+            raise _Malformed("the sequence range in the file disagrees with its name")
+        entries = _columns_to_entries(_migrate(_read_columns(fh), version, "entries"))
+        for e in entries:
+            if not first <= e.seq <= last:
+                raise _Malformed(f"entry seq {e.seq} outside {first}..{last}")
+        if len({(e.seq, e.position) for e in entries}) != len(entries):
+            raise _Malformed("two entries share a (seq, position)")
+        entries.sort(key=lambda e: (e.seq, e.position))
+        sweeps = []
+        for g in _positional(_member(fh, "sweeps", h5py.Group, "/")):
+            if not isinstance(g, h5py.Group):
+                raise _Malformed(f"{g.name}: a sweep must be an HDF5 group")
+            sid = _attr(g, "sweep_id", str, g.name)
+            if not first <= _attr(g, "seq", int, g.name) <= last:
+                raise _Malformed(f"{g.name}: sweep seq outside {first}..{last}")
+            for member in ("variables", "attrs"):
+                _member(g, member, h5py.Group, g.name + "/")
+            sweeps.append((sid, g.name))
+        if len({sid for sid, _ in sweeps}) != len(sweeps):
+            raise _Malformed("a sweep id is stored twice")
+        return version, entries, sweeps
+
+    def _orphan_digest(self, first: int, last: int, name: str) -> str | None:
+        """Judge a digest file above every commit: a write in progress or killed before its
+        rename (None), or the record of a commit file that has gone (the problem)."""
+        digest_path = self._path / name
+        try:
+            info = _read_digest(digest_path)
+        except FileNotFoundError:
+            return None  # a writer cleaned it up
+        except _BadCommit as exc:
+            return exc.problem
+        if (self._path / info["tmp"]).exists():
+            return None  # still being written, or left by a killed writer
+        if (self._path / info["file"]).exists():
+            raise _Vanished(name)  # renamed in since the listing: list again
+        try:
+            again = _read_digest(digest_path)
+        except FileNotFoundError:
+            return None
+        if again != info:
+            raise _Vanished(name)  # a new writer took the number: list again
+        return (
+            f"its digest file {name} is there, but the commit file {info['file']} is not "
+            "(deleted or moved)"
+        )
+
+    def _scan(
+        self, *, rehash: bool, listing: list[tuple[int, int, str]] | None = None
+    ) -> tuple[dict[str, _CommitFile], list[CommitCheck]]:
+        """Load every commit file still needed (all with ``rehash``) and judge each one."""
+        for _ in range(_MAX_LIST_ATTEMPTS):
+            self._marker = _read_marker(self._path)  # legacy ledgers switch on first write
+            keep, _redundant = self._covering(listing or self._list_final())
+            listing = None
+            files: dict[str, _CommitFile] = {}
+            checks: list[CommitCheck] = []
+            try:
+                for first, last, name in keep:
+                    cf = None if rehash else self._files.get(name)
+                    try:
+                        cf = cf or self._load(first, last, name)
+                    except _BadCommit as bad:
+                        checks.append(CommitCheck(name, first, last, "bad", bad.problem))
+                        continue
+                    files[name] = cf
+                    status: CommitStatus = "ok" if cf.verified else "unverified"
+                    checks.append(CommitCheck(name, first, last, status))
+                top = max((la for _, la, _ in keep), default=0)
+                for (first, last), name in sorted(self._list_digests().items()):
+                    if first > top:
+                        problem = self._orphan_digest(first, last, name)
+                        if problem:
+                            checks.append(CommitCheck(
+                                _final_name(first, last), first, last, "missing", problem))
             except _Vanished:
                 continue  # a compaction replaced files between listing and opening
-            self._files = files
-            self._view = self._build_view(files)
-            return
+            checks += self._gaps(keep)
+            checks.sort(key=lambda c: (c.first, c.last))
+            return files, checks
         raise LedgerError(f"{self._path}: directory kept changing while being read")
+
+    def _gaps(self, keep: list[tuple[int, int, str]]) -> list[CommitCheck]:
+        """Quarantined files, and ranges of sequence numbers no file holds."""
+        out = []
+        quarantined = self._list_quarantine()
+        for first, last, name in quarantined:
+            out.append(CommitCheck(f"{_QUARANTINE}/{name}", first, last, "quarantined"))
+        held = sorted([(f, la) for f, la, _ in keep] + [(f, la) for f, la, _ in quarantined])
+        digests = self._list_digests()
+        expected = 1
+        for first, last in held:
+            if first > expected:
+                a, b = expected, first - 1
+                name = _final_name(a, b)
+                seqs = f"commit {a}" if a == b else f"commits {a}..{b}"
+                problem = f"{seqs} missing: no file holds them (deleted or moved)"
+                if (a, b) in digests:
+                    problem += f"; its digest file {digests[(a, b)]} is still there"
+                out.append(CommitCheck(name, a, b, "missing", problem))
+            expected = max(expected, last + 1)
+        return out
+
+    def _refresh(self) -> None:
+        """Bring the in-memory view up to the finalised files on disk, or raise."""
+        listing = self._list_final()
+        keep, _redundant = self._covering(listing)
+        if [n for _, _, n in keep] == list(self._files):
+            return
+        files, checks = self._scan(rehash=False, listing=listing)
+        if any(c.failed for c in checks):
+            raise LedgerReport(self._path, self._chip, tuple(checks)).error()
+        self._files = files
+        self._view = self._build_view(files)
+
+    def verify(self) -> LedgerReport:
+        """Check every commit file again (digest and decoding) and say which are good.
+
+        Unlike the readers, this does not raise for damaged commits: it reports each one.
+
+        Returns
+        -------
+        LedgerReport
+            One `CommitCheck` per commit file, quarantined file and missing range.
+        """
+        _files, checks = self._scan(rehash=True)
+        return LedgerReport(self._path, self._chip, tuple(checks))
 
     def _build_view(self, files: Mapping[str, _CommitFile]) -> _View:
         entries: list[LedgerEntry] = []
@@ -1563,8 +1995,16 @@ class Ledger:
                 if not path.exists():
                     continue  # compacted away after the listing; list again
                 raise LedgerError(f"{path}: cannot be read ({exc})") from exc
-            with fh:
-                return SWEEP_READERS[version](fh[gpath])
+            try:
+                with fh:
+                    return SWEEP_READERS[version](fh[gpath])
+            except (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,
+                    RecursionError) as exc:
+                # Fletcher-32 mismatches in the data surface here as OSError.
+                raise LedgerError(
+                    f"{path}: sweep {sweep_id!r} cannot be decoded ({type(exc).__name__}: "
+                    f"{exc}); `xtalkcal check {self._path}` checks every commit"
+                ) from exc
         raise LedgerError(f"{self._path}: directory kept changing while being read")
 
     # -- writing ----------------------------------------------------------------------------
@@ -1584,12 +2024,34 @@ class Ledger:
             self._lock.release()
 
     def _remove_temporaries(self) -> None:
-        # Called under the lock: no live writer owns a temporary file now.
+        # Called under the lock, after a refresh that found every commit: no live writer
+        # owns a temporary file now, and a digest file without its commit file is the
+        # leftover of a killed writer (above every commit) or of a compaction (inside a
+        # kept range). Digests go first, so that a crash here never leaves a digest file
+        # whose temporary file has gone (which would read as a deleted commit).
+        reach = {(f, la) for f, la, _ in self._covering(self._list_final())[0]}
+        for (first, last), name in self._list_digests().items():
+            if (first, last) not in reach and not (self._path / _final_name(first, last)).exists():
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(self._path / name)
         with os.scandir(self._path) as it:
             stale = [item.path for item in it if item.name.startswith(_TMP_PREFIX)]
         for p in stale:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(p)
+
+    def _start_digests(self) -> None:
+        """On a ledger from before digests (under the lock): record its files as legacy, so
+        that from now on a commit file without a digest is an error."""
+        if self._marker.legacy_files is not None:
+            return
+        keep, _ = self._covering(self._list_final())
+        info = {
+            **self._marker.info,
+            "integrity": {"digest": "sha256", "legacy_files": [n for _, _, n in keep]},
+        }
+        _write_marker(self._path, info)
+        self._marker = _read_marker(self._path)
 
     def _write_commit(
         self,
@@ -1603,6 +2065,7 @@ class Ledger:
         if final.exists():
             raise LedgerError(f"{final}: already exists; refusing to overwrite a commit")
         tmp = self._path / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}.h5"
+        digest = self._path / _digest_name(first, last)
         renamed = False
         try:
             with h5py.File(tmp, "w", libver=_LIBVER) as fh:
@@ -1615,12 +2078,18 @@ class Ledger:
                 _write_columns(fh, _entries_to_columns(entries))
                 fill_sweeps(fh.create_group("sweeps"))
             _fsync_file(tmp)
+            size, sha = _hash_file(tmp)
+            record = {"format": _DIGEST_FORMAT, "file": final.name, "tmp": tmp.name,
+                      "size": size, "sha256": sha}
+            # Durable before the rename: a visible commit always has its digest.
+            _atomic_write_bytes(self._path, digest.name, json.dumps(record, indent=1).encode())
             os.replace(tmp, final)
             renamed = True
         finally:
             if not renamed:
-                with contextlib.suppress(FileNotFoundError):
-                    tmp.unlink()
+                for leftover in (digest, tmp):
+                    with contextlib.suppress(FileNotFoundError):
+                        leftover.unlink()
         _fsync_dir(self._path)
         return final
 
@@ -1678,6 +2147,7 @@ class Ledger:
                         f"{e.sweep_id!r} is neither in this batch nor stored",
                     )
             self._remove_temporaries()
+            self._start_digests()
             seq = self._view.last_seq + 1
             stored = tuple(dataclasses.replace(e, seq=seq, position=k) for k, e in enumerate(batch))
 
@@ -1724,14 +2194,90 @@ class Ledger:
                                 k += 1
 
                 self._remove_temporaries()
+                self._start_digests()
                 all_entries = [e for cf in files for e in cf.entries]
                 self._write_commit(files[0].first, files[-1].last, all_entries, fill)
                 merged = len(files)
                 redundant = redundant + keep
-            for _, _, name in redundant:
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(self._path / name)
+            for first, last, name in redundant:
+                # The commit file before its digest (readers rely on that order).
+                for gone in (name, _digest_name(first, last)):
+                    with contextlib.suppress(FileNotFoundError):
+                        os.unlink(self._path / gone)
             if redundant:
                 _fsync_dir(self._path)
             self._refresh()
         return merged
+
+
+def verify_ledger(path: str | os.PathLike[str]) -> LedgerReport:
+    """Check every commit file of a ledger, even one that readers refuse.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The ledger directory.
+
+    Returns
+    -------
+    LedgerReport
+        One line per commit file: OK, unverified (legacy), damaged, missing or quarantined.
+
+    Raises
+    ------
+    LedgerError
+        If the directory is not a ledger (no readable marker).
+    """
+    led = Ledger.__new__(Ledger)
+    led._setup(path, 60.0)
+    return led.verify()
+
+
+def quarantine_commit(
+    path: str | os.PathLike[str], name: str, *, lock_timeout_s: float = 60.0
+) -> Path:
+    """Set a damaged commit file aside so that the rest of the ledger can be read.
+
+    The file and its digest file move into ``<ledger>/quarantine/``; its entries and sweeps
+    leave the history and its sequence numbers no longer count as missing. Moving the two
+    files back undoes it.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The ledger directory.
+    name : str
+        Name of the commit file, e.g. ``"0000000003-0000000003.h5"``.
+    lock_timeout_s : float, optional
+        How long to wait for the writer lock, s.
+
+    Returns
+    -------
+    pathlib.Path
+        Where the commit file is now.
+    """
+    root = Path(path)
+    _read_marker(root)
+    m = _FINAL_RE.match(str(name))
+    if m is None or not (root / name).is_file():
+        raise LedgerError(f"{root}: {name!r} is not a commit file of this ledger")
+    first, last = int(m.group(1)), int(m.group(2))
+    qdir = root / _QUARANTINE
+    lock = filelock.FileLock(str(root / _LOCK_NAME), timeout=lock_timeout_s)
+    try:
+        lock.acquire()
+    except filelock.Timeout as exc:
+        raise LedgerError(f"{root}: lock busy for {lock_timeout_s} s") from exc
+    try:
+        qdir.mkdir(exist_ok=True)
+        if (qdir / name).exists():
+            raise LedgerError(f"{qdir / name}: already in quarantine; move it elsewhere first")
+        os.replace(root / name, qdir / name)
+        digest = _digest_name(first, last)
+        with contextlib.suppress(FileNotFoundError):
+            os.replace(root / digest, qdir / digest)
+        _fsync_dir(qdir)
+        _fsync_dir(root)
+    finally:
+        lock.release()
+    return qdir / name
