@@ -64,9 +64,18 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _check_one(path: str) -> None:
-    """Validate one chip, protocol or simulated-device file; print one line if it is OK."""
+    """Validate one chip, protocol or simulated-device file, or a ledger directory; print
+    one line if it is OK (a ledger: one line per commit file)."""
     from xtalkcal.chip import load_chip
 
+    if Path(path).is_dir():
+        from xtalkcal.ledger import verify_ledger
+
+        report = verify_ledger(path)
+        print("\n".join(report.lines()))
+        if not report.ok:
+            raise report.error()
+        return
     fmt = _detect_format(path)
     if fmt == "xtalkcal-simdevice":
         from simulated_device.device import load_device
@@ -138,6 +147,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
 
     protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
+    # A broken ledger is found before any rig time is spent, not after the calibration.
+    led = _open_ledger(args.ledger, rig.chip.name) if args.ledger else None
     out = Path(args.output)
     runner = BatchRunner(rig, args.record, progress=_progress_bar(args))
     result = calibrate_chip(rig, protocol, runner=runner, log=lambda s: log.info(s))
@@ -146,7 +157,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     _atomic_write(out, dumps(result) + "\n")
     said = None
     if args.ledger:
-        said = _record_in_ledger(args.ledger, rig.chip.name, result,
+        said = _record_in_ledger(args.ledger, rig.chip.name, result, ledger=led,
                                  resumed_from=args.record if runner.shots_resumed else None)
     print(format_table(result))
     n_rej = sum(not p.accepted and p.nulled for p in result.pairs)
@@ -167,7 +178,22 @@ def _resumed_note(runner, record) -> str:
             f"{runner.rig_seconds_executed:.1f} s newly executed)")
 
 
-def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None = None) -> str:
+def _open_ledger(path: str, chip: str):
+    """The chip's ledger at ``path``, opened (every commit verified), or None if there is
+    none yet (it is created when something is stored, so a failed run leaves no folder)."""
+    from xtalkcal.ledger import Ledger
+
+    if not Path(path).exists():
+        return None
+    led = Ledger.create(path, chip=chip, exist_ok=True)
+    if led.chip != chip:
+        raise XtalkcalConfigError("command line", "--ledger",
+                                  f"{path} belongs to chip {led.chip!r}, not {chip!r}")
+    return led
+
+
+def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None = None,
+                      ledger=None) -> str:
     """Append a calibration (entries and raw sweeps) to the chip's ledger, one commit.
 
     A calibration resumed from a ``--record`` folder may repeat one whose estimates the
@@ -176,7 +202,8 @@ def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None 
     value, covariance, shots, verdict and pass (the same numbers from the same data,
     whatever run tag it was stored under; see `_measurement_key`). Those are not appended
     again; only what was measured anew is, with its sweeps (a sweep identical to one stored
-    is linked, not copied).
+    is linked, not copied). A calibration that measured no pair stores nothing (a valid,
+    empty result). ``ledger`` is the ledger opened before the calibration, if it existed.
     Returns one line saying what was done.
     """
     import dataclasses
@@ -185,10 +212,12 @@ def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None 
     from xtalkcal.calibration import ledger_entries, ledger_sweeps
     from xtalkcal.ledger import Ledger
 
-    led = Ledger.create(path, chip=chip, exist_ok=True)
-    if led.chip != chip:
-        raise XtalkcalConfigError("command line", "--ledger",
-                                  f"{path} belongs to chip {led.chip!r}, not {chip!r}")
+    if not result.pairs and not result.sweeps:
+        only = result.protocol.only_methods
+        why = (f"the protocol's methods.only = {list(only)} selects no victim on any line"
+               if only else "the chip has no qubit besides each line's own to measure")
+        return f"ledger {path}: nothing stored: the calibration measured no pair ({why})"
+    led = ledger or _open_ledger(path, chip) or Ledger.create(path, chip=chip)
     tag = _fresh_tag(led, "cal-" + dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%S"))
     entries = ledger_entries(result, run_tag=tag)
     sweeps = ledger_sweeps(result, run_tag=tag)
@@ -413,8 +442,9 @@ def build_parser() -> argparse.ArgumentParser:
     def add(name: str, help: str) -> argparse.ArgumentParser:
         return sub.add_parser(name, help=help, formatter_class=_DefaultsFormatter)
 
-    c = add("check", help="validate chip, device or protocol files")
-    c.add_argument("files", nargs="+", help="TOML files to validate")
+    c = add("check", help="validate chip, device or protocol files, or ledger directories")
+    c.add_argument("files", nargs="+",
+                   help="TOML files or ledger directories (every commit file verified)")
 
     k = add("calibrate", help="survey the matrix and null every significant pair")
     k.add_argument("--protocol", default=None,

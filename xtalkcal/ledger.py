@@ -1298,6 +1298,12 @@ class _CommitFile:
     entries: tuple[LedgerEntry, ...]
     sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
     verified: bool  # its digest matched (False: a legacy file without one)
+    stamp: tuple[int, int, int]  # (size, mtime_ns, inode) when it was checked
+
+
+def _stamp(path: Path) -> tuple[int, int, int]:
+    st = os.stat(path)
+    return (st.st_size, st.st_mtime_ns, st.st_ino)
 
 
 @dataclass(frozen=True)
@@ -1653,6 +1659,7 @@ class Ledger:
         path = self._path / name
         digest_path = self._path / _digest_name(first, last)
         try:
+            stamp = _stamp(path)
             try:
                 digest = _read_digest(digest_path)
             except FileNotFoundError:
@@ -1685,7 +1692,7 @@ class Ledger:
                 f"cannot be decoded as a ledger commit ({type(exc).__name__}: {exc})"
             ) from exc
         return _CommitFile(
-            name, first, last, version, tuple(entries), tuple(sweeps), digest is not None
+            name, first, last, version, tuple(entries), tuple(sweeps), digest is not None, stamp
         )
 
     def _decode(
@@ -1705,7 +1712,10 @@ class Ledger:
             raise _Malformed(f"schema_version must be >= 1, got {version}")
         chip = _attr(fh, "chip", str, "/")
         if chip != self._chip:
-            raise _Malformed(f"belongs to chip {chip!r}, the ledger is {self._chip!r}")
+            raise _Malformed(
+                f"belongs to chip {chip!r}, but the ledger marker {_MARKER_NAME} says "
+                f"{self._chip!r}"
+            )
         if (_attr(fh, "seq_first", int, "/"), _attr(fh, "seq_last", int, "/")) != (first, last):
             raise _Malformed("the sequence range in the file disagrees with its name")
         entries = _columns_to_entries(_migrate(_read_columns(fh), version, "entries"))
@@ -1990,7 +2000,10 @@ class Ledger:
             name, gpath, version = self._view.sweeps[sweep_id]
             path = self._path / name
             try:
+                self._recheck(self._files[name])
                 fh = h5py.File(path, "r", locking=False)
+            except LedgerError:
+                raise
             except OSError as exc:
                 if not path.exists():
                     continue  # compacted away after the listing; list again
@@ -2000,12 +2013,38 @@ class Ledger:
                     return SWEEP_READERS[version](fh[gpath])
             except (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,
                     RecursionError) as exc:
-                # Fletcher-32 mismatches in the data surface here as OSError.
+                # HDF5 reports a Fletcher-32 mismatch as a failed filter (the only filter
+                # this code writes).
+                why = ("a data checksum (Fletcher-32) failed: the file changed after it was "
+                       "written" if "filter returned failure" in str(exc)
+                       else f"{type(exc).__name__}: {exc}")
                 raise LedgerError(
-                    f"{path}: sweep {sweep_id!r} cannot be decoded ({type(exc).__name__}: "
-                    f"{exc}); `xtalkcal check {self._path}` checks every commit"
+                    f"{path}: sweep {sweep_id!r} cannot be decoded ({why}); "
+                    f"`xtalkcal check {self._path}` checks every commit"
                 ) from exc
         raise LedgerError(f"{self._path}: directory kept changing while being read")
+
+    def _recheck(self, cf: _CommitFile) -> None:
+        """Check a commit file's digest again if the file changed since it was checked.
+
+        Sweeps are read from disk long after the ledger was opened; a rewritten or replaced
+        file is seen by its size, time or inode (rot in place leaves those, and is caught by
+        the Fletcher-32 checksums of the data).
+        """
+        path = self._path / cf.name
+        if _stamp(path) == cf.stamp:
+            return
+        first, last = cf.first, cf.last
+        try:
+            _check_digest(path, _read_digest(self._path / _digest_name(first, last)))
+        except FileNotFoundError:
+            if not path.exists():
+                raise
+            raise LedgerError(
+                f"{path}: changed since it was read, and its digest file is missing"
+            ) from None
+        except _BadCommit as exc:
+            raise LedgerError(f"{path}: {exc.problem}") from None
 
     # -- writing ----------------------------------------------------------------------------
 
@@ -2148,7 +2187,8 @@ class Ledger:
                     )
             self._remove_temporaries()
             self._start_digests()
-            seq = self._view.last_seq + 1
+            # Numbers of quarantined commits are never given again (they may come back).
+            seq = max([self._view.last_seq, *(la for _, la, _ in self._list_quarantine())]) + 1
             stored = tuple(dataclasses.replace(e, seq=seq, position=k) for k, e in enumerate(batch))
 
             def fill(group: h5py.Group) -> None:

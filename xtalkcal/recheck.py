@@ -96,7 +96,7 @@ def _pass_couplings(ledger: Ledger | None, entry: LedgerEntry
         return None
     try:
         ds = ledger.sweep(entry.sweep_id)
-    except Exception:  # noqa: BLE001 - without the sweep, no correction
+    except KeyError:  # not stored: no correction (a damaged one raises LedgerError)
         return None
     if "coupling_re" not in ds:
         return None
@@ -113,7 +113,7 @@ def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, 
         return None
     try:
         ds = ledger.sweep(entry.sweep_id)
-    except Exception:  # noqa: BLE001 - a missing or unreadable sweep only loses the prior
+    except KeyError:  # not stored: no prior (a damaged one raises LedgerError)
         return None
     if entry.victim not in list(ds["victim"].values):
         return None
@@ -412,7 +412,9 @@ def run_due(
         in_use = [v for aa, v in schedule.pairs() if aa == a]
         res = calibrate_chip(rig, protocol, runner=runner, aggressors=[a], key_prefix=tag,
                              null_victims={a: in_use})
-        ledger.append(ledger_entries(res, run_tag=tag), sweeps=ledger_sweeps(res, run_tag=tag))
+        entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)
+        if entries or sweeps:  # a column with nothing left to measure stores nothing
+            ledger.append(entries, sweeps=sweeps)
         for p in res.pairs:
             if p.accepted and p.nulled:
                 # A fresh null restarts at the protocol's first interval at least (as after
