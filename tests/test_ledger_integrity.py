@@ -463,3 +463,18 @@ def test_calibration_with_nothing_to_store_is_a_valid_empty_result(
     assert main(["calibrate", "--rig", f"{counting_rig}:lonely", "--ledger", str(path),
                  "-q", "-o", str(out)]) == 0
     assert Ledger(path).last_seq == 0
+
+
+def test_a_writer_never_reuses_the_number_of_a_commit_it_never_saw(tmp_path: Path) -> None:
+    """A ledger object opened before commit 3 existed; commit 3's file is then deleted (its
+    digest file stays). Appending through the old object must not take number 3 and
+    bury the evidence."""
+    path = tmp_path / "l"
+    build(path)
+    (path / _name(3)).unlink()
+    (path / _digest(3)).rename(tmp_path / "d3")
+    stale = Ledger(path)  # sees commits 1 and 2 only
+    (tmp_path / "d3").rename(path / _digest(3))
+    with pytest.raises(LedgerError, match=f"{_name(3)}: missing, but its digest file"):
+        stale.append([make_entry(victim="q7", measured_at_s=900.0)])
+    assert (path / _digest(3)).exists() and not (path / _name(3)).exists()

@@ -2068,11 +2068,27 @@ class Ledger:
         # leftover of a killed writer (above every commit) or of a compaction (inside a
         # kept range). Digests go first, so that a crash here never leaves a digest file
         # whose temporary file has gone (which would read as a deleted commit).
-        reach = {(f, la) for f, la, _ in self._covering(self._list_final())[0]}
+        kept = [(f, la) for f, la, _ in self._covering(self._list_final())[0]]
+        top = max((la for _, la in kept), default=0)
         for (first, last), name in self._list_digests().items():
-            if (first, last) not in reach and not (self._path / _final_name(first, last)).exists():
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(self._path / name)
+            if (self._path / _final_name(first, last)).exists():
+                continue
+            if first > top:
+                try:
+                    orphan = _read_digest(self._path / name)
+                except _BadCommit as exc:
+                    raise LedgerError(f"{self._path / name}: {exc.problem}") from None
+                if not (self._path / orphan["tmp"]).exists():
+                    # Not a killed writer's: the commit file it describes has gone.
+                    raise LedgerError(
+                        f"{self._path / orphan['file']}: missing, but its digest file {name} "
+                        "is there (deleted or moved); nothing was written"
+                    )
+            elif not any(f <= first and last <= la for f, la in kept):
+                raise LedgerError(f"{self._path / _final_name(first, last)}: missing, but its "
+                                  f"digest file {name} is there; nothing was written")
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(self._path / name)
         with os.scandir(self._path) as it:
             stale = [item.path for item in it if item.name.startswith(_TMP_PREFIX)]
         for p in stale:
