@@ -1312,6 +1312,14 @@ def apply_to_timeline(
     return new
 
 
+def _refuse_non_finite(samples: np.ndarray, what: str) -> None:
+    # NaN compares false against any limit, so it must be refused by name, never played.
+    bad = ~np.isfinite(samples)
+    if bad.any():
+        raise SafetyLimitError(f"{what}: sample {int(np.argmax(bad))} is not finite "
+                               f"({samples[bad][0]}); refused, nothing was sent.")
+
+
 def apply_to_waveforms(
     waveforms: Mapping[str, np.ndarray],
     carriers_ghz: Mapping[str, float],
@@ -1353,8 +1361,9 @@ def apply_to_waveforms(
     Raises
     ------
     SafetyLimitError
-        If a line's peak |b| would exceed its amplitude limit (naming line and pairs);
-        refused, never clipped. Average power is left to the rig's check.
+        If a line's peak |b| would exceed its amplitude limit (naming line and pairs),
+        or any input or output sample is not finite; refused, never clipped. Average
+        power is left to the rig's check.
     ValueError
         On arrays of different lengths, a missing carrier, or settings of another chip.
     """
@@ -1366,9 +1375,10 @@ def apply_to_waveforms(
     shapes = set(lengths.values())
     if len(shapes) > 1 or any(len(s) != 1 for s in shapes):
         raise ValueError(f"waveforms must be 1-D and of one length, got shapes {lengths}")
-    for k in arrays:
+    for k, a in arrays.items():
         if k not in chip.line_names:
             raise ValueError(f"waveform of unknown line {k!r}; known: {', '.join(chip.line_names)}")
+        _refuse_non_finite(a, f"waveform of line {k}")
     n = next(iter(shapes))[0] if shapes else 0
     t = t0_ns + dt_ns * np.arange(n)
     out = {k: a.copy() for k, a in arrays.items()}
@@ -1391,6 +1401,8 @@ def apply_to_waveforms(
         dst += p.ratio * src * np.exp(-2j * np.pi * (fj - fi) * t)
         culprits.setdefault(p.victim_line, []).append(p)
     for line, ps in culprits.items():
+        _refuse_non_finite(out[line], f"line {line} with the cancellation tones of "
+                           + "; ".join(p.describe() for p in ps))
         peak = float(np.max(np.abs(out[line]))) if n else 0.0
         limit = chip.amplitude_limit(line)
         if peak > limit * (1 + 1e-12):

@@ -13,6 +13,12 @@ same frequency only cancels the leaked field if both share the reference.
 In the frame of a qubit rotating at its 0–1 frequency this field contributes the
 rotating-wave term ``½·Ω(t)·e^{−i2π(f − f01)t}·a† + h.c.`` with ``Ω ∝ A``.
 
+Every field of a tone is checked when it is made (finite; amplitude ≥ 0, duration > 0,
+start ≥ 0, frequency > 0) and again by :func:`xtalkcal.safety.check_timelines` before
+anything is played. A negative amplitude is refused rather than read as a sign: the
+same field is a phase of π, and a stray sign must never be able to slip past a limit
+written for |a|.
+
 Envelopes (``E``, peak 1 before DRAG):
 
 ``gaussian``
@@ -29,6 +35,7 @@ Envelopes (``E``, peak 1 before DRAG):
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Iterable
 from dataclasses import dataclass, field, replace
 from typing import Literal
@@ -49,6 +56,7 @@ __all__ = [
 
 EnvelopeKind = Literal["gaussian", "drag", "flattop", "square"]
 ENVELOPE_KINDS: tuple[str, ...] = ("gaussian", "drag", "flattop", "square")
+MIN_SHAPE_NS = 1e-3  # shortest σ or ramp accepted (ns)
 
 
 @dataclass(frozen=True)
@@ -76,10 +84,14 @@ class Envelope:
         if self.kind not in ENVELOPE_KINDS:
             raise TimelineError(f"{where}: kind {self.kind!r} not one of {ENVELOPE_KINDS}")
         for name in ("sigma_ns", "drag_ns", "ramp_ns"):
-            if not math.isfinite(getattr(self, name)):
-                raise TimelineError(f"{where}: {name} must be finite")
-        if self.kind in ("gaussian", "drag") and self.sigma_ns <= 0:
-            raise TimelineError(f"{where}: sigma_ns must be > 0 for a {self.kind} envelope")
+            _require_finite(getattr(self, name), f"{where}: {name}")
+        # Below a picosecond no DAC can play the shape, and σ² or T/ramp leave floats.
+        if self.kind in ("gaussian", "drag") and not self.sigma_ns >= MIN_SHAPE_NS:
+            raise TimelineError(f"{where}: sigma_ns = {self.sigma_ns:g} must be ≥ "
+                                f"{MIN_SHAPE_NS:g} ns for a {self.kind} envelope")
+        if self.kind == "flattop" and 0 < self.ramp_ns < MIN_SHAPE_NS:
+            raise TimelineError(f"{where}: ramp_ns = {self.ramp_ns:g} must be 0 or ≥ "
+                                f"{MIN_SHAPE_NS:g} ns")
         if self.kind == "flattop" and not (0 <= 2 * self.ramp_ns <= duration_ns):
             raise TimelineError(
                 f"{where}: ramp_ns = {self.ramp_ns:g} must satisfy 0 ≤ 2·ramp_ns ≤ duration "
@@ -90,6 +102,13 @@ class Envelope:
     def code(self) -> int:
         """Small integer used by compiled back ends (index into ``ENVELOPE_KINDS``)."""
         return ENVELOPE_KINDS.index(self.kind)
+
+
+def _require_finite(value: object, what: str) -> None:
+    # bool is an int, but a True amplitude is a mistake, not full scale.
+    if (isinstance(value, bool) or not isinstance(value, numbers.Real)
+            or not math.isfinite(value)):
+        raise TimelineError(f"{what} must be a finite number, got {value!r}")
 
 
 def envelope_values(env: Envelope, duration_ns: float, tau_ns: np.ndarray) -> np.ndarray:
@@ -188,14 +207,21 @@ class Tone:
         z = ratio * self.complex_amplitude
         return replace(self, line=line, amplitude=abs(z), phase_rad=math.atan2(z.imag, z.real))
 
+    def __post_init__(self) -> None:
+        self.validate()
+
     def validate(self, where: str = "tone") -> None:
-        """Raise :class:`TimelineError` on non-finite or negative values."""
+        """Raise :class:`TimelineError` on non-finite or out-of-range values.
+
+        Runs when a tone is made and again in :func:`xtalkcal.safety.check_timelines`,
+        which cannot know how a plug-in built the tones it is handed.
+        """
         for name in ("start_ns", "duration_ns", "freq_ghz", "amplitude", "phase_rad"):
-            v = getattr(self, name)
-            if not isinstance(v, (int, float)) or not math.isfinite(v):
-                raise TimelineError(f"{where}: {name} must be a finite number, got {v!r}")
-        if not self.line:
-            raise TimelineError(f"{where}: line name is empty")
+            _require_finite(getattr(self, name), f"{where}: {name}")
+        if not isinstance(self.line, str) or not self.line:
+            raise TimelineError(f"{where}: line must be a non-empty name, got {self.line!r}")
+        if not isinstance(self.envelope, Envelope):
+            raise TimelineError(f"{where}: envelope must be an Envelope, got {self.envelope!r}")
         if self.start_ns < 0:
             raise TimelineError(f"{where}: start_ns = {self.start_ns:g} is negative")
         if self.duration_ns <= 0:
@@ -203,7 +229,8 @@ class Tone:
         if self.freq_ghz <= 0:
             raise TimelineError(f"{where}: freq_ghz = {self.freq_ghz:g} must be > 0")
         if self.amplitude < 0:
-            raise TimelineError(f"{where}: amplitude = {self.amplitude:g} must be ≥ 0")
+            raise TimelineError(f"{where}: amplitude = {self.amplitude:g} must be ≥ 0 "
+                                "(a sign is a phase of π)")
         self.envelope.validate(self.duration_ns, f"{where}.envelope")
 
 
@@ -253,6 +280,8 @@ class Timeline:
         name = self.label or "timeline"
         for k, tone in enumerate(self.tones):
             where = f"{name}: tone[{k}]"
+            if not isinstance(tone, Tone):
+                raise TimelineError(f"{where}: not a Tone, got {type(tone).__name__}")
             tone.validate(where)
             if line_set is not None and tone.line not in line_set:
                 raise TimelineError(
@@ -266,7 +295,8 @@ class Timeline:
                 if q not in qubit_set:
                     raise TimelineError(f"{name}: readout of unknown qubit {q!r}")
         if self.readout_ns is not None:
-            if not math.isfinite(self.readout_ns) or self.readout_ns < 0:
+            _require_finite(self.readout_ns, f"{name}: readout_ns")
+            if self.readout_ns < 0:
                 raise TimelineError(f"{name}: readout_ns must be finite and ≥ 0")
             late = [t for t in self.tones if t.end_ns > self.readout_ns + 1e-9]
             if late:
