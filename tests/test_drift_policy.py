@@ -660,6 +660,7 @@ slots = st.builds(
     follow_up=st.sampled_from(FollowUp),
     note=st.text(max_size=40),
     set_aside=st.just("") | st.text(min_size=1, max_size=40),
+    set_aside_entry_s=st.none() | times,
 )
 
 

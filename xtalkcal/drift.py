@@ -1617,6 +1617,9 @@ class PairSlot:
         cannot be played within the victim line's limits, so re-checking it would fail the
         same way on every run. A fresh calibration of the pair (:meth:`Schedule.calibrated`)
         takes it back.
+    set_aside_entry_s : float or None
+        ``measured_at_s`` of the stored entry that was set aside: once the pair's current
+        ledger entry is another one (a new calibration), it is scheduled again.
     """
 
     aggressor: str
@@ -1628,6 +1631,7 @@ class PairSlot:
     follow_up: FollowUp = FollowUp.NONE
     note: str = ""
     set_aside: str = ""
+    set_aside_entry_s: float | None = None
 
     @property
     def pair(self) -> Pair:
@@ -1644,6 +1648,7 @@ class PairSlot:
             "follow_up": self.follow_up.value,
             "note": self.note,
             "set_aside": self.set_aside,
+            "set_aside_entry_s": self.set_aside_entry_s,
         }
 
 
@@ -1653,7 +1658,7 @@ def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
         raise ScheduleFileError(source, where, f"expected an object, got {type(d).__name__}")
     known = {
         "aggressor", "victim", "interval_hours", "due_s", "last_checked_s", "last_decision",
-        "follow_up", "note", "set_aside",
+        "follow_up", "note", "set_aside", "set_aside_entry_s",
     }
     extra = sorted(set(d) - known)
     if extra:
@@ -1714,6 +1719,7 @@ def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
         follow_up=choice("follow_up", FollowUp, optional=False),
         note=text("note"),
         set_aside=text("set_aside"),
+        set_aside_entry_s=number("set_aside_entry_s", t_lo, t_hi, "s", optional=True),
     )
 
 
@@ -1819,18 +1825,20 @@ class Schedule:
         """Pairs set aside (see :meth:`set_aside`) with their reasons, sorted by pair."""
         return {p: s.set_aside for p, s in sorted(self._slots.items()) if s.set_aside}
 
-    def set_aside(self, pair: Pair, reason: str) -> PairSlot:
+    def set_aside(self, pair: Pair, reason: str, entry_s: float) -> PairSlot:
         """Stop re-checking ``pair`` until it is calibrated afresh, and say why.
 
         For a pair whose stored compensation cannot be played within its line's limits:
         every re-check would fail the same way, and one bad pair must not stop the rest of
-        the schedule on every run. The reason is kept in the file and reported by later runs.
+        the schedule on every run. The reason is kept in the file and reported by later runs;
+        ``entry_s`` is the ``measured_at_s`` of the stored entry that cannot be played.
         """
         p = _check_pair(pair)
+        now = _finite_real("entry_s", entry_s)
         if not isinstance(reason, str) or not reason.strip():
             raise DriftInputError("a set-aside pair needs a reason (a non-empty string)")
         slot = dataclasses.replace(self._slots[p], set_aside=reason[:_NOTE_MAX],
-                                   follow_up=FollowUp.NONE)
+                                   set_aside_entry_s=now, follow_up=FollowUp.NONE)
         self._slots[p] = slot
         return slot
 
@@ -1966,9 +1974,10 @@ class Schedule:
                                                      f"{type(raw).__name__}")
         slots = []
         for i, d in enumerate(raw):
-            if version < 2 and isinstance(d, Mapping) and "set_aside" in d:
-                raise ScheduleFileError(source, f"pairs[{i}].set_aside",
-                                        "unknown field in a version 1 schedule")
+            for key in ("set_aside", "set_aside_entry_s"):
+                if version < 2 and isinstance(d, Mapping) and key in d:
+                    raise ScheduleFileError(source, f"pairs[{i}].{key}",
+                                            "unknown field in a version 1 schedule")
             slots.append(_slot_from_dict(d, source, f"pairs[{i}]"))
         seen: set[Pair] = set()
         for i, sl in enumerate(slots):

@@ -419,6 +419,9 @@ class Fields:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             return self.reject(key, f"expected a number{_unit(unit)}, got {_short(value)}; "
                                     f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
+        if isinstance(value, int) and not lo <= value <= hi:  # may be beyond float range
+            return self.reject(key, f"{_short(value)} is out of range; "
+                                    f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
         value = float(value)
         if not math.isfinite(value):
             return self.reject(key, f"expected a finite number{_unit(unit)}, got {value!r}; "
