@@ -1961,8 +1961,9 @@ class Schedule:
                                     f"got {_short_repr(version)}")
         if version > SCHEDULE_SCHEMA_VERSION:
             raise ScheduleFileError(source, "schema_version",
-                                    f"{version} is newer than this code reads "
-                                    f"({SCHEDULE_SCHEMA_VERSION}); upgrade xtalkcal")
+                                    f"{_short_repr(version)} is newer than this code "
+                                    f"reads; accepted: 1 to {SCHEDULE_SCHEMA_VERSION} (or "
+                                    "upgrade xtalkcal)")
         extra = sorted(set(doc) - {"format", "schema_version", "pairs"})
         if extra:
             raise ScheduleFileError(source, "(top level)",
@@ -2011,7 +2012,7 @@ class Schedule:
         """
         lines, qubits = chip.line_names, chip.qubit_names
         problems = []
-        for i, p in enumerate(self.pairs()):
+        for i, p in enumerate(self._slots):  # in file order, so pairs[i] is the file's
             if p[0] not in lines:
                 problems.append((f"pairs[{i}].aggressor", f"{p[0]!r} is not a drive line of "
                                  f"chip {chip.name!r}; known: {', '.join(lines)}"))
