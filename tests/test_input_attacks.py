@@ -101,6 +101,17 @@ def test_deep_nesting_is_one_line_naming_the_file(tmp_path, capsys, kind, depth)
     assert line.startswith(f"xtalkcal: error: {path}: (syntax): nested too deeply")
 
 
+@pytest.mark.parametrize("suffix", [".json", ".toml"])
+def test_integer_too_long_to_convert_is_one_line(tmp_path, capsys, suffix):
+    path = tmp_path / f"long{suffix}"
+    digits = "9" * 5000  # beyond Python's int-from-text limit: a ValueError in the parser
+    path.write_text(f'{{"format": "xtalkcal-schedule", "schema_version": {digits}}}'
+                    if suffix == ".json" else f'name = "x"\nversion = {digits}\n')
+    assert main(["check", str(path)]) == 2
+    (line,) = _err_lines(capsys)
+    assert line.startswith(f"xtalkcal: error: {path}: (syntax): not valid")
+
+
 # ------------------------------------------------------------------ numbers
 
 

@@ -139,7 +139,13 @@ from xtalkcal.exceptions import ConfigError, SafetyLimitError
 from xtalkcal.ledger import LedgerEntry, MatrixSnapshot, utc_timestamp
 from xtalkcal.safety import check_timelines, line_loads
 from xtalkcal.timeline import Timeline, Tone
-from xtalkcal.tomlfields import RIG_TIME_RANGE_S, name_problem, parse_json, read_text
+from xtalkcal.tomlfields import (
+    RIG_TIME_RANGE_S,
+    name_problem,
+    parse_json,
+    read_text,
+    short_repr,
+)
 
 __all__ = [
     "SETTINGS_SCHEMA",
@@ -657,11 +663,6 @@ def _pair_to_dict(p: PairSetting) -> dict[str, Any]:
     }
 
 
-def _short(v: object) -> str:
-    text = repr(v) if isinstance(v, str | int | float | type(None)) else type(v).__name__
-    return text if len(text) <= 40 else text[:39] + "…"
-
-
 class _Reader:
     """Typed, located access to one JSON object (errors name source and field)."""
 
@@ -680,7 +681,7 @@ class _Reader:
         v = self._get(name)
         if not isinstance(v, str) or (not empty and not v):
             raise self.error(name, f"expected a {'' if empty else 'non-empty '}string, got "
-                                   f"{_short(v)}")
+                                   f"{short_repr(v)}")
         if len(v) > _TEXT_MAX:
             raise self.error(name, f"{len(v)} characters; accepted: at most {_TEXT_MAX}")
         if name in _NAME_FIELDS and (problem := name_problem(v)) is not None:
@@ -703,8 +704,8 @@ class _Reader:
             return None
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise self.error(name, f"expected a finite number{' or null' if optional else ''}, "
-                                   f"got {_short(v)}")
-        return self._in_range(name, v, _short(v), optional)
+                                   f"got {short_repr(v)}")
+        return self._in_range(name, v, short_repr(v), optional)
 
     def cell_number(self, name: str, optional: bool = False) -> float | None:
         """A number written as text (a CSV cell); empty means None if ``optional``."""
@@ -715,8 +716,8 @@ class _Reader:
             v = float(s)
         except ValueError:
             raise self.error(name, f"expected a finite number{' or empty' if optional else ''}, "
-                                   f"got {_short(s)}") from None
-        return self._in_range(name, v, _short(s), optional)
+                                   f"got {short_repr(s)}") from None
+        return self._in_range(name, v, short_repr(s), optional)
 
     def table(self, name: str) -> _Reader:
         v = self._get(name)

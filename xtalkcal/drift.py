@@ -59,6 +59,7 @@ from xtalkcal.tomlfields import (
     load_json,
     name_problem,
     parse_json,
+    short_repr,
 )
 
 if TYPE_CHECKING:
@@ -1691,7 +1692,7 @@ def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
         if isinstance(v, bool) or not isinstance(v, int | float):
             raise bad(key, f"expected a number, got {type(v).__name__}; {accepted}")
         if not lo <= v <= hi:  # NaN and ±inf fail too; int-float comparisons are exact
-            shown = f"{v:g}" if isinstance(v, float) else _short_repr(v)
+            shown = f"{v:g}" if isinstance(v, float) else short_repr(v)
             raise bad(key, f"{shown} is out of range; {accepted}")
         return float(v)
 
@@ -1702,7 +1703,7 @@ def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
         try:
             return enum_type(v)
         except (ValueError, TypeError):
-            raise bad(key, f"{_short_repr(v)} is not one of "
+            raise bad(key, f"{short_repr(v)} is not one of "
                            f"{', '.join(repr(m.value) for m in enum_type)}") from None
 
     t_lo, t_hi = RIG_TIME_RANGE_S
@@ -1723,13 +1724,8 @@ def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
     )
 
 
-def _short_repr(v: object) -> str:
-    text = repr(v) if isinstance(v, str | int | float | type(None)) else type(v).__name__
-    return text if len(text) <= 40 else text[:39] + "…"
-
-
 def _names(keys: Iterable[object]) -> str:
-    return ", ".join(_short_repr(k) for k in keys)
+    return ", ".join(short_repr(k) for k in keys)
 
 
 def _check_pair(pair: object) -> Pair:
@@ -1953,15 +1949,15 @@ class Schedule:
                                     f"expected a JSON object, got {type(doc).__name__}")
         if doc.get("format") != SCHEDULE_FORMAT:
             raise ScheduleFileError(source, "format", f"expected {SCHEDULE_FORMAT!r}, got "
-                                                      f"{_short_repr(doc.get('format'))}")
+                                                      f"{short_repr(doc.get('format'))}")
         version = doc.get("schema_version")
         if isinstance(version, bool) or not isinstance(version, int) or version < 1:
             raise ScheduleFileError(source, "schema_version",
                                     f"expected an integer from 1 to {SCHEDULE_SCHEMA_VERSION}, "
-                                    f"got {_short_repr(version)}")
+                                    f"got {short_repr(version)}")
         if version > SCHEDULE_SCHEMA_VERSION:
             raise ScheduleFileError(source, "schema_version",
-                                    f"{_short_repr(version)} is newer than this code "
+                                    f"{short_repr(version)} is newer than this code "
                                     f"reads; accepted: 1 to {SCHEDULE_SCHEMA_VERSION} (or "
                                     "upgrade xtalkcal)")
         extra = sorted(set(doc) - {"format", "schema_version", "pairs"})

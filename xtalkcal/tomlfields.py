@@ -60,6 +60,7 @@ __all__ = [
     "MAX_NESTING",
     "MAX_FILE_BYTES",
     "parse_json",
+    "short_repr",
     "RIG_TIME_RANGE_S",
     "RECHECK_INTERVAL_RANGE_H",
 ]
@@ -119,13 +120,13 @@ def valid(*values: Any) -> bool:
 def name_problem(value: Any) -> str | None:
     """Why ``value`` is not a valid name under :data:`NAME_RULE` (None if it is one)."""
     if not isinstance(value, str):
-        return f"expected a name (a string), got {_short(value)}"
+        return f"expected a name (a string), got {short_repr(value)}"
     if not _NAME.fullmatch(value):
-        return f"{_short(value)} is not a valid name; accepted: {_NAME_RULE_TEXT}"
+        return f"{short_repr(value)} is not a valid name; accepted: {_NAME_RULE_TEXT}"
     return None
 
 
-def _short(value: Any, limit: int = 60) -> str:
+def short_repr(value: Any, limit: int = 60) -> str:
     """``repr(value)``, cut to ``limit`` characters (a message must stay readable)."""
     try:
         text = repr(value)
@@ -209,6 +210,8 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(source, "(syntax)", f"not valid TOML: {exc}") from None
+    except ValueError as exc:  # an integer of more digits than Python converts
+        raise ConfigError(source, "(syntax)", _one_line(f"not valid TOML: {exc}")) from None
     except RecursionError:
         raise ConfigError(source, "(syntax)", _too_deep()) from None
     _check_depth(data, source)
@@ -242,7 +245,7 @@ def parse_json(text: str, source: str) -> Any:
         out: dict[str, Any] = {}
         for k, v in pairs:
             if k in out:
-                raise ValueError(f"key {_short(k)} appears twice in one object")
+                raise ValueError(f"key {short_repr(k)} appears twice in one object")
             out[k] = v
         return out
 
@@ -417,10 +420,10 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            return self.reject(key, f"expected a number{_unit(unit)}, got {_short(value)}; "
+            return self.reject(key, f"expected a number{_unit(unit)}, got {short_repr(value)}; "
                                     f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
         if isinstance(value, int) and not lo <= value <= hi:  # may be beyond float range
-            return self.reject(key, f"{_short(value)} is out of range; "
+            return self.reject(key, f"{short_repr(value)} is out of range; "
                                     f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
         value = float(value)
         if not math.isfinite(value):
@@ -439,10 +442,10 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if isinstance(value, bool) or not isinstance(value, int):
-            return self.reject(key, f"expected an integer, got {_short(value)}; "
+            return self.reject(key, f"expected an integer, got {short_repr(value)}; "
                                     f"accepted: {_range_text(lo, hi)}")
         if value < lo or value > hi:
-            return self.reject(key, f"{_short(value)} is out of range; "
+            return self.reject(key, f"{short_repr(value)} is out of range; "
                                     f"accepted: {_range_text(lo, hi)}")
         return value
 
@@ -454,12 +457,12 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if not isinstance(value, str) or not value.strip():
-            return self.reject(key, f"expected a non-empty string, got {_short(value)}")
+            return self.reject(key, f"expected a non-empty string, got {short_repr(value)}")
         if choices is not None:
             options = list(choices)
             if value not in options:
                 return self.reject(
-                    key, f"{_short(value)} is not one of {', '.join(map(repr, options))}"
+                    key, f"{short_repr(value)} is not one of {', '.join(map(repr, options))}"
                 )
         return value
 
@@ -477,7 +480,7 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if not isinstance(value, str):
-            return self.reject(key, f"expected a string, got {_short(value)}")
+            return self.reject(key, f"expected a string, got {short_repr(value)}")
         if len(value) > max_len:
             return self.reject(key, f"{len(value)} characters; accepted: at most {max_len}")
         return value
@@ -488,7 +491,7 @@ class Fields:
         if value is INVALID:
             return value
         if not isinstance(value, bool):
-            return self.reject(key, f"expected true or false, got {_short(value)}")
+            return self.reject(key, f"expected true or false, got {short_repr(value)}")
         return value
 
     def string_list(self, key: str, default: Any = REQUIRED) -> Any:
@@ -497,7 +500,7 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if not isinstance(value, list):
-            return self.reject(key, f"expected a list of names, got {_short(value)}")
+            return self.reject(key, f"expected a list of names, got {short_repr(value)}")
         for v in value:
             if (problem := name_problem(v)) is not None:
                 return self.reject(key, problem)
@@ -509,7 +512,7 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if not isinstance(value, list) or not all(isinstance(g, list) for g in value):
-            return self.reject(key, f"expected a list of lists of names, got {_short(value)}")
+            return self.reject(key, f"expected a list of lists of names, got {short_repr(value)}")
         for v in (v for g in value for v in g):
             if (problem := name_problem(v)) is not None:
                 return self.reject(key, problem)
