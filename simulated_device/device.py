@@ -95,6 +95,9 @@ __all__ = [
 DEVICE_FORMAT = "xtalkcal-simdevice"
 DEVICE_VERSION = 1
 HOUR_S = 3600.0
+# Drift beyond these would scramble a coupling within seconds: no chip worth simulating.
+DIFFUSION_MAX_PER_HOUR = 100.0  # rad²/h for phases, 1/h for log-magnitudes
+RATE_MAX = 100.0  # rad/h
 
 
 @dataclass(frozen=True)
@@ -245,7 +248,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
     """Validate a device given as a TOML-shaped dictionary (errors as :func:`load_device`)."""
     top, name = read_header(data, source, kind=DEVICE_FORMAT, version=DEVICE_VERSION,
                             hint=" (is this a chip file?)")
-    seed = top.integer("seed", 0, lo=0)
+    seed = top.integer("seed", 0, lo=0, hi=2**63 - 1)
     n_levels = top.integer("levels", 3, lo=2, hi=8)
     rep = top.number("repetition_us", 100.0, lo=0.1, hi=1e5, unit="µs")
 
@@ -257,11 +260,15 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
 
     dr = top.table("drift", None)
     drift = DriftParams(
-        phase_diffusion_rad2_per_hour=dr.number("phase_diffusion_rad2_per_hour", 0.0, lo=0.0),
-        phase_rate_rad_per_hour=dr.number("phase_rate_rad_per_hour", 0.0),
-        log_magnitude_diffusion_per_hour=dr.number("log_magnitude_diffusion_per_hour", 0.0, lo=0.0),
+        phase_diffusion_rad2_per_hour=dr.number("phase_diffusion_rad2_per_hour", 0.0, lo=0.0,
+                                                hi=DIFFUSION_MAX_PER_HOUR, unit="rad²/h"),
+        phase_rate_rad_per_hour=dr.number("phase_rate_rad_per_hour", 0.0, lo=-RATE_MAX,
+                                          hi=RATE_MAX, unit="rad/h"),
+        log_magnitude_diffusion_per_hour=dr.number("log_magnitude_diffusion_per_hour", 0.0,
+                                                   lo=0.0, hi=DIFFUSION_MAX_PER_HOUR, unit="1/h"),
         qubit_wander_mhz=dr.number("qubit_wander_mhz", 0.0, lo=0.0, hi=100.0, unit="MHz"),
-        qubit_wander_hours=dr.number("qubit_wander_hours", 1.0, lo=0.0, lo_open=True, unit="h"),
+        qubit_wander_hours=dr.number("qubit_wander_hours", 1.0, lo=0.0, hi=1e4, lo_open=True,
+                                     unit="h"),
     )
     dr.reject_unknown()
 
@@ -302,7 +309,8 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
                 ct.number("crosstalk_db", lo=-150.0, hi=0.0, unit="dB"),
                 math.radians(phase_deg) if valid(phase_deg) else phase_deg,
                 ct.number("delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
-                ct.number("phase_rate_rad_per_hour", None),
+                ct.number("phase_rate_rad_per_hour", None, lo=-RATE_MAX, hi=RATE_MAX,
+                          unit="rad/h"),
             )
         )
         ct.reject_unknown()
@@ -353,7 +361,7 @@ def _read_qubit(qname: Any, qt: Fields, n_levels: Any) -> QubitTruth:
         else:
             levels = charge_basis_levels(ej, ec, n_levels=n_levels)
     t1, t2 = read_coherence(qt, required=True)
-    ro = qt.matrix("readout", None)
+    ro = qt.matrix("readout", None, lo=0.0, hi=1.0)
     if ro is None:
         ro_arr: Any = np.eye(min(n_levels, 3)) if valid(n_levels) else INVALID
     elif valid(ro):

@@ -103,6 +103,17 @@ class SimRig:
             raise ValueError("wait() needs a finite, non-negative time")
         self._t_s += seconds
 
+    def advance_clock_to(self, t_s: float) -> None:
+        """Move the clock on to ``t_s`` if it is behind (never back; drift goes on).
+
+        Called by :class:`xtalkcal.sweep.BatchRunner` for each batch answered from a
+        record, with the time the batch finished when it was measured: a resumed run then
+        keeps the clock of the run it resumes.
+        """
+        if not math.isfinite(t_s):
+            raise ValueError("advance_clock_to() needs a finite time")
+        self._t_s = max(self._t_s, float(t_s))
+
     def run(self, timelines: Sequence[Timeline], shots: int) -> Counts:
         """Execute each timeline ``shots`` times; safety checked before anything runs."""
         if not isinstance(shots, (int, np.integer)) or shots < 1:

@@ -645,8 +645,10 @@ def test_follow_ups_are_pending_until_calibrated() -> None:
     assert ("d2", "q3") not in sch and len(sch) == 1
 
 
-names = st.text(min_size=1, max_size=12)
-times = st.floats(min_value=-1e9, max_value=1e12, allow_nan=False, allow_infinity=False)
+# Names under the documented rule (xtalkcal.tomlfields.NAME_RULE); times and intervals over
+# the whole accepted ranges (RIG_TIME_RANGE_S, RECHECK_INTERVAL_RANGE_H).
+names = st.from_regex(r"\A[A-Za-z][A-Za-z0-9_-]{0,11}\Z")
+times = st.floats(min_value=-1e12, max_value=1e12, allow_nan=False, allow_infinity=False)
 slots = st.builds(
     PairSlot,
     aggressor=names,
@@ -657,6 +659,8 @@ slots = st.builds(
     last_decision=st.none() | st.sampled_from(RecheckDecision),
     follow_up=st.sampled_from(FollowUp),
     note=st.text(max_size=40),
+    set_aside=st.just("") | st.text(min_size=1, max_size=40),
+    set_aside_entry_s=st.none() | times,
 )
 
 

@@ -52,6 +52,10 @@ CHIP_VERSION = 1
 F01_RANGE_GHZ = (0.5, 20.0)
 ANHARMONICITY_RANGE_GHZ = (-1.0, 0.0)
 RABI_RANGE_MHZ = (1e-3, 1000.0)
+# Coherence times up to 0.1 s: two orders of magnitude beyond the best transmons reported
+# (about a millisecond, a value from memory); common practice, not a hard physical bound.
+COHERENCE_RANGE_US = (0.0, 1e5)
+POWER_RANGE_DBM = (-200.0, 40.0)  # 40 dBm is 10 W at the chip: far beyond any drive line
 
 
 @dataclass(frozen=True)
@@ -229,7 +233,8 @@ def read_limits(lim: Fields) -> SafetyLimits:
     """The lab's ``[limits]`` table (shared by chip and simulated-device files)."""
     limits = SafetyLimits(
         max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
-        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=-200.0, hi=40.0),
+        max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=POWER_RANGE_DBM[0],
+                                         hi=POWER_RANGE_DBM[1], unit="dBm"),
     )
     lim.reject_unknown()
     return limits
@@ -263,8 +268,9 @@ def read_coherence(qt: Fields, *, required: bool) -> tuple[Any, Any]:
     t1_us, t2_us : float, None (absent and not required) or INVALID
     """
     default = REQUIRED if required else None
-    t1 = qt.number("t1_us", default, lo=0.0, lo_open=True, unit="µs")
-    t2 = qt.number("t2_us", default, lo=0.0, lo_open=True, unit="µs")
+    lo, hi = COHERENCE_RANGE_US
+    t1 = qt.number("t1_us", default, lo=lo, hi=hi, lo_open=True, unit="µs")
+    t2 = qt.number("t2_us", default, lo=lo, hi=hi, lo_open=True, unit="µs")
     if valid(t1, t2) and t1 is not None and t2 is not None and t2 > 2 * t1 * (1 + 1e-9):
         qt.report("t2_us", f"T2 = {t2:g} µs exceeds 2·T1 = {2 * t1:g} µs (unphysical); "
                            "accepted: t2_us ≤ 2·t1_us")
@@ -297,7 +303,8 @@ def read_drive_lines(top: Fields, qnames: Sequence[Any]) -> list[tuple[DriveLine
                 target,
                 lt.number("rabi_mhz", lo=RABI_RANGE_MHZ[0], hi=RABI_RANGE_MHZ[1], unit="MHz"),
                 lt.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
-                lt.number("full_scale_dbm", None, lo=-200.0, hi=40.0, unit="dBm"),
+                lt.number("full_scale_dbm", None, lo=POWER_RANGE_DBM[0], hi=POWER_RANGE_DBM[1],
+                          unit="dBm"),
             ),
             lt,
         )

@@ -52,46 +52,89 @@ def _print_errors(exc: XtalkcalError) -> None:
 @_command("check")
 def _cmd_check(args: argparse.Namespace) -> int:
     bad = 0
+    loaded: list[tuple[object, object, str]] = []
     for path in args.files:
         try:
-            _check_one(path)
+            loaded.append(_check_one(path))
         except XtalkcalError as exc:  # report it and go on with the next file
             if args.debug:
                 raise
             _print_errors(exc)
             bad += 1
+    # Names in protocols (overrides) and schedules are checked against every chip given
+    # with them: without one, only the name rule can be checked.
+    chips = [chip for _, chip, _ in loaded if chip is not None]
+    for obj, _, ok in loaded:
+        try:
+            for chip in chips if hasattr(obj, "check_against") else ():
+                obj.check_against(chip)
+        except XtalkcalError as exc:
+            if args.debug:
+                raise
+            _print_errors(exc)
+            bad += 1
+            continue
+        print(ok)
     return EXIT_USAGE if bad else EXIT_OK
 
 
-def _check_one(path: str) -> None:
-    """Validate one chip, protocol or simulated-device file, or a ledger directory; print
-    one line if it is OK (a ledger: one line per commit file)."""
+def _check_one(path: str) -> tuple[object, object, str]:
+    """Load one chip, protocol, simulated-device, schedule or settings file, or verify a
+    ledger directory (every commit file).
+
+    Returns what was loaded, the chip it describes (None for other kinds), its OK line.
+    """
     from xtalkcal.chip import load_chip
+    from xtalkcal.tomlfields import read_text
 
     if Path(path).is_dir():
         from xtalkcal.ledger import verify_ledger
 
         report = verify_ledger(path)
-        print("\n".join(report.lines()))
         if not report.ok:
+            print("\n".join(report.lines()))
             raise report.error()
-        return
+        return report, None, "\n".join(report.lines())
+    text, _ = read_text(path)
+    if path.endswith(".json") or text.lstrip("\ufeff \t\r\n").startswith("{"):
+        return _check_json(path)
     fmt = _detect_format(path)
     if fmt == "xtalkcal-simdevice":
         from simulated_device.device import load_device
 
         dev = load_device(path)
-        print(f"{path}: simulated device {dev.name!r}: {len(dev.qubits)} qubits, "
-              f"{len(dev.couplings)} couplings — OK")
-    elif fmt == "xtalkcal-protocol":
+        return dev, dev.chip(), (f"{path}: simulated device {dev.name!r}: "
+                                 f"{len(dev.qubits)} qubits, {len(dev.couplings)} couplings — OK")
+    if fmt == "xtalkcal-protocol":
         from xtalkcal.protocol import load_protocol
 
         proto = load_protocol(path)
-        print(f"{path}: protocol {proto.name!r} — OK")
-    else:
-        chip = load_chip(path)
-        print(f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
-              f"{len(chip.lines)} lines — OK")
+        return proto, None, f"{path}: protocol {proto.name!r} — OK"
+    chip = load_chip(path)
+    return chip, chip, (f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
+                  f"{len(chip.lines)} lines — OK")
+
+
+def _check_json(path: str) -> tuple[object, None, str]:
+    """A schedule or settings file (JSON), told apart by its ``format`` / ``schema``."""
+    from xtalkcal.compensation import SETTINGS_SCHEMA, CompensationSettings
+    from xtalkcal.drift import SCHEDULE_FORMAT, Schedule
+    from xtalkcal.protocol import default_protocol
+    from xtalkcal.tomlfields import load_json
+
+    doc, source = load_json(path)
+    kind = doc.get("format", doc.get("schema")) if isinstance(doc, dict) else None
+    if kind == SCHEDULE_FORMAT:
+        sch = Schedule.from_dict(doc, default_protocol().recheck, source=source)
+        n_aside = len(sch.set_aside_pairs())
+        return sch, None, f"{path}: schedule: {len(sch)} pairs ({n_aside} set aside) — OK"
+    if kind == SETTINGS_SCHEMA:
+        settings = CompensationSettings.from_dict(doc, source=source)
+        return settings, None, (f"{path}: settings for chip {settings.chip!r}: "
+                                f"{len(settings)} pairs — OK")
+    raise XtalkcalConfigError(source, "format", f"{str(kind)[:40]!r} is not a file kind "
+                              f"`check` reads; accepted: format {SCHEDULE_FORMAT!r} (a "
+                              f"schedule) or schema {SETTINGS_SCHEMA!r} (settings)")
 
 
 @_command("export-chip")
@@ -147,6 +190,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
 
     protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
+    protocol.check_against(rig.chip)  # names in overrides, before any rig time
     # A broken ledger is found before any rig time is spent, not after the calibration.
     led = _open_ledger(args.ledger, rig.chip.name) if args.ledger else None
     out = Path(args.output)
@@ -354,7 +398,9 @@ def _cmd_due(args: argparse.Namespace) -> int:
         raise XtalkcalConfigError("command line", "--ledger",
                                   f"{args.ledger} belongs to chip {led.chip!r}, the rig drives "
                                   f"{rig.chip.name!r}")
+    protocol.check_against(rig.chip)  # before any rig time: names in overrides and
     schedule = Schedule.load_or_new(args.schedule, protocol.recheck)
+    schedule.check_against(rig.chip)  # in the schedule's pairs
     if not len(schedule):
         for (a, v), e in current.entries.items():
             if e.kind != "survey":
@@ -368,7 +414,8 @@ def _cmd_due(args: argparse.Namespace) -> int:
               f"{len(rep.recalibrated)} columns recalibrated; {rep.shots:,} shots")
     broken = [c for c in rep.checked if c.outcome.decision.value == "broken"
               and c.aggressor not in rep.recalibrated]
-    return EXIT_FAILED if broken else EXIT_OK
+    # A pair newly set aside needs a person once; later runs only mention it (exit 0).
+    return EXIT_FAILED if broken or rep.set_aside else EXIT_OK
 
 
 class _Bar:
@@ -442,9 +489,12 @@ def build_parser() -> argparse.ArgumentParser:
     def add(name: str, help: str) -> argparse.ArgumentParser:
         return sub.add_parser(name, help=help, formatter_class=_DefaultsFormatter)
 
-    c = add("check", help="validate chip, device or protocol files, or ledger directories")
+    c = add("check", help="validate chip, device, protocol, schedule or settings files, "
+                           "or ledger directories")
     c.add_argument("files", nargs="+",
-                   help="TOML files or ledger directories (every commit file verified)")
+                   help="files to validate (TOML or JSON), or ledger directories (every "
+                        "commit file verified); names in protocols and schedules are checked "
+                        "against any chip or device file given with them")
 
     k = add("calibrate", help="survey the matrix and null every significant pair")
     k.add_argument("--protocol", default=None,

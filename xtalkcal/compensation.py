@@ -139,6 +139,13 @@ from xtalkcal.exceptions import ConfigError, SafetyLimitError
 from xtalkcal.ledger import LedgerEntry, MatrixSnapshot, utc_timestamp
 from xtalkcal.safety import check_timelines, line_loads
 from xtalkcal.timeline import Timeline, Tone
+from xtalkcal.tomlfields import (
+    RIG_TIME_RANGE_S,
+    name_problem,
+    parse_json,
+    read_text,
+    short_repr,
+)
 
 __all__ = [
     "SETTINGS_SCHEMA",
@@ -175,6 +182,21 @@ CSV_COLUMNS: tuple[str, ...] = (
 _SAME_FREQ_GHZ = 1e-6
 # Display values in a file may differ from those recomputed from re/im by this much.
 _DISPLAY_TOL_DB = 1e-6
+# The accepted range of every number a settings file (JSON or CSV) holds. A ratio beyond
+# ±10 (+20 dB) per component would ask for a cancellation tone ten times the aggressor's;
+# tones from 0.1 to 40 GHz; dB values span what those ratios and covariances can give;
+# variances of a ratio above 100 mean nothing is known. Common practice, not a hard bound.
+_RATIO_RANGE = (-10.0, 10.0)
+_DB_RANGE = (-6500.0, 40.0)  # the smallest positive double is −6460 dB
+_COV_RANGE = (-100.0, 100.0)
+_NUMBER_RANGES: dict[str, tuple[float, float]] = {
+    "re": _RATIO_RANGE, "im": _RATIO_RANGE, "ratio_re": _RATIO_RANGE, "ratio_im": _RATIO_RANGE,
+    "magnitude_db": _DB_RANGE, "stderr_db": _DB_RANGE, "phase_deg": (-360.0, 360.0),
+    "frequency_ghz": (0.1, 40.0), "measured_at_s": RIG_TIME_RANGE_S,
+    "cov_re_re": _COV_RANGE, "cov_re_im": _COV_RANGE, "cov_im_im": _COV_RANGE,
+}
+_NAME_FIELDS = ("chip", "aggressor_line", "aggressor_qubit", "victim", "victim_line")
+_TEXT_MAX = 2000  # characters of a free-text field (software, source)
 _DISPLAY_TOL_DEG = 1e-6
 # Conditioning beyond which the multi-victim system is refused: with |X| ≲ 0.1 the matrix
 # is near identity, so a condition number this large means corrupt input.
@@ -544,10 +566,7 @@ class CompensationSettings:
     @classmethod
     def from_json(cls, text: str, *, source: str = "<json>") -> CompensationSettings:
         """Parse JSON text of schema ``xtalkcal-settings/1`` (inverse of :meth:`to_json`)."""
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise ConfigError(source, "<document>", f"not valid JSON: {exc}") from None
+        data = parse_json(text, source)  # strict: no NaN, no duplicate keys, bounded nesting
         if not isinstance(data, dict):
             raise ConfigError(source, "<document>", "expected a JSON object at the top level")
         return _settings_from_dict(data, source)
@@ -559,8 +578,8 @@ class CompensationSettings:
     @classmethod
     def read_json(cls, path: str | os.PathLike[str]) -> CompensationSettings:
         """Read a settings JSON file."""
-        p = Path(path)
-        return cls.from_json(p.read_text(encoding="utf-8"), source=str(p))
+        text, source = read_text(path)  # a ConfigError if unreadable or not UTF-8
+        return cls.from_json(text, source=source)
 
     # ------------------------------------------------------------------ CSV
     def to_csv(self) -> str:
@@ -610,9 +629,8 @@ class CompensationSettings:
     def read_csv(cls, path: str | os.PathLike[str], *, chip: str | None = None
                  ) -> CompensationSettings:
         """Read a settings CSV file."""
-        p = Path(path)
-        with open(p, encoding="utf-8", newline="") as fh:
-            return cls.from_csv(fh.read(), chip=chip, source=str(p))
+        text, source = read_text(path)  # a ConfigError if unreadable or not UTF-8
+        return cls.from_csv(text, chip=chip, source=source)
 
 
 def _fmt_opt(x: float) -> str:
@@ -662,17 +680,32 @@ class _Reader:
     def string(self, name: str, *, empty: bool = False) -> str:
         v = self._get(name)
         if not isinstance(v, str) or (not empty and not v):
-            raise self.error(name, f"expected a {'' if empty else 'non-empty '}string, got {v!r}")
+            raise self.error(name, f"expected a {'' if empty else 'non-empty '}string, got "
+                                   f"{short_repr(v)}")
+        if len(v) > _TEXT_MAX:
+            raise self.error(name, f"{len(v)} characters; accepted: at most {_TEXT_MAX}")
+        if name in _NAME_FIELDS and (problem := name_problem(v)) is not None:
+            raise self.error(name, problem)
         return v
 
+    def _in_range(self, name: str, v: float, shown: object, optional: bool) -> float:
+        lo, hi = _NUMBER_RANGES[name]
+        accepted = f"accepted: {lo:g} ≤ x ≤ {hi:g}{' or null' if optional else ''}"
+        if isinstance(v, float) and not math.isfinite(v):  # (an int may be beyond floats)
+            raise self.error(name, f"expected a finite number, got {shown}; {accepted}")
+        if not lo <= v <= hi:
+            raise self.error(name, f"{shown} is out of range; {accepted}")
+        return float(v)
+
     def number(self, name: str, *, optional: bool = False) -> float | None:
+        """A number within its range in ``_NUMBER_RANGES`` (None if ``optional`` and null)."""
         v = self._get(name)
         if v is None and optional:
             return None
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise self.error(name, f"expected a finite number{' or null' if optional else ''}, "
-                                   f"got {v!r}")
-        return float(v)
+                                   f"got {short_repr(v)}")
+        return self._in_range(name, v, short_repr(v), optional)
 
     def cell_number(self, name: str, optional: bool = False) -> float | None:
         """A number written as text (a CSV cell); empty means None if ``optional``."""
@@ -682,16 +715,14 @@ class _Reader:
         try:
             v = float(s)
         except ValueError:
-            v = math.nan
-        if not math.isfinite(v):
             raise self.error(name, f"expected a finite number{' or empty' if optional else ''}, "
-                                   f"got {s!r}")
-        return v
+                                   f"got {short_repr(s)}") from None
+        return self._in_range(name, v, short_repr(s), optional)
 
     def table(self, name: str) -> _Reader:
         v = self._get(name)
         if not isinstance(v, dict):
-            raise self.error(name, f"expected an object, got {v!r}")
+            raise self.error(name, f"expected an object, got {type(v).__name__}")
         return _Reader(v, self.source, f"{self.where}{name}.")
 
     def reject_unknown(self, known: Iterable[str]) -> None:
@@ -755,10 +786,12 @@ def _settings_from_dict(data: Mapping[str, Any], source: str) -> CompensationSet
         cov = rd._get("covariance")
         ok = (isinstance(cov, list) and len(cov) == 2 and all(
             isinstance(row, list) and len(row) == 2 and all(
-                isinstance(v, (int, float)) and not isinstance(v, bool) for v in row)
+                isinstance(v, (int, float)) and not isinstance(v, bool)
+                and _COV_RANGE[0] <= v <= _COV_RANGE[1] for v in row)
             for row in cov))
         if not ok:
-            raise rd.error("covariance", f"expected [[a, b], [b, c]] of numbers, got {cov!r}")
+            raise rd.error("covariance", f"expected [[a, b], [b, c]] of numbers in "
+                                         f"{_COV_RANGE[0]:g} ≤ x ≤ {_COV_RANGE[1]:g}")
         solve = rd.string("solve")
         if solve not in SOLVES:
             raise rd.error("solve", f"got {solve!r}; accepted: {', '.join(SOLVES)}")
@@ -789,6 +822,13 @@ def _settings_from_dict(data: Mapping[str, Any], source: str) -> CompensationSet
 
 
 def _settings_from_csv(text: str, chip: str | None, source: str) -> CompensationSettings:
+    try:
+        return _settings_from_csv_rows(text, chip, source)
+    except csv.Error as exc:  # e.g. a cell beyond the csv module's field size limit
+        raise ConfigError(source, "<rows>", f"not valid CSV: {exc}") from None
+
+
+def _settings_from_csv_rows(text: str, chip: str | None, source: str) -> CompensationSettings:
     reader = csv.reader(io.StringIO(text, newline=""))
     try:
         header = next(reader)
@@ -809,6 +849,8 @@ def _settings_from_csv(text: str, chip: str | None, source: str) -> Compensation
         cells = dict(zip(CSV_COLUMNS, row, strict=True))
         rd = _Reader(cells, source, f"row {n}: ")
         num = rd.cell_number
+        for key in (*_NAME_FIELDS, "software", "source"):
+            rd.string(key, empty=key in ("software", "source"))  # names under the rule
 
         if cells["schema"] != SETTINGS_SCHEMA:
             raise rd.error("schema", f"expected {SETTINGS_SCHEMA!r}, got {cells['schema']!r}")

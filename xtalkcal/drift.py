@@ -51,10 +51,19 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy import linalg, optimize, stats
 
-from xtalkcal.exceptions import XtalkcalError
+from xtalkcal.exceptions import ConfigError, XtalkcalError
 from xtalkcal.fit import RejectionReason, _json_float, _readonly, binomial_signal
+from xtalkcal.tomlfields import (
+    RECHECK_INTERVAL_RANGE_H,
+    RIG_TIME_RANGE_S,
+    load_json,
+    name_problem,
+    parse_json,
+    short_repr,
+)
 
 if TYPE_CHECKING:
+    from xtalkcal.chip import Chip
     from xtalkcal.ledger import LedgerEntry
     from xtalkcal.protocol import RecheckSettings
 
@@ -92,8 +101,11 @@ class DriftInputError(XtalkcalError, ValueError):
     """Data handed to the drift logic has the wrong shape, non-finite values or mixed pairs."""
 
 
-class ScheduleFileError(XtalkcalError, ValueError):
-    """A schedule file or record is malformed (names the field and what is accepted)."""
+class ScheduleFileError(ConfigError):
+    """A schedule file or record is malformed: names the file, the field and what is accepted.
+
+    A :class:`~xtalkcal.exceptions.ConfigError` (``source``, ``field``, ``problem``).
+    """
 
 
 # --------------------------------------------------------------------------------------------
@@ -1577,7 +1589,8 @@ def next_check(
 # --------------------------------------------------------------------------------------------
 
 SCHEDULE_FORMAT = "xtalkcal-schedule"
-SCHEDULE_SCHEMA_VERSION = 1
+SCHEDULE_SCHEMA_VERSION = 2  # 2: set_aside added (version 1 files are read)
+_NOTE_MAX = 2000  # characters of a note or a set-aside reason
 
 Pair = tuple[str, str]
 
@@ -1600,6 +1613,14 @@ class PairSlot:
         Work pending before the next re-check.
     note : str
         Why the interval was chosen.
+    set_aside : str
+        Why the pair is no longer re-checked ("" while it is): its stored compensation
+        cannot be played within the victim line's limits, so re-checking it would fail the
+        same way on every run. A fresh calibration of the pair (:meth:`Schedule.calibrated`)
+        takes it back.
+    set_aside_entry_s : float or None
+        ``measured_at_s`` of the stored entry that was set aside: once the pair's current
+        ledger entry is another one (a new calibration), it is scheduled again.
     """
 
     aggressor: str
@@ -1610,6 +1631,8 @@ class PairSlot:
     last_decision: RecheckDecision | None = None
     follow_up: FollowUp = FollowUp.NONE
     note: str = ""
+    set_aside: str = ""
+    set_aside_entry_s: float | None = None
 
     @property
     def pair(self) -> Pair:
@@ -1625,34 +1648,52 @@ class PairSlot:
             "last_decision": None if self.last_decision is None else self.last_decision.value,
             "follow_up": self.follow_up.value,
             "note": self.note,
+            "set_aside": self.set_aside,
+            "set_aside_entry_s": self.set_aside_entry_s,
         }
 
 
-def _slot_from_dict(d: object, where: str) -> PairSlot:
+def _slot_from_dict(d: object, source: str, where: str) -> PairSlot:
+    """One entry of ``pairs``; every value checked against its physical range."""
     if not isinstance(d, Mapping):
-        raise ScheduleFileError(f"{where}: expected an object, got {type(d).__name__}")
+        raise ScheduleFileError(source, where, f"expected an object, got {type(d).__name__}")
     known = {
         "aggressor", "victim", "interval_hours", "due_s", "last_checked_s", "last_decision",
-        "follow_up", "note",
+        "follow_up", "note", "set_aside", "set_aside_entry_s",
     }
     extra = sorted(set(d) - known)
     if extra:
-        raise ScheduleFileError(f"{where}: unknown field(s) {extra}; expected {sorted(known)}")
+        raise ScheduleFileError(source, where, f"unknown field(s) {_names(extra)}; "
+                                               f"accepted: {', '.join(sorted(known))}")
 
-    def text(key: str, default: str | None = None) -> str:
-        v = d.get(key, default)
-        if not isinstance(v, str) or (default is None and v == ""):
-            raise ScheduleFileError(f"{where}.{key}: expected a non-empty string, got {v!r}")
+    def bad(key: str, problem: str) -> ScheduleFileError:
+        return ScheduleFileError(source, f"{where}.{key}", problem)
+
+    def name(key: str) -> str:
+        v = d.get(key)
+        problem = name_problem(v)
+        if problem is not None:
+            raise bad(key, problem)
+        return v  # type: ignore[return-value]
+
+    def text(key: str) -> str:
+        v = d.get(key, "")
+        if not isinstance(v, str) or len(v) > _NOTE_MAX:
+            raise bad(key, f"expected a string of at most {_NOTE_MAX} characters, got "
+                           f"{type(v).__name__}" + (f" of {len(v)}" if isinstance(v, str) else ""))
         return v
 
-    def number(key: str, *, optional: bool = False, positive: bool = False) -> float | None:
+    def number(key: str, lo: float, hi: float, unit: str, *, optional: bool = False
+               ) -> float | None:
         v = d.get(key)
         if v is None and optional:
             return None
-        if isinstance(v, bool) or not isinstance(v, int | float) or not math.isfinite(v):
-            raise ScheduleFileError(f"{where}.{key}: expected a finite number, got {v!r}")
-        if positive and not v > 0:
-            raise ScheduleFileError(f"{where}.{key}: expected a positive number, got {v!r}")
+        accepted = f"accepted: {lo:g} ≤ x ≤ {hi:g} {unit}"
+        if isinstance(v, bool) or not isinstance(v, int | float):
+            raise bad(key, f"expected a number, got {type(v).__name__}; {accepted}")
+        if not lo <= v <= hi:  # NaN and ±inf fail too; int-float comparisons are exact
+            shown = f"{v:g}" if isinstance(v, float) else short_repr(v)
+            raise bad(key, f"{shown} is out of range; {accepted}")
         return float(v)
 
     def choice(key: str, enum_type: type[enum.Enum], *, optional: bool) -> Any:
@@ -1661,24 +1702,30 @@ def _slot_from_dict(d: object, where: str) -> PairSlot:
             return None
         try:
             return enum_type(v)
-        except ValueError:
-            raise ScheduleFileError(
-                f"{where}.{key}: {v!r} is not one of {[m.value for m in enum_type]}"
-            ) from None
+        except (ValueError, TypeError):
+            raise bad(key, f"{short_repr(v)} is not one of "
+                           f"{', '.join(repr(m.value) for m in enum_type)}") from None
 
-    interval = number("interval_hours", positive=True)
-    due = number("due_s")
+    t_lo, t_hi = RIG_TIME_RANGE_S
+    interval = number("interval_hours", *RECHECK_INTERVAL_RANGE_H, "h")
+    due = number("due_s", t_lo, t_hi, "s")
     assert interval is not None and due is not None  # not optional
     return PairSlot(
-        aggressor=text("aggressor"),
-        victim=text("victim"),
+        aggressor=name("aggressor"),
+        victim=name("victim"),
         interval_h=interval,
         due_s=due,
-        last_checked_s=number("last_checked_s", optional=True),
+        last_checked_s=number("last_checked_s", t_lo, t_hi, "s", optional=True),
         last_decision=choice("last_decision", RecheckDecision, optional=True),
         follow_up=choice("follow_up", FollowUp, optional=False),
-        note=text("note", ""),
+        note=text("note"),
+        set_aside=text("set_aside"),
+        set_aside_entry_s=number("set_aside_entry_s", t_lo, t_hi, "s", optional=True),
     )
+
+
+def _names(keys: Iterable[object]) -> str:
+    return ", ".join(short_repr(k) for k in keys)
 
 
 def _check_pair(pair: object) -> Pair:
@@ -1724,6 +1771,7 @@ class Schedule:
     def __init__(self, settings: RecheckSettings, slots: Iterable[PairSlot] = ()) -> None:
         _interval_limits(settings)
         self._settings = settings
+        self.source = "<memory>"  # the file it was loaded from, for messages
         self._slots: dict[Pair, PairSlot] = {}
         for s in slots:
             if s.pair in self._slots:
@@ -1763,11 +1811,32 @@ class Schedule:
     def due(self, now_s: float) -> list[Pair]:
         """Pairs whose re-check is due at rig time ``now_s`` (``due_s <= now_s``).
 
-        Most overdue first, ties by pair name.
+        Most overdue first, ties by pair name. Pairs set aside are never due.
         """
         now = _finite_real("now_s", now_s)
-        ready = [s for s in self._slots.values() if s.due_s <= now]
+        ready = [s for s in self._slots.values() if s.due_s <= now and not s.set_aside]
         return [s.pair for s in sorted(ready, key=lambda s: (s.due_s, s.pair))]
+
+    def set_aside_pairs(self) -> dict[Pair, str]:
+        """Pairs set aside (see :meth:`set_aside`) with their reasons, sorted by pair."""
+        return {p: s.set_aside for p, s in sorted(self._slots.items()) if s.set_aside}
+
+    def set_aside(self, pair: Pair, reason: str, entry_s: float) -> PairSlot:
+        """Stop re-checking ``pair`` until it is calibrated afresh, and say why.
+
+        For a pair whose stored compensation cannot be played within its line's limits:
+        every re-check would fail the same way, and one bad pair must not stop the rest of
+        the schedule on every run. The reason is kept in the file and reported by later runs;
+        ``entry_s`` is the ``measured_at_s`` of the stored entry that cannot be played.
+        """
+        p = _check_pair(pair)
+        now = _finite_real("entry_s", entry_s)
+        if not isinstance(reason, str) or not reason.strip():
+            raise DriftInputError("a set-aside pair needs a reason (a non-empty string)")
+        slot = dataclasses.replace(self._slots[p], set_aside=reason[:_NOTE_MAX],
+                                   set_aside_entry_s=now, follow_up=FollowUp.NONE)
+        self._slots[p] = slot
+        return slot
 
     def pending(self) -> dict[Pair, FollowUp]:
         """Pairs with a follow-up (re-centre or recalibrate) waiting, sorted by pair."""
@@ -1871,45 +1940,88 @@ class Schedule:
     def from_dict(
         cls, doc: object, settings: RecheckSettings, *, source: str = "<memory>"
     ) -> Schedule:
-        """Rebuild a schedule from :meth:`to_dict` output (ScheduleFileError names the field)."""
+        """Rebuild a schedule from :meth:`to_dict` output (ScheduleFileError names the field).
+
+        Version 1 documents (without ``set_aside``) are read too.
+        """
         if not isinstance(doc, Mapping):
-            raise ScheduleFileError(f"{source}: expected a JSON object, got {type(doc).__name__}")
+            raise ScheduleFileError(source, "(top level)",
+                                    f"expected a JSON object, got {type(doc).__name__}")
         if doc.get("format") != SCHEDULE_FORMAT:
-            raise ScheduleFileError(
-                f"{source}: format: expected {SCHEDULE_FORMAT!r}, got {doc.get('format')!r}"
-            )
+            raise ScheduleFileError(source, "format", f"expected {SCHEDULE_FORMAT!r}, got "
+                                                      f"{short_repr(doc.get('format'))}")
         version = doc.get("schema_version")
         if isinstance(version, bool) or not isinstance(version, int) or version < 1:
-            raise ScheduleFileError(f"{source}: schema_version: expected an integer >= 1")
+            raise ScheduleFileError(source, "schema_version",
+                                    f"expected an integer from 1 to {SCHEDULE_SCHEMA_VERSION}, "
+                                    f"got {short_repr(version)}")
         if version > SCHEDULE_SCHEMA_VERSION:
-            raise ScheduleFileError(
-                f"{source}: schema_version: {version} is newer than this code reads "
-                f"({SCHEDULE_SCHEMA_VERSION}); upgrade xtalkcal"
-            )
+            raise ScheduleFileError(source, "schema_version",
+                                    f"{short_repr(version)} is newer than this code "
+                                    f"reads; accepted: 1 to {SCHEDULE_SCHEMA_VERSION} (or "
+                                    "upgrade xtalkcal)")
         extra = sorted(set(doc) - {"format", "schema_version", "pairs"})
         if extra:
-            raise ScheduleFileError(f"{source}: unknown top-level field(s) {extra}")
+            raise ScheduleFileError(source, "(top level)",
+                                    f"unknown top-level field(s) {_names(extra)}; accepted: "
+                                    "format, schema_version, pairs")
         raw = doc.get("pairs")
         if not isinstance(raw, list):
-            raise ScheduleFileError(f"{source}: pairs: expected a list")
-        slots = [_slot_from_dict(d, f"{source}: pairs[{i}]") for i, d in enumerate(raw)]
+            raise ScheduleFileError(source, "pairs", "expected a list of objects, got "
+                                                     f"{type(raw).__name__}")
+        slots = []
+        for i, d in enumerate(raw):
+            for key in ("set_aside", "set_aside_entry_s"):
+                if version < 2 and isinstance(d, Mapping) and key in d:
+                    raise ScheduleFileError(source, f"pairs[{i}].{key}",
+                                            "unknown field in a version 1 schedule")
+            slots.append(_slot_from_dict(d, source, f"pairs[{i}]"))
         seen: set[Pair] = set()
-        for i, s in enumerate(slots):
-            if s.pair in seen:
-                raise ScheduleFileError(f"{source}: pairs[{i}]: pair {s.pair} appears twice")
-            seen.add(s.pair)
-        return cls(settings, slots)
+        for i, sl in enumerate(slots):
+            if sl.pair in seen:
+                raise ScheduleFileError(source, f"pairs[{i}]",
+                                        f"pair {sl.aggressor} → {sl.victim} appears twice")
+            seen.add(sl.pair)
+        schedule = cls(settings, slots)
+        schedule.source = source
+        return schedule
 
     @classmethod
     def from_json(
         cls, text: str, settings: RecheckSettings, *, source: str = "<memory>"
     ) -> Schedule:
-        """Parse :meth:`to_json` output."""
+        """Parse :meth:`to_json` output (strict JSON: no NaN, no duplicate keys)."""
         try:
-            doc = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise ScheduleFileError(f"{source}: not valid JSON ({exc})") from None
+            doc = parse_json(text, source)
+        except ConfigError as exc:
+            raise ScheduleFileError(exc.source, exc.field, exc.problem) from None
         return cls.from_dict(doc, settings, source=source)
+
+    def check_against(self, chip: Chip) -> None:
+        """Refuse pairs naming a line or qubit ``chip`` does not have (before any rig time).
+
+        Raises
+        ------
+        ScheduleFileError
+            Naming the schedule file and the first bad ``pairs[i]`` field (and how many
+            more there are).
+        """
+        lines, qubits = chip.line_names, chip.qubit_names
+        problems = []
+        for i, p in enumerate(self._slots):  # in file order, so pairs[i] is the file's
+            if p[0] not in lines:
+                problems.append((f"pairs[{i}].aggressor", f"{p[0]!r} is not a drive line of "
+                                 f"chip {chip.name!r}; known: {', '.join(lines)}"))
+            elif p[1] not in qubits:
+                problems.append((f"pairs[{i}].victim", f"{p[1]!r} is not a qubit of chip "
+                                 f"{chip.name!r}; known: {', '.join(qubits)}"))
+            elif chip.line(p[0]).qubit == p[1]:
+                problems.append((f"pairs[{i}].victim", f"{p[1]!r} is the qubit line {p[0]} "
+                                 "drives; accepted: another qubit"))
+        if problems:
+            field, problem = problems[0]
+            more = f" ({len(problems) - 1} more pairs like it)" if len(problems) > 1 else ""
+            raise ScheduleFileError(self.source, field, problem + more)
 
     def save(self, path: str | os.PathLike[str]) -> Path:
         """Write the schedule to ``path`` atomically (temporary file, fsync, rename)."""
@@ -1938,12 +2050,11 @@ class Schedule:
     @classmethod
     def load(cls, path: str | os.PathLike[str], settings: RecheckSettings) -> Schedule:
         """Read a schedule written by :meth:`save`."""
-        p = Path(path)
         try:
-            text = p.read_text(encoding="utf-8")
-        except OSError as exc:
-            raise ScheduleFileError(f"{p}: cannot read ({exc})") from None
-        return cls.from_json(text, settings, source=str(p))
+            doc, source = load_json(path)
+        except ConfigError as exc:  # not readable, not UTF-8, not JSON, nested too deeply
+            raise ScheduleFileError(exc.source, exc.field, exc.problem) from None
+        return cls.from_dict(doc, settings, source=source)
 
     @classmethod
     def load_or_new(cls, path: str | os.PathLike[str], settings: RecheckSettings) -> Schedule:

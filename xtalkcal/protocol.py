@@ -46,8 +46,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from xtalkcal.chip import Chip
+from xtalkcal.exceptions import ConfigError
 from xtalkcal.probes import METHODS, MethodWindows
-from xtalkcal.tomlfields import load_toml, read_header, valid
+from xtalkcal.tomlfields import (
+    RECHECK_INTERVAL_RANGE_H,
+    FieldErrors,
+    load_toml,
+    read_header,
+    valid,
+)
 
 __all__ = [
     "PulseSettings",
@@ -112,6 +120,38 @@ class Protocol:
     only_methods: tuple[str, ...] = ()
     source: str = "<memory>"
 
+    def check_against(self, chip: Chip) -> None:
+        """Refuse method overrides naming a line or qubit ``chip`` does not have.
+
+        Run before any rig time is spent (``calibrate``, ``due``, ``check`` with the chip
+        file given too): a protocol is written without a chip, so only here can a typo
+        such as ``d99`` be caught.
+
+        Raises
+        ------
+        ConfigError
+            One :class:`~xtalkcal.tomlfields.FieldErrors` naming this protocol file and each
+            ``methods.overrides[i]`` field.
+        """
+        problems = []
+        of = f"chip {chip.name!r}"
+        for i, (line, victim, _) in enumerate(self.overrides):
+            where = f"methods.overrides[{i}]"
+            if line not in chip.line_names:
+                problems.append(ConfigError(self.source, f"{where}.aggressor",
+                                            f"{line!r} is not a drive line of {of}; known: "
+                                            f"{', '.join(chip.line_names)}"))
+            if victim not in chip.qubit_names:
+                problems.append(ConfigError(self.source, f"{where}.victim",
+                                            f"{victim!r} is not a qubit of {of}; known: "
+                                            f"{', '.join(chip.qubit_names)}"))
+            elif line in chip.line_names and chip.line(line).qubit == victim:
+                problems.append(ConfigError(self.source, f"{where}.victim",
+                                            f"{victim!r} is the qubit line {line} drives; "
+                                            "accepted: another qubit"))
+        if problems:
+            raise FieldErrors(problems)
+
     def method_override(self, aggressor: str, victim: str) -> str | None:
         for a, v, m in self.overrides:
             if a == aggressor and v == victim:
@@ -155,8 +195,10 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
     )
     overrides = []
     for ot in mt.tables("overrides", None):
-        overrides.append((ot.string("aggressor"), ot.string("victim"),
-                          ot.string("method", choices=METHODS)))
+        pair = (ot.name("aggressor"), ot.name("victim"))
+        if valid(*pair) and any(o[:2] == pair for o in overrides):
+            ot.report("victim", f"pair {pair[0]} → {pair[1]} has two overrides; accepted: one")
+        overrides.append((*pair, ot.string("method", choices=METHODS)))
         ot.reject_unknown()
     only = mt.string_list("only", [])
     for m in only if valid(only) else ():
@@ -184,11 +226,12 @@ def protocol_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> 
     nt.reject_unknown()
 
     rt = top.table("recheck", None)
+    h_lo, h_hi = RECHECK_INTERVAL_RANGE_H
     recheck = RecheckSettings(
         tolerance_db=rt.number("tolerance_db", -45.0, lo=-120.0, hi=0.0, unit="dB"),
-        interval_hours=rt.number("interval_hours", 12.0, lo=0.0, lo_open=True, unit="h"),
-        min_interval_hours=rt.number("min_interval_hours", 0.5, lo=0.0, lo_open=True, unit="h"),
-        max_interval_hours=rt.number("max_interval_hours", 48.0, lo=0.0, lo_open=True, unit="h"),
+        interval_hours=rt.number("interval_hours", 12.0, lo=h_lo, hi=h_hi, unit="h"),
+        min_interval_hours=rt.number("min_interval_hours", 0.5, lo=h_lo, hi=h_hi, unit="h"),
+        max_interval_hours=rt.number("max_interval_hours", 48.0, lo=h_lo, hi=h_hi, unit="h"),
         points=rt.integer("points", 4, lo=3, hi=64),
         shots_per_point=rt.integer("shots_per_point", 2000, lo=10, hi=10_000_000),
     )

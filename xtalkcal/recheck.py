@@ -16,6 +16,12 @@ current null, which re-centres the pair), recalibrate the columns of pairs that 
 or drifted beyond doubt without a precise new null, and reschedule (a recalibrated pair
 restarts at the protocol's first interval at least). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
+
+A pair whose stored compensation cannot be played within its victim line's amplitude
+limit (or whose re-check the safety check refuses) is *set aside*: reported once,
+recorded so in the schedule with the reason, its tone left out of its column's other
+re-checks, and the rest of the schedule goes on. Later runs mention it in one line; a
+new ledger entry for the pair (a calibration) takes it back.
 """
 
 from __future__ import annotations
@@ -42,6 +48,7 @@ from xtalkcal.calibration import (
     stark_windows,
     survey_radii,
 )
+from xtalkcal.chip import Chip
 from xtalkcal.drift import (
     FollowUp,
     RecheckDecision,
@@ -50,6 +57,7 @@ from xtalkcal.drift import (
     analyse_recheck,
     pair_trend,
 )
+from xtalkcal.exceptions import SafetyLimitError
 from xtalkcal.fit import RejectionReason, VerdictRules, fit_paraboloid
 from xtalkcal.ledger import Ledger, LedgerEntry, MatrixSnapshot, utc_timestamp
 from xtalkcal.probes import ColumnProbe, PulseShape
@@ -84,6 +92,9 @@ class DueReport:
     checked: list[PairCheck] = field(default_factory=list)
     recentred: list[Pair] = field(default_factory=list)
     recalibrated: list[str] = field(default_factory=list)  # aggressor lines
+    set_aside: list[tuple[Pair, str]] = field(default_factory=list)  # newly, with reasons
+    still_aside: list[Pair] = field(default_factory=list)  # set aside by an earlier run
+    reinstated: list[Pair] = field(default_factory=list)  # calibrated anew since set aside
     shots: int = 0
 
 
@@ -182,6 +193,7 @@ def recheck_column(
     runner: BatchRunner,
     ledger: Ledger | None = None,
     key: str = "recheck",
+    silent: Iterable[str] = (),
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -200,6 +212,8 @@ def recheck_column(
         Source of the calibration sweeps (curvature prior).
     key : str
         Prefix of the batch keys in the runner's record.
+    silent : iterable of str
+        Victims whose stored tones are not played (pairs set aside, see :func:`run_due`).
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -207,8 +221,9 @@ def recheck_column(
     settings = protocol.recheck
     wanted = list(victims)
     # The tones in use: pairs that were nulled (or re-checked since), not survey-only ones.
+    off = set(silent)
     column = {v: e for (a, v), e in snapshot.entries.items()
-              if a == aggressor and e.kind != "survey"}
+              if a == aggressor and e.kind != "survey" and v not in off}
     missing = [v for v in wanted if v not in column]
     if missing:
         raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
@@ -307,6 +322,24 @@ def recheck_column(
     return checks
 
 
+def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str | None:
+    """Why the stored compensation of ``entry``'s pair cannot be played, or None.
+
+    The re-check (and the compensation itself) plays ``−X·a`` on the victim's own line for
+    an aggressor pulse of amplitude ``a`` (the protocol's probe amplitude): above that
+    line's binding amplitude limit, the safety check refuses it on every run.
+    """
+    line = chip.line_of(entry.victim).name
+    limit = chip.amplitude_limit(line)
+    need = abs(entry.value) * pass_amplitude(protocol, chip, entry.aggressor)
+    if need <= limit:
+        return None
+    x_db = 20 * math.log10(abs(entry.value)) if math.isfinite(need) else math.nan
+    return (f"stored |X| = {x_db:.1f} dB needs a cancellation tone of amplitude {need:.3g} "
+            f"on line {line}, above its limit {limit:g}; recalibrate the pair (or review the "
+            "chip file's limits) to bring it back")
+
+
 def schedule_after_calibration(schedule: Schedule, result, now_s: float) -> None:
     """Register every nulled pair of a calibration result as freshly calibrated."""
     for p in result.pairs:
@@ -333,9 +366,6 @@ def run_due(
     start_shots = runner.shots_executed
     now = rig.now()
     report = DueReport(now)
-    due = schedule.due(now)
-    if not due:
-        return report
     snapshot = ledger.current()
     by_agg: dict[str, list[str]] = {}
 
@@ -347,6 +377,30 @@ def run_due(
         if not in_use(pair):
             # A later calibration judged it below threshold: no tone, nothing to check.
             schedule.remove(pair)
+    for pair in schedule.set_aside_pairs():
+        if snapshot[pair].measured_at_s != schedule.slot(pair).set_aside_entry_s:
+            schedule.calibrated(pair, snapshot[pair].measured_at_s)
+            report.reinstated.append(pair)
+            say(f"{pair[0]} → {pair[1]}: calibrated anew since it was set aside; scheduled again")
+        else:
+            report.still_aside.append(pair)
+    if report.still_aside:
+        say(f"set aside (not re-checked): {', '.join(f'{a} → {v}' for a, v in report.still_aside)}"
+            "; see the schedule file for why")
+
+    def put_aside(pair: Pair, reason: str) -> None:
+        schedule.set_aside(pair, reason, snapshot[pair].measured_at_s)
+        report.set_aside.append((pair, reason))
+        say(f"{pair[0]} → {pair[1]}: set aside: {reason}")
+
+    for pair in schedule.due(now):
+        why = unplayable_reason(rig.chip, protocol, snapshot[pair])
+        if why is not None:  # every re-check of it would be refused: not this run, not later
+            put_aside(pair, why)
+    due = schedule.due(now)
+    if not due:
+        report.shots = runner.shots_executed - start_shots
+        return report
     # A re-check batch costs the same whatever the number of victims on its rings (shots
     # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
     # of the same batch (the aggressor's Stark victims; a resonant victim has a batch of
@@ -362,10 +416,18 @@ def run_due(
             by_agg[a] = victims
     recalibrate: set[str] = set()
 
+    def aside(a: str) -> list[str]:
+        return [v for aa, v in schedule.set_aside_pairs() if aa == a]
+
     def check(a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
         """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones."""
-        checks = recheck_column(rig, protocol, snapshot, a, victims, runner=runner,
-                                ledger=ledger, key=key)
+        try:
+            checks = recheck_column(rig, protocol, snapshot, a, victims, runner=runner,
+                                    ledger=ledger, key=key, silent=aside(a))
+        except SafetyLimitError as exc:  # refused before anything was played
+            for v in victims:
+                put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
+            return []
         ledger.append([c.entry for c in checks])
         broken = []
         for c in checks:
@@ -409,7 +471,7 @@ def run_due(
     for a in sorted(recalibrate):
         say(f"{a}: recalibrating the column")
         tag = f"recal-{a}-{int(rig.now())}"
-        in_use = [v for aa, v in schedule.pairs() if aa == a]
+        in_use = [v for aa, v in schedule.pairs() if aa == a and v not in aside(a)]
         res = calibrate_chip(rig, protocol, runner=runner, aggressors=[a], key_prefix=tag,
                              null_victims={a: in_use})
         entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)

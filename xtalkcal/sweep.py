@@ -9,6 +9,10 @@ batch instead of executing it again — only if the request (timelines and shots
 is identical to the one recorded (a fingerprint is stored with it): a deterministic
 calibration that is interrupted and started again resumes where it stopped, and a
 later measurement that happens to reuse a key is measured anew.
+
+A rig may have an optional method ``advance_clock_to(t_s)`` (never moving its clock
+back); a replayed batch calls it with the batch's recorded ``finished_s``, so a resumed
+run's new batches carry the same rig times as an uninterrupted run.
 """
 
 from __future__ import annotations
@@ -103,6 +107,12 @@ class BatchRunner:
                 # costs what its batches cost, wherever they were measured.
                 self.rig_seconds_resumed += counts.finished_s - counts.started_s
                 self.last_finished_s = counts.finished_s
+                # A rig whose clock restarts with the process (a simulator) is moved on to
+                # the end of the replayed batch, so that the batches measured after a
+                # resume carry the times (and see the drift) of an uninterrupted run.
+                advance = getattr(self.rig, "advance_clock_to", None)
+                if advance is not None:
+                    advance(counts.finished_s)
                 return counts
             # Same key, different request (e.g. a later calibration reusing a run folder):
             # the record must not stand in for a measurement it is not.

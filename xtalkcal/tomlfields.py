@@ -8,6 +8,24 @@ would be accepted), the reader returns :data:`INVALID` in its place, and
 
 Checks that combine several values run only when those values are valid
 (:func:`valid`), so one mistake gives one message, not a cascade.
+
+Every file a user hands the toolkit is read through :func:`read_text` (UTF-8, at
+most :data:`MAX_FILE_BYTES`; a bad byte is named by its offset) and parsed by
+:func:`load_toml` or :func:`load_json`, which refuse documents nested deeper than
+:data:`MAX_NESTING` levels (the parsers and every ``repr`` would otherwise hit Python's
+recursion limit), so no input file can end in a traceback.
+
+Names
+-----
+Every name in every file kind (qubits, lines, the pairs of overrides and schedules, a
+file's own ``name``) obeys one rule, :data:`NAME_RULE`::
+
+    ^[A-Za-z][A-Za-z0-9_-]{0,63}$
+
+an ASCII letter, then up to 63 ASCII letters, digits, ``_`` or ``-``. Names end up in
+HDF5 group paths, batch-record file names, run tags and report file names, so ``/``,
+``.``, spaces, control characters and look-alike Unicode letters are refused where the
+file is read, not later at a rig.
 """
 
 from __future__ import annotations
@@ -28,18 +46,54 @@ else:  # pragma: no cover - exercised on 3.10 only
     import tomli as tomllib
 
 __all__ = [
+    "NAME_RULE",
+    "name_problem",
     "Fields",
     "FieldErrors",
     "INVALID",
     "REQUIRED",
     "valid",
     "load_toml",
+    "load_json",
+    "read_text",
     "read_header",
+    "MAX_NESTING",
+    "MAX_FILE_BYTES",
+    "parse_json",
+    "short_repr",
+    "RIG_TIME_RANGE_S",
+    "RECHECK_INTERVAL_RANGE_H",
 ]
 
 # Keys TOML allows unquoted; any other key (a typo with a space, a newline) is shown quoted
 # so that every message stays on one line and names the key exactly.
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
+
+NAME_RULE: Final = r"[A-Za-z][A-Za-z0-9_-]{0,63}"
+"""The one rule for every name in every file (qubits, lines, chips, protocols, pairs).
+
+A name is an ASCII letter followed by at most 63 ASCII letters, digits, ``_`` or ``-``
+(the whole name must match ``^[A-Za-z][A-Za-z0-9_-]{0,63}$``). Names become ledger keys,
+batch-record file names and report labels, so ``/``, ``.``, spaces, control characters and
+look-alike Unicode letters are refused where a name is read, not where it is first used.
+"""
+_NAME = re.compile(NAME_RULE, re.ASCII)
+_NAME_RULE_TEXT = (f"a letter, then up to 63 ASCII letters, digits, '_' or '-' "
+                   f"(^{NAME_RULE}$)")
+
+MAX_NESTING: Final = 32
+"""Deepest nesting of tables/arrays/objects accepted in any file (ours need fewer than 8)."""
+
+# Physical ranges shared by several file kinds (the protocol, the schedule).
+RIG_TIME_RANGE_S: Final = (-1e12, 1e12)
+"""Rig clock readings accepted in files (s): ±31 700 years, enough for an epoch clock,
+small enough that adding any accepted interval stays finite."""
+RECHECK_INTERVAL_RANGE_H: Final = (1e-3, 1e4)
+"""Re-check intervals accepted (h): 3.6 s to about 14 months."""
+
+MAX_FILE_BYTES: Final = 16 * 2**20
+"""Largest input file read (16 MiB; a 100-qubit chip file is ~100 kB)."""
+
 
 REQUIRED: Final = object()
 """Default of a reader's ``default`` parameter: the field must be given."""
@@ -63,6 +117,24 @@ def valid(*values: Any) -> bool:
     return all(v is not INVALID for v in values)
 
 
+def name_problem(value: Any) -> str | None:
+    """Why ``value`` is not a valid name under :data:`NAME_RULE` (None if it is one)."""
+    if not isinstance(value, str):
+        return f"expected a name (a string), got {short_repr(value)}"
+    if not _NAME.fullmatch(value):
+        return f"{short_repr(value)} is not a valid name; accepted: {_NAME_RULE_TEXT}"
+    return None
+
+
+def short_repr(value: Any, limit: int = 60) -> str:
+    """``repr(value)``, cut to ``limit`` characters (a message must stay readable)."""
+    try:
+        text = repr(value)
+    except RecursionError:  # pragma: no cover - nesting is refused before this
+        text = f"<deeply nested {type(value).__name__}>"
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
 class FieldErrors(ConfigError):
     """Every problem found in one file, one ``file: field: problem`` line each.
 
@@ -84,6 +156,39 @@ class FieldErrors(ConfigError):
         self.args = ("\n".join(str(e) for e in self.errors),)
 
 
+def read_text(path: str | Path) -> tuple[str, str]:
+    """Read a user's text file as UTF-8.
+
+    Returns
+    -------
+    text, source : str, str
+        The text and the path string used in error messages.
+
+    Raises
+    ------
+    ConfigError
+        Field ``(file)``: missing, unreadable, larger than :data:`MAX_FILE_BYTES`, or not
+        UTF-8 (the offset of the first bad byte is given).
+    """
+    source = _one_line(str(path))
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_FILE_BYTES + 1)
+    except FileNotFoundError:
+        raise ConfigError(source, "(file)", "no such file") from None
+    except OSError as exc:
+        raise ConfigError(source, "(file)", f"cannot be read ({exc.strerror or exc})") from None
+    if len(raw) > MAX_FILE_BYTES:
+        raise ConfigError(source, "(file)", f"larger than {MAX_FILE_BYTES // 2**20} MiB; "
+                                            "accepted: a text file up to that size")
+    try:
+        return raw.decode("utf-8"), source
+    except UnicodeDecodeError as exc:
+        raise ConfigError(source, "(file)",
+                          f"not UTF-8 text: byte 0x{raw[exc.start]:02x} at offset {exc.start} "
+                          f"({exc.reason}); accepted: a UTF-8 text file") from None
+
+
 def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     """Read a TOML file.
 
@@ -97,19 +202,82 @@ def load_toml(path: str | Path) -> tuple[dict[str, Any], str]:
     Raises
     ------
     ConfigError
-        If the file is missing, unreadable or not valid TOML.
+        If the file is missing, unreadable, not UTF-8, not valid TOML or nested deeper
+        than :data:`MAX_NESTING`.
     """
-    source = str(path)
+    text, source = read_text(path)
     try:
-        text = Path(path).read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise ConfigError(source, "(file)", "no such file") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(source, "(file)", f"cannot be read as UTF-8 text ({exc})") from None
-    try:
-        return tomllib.loads(text), source
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(source, "(syntax)", f"not valid TOML: {exc}") from None
+    except ValueError as exc:  # an integer of more digits than Python converts
+        raise ConfigError(source, "(syntax)", _one_line(f"not valid TOML: {exc}")) from None
+    except RecursionError:
+        raise ConfigError(source, "(syntax)", _too_deep()) from None
+    _check_depth(data, source)
+    return data, source
+
+
+def load_json(path: str | Path) -> tuple[Any, str]:
+    """Read a JSON file strictly: no NaN/Infinity, no duplicate keys, bounded nesting.
+
+    Returns
+    -------
+    data, source : object, str
+        The parsed document and the path string used in error messages.
+
+    Raises
+    ------
+    ConfigError
+        Field ``(file)`` or ``(syntax)``, as :func:`load_toml`.
+    """
+    text, source = read_text(path)
+    return parse_json(text, source), source
+
+
+def parse_json(text: str, source: str) -> Any:
+    """Parse JSON text as :func:`load_json` does (``source`` names it in messages)."""
+
+    def constant(word: str) -> Any:
+        raise ValueError(f"{word} is not a number JSON allows; accepted: finite numbers")
+
+    def no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for k, v in pairs:
+            if k in out:
+                raise ValueError(f"key {short_repr(k)} appears twice in one object")
+            out[k] = v
+        return out
+
+    try:
+        data = json.loads(text, parse_constant=constant, object_pairs_hook=no_duplicates)
+    except json.JSONDecodeError as exc:
+        raise ConfigError(source, "(syntax)",
+                          f"not valid JSON: {exc.msg} (line {exc.lineno}, column {exc.colno})"
+                          ) from None
+    except RecursionError:
+        raise ConfigError(source, "(syntax)", _too_deep()) from None
+    except ValueError as exc:  # from the hooks above, or a number too long to convert
+        raise ConfigError(source, "(syntax)", _one_line(f"not valid JSON: {exc}")) from None
+    _check_depth(data, source)
+    return data
+
+
+def _too_deep() -> str:
+    return f"nested too deeply; accepted: at most {MAX_NESTING} levels of tables/arrays"
+
+
+def _check_depth(data: Any, source: str) -> None:
+    """Refuse a document nested deeper than MAX_NESTING (iteratively: no recursion)."""
+    stack: list[tuple[Any, int]] = [(data, 1)]
+    while stack:
+        node, depth = stack.pop()
+        if depth > MAX_NESTING:
+            raise ConfigError(source, "(syntax)", _too_deep())
+        if isinstance(node, Mapping):
+            stack.extend((v, depth + 1) for v in node.values())
+        elif isinstance(node, list):
+            stack.extend((v, depth + 1) for v in node)
 
 
 def read_header(
@@ -148,7 +316,7 @@ def read_header(
     if fmt != kind:
         top.stop("format", f"expected {kind!r}{hint}")
     top.integer("version", version, lo=1, hi=version)
-    return top, top.string("name")
+    return top, top.name("name")
 
 
 class Fields:
@@ -237,41 +405,48 @@ class Fields:
         key: str,
         default: Any = REQUIRED,
         *,
-        lo: float | None = None,
-        hi: float | None = None,
+        lo: float,
+        hi: float,
         lo_open: bool = False,
         hi_open: bool = False,
         unit: str = "",
     ) -> Any:
-        """A finite real number within optional bounds (``None`` default allowed)."""
+        """A finite real number in ``[lo, hi]`` (``None`` default allowed).
+
+        Both bounds are required: every number a file holds has a physical range, and a
+        value beyond it (``1e308`` hours) would only fail later, far from the file.
+        """
         value = self._get(key, default)
         if value is INVALID or (value is None and default is None):
             return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            return self.reject(key, f"expected a number{_unit(unit)}, got {value!r}")
+            return self.reject(key, f"expected a number{_unit(unit)}, got {short_repr(value)}; "
+                                    f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
+        if isinstance(value, int) and not lo <= value <= hi:  # may be beyond float range
+            return self.reject(key, f"{short_repr(value)} is out of range; "
+                                    f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
         value = float(value)
         if not math.isfinite(value):
-            return self.reject(key, f"expected a finite number{_unit(unit)}, got {value!r}")
-        below = lo is not None and (value < lo or (lo_open and value == lo))
-        above = hi is not None and (value > hi or (hi_open and value == hi))
+            return self.reject(key, f"expected a finite number{_unit(unit)}, got {value!r}; "
+                                    f"accepted: {_range_text(lo, hi, lo_open, hi_open, unit)}")
+        below = value < lo or (lo_open and value == lo)
+        above = value > hi or (hi_open and value == hi)
         if below or above:
             accepted = _range_text(lo, hi, lo_open, hi_open, unit)
             return self.reject(key, f"{value:g} is out of range; accepted: {accepted}")
         return value
 
-    def integer(
-        self, key: str, default: Any = REQUIRED, *, lo: int | None = None, hi: int | None = None
-    ) -> Any:
-        """An integer within optional bounds."""
+    def integer(self, key: str, default: Any = REQUIRED, *, lo: int, hi: int) -> Any:
+        """An integer in ``[lo, hi]`` (both bounds required, as for :meth:`number`)."""
         value = self._get(key, default)
         if value is INVALID or (value is None and default is None):
             return value
         if isinstance(value, bool) or not isinstance(value, int):
-            return self.reject(key, f"expected an integer, got {value!r}")
-        if (lo is not None and value < lo) or (hi is not None and value > hi):
-            return self.reject(
-                key, f"{value} is out of range; accepted: {_range_text(lo, hi)}"
-            )
+            return self.reject(key, f"expected an integer, got {short_repr(value)}; "
+                                    f"accepted: {_range_text(lo, hi)}")
+        if value < lo or value > hi:
+            return self.reject(key, f"{short_repr(value)} is out of range; "
+                                    f"accepted: {_range_text(lo, hi)}")
         return value
 
     def string(
@@ -282,13 +457,32 @@ class Fields:
         if value is INVALID or (value is None and default is None):
             return value
         if not isinstance(value, str) or not value.strip():
-            return self.reject(key, f"expected a non-empty string, got {value!r}")
+            return self.reject(key, f"expected a non-empty string, got {short_repr(value)}")
         if choices is not None:
             options = list(choices)
             if value not in options:
                 return self.reject(
-                    key, f"{value!r} is not one of {', '.join(map(repr, options))}"
+                    key, f"{short_repr(value)} is not one of {', '.join(map(repr, options))}"
                 )
+        return value
+
+    def name(self, key: str, default: Any = REQUIRED) -> Any:
+        """A name under :data:`NAME_RULE`."""
+        value = self._get(key, default)
+        if value is INVALID or (value is None and default is None):
+            return value
+        problem = name_problem(value)
+        return value if problem is None else self.reject(key, problem)
+
+    def text(self, key: str, default: Any = REQUIRED, *, max_len: int = 10_000) -> Any:
+        """Free text (may be empty), at most ``max_len`` characters."""
+        value = self._get(key, default)
+        if value is INVALID or (value is None and default is None):
+            return value
+        if not isinstance(value, str):
+            return self.reject(key, f"expected a string, got {short_repr(value)}")
+        if len(value) > max_len:
+            return self.reject(key, f"{len(value)} characters; accepted: at most {max_len}")
         return value
 
     def boolean(self, key: str, default: Any = REQUIRED) -> Any:
@@ -297,7 +491,7 @@ class Fields:
         if value is INVALID:
             return value
         if not isinstance(value, bool):
-            return self.reject(key, f"expected true or false, got {value!r}")
+            return self.reject(key, f"expected true or false, got {short_repr(value)}")
         return value
 
     def string_list(self, key: str, default: Any = REQUIRED) -> Any:
@@ -305,8 +499,11 @@ class Fields:
         value = self._get(key, default)
         if value is INVALID or (value is None and default is None):
             return value
-        if not isinstance(value, list) or not all(isinstance(v, str) and v for v in value):
-            return self.reject(key, f"expected a list of names, got {value!r}")
+        if not isinstance(value, list):
+            return self.reject(key, f"expected a list of names, got {short_repr(value)}")
+        for v in value:
+            if (problem := name_problem(v)) is not None:
+                return self.reject(key, problem)
         return list(value)
 
     def name_lists(self, key: str, default: Any = REQUIRED) -> Any:
@@ -314,14 +511,15 @@ class Fields:
         value = self._get(key, default)
         if value is INVALID or (value is None and default is None):
             return value
-        if not isinstance(value, list) or not all(
-            isinstance(g, list) and all(isinstance(v, str) and v for v in g) for g in value
-        ):
-            return self.reject(key, f"expected a list of lists of names, got {value!r}")
+        if not isinstance(value, list) or not all(isinstance(g, list) for g in value):
+            return self.reject(key, f"expected a list of lists of names, got {short_repr(value)}")
+        for v in (v for g in value for v in g):
+            if (problem := name_problem(v)) is not None:
+                return self.reject(key, problem)
         return [list(g) for g in value]
 
-    def matrix(self, key: str, default: Any = REQUIRED) -> Any:
-        """A rectangular list of lists of finite numbers."""
+    def matrix(self, key: str, default: Any = REQUIRED, *, lo: float, hi: float) -> Any:
+        """A rectangular list of lists of finite numbers in ``[lo, hi]``."""
         value = self._get(key, default)
         if value is INVALID or (value is None and default is None):
             return value
@@ -329,12 +527,13 @@ class Fields:
         if ok:
             widths = {len(r) for r in value}
             ok = len(widths) == 1 and all(
-                isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+                isinstance(x, (int, float)) and not isinstance(x, bool) and lo <= x <= hi
                 for r in value
                 for x in r
             )
         if not ok:
-            return self.reject(key, "expected a rectangular array of finite numbers")
+            return self.reject(key, "expected a rectangular array of finite numbers in "
+                                    f"{_range_text(lo, hi)}")
         return [[float(x) for x in r] for r in value]
 
     def table(self, key: str, default: Any = REQUIRED) -> Fields:
@@ -349,7 +548,7 @@ class Fields:
         if value is INVALID:
             return self._child({}, self.where(key), broken=True)
         if not isinstance(value, Mapping):
-            self.report(key, f"expected a table, got {type(value).__name__}")
+            self.report(key, f"expected a table, got {_type_name(value)}")
             return self._child({}, self.where(key), broken=True)
         return self._child(value, self.where(key))
 
@@ -390,7 +589,7 @@ class Fields:
         seen: set[str] = set()
         named: list[tuple[Any, Fields]] = []
         for block in blocks:
-            name = block.string("name")
+            name = block.name("name")
             if valid(name) and name in seen:
                 name = block.reject(
                     "name", f"duplicate {noun} name {name!r}; names must be unique"
@@ -400,19 +599,22 @@ class Fields:
             named.append((name, block))
         return named
 
-    def reference(self, key: str, known: Sequence[Any], noun: str) -> Any:
-        """A name that must be one of ``known`` (names defined earlier in the file).
+    def reference(
+        self, key: str, known: Sequence[Any], noun: str, *, of: str = "this file"
+    ) -> Any:
+        """A name that must be one of ``known`` (names defined earlier in the file, or in
+        the file ``of`` names, e.g. ``"chip 'grid9-demo'"``).
 
         If ``known`` holds an :data:`INVALID` name, an unknown name may be that one: it
         comes back as :data:`INVALID` without a message of its own.
         """
-        value = self.string(key)
+        value = self.name(key)
         if not valid(value) or value in known:
             return value
         if not valid(*known):
             return INVALID
         names = ", ".join(known) or "(none)"
-        return self.reject(key, f"{value!r} is not a {noun} of this file; known: {names}")
+        return self.reject(key, f"{value!r} is not a {noun} of {of}; known: {names}")
 
     def one_each(
         self,
@@ -481,6 +683,11 @@ def _one_line(text: str) -> str:
     for ch in _LINE_BREAKS:
         text = text.replace(ch, ch.encode("unicode_escape").decode("ascii"))
     return text
+
+
+def _type_name(value: Any) -> str:
+    return {dict: "a table", list: "an array", str: "a string", bool: "a boolean",
+            int: "an integer", float: "a number"}.get(type(value), type(value).__name__)
 
 
 def _unit(unit: str) -> str:
