@@ -1477,6 +1477,21 @@ def _check_digest(commit: Path, info: Mapping[str, Any]) -> None:
         )
 
 
+@contextlib.contextmanager
+def _writer_lock(root: Path, timeout_s: float) -> Iterator[None]:
+    """Hold the ledger's exclusive writer lock (LedgerError if it stays busy)."""
+    lock = filelock.FileLock(str(root / _LOCK_NAME), timeout=timeout_s)
+    try:
+        lock.acquire()
+    except filelock.Timeout as exc:
+        raise LedgerError(
+            f"{root}: another writer holds the lock for more than {timeout_s} s") from exc
+    try:
+        yield
+    finally:
+        lock.release()
+
+
 class Ledger:
     """The crosstalk ledger of one chip, stored in a directory (see module docs).
 
@@ -1548,12 +1563,7 @@ class Ledger:
         _check_text("Ledger.create", "chip", chip, required=True, exact=True)
         root = Path(path)
         root.mkdir(parents=True, exist_ok=True)
-        lock = filelock.FileLock(str(root / _LOCK_NAME), timeout=lock_timeout_s)
-        try:
-            lock.acquire()
-        except filelock.Timeout as exc:
-            raise LedgerError(f"{root}: lock busy for {lock_timeout_s} s") from exc
-        try:
+        with _writer_lock(root, lock_timeout_s):
             if (root / _MARKER_NAME).exists():
                 existing = _read_marker(root).chip
                 if not exist_ok:
@@ -1576,8 +1586,6 @@ class Ledger:
                     "integrity": {"digest": "sha256", "legacy_files": []},
                 }
                 _write_marker(root, info)
-        finally:
-            lock.release()
         return cls(root, lock_timeout_s=lock_timeout_s)
 
     # -- properties -------------------------------------------------------------------------
@@ -2319,12 +2327,7 @@ def quarantine_commit(
         raise LedgerError(f"{root}: {name!r} is not a commit file of this ledger")
     first, last = int(m.group(1)), int(m.group(2))
     qdir = root / _QUARANTINE
-    lock = filelock.FileLock(str(root / _LOCK_NAME), timeout=lock_timeout_s)
-    try:
-        lock.acquire()
-    except filelock.Timeout as exc:
-        raise LedgerError(f"{root}: lock busy for {lock_timeout_s} s") from exc
-    try:
+    with _writer_lock(root, lock_timeout_s):
         qdir.mkdir(exist_ok=True)
         if (qdir / name).exists():
             raise LedgerError(f"{qdir / name}: already in quarantine; move it elsewhere first")
@@ -2334,6 +2337,4 @@ def quarantine_commit(
             os.replace(root / digest, qdir / digest)
         _fsync_dir(qdir)
         _fsync_dir(root)
-    finally:
-        lock.release()
     return qdir / name
