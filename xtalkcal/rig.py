@@ -140,12 +140,12 @@ def check_counts(counts: object, *, batch: str, readout: Sequence[str], n_timeli
         What the rig (or a recorded batch) returned; should be a :class:`Counts`.
     batch : str
         Names the batch in the error (its key, or a recorded file).
-    origin : str
-        Who gave the counts, for the error ("the rig returned", "the record holds").
     readout : sequence of str
         The qubits the timelines read, in their order.
     n_timelines, shots : int
         The request: how many timelines, each played how many times.
+    origin : str
+        Who gave the counts, for the error ("the rig returned", "the record holds").
 
     Returns
     -------
@@ -196,16 +196,16 @@ def check_counts(counts: object, *, batch: str, readout: Sequence[str], n_timeli
     if raw.dtype == bool or raw.dtype.kind not in "iuf":
         raise bad(f"counts of type {raw.dtype}, expected whole numbers of shots")
     data = raw.astype(float, copy=False)
-    checks = ((~np.isfinite(data), "a non-finite count {v}", "finite"),
-              (data < 0, "a negative count {v}", "non-negative"),
-              (data > shots, "a count {v} above the shots", f"at most {shots}"),
-              (data != np.round(data), "a fractional count {v}", "whole numbers"))
+    checks = ((~np.isfinite(data), "a non-finite count {v}", "finite counts"),
+              (data < 0, "a negative count {v}", "non-negative counts"),
+              (data > shots, "a count {v} above the shots", f"counts of at most {shots}"),
+              (data != np.round(data), "a fractional count {v}", "whole-number counts"))
     for mask, what, expected in checks:
         if mask.any():
             t, q, lvl = (int(i) for i in np.argwhere(mask)[0])
             raise bad(f"{what.format(v=data[t, q, lvl])} at timeline {t}, qubit "
                       f"{readout[q]}, level {lvl} ({int(mask.sum())} such), expected "
-                      f"{expected} counts of shots")
+                      f"{expected} of shots")
     exact = np.array(raw, dtype=np.int64)
     sums = exact.sum(axis=2)
     off = sums != shots
