@@ -15,7 +15,7 @@ from pathlib import Path
 
 from xtalkcal import __version__
 from xtalkcal.exceptions import ConfigError as XtalkcalConfigError
-from xtalkcal.exceptions import XtalkcalError
+from xtalkcal.exceptions import RigError, XtalkcalError
 
 __all__ = ["main"]
 
@@ -174,7 +174,12 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
                                   f"cannot load {spec!r}: {exc}") from None
     from xtalkcal.rig import Rig
 
-    rig = factory()
+    try:
+        rig = factory()
+    except XtalkcalError:
+        raise
+    except Exception as exc:  # the lab's driver failed to connect, etc.: one line, no traceback
+        raise RigError(f"--rig {spec}: the factory failed: {type(exc).__name__}: {exc}") from exc
     if not isinstance(rig, Rig):
         raise XtalkcalConfigError("command line", "--rig",
                                   f"{spec!r} did not return an object with the rig "
@@ -194,7 +199,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     # A broken ledger is found before any rig time is spent, not after the calibration.
     led = _open_ledger(args.ledger, rig.chip.name) if args.ledger else None
     out = Path(args.output)
-    runner = BatchRunner(rig, args.record, progress=_progress_bar(args))
+    runner = BatchRunner(rig, args.record, progress=_progress_bar(args),
+                         timeout_s=args.rig_timeout)
     result = calibrate_chip(rig, protocol, runner=runner, log=lambda s: log.info(s))
     if runner.progress is not None:
         runner.progress.close()
@@ -405,7 +411,10 @@ def _cmd_due(args: argparse.Namespace) -> int:
         for (a, v), e in current.entries.items():
             if e.kind != "survey":
                 schedule.calibrated((a, v), e.measured_at_s)
-    rep = run_due(rig, protocol, led, schedule, log=print)
+    from xtalkcal.sweep import BatchRunner
+
+    rep = run_due(rig, protocol, led, schedule, log=print,
+                  runner=BatchRunner(rig, timeout_s=args.rig_timeout))
     schedule.save(args.schedule)
     if not rep.checked:
         print(f"nothing due at rig time {rep.now_s / 3600:.2f} h")
@@ -503,6 +512,7 @@ def build_parser() -> argparse.ArgumentParser:
     k.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     k.add_argument("--seed", type=int, default=None, help="simulator seed")
+    _add_rig_timeout(k)
     k.add_argument("--no-drift", action="store_true", help="freeze the simulator's drift")
     k.add_argument("--record", default=None,
                    help="directory to record each batch in; rerun with it to resume")
@@ -538,11 +548,27 @@ def build_parser() -> argparse.ArgumentParser:
     u.add_argument("--rig", default="sim",
                    help="'sim' (bundled demo device), a device .toml, or module:factory")
     u.add_argument("--seed", type=int, default=None, help="simulator seed")
+    _add_rig_timeout(u)
 
     e = add("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
     e.add_argument("-o", "--output", required=True, help="chip file to write")
     return p
+
+
+def _add_rig_timeout(cmd: argparse.ArgumentParser) -> None:
+    def seconds(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            value = float("nan")
+        if not (0 < value < float("inf")):
+            raise argparse.ArgumentTypeError(f"{text!r}: expected a positive number of seconds")
+        return value
+
+    cmd.add_argument("--rig-timeout", type=seconds, default=None, metavar="SECONDS",
+                     help="give up on a rig call that takes longer (the rig is then "
+                          "considered unusable; default: wait for ever)")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
