@@ -8,7 +8,7 @@ Prints:
 2. column-parallel versus pair-by-pair: total shots and simulated rig time, same chip,
    also split into the Stark and the resonant (leakage, rotation) passes;
    and the worst true field at a victim with all of its aggressor's tones on, for the
-   pairwise, multi-victim and closed-loop (:mod:`xtalkcal.refine`) settings;
+   pairwise, multi-victim and closed-loop (:mod:`xtalkcal.compensation.refine`) settings;
 3. precision of the adaptive null search on the leakage pair d4 → q5 over seeded repeats:
    RMS error of z* divided by the Cramér–Rao bound of the design actually used;
 4. shots: adaptive search versus a 21×21 dense grid at fixed K, at equal RMS error.
@@ -25,12 +25,9 @@ import time
 import numpy as np
 
 from simulated_device import SimRig, demo_device_path
-from xtalkcal.calibration import calibrate_chip
-from xtalkcal.design import AdaptiveNullSearch, cramer_rao_bound, grid_design
-from xtalkcal.fit import fit_null
-from xtalkcal.probes import ColumnProbe
-from xtalkcal.protocol import load_protocol
-from xtalkcal.sweep import BatchRunner
+from xtalkcal.calibrate import AdaptiveNullSearch, calibrate_chip, cramer_rao_bound, grid_design
+from xtalkcal.fits import fit_null
+from xtalkcal.measure import BatchRunner, ColumnProbe, load_protocol
 
 
 class _TallyRunner(BatchRunner):
@@ -75,7 +72,7 @@ def accuracy_and_parallelism(columns: list[str] | None) -> None:
         out[mode] = (res.shots, res.rig_seconds, wall, worst, above, acc, missed)
         worst_on = all_on_residual(rig, res)
         if mode:
-            from xtalkcal.calibration import measured_couplings
+            from xtalkcal.calibrate import measured_couplings
             from xtalkcal.compensation import multi_victim_settings
 
             mv = multi_victim_settings(res, rig.chip, couplings=measured_couplings(res))
@@ -84,7 +81,7 @@ def accuracy_and_parallelism(columns: list[str] | None) -> None:
             print(f"[multi-victim solve with the couplings measured at each aggressor's "
                   f"frequency] worst all-on residual {worst_mv:.1f} dB vs {worst_on:.1f} dB "
                   "with the pairwise settings")
-            from xtalkcal.refine import refine_settings
+            from xtalkcal.compensation import refine_settings
 
             ref = refine_settings(rig, proto, res, mv, rounds=2)
             worst_cl = all_on_residual(

@@ -4,7 +4,7 @@ Two policies run on the same simulated chip with the same seed (so the same drif
 
 A (scheduled re-checks)
     Calibrate the chosen aggressor columns once, then repeatedly advance the rig clock to
-    the earliest due time of the schedule and call :func:`xtalkcal.recheck.run_due`, which
+    the earliest due time of the schedule and call :func:`xtalkcal.drift.run_due`, which
     re-checks what is due, re-centres pairs whose re-check located the moved null, and
     recalibrates the columns of pairs that drifted too far or broke.
 B (baseline)
@@ -40,12 +40,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from simulated_device import SimRig, demo_device_path
-from xtalkcal.calibration import calibrate_chip, ledger_entries, ledger_sweeps
-from xtalkcal.drift import Schedule
-from xtalkcal.ledger import Ledger
-from xtalkcal.protocol import load_protocol
-from xtalkcal.recheck import run_due, schedule_after_calibration
-from xtalkcal.sweep import BatchRunner
+from xtalkcal.calibrate import calibrate_chip
+from xtalkcal.drift import Schedule, run_due, schedule_after_calibration
+from xtalkcal.measure import BatchRunner, load_protocol
+from xtalkcal.store import Ledger, ledger_entries, ledger_sweeps
 
 PROTOCOL = "protocols/full.toml"
 SAMPLE_S = 600.0  # truth sampled every 10 simulated minutes

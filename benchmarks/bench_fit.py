@@ -27,12 +27,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from xtalkcal.design import (  # noqa: E402
-    AdaptiveNullSearch,
-    cramer_rao_bound,
-    grid_design,
-)
-from xtalkcal.fit import fit_null, fit_null_gaussian, fit_paraboloid  # noqa: E402
+from xtalkcal.calibrate import AdaptiveNullSearch, cramer_rao_bound, grid_design
+from xtalkcal.fits import fit_null, fit_null_gaussian, fit_paraboloid  # noqa: E402
 
 Z_TRUE = 0.04 * np.exp(0.9j)
 FLOOR, AMP, B = 0.03, 0.94, 4.0

@@ -50,8 +50,8 @@ from dataclasses import replace
 import numpy as np
 
 from simulated_device import SimRig, demo_device_path
-from xtalkcal.timeline import Timeline
-from xtalkcal.verify import (
+from xtalkcal.hardware import Timeline
+from xtalkcal.verification import (
     GateSet,
     coherence_limited_error_per_gate,
     draw_sequences,

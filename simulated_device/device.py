@@ -70,7 +70,8 @@ from typing import Any
 import numpy as np
 
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
-from xtalkcal.chip import (
+from xtalkcal.common import INVALID, Fields, load_toml, read_header, valid
+from xtalkcal.hardware import (
     Chip,
     DriveLine,
     Qubit,
@@ -80,7 +81,6 @@ from xtalkcal.chip import (
     read_limits,
     read_transmon_nominal,
 )
-from xtalkcal.tomlfields import INVALID, Fields, load_toml, read_header, valid
 
 __all__ = [
     "QubitTruth",

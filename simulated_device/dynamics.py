@@ -60,7 +60,7 @@ __all__ = ["ToneBatch", "evolve_populations", "evolve_reference", "StepControl"]
 TWO_PI = 2.0 * math.pi
 SQRT3 = math.sqrt(3.0)
 
-# Envelope codes, same order as xtalkcal.timeline.ENVELOPE_KINDS.
+# Envelope codes, same order as xtalkcal.hardware.ENVELOPE_KINDS.
 GAUSSIAN, DRAG, FLATTOP, SQUARE = 0, 1, 2, 3
 
 

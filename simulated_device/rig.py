@@ -1,4 +1,4 @@
-"""The simulated device behind the :class:`xtalkcal.rig.Rig` protocol.
+"""The simulated device behind the :class:`xtalkcal.hardware.Rig` protocol.
 
 Each read-out qubit is simulated separately under the fields of all lines (product
 states: exact for classical drive crosstalk, cost linear in the number of qubits).
@@ -25,11 +25,8 @@ import numpy as np
 from simulated_device.device import DeviceSpec, load_device
 from simulated_device.drift_state import DeviceDrift
 from simulated_device.dynamics import StepControl, ToneBatch, evolve_populations
-from xtalkcal.chip import Chip
 from xtalkcal.exceptions import TimelineError
-from xtalkcal.rig import Counts, common_readout
-from xtalkcal.safety import check_timelines
-from xtalkcal.timeline import Timeline
+from xtalkcal.hardware import Chip, Counts, Timeline, check_timelines, common_readout
 
 __all__ = ["SimRig"]
 
@@ -106,7 +103,7 @@ class SimRig:
     def advance_clock_to(self, t_s: float) -> None:
         """Move the clock on to ``t_s`` if it is behind (never back; drift goes on).
 
-        Called by :class:`xtalkcal.sweep.BatchRunner` for each batch answered from a
+        Called by :class:`xtalkcal.measure.BatchRunner` for each batch answered from a
         record, with the time the batch finished when it was measured: a resumed run then
         keeps the clock of the run it resumes.
         """

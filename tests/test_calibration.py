@@ -9,12 +9,16 @@ import numpy as np
 import pytest
 
 from simulated_device import SimRig, demo_device_path
-from xtalkcal.calibration import calibrate_chip, ring_around, ring_points_for, risk_map
+from xtalkcal.calibrate import calibrate_chip, ring_around, ring_points_for, risk_map
 from xtalkcal.cli import main
 from xtalkcal.exceptions import RigError
-from xtalkcal.probes import ColumnProbe, choose_method
-from xtalkcal.protocol import load_protocol, protocol_from_dict
-from xtalkcal.sweep import BatchRunner
+from xtalkcal.measure import (
+    BatchRunner,
+    ColumnProbe,
+    choose_method,
+    load_protocol,
+    protocol_from_dict,
+)
 
 QUICK = protocol_from_dict({"name": "test", "survey": {"shots": 1000},
                             "null": {"shots_per_point": 1000, "max_rounds": 4}})
@@ -114,7 +118,8 @@ def test_expected_rotation_follows_the_pulse_spectrum(demo_rig, line, victim, me
 
 
 def test_common_spacing_makes_detunings_whole_cycles():
-    from xtalkcal.probes import COHERENT_SLIP_RAD, _common_spacing, _slip_rad
+    from xtalkcal.measure import COHERENT_SLIP_RAD
+    from xtalkcal.measure.probes import _common_spacing, _slip_rad
 
     assert _common_spacing(36.0, [0.0]) == 36.0  # one victim: the phase step does it all
     t = _common_spacing(36.0, [0.0, 0.04, -0.01])  # 10 MHz grid: 100 ns
@@ -133,7 +138,7 @@ def test_stark_probe_signal_grows_with_field(demo_rig):
     pts = np.array([[z_true], [z_true + 0.1], [z_true + 0.2]])
     tls = probe.timelines(pts) + probe.reference_timelines()
     c = demo_rig.run(tls, 20000)
-    from xtalkcal.rig import Counts
+    from xtalkcal.hardware import Counts
 
     n = 3 * probe.per_point
     main_c = Counts(c.qubits, c.counts[:n], c.shots, 0, 0)
@@ -148,7 +153,7 @@ def test_stark_readings_past_pi_are_unwrapped(demo_rig):
     """A sensitive victim (q1 is 65 MHz above d3's tone) read beyond π: the phase keeps
     following δ = Ω²α/(2Δ(Δ−α)) (Krantz et al., Appl. Phys. Rev. 6, 021318, 2019)
     instead of aliasing to a negative reading."""
-    from xtalkcal.calibration import measure_probe
+    from xtalkcal.calibrate import measure_probe
 
     probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=62, merged=True)
     z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
@@ -203,7 +208,7 @@ def test_ring_designs_keep_victims_apart_to_second_order():
 
 def test_column_fit_separates_the_victims_leaks():
     """Synthetic column: nulls and line-to-line couplings recovered, errors honest."""
-    from xtalkcal.fit import fit_paraboloid_column
+    from xtalkcal.fits import fit_paraboloid_column
 
     rng = np.random.default_rng(1)
     V = 4
@@ -227,7 +232,7 @@ def test_column_fit_separates_the_victims_leaks():
     off = ~np.eye(V, dtype=bool)
     assert np.all(np.abs(f.couplings[off] - C[off]) < 4 * f.couplings_stderr[off] + 1e-3)
     # the plain paraboloid, blind to the other tones, is biased well beyond its errors
-    from xtalkcal.fit import VerdictRules, fit_paraboloid
+    from xtalkcal.fits import VerdictRules, fit_paraboloid
 
     plain = fit_paraboloid(Z, S0, E, rules=VerdictRules(mismatch_pvalue=0.0)).estimate(1)
     assert abs(plain.z_star - a[1]) > 5 * math.sqrt(np.trace(plain.covariance))
@@ -237,7 +242,7 @@ def test_column_fit_gives_each_batch_its_own_offset():
     """Stark signals of a batch share one reference: an offset error common to a batch.
     Two rings at different centres with different offsets bias a fit with one offset;
     per-batch offsets (``groups``) remove the bias and the errors stay honest."""
-    from xtalkcal.fit import fit_paraboloid_column
+    from xtalkcal.fits import fit_paraboloid_column
 
     V, n = 2, ring_points_for(2, 8)
     a = np.array([0.03 + 0.01j, -0.02 + 0.02j])
@@ -373,10 +378,9 @@ def test_closed_loop_refinement_lowers_the_all_on_residual(d4_result):
     """Against the simulator's truth: the field at each victim with every tone of d4 on
     (X_ij + r_ij + Σ_k X_ik(f_j)·r_kj) is lower after refinement than with the first-order
     pairwise settings, and the refined settings say they were refined."""
-    from xtalkcal.calibration import measured_couplings
+    from xtalkcal.calibrate import measured_couplings
     from xtalkcal.campaign import settings_all_on_db
-    from xtalkcal.compensation import multi_victim_settings, pairwise_settings
-    from xtalkcal.refine import refine_settings
+    from xtalkcal.compensation import multi_victim_settings, pairwise_settings, refine_settings
 
     rig, res = d4_result
     first = multi_victim_settings(res, rig.chip, couplings=measured_couplings(res))
@@ -396,8 +400,8 @@ def test_closed_loop_refinement_lowers_the_all_on_residual(d4_result):
 
 
 def test_stark_windows_keep_sensitive_victims_in_range(demo_chip):
-    from xtalkcal.calibration import STARK_PHASE_MAX, STRONGEST_DB, stark_windows
-    from xtalkcal.probes import PulseShape
+    from xtalkcal.calibrate import STARK_PHASE_MAX, STRONGEST_DB, stark_windows
+    from xtalkcal.measure import PulseShape
 
     shape = PulseShape(32.0, 8.0)
     victims = ("q0", "q1", "q2", "q4", "q5", "q6", "q7", "q8")
@@ -416,7 +420,7 @@ def test_stark_windows_keep_sensitive_victims_in_range(demo_chip):
 def test_windowed_stark_probe_follows_the_stark_formula(demo_rig):
     """A shortened Ramsey window inside the train: the phase still follows
     δ = Ω²α/(2Δ(Δ−α)) (Krantz et al. 2019) over the window's share of the train."""
-    from xtalkcal.calibration import measure_probe
+    from xtalkcal.calibrate import measure_probe
 
     probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=187,
                         merged=True, stark_windows_ns=(1500.0,))
@@ -434,8 +438,8 @@ def test_stark_probe_sees_victims_beyond_the_resonant_window(demo_rig, line, vic
     0.07 and below, so a resonant probe hardly sees them) are Stark victims: in the
     simulator the windowed Ramsey phase is ~0 at the true null, isotropic in the field
     around it to 5 %, and within 20 % of the Stark formula (measured 1.05–1.13)."""
-    from xtalkcal.calibration import measure_probe, stark_windows
-    from xtalkcal.probes import PulseShape
+    from xtalkcal.calibrate import measure_probe, stark_windows
+    from xtalkcal.measure import PulseShape
 
     chip = demo_rig.chip
     assert choose_method(chip, line, victim) == "stark"
@@ -522,7 +526,7 @@ def test_demo_runs_end_to_end_reduced(tmp_path):
     assert "verification (" in md and "drift watch:" in md and "randomized benchmarking" in md
     assert "closed-loop refinement:" in md and "closed-loop" in md.split("refinement:")[1]
     from xtalkcal.compensation import CompensationSettings
-    from xtalkcal.ledger import Ledger
+    from xtalkcal.store import Ledger
 
     settings = CompensationSettings.read_json(out / "settings.json")
     assert any(p.aggressor_line == "d4" and p.victim == "q5" for p in settings.pairs)

@@ -16,11 +16,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from simulated_device import device_from_dict
-from xtalkcal.chip import chip_from_dict, load_chip
 from xtalkcal.cli import main
+from xtalkcal.common import FieldErrors
 from xtalkcal.exceptions import ConfigError
-from xtalkcal.protocol import load_protocol, protocol_from_dict
-from xtalkcal.tomlfields import FieldErrors
+from xtalkcal.hardware import chip_from_dict, load_chip
+from xtalkcal.measure import load_protocol, protocol_from_dict
 
 CHIP: dict[str, Any] = {
     "format": "xtalkcal-chip",

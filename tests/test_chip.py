@@ -10,11 +10,18 @@ import tomli_w
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from xtalkcal.chip import chip_from_dict, load_chip
+from xtalkcal.common import FieldErrors
 from xtalkcal.exceptions import ConfigError, SafetyLimitError, TimelineError
-from xtalkcal.safety import check_timelines
-from xtalkcal.timeline import Envelope, Timeline, Tone, envelope_values, pulse_area_ns
-from xtalkcal.tomlfields import FieldErrors
+from xtalkcal.hardware import (
+    Envelope,
+    Timeline,
+    Tone,
+    check_timelines,
+    chip_from_dict,
+    envelope_values,
+    load_chip,
+    pulse_area_ns,
+)
 
 GOOD = {
     "format": "xtalkcal-chip",
@@ -90,7 +97,7 @@ def test_toml_syntax_error_names_file(tmp_path):
         load_chip(p)
 
 
-# Any name the documented rule accepts (xtalkcal.tomlfields.NAME_RULE), up to 8 characters.
+# Any name the documented rule accepts (xtalkcal.common.NAME_RULE), up to 8 characters.
 names = st.from_regex(r"\A[A-Za-z][A-Za-z0-9_-]{0,7}\Z")
 
 

@@ -55,7 +55,7 @@ def test_export_chip_matches_device(tmp_path, capsys, demo_device):
     out = tmp_path / "sub" / "chip.toml"
     assert main(["export-chip", demo_device_path(), "-o", str(out)]) == 0
     assert main(["check", str(out)]) == 0
-    from xtalkcal.chip import load_chip
+    from xtalkcal.hardware import load_chip
 
     chip = load_chip(out)
     assert chip.qubits == demo_device.chip().qubits
@@ -67,7 +67,7 @@ def test_built_in_protocol_defaults_are_those_of_full_toml():
     installed package need not carry protocols/): they must be full.toml's."""
     import dataclasses
 
-    from xtalkcal.protocol import default_protocol, load_protocol
+    from xtalkcal.measure import default_protocol, load_protocol
 
     a, b = default_protocol(), load_protocol("protocols/full.toml")
     assert dataclasses.replace(a, source=b.source) == b

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 
 from xtalkcal.cli import main
-from xtalkcal.ledger import Ledger
+from xtalkcal.store import Ledger
 
 PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
          '[null]\nmax_rounds = 3\n')
@@ -79,10 +79,10 @@ def test_a_broken_recheck_recalibrates_the_column(tmp_path):
     import math
 
     from simulated_device import SimRig, demo_device_path
-    from xtalkcal.calibration import calibrate_chip, ledger_entries, ledger_sweeps
-    from xtalkcal.drift import RecheckDecision, Schedule
-    from xtalkcal.protocol import protocol_from_dict
-    from xtalkcal.recheck import run_due, schedule_after_calibration
+    from xtalkcal.calibrate import calibrate_chip
+    from xtalkcal.drift import RecheckDecision, Schedule, run_due, schedule_after_calibration
+    from xtalkcal.measure import protocol_from_dict
+    from xtalkcal.store import ledger_entries, ledger_sweeps
 
     proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
                                 "survey": {"shots": 500}, "null": {"max_rounds": 3}})
@@ -111,11 +111,12 @@ def test_a_broken_recheck_recalibrates_the_column(tmp_path):
 def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, monkeypatch):
     """One re-check judged broken by chance (here: forced), its repeat within: the column
     is not recalibrated, and both re-checks are in the ledger."""
-    import xtalkcal.recheck as rc
+    import xtalkcal.drift.recheck as rc
     from simulated_device import SimRig, demo_device_path
-    from xtalkcal.calibration import calibrate_chip, ledger_entries, ledger_sweeps
+    from xtalkcal.calibrate import calibrate_chip
     from xtalkcal.drift import RecheckDecision, Schedule
-    from xtalkcal.protocol import protocol_from_dict
+    from xtalkcal.measure import protocol_from_dict
+    from xtalkcal.store import ledger_entries, ledger_sweeps
 
     proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
                                 "survey": {"shots": 500}, "null": {"max_rounds": 3}})

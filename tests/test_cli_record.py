@@ -10,7 +10,7 @@ import re
 import pytest
 
 from xtalkcal.cli import build_parser, main
-from xtalkcal.ledger import Ledger
+from xtalkcal.store import Ledger
 
 PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
          '[null]\nmax_rounds = 3\n')
@@ -88,10 +88,9 @@ def test_resumed_run_appends_only_what_is_new(tmp_path, capsys):
     """An estimate that differs from the stored ones is appended (with the sweep it came
     from linked to the stored copy); the ones the ledger holds are not."""
     from simulated_device import SimRig, demo_device_path
-    from xtalkcal.calibration import calibrate_chip
+    from xtalkcal.calibrate import calibrate_chip
     from xtalkcal.cli import _record_in_ledger
-    from xtalkcal.protocol import load_protocol
-    from xtalkcal.sweep import BatchRunner
+    from xtalkcal.measure import BatchRunner, load_protocol
 
     _calibrate(tmp_path, capsys)
     led, before, sweeps = _stored(tmp_path)
@@ -119,7 +118,7 @@ def test_without_record_nothing_is_deduplicated(tmp_path):
              quality=float("nan"), verdict="rejected", reason="no fit", measured_at_s=1.0,
              measured_at_utc="2031-01-01T00:00:00+00:00", rig="r", software_version="v",
              kind="survey", tag="cal-a", sweep_id="cal-a/d1-res")
-    from xtalkcal.ledger import LedgerEntry
+    from xtalkcal.store import LedgerEntry
 
     a = LedgerEntry(**e)
     b = LedgerEntry(**{**e, "tag": "cal-b", "sweep_id": "cal-b/d1-res", "measured_at_s": 9.0})

@@ -14,8 +14,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from simulated_device import SimRig, demo_device_path
-from xtalkcal.calibration import CalibrationResult, PairResult
-from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits
+from xtalkcal.calibrate import CalibrationResult, PairResult
 from xtalkcal.compensation import (
     CSV_COLUMNS,
     SETTINGS_SCHEMA,
@@ -30,10 +29,9 @@ from xtalkcal.compensation import (
     residuals,
 )
 from xtalkcal.exceptions import ConfigError, SafetyLimitError
-from xtalkcal.ledger import LedgerEntry, MatrixSnapshot, utc_timestamp
-from xtalkcal.probes import ColumnProbe
-from xtalkcal.protocol import protocol_from_dict
-from xtalkcal.timeline import Envelope, Timeline, Tone
+from xtalkcal.hardware import Chip, DriveLine, Envelope, Qubit, SafetyLimits, Timeline, Tone
+from xtalkcal.measure import ColumnProbe, protocol_from_dict
+from xtalkcal.store import LedgerEntry, MatrixSnapshot, utc_timestamp
 
 COV = [[1e-8, 2e-9], [2e-9, 4e-8]]
 
@@ -257,7 +255,7 @@ def test_multi_victim_on_the_demo_device_needs_couplings_at_the_aggressor_freque
 # Files
 # --------------------------------------------------------------------------------------------
 
-# Names under the documented rule (xtalkcal.tomlfields.NAME_RULE).
+# Names under the documented rule (xtalkcal.common.NAME_RULE).
 names = st.from_regex(r"\A[A-Za-z][A-Za-z0-9_-]{0,5}\Z")
 finite = st.floats(-10, 10, allow_nan=False, allow_infinity=False)
 

@@ -33,7 +33,7 @@ import qutip as qt  # a hard import: the reference must not be skipped silently
 
 from simulated_device.dynamics import StepControl, ToneBatch, evolve_populations, evolve_reference
 from simulated_device.transmon import charge_basis_levels, duffing_levels
-from xtalkcal.timeline import ENVELOPE_KINDS, Envelope, envelope_values, pulse_area_ns
+from xtalkcal.hardware import ENVELOPE_KINDS, Envelope, envelope_values, pulse_area_ns
 
 TOL_QUTIP = 1e-4  # agreement asked of the fast path against QuTiP, in every population
 TWO_PI = 2.0 * math.pi
@@ -157,10 +157,10 @@ def fast(victim: Victim, runs: Run | list[Run], control: StepControl | None = No
 
 
 def envelope_scalar(env: Envelope, duration: float, tau: float) -> complex:
-    """E(τ) written out from the envelope definitions in xtalkcal.timeline (scalar, fast).
+    """E(τ) written out from the envelope definitions in xtalkcal.hardware.timeline (scalar, fast).
 
     Kept separate from the kernel's compiled envelope on purpose; it is itself checked
-    against :func:`xtalkcal.timeline.envelope_values` in ``test_envelope_scalar_matches_spec``.
+    against :func:`xtalkcal.hardware.envelope_values` in ``test_envelope_scalar_matches_spec``.
     """
     if tau < 0.0 or tau > duration:
         return 0j
@@ -420,7 +420,7 @@ def max_deviation(a: np.ndarray, b: np.ndarray) -> float:
 
 
 def test_envelope_scalar_matches_spec() -> None:
-    """The QuTiP model's envelopes are the ones xtalkcal.timeline defines."""
+    """The QuTiP model's envelopes are the ones xtalkcal.hardware.timeline defines."""
     tau = np.linspace(-1.0, 41.0, 401)
     for env in (Envelope("gaussian", sigma_ns=7.0), Envelope("drag", sigma_ns=6.0, drag_ns=1.3),
                 Envelope("flattop", ramp_ns=9.0), Envelope("flattop", ramp_ns=0.0),

@@ -17,12 +17,12 @@ from typing import Any
 import numpy as np
 import pytest
 
-import xtalkcal.rig
+import xtalkcal.hardware.rig
 from simulated_device import SimRig, device_from_dict
 from simulated_device.drift_state import DeviceDrift
 from simulated_device.dynamics import ToneBatch, evolve_populations
 from xtalkcal.exceptions import SafetyLimitError
-from xtalkcal.timeline import Envelope, Timeline, Tone, pulse_area_ns
+from xtalkcal.hardware import Envelope, Timeline, Tone, pulse_area_ns
 
 HOUR_S = 3600.0
 
@@ -285,6 +285,6 @@ def test_over_limit_timeline_is_refused_before_anything_runs() -> None:
 
 def test_simrig_satisfies_the_rig_protocol() -> None:
     rig = SimRig(device_from_dict(device_dict()))
-    assert isinstance(rig, xtalkcal.rig.Rig)
+    assert isinstance(rig, xtalkcal.hardware.Rig)
     assert rig.chip.line_names == ("d0", "d1")
     assert "readout-test-pair" in rig.describe()

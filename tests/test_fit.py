@@ -1,4 +1,4 @@
-"""Known-truth, coverage, verdict and property tests of xtalkcal.fit."""
+"""Known-truth, coverage, verdict and property tests of xtalkcal.common."""
 
 from __future__ import annotations
 
@@ -11,9 +11,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from xtalkcal.design import grid_design, ring_design
+from xtalkcal.calibrate import grid_design, ring_design
 from xtalkcal.exceptions import FitInputError
-from xtalkcal.fit import (
+from xtalkcal.fits import (
     NullEstimate,
     ParaboloidBatch,
     RejectedEstimateError,
@@ -505,7 +505,7 @@ def test_noiseless_ring_gives_the_direction(direction, offset, n, phase0):
 def test_linearise_fringe_inverts_the_saturating_model(s0, u, ceiling):
     """S = S0 + A sin²(u) (the "saturating" model of fit_null) maps onto S0 + A u², and the
     propagated error is the derivative of that map (checked by a finite difference)."""
-    from xtalkcal.fit import linearise_fringe
+    from xtalkcal.fits import linearise_fringe
 
     a = ceiling - s0
     s = s0 + a * math.sin(u) ** 2
@@ -521,8 +521,8 @@ def test_linearised_ring_off_centre_gives_the_unbiased_null():
     """A ring off-centre by a quarter of its radius, rising to 0.35 up a sin² fringe: a
     paraboloid fitted to the raw signals puts the null 13 % of the offset towards the
     ring's centre; fitted to the linearised signals, 0.01 % (noiseless data)."""
-    from xtalkcal.calibration import ring_around
-    from xtalkcal.fit import fit_paraboloid_column, linearise_fringe
+    from xtalkcal.calibrate import ring_around
+    from xtalkcal.fits import fit_paraboloid_column, linearise_fringe
 
     z_true, s0, r = 0.01 + 0.004j, 0.02, 0.002
     centre = z_true - 0.25 * r

@@ -26,12 +26,12 @@ import pytest
 
 from simulated_device import demo_device_path
 from simulated_device.device import load_device
-from xtalkcal.chip import load_chip
 from xtalkcal.cli import main
 from xtalkcal.compensation import CompensationSettings, PairSetting
 from xtalkcal.drift import Schedule
 from xtalkcal.exceptions import XtalkcalError
-from xtalkcal.protocol import default_protocol, load_protocol
+from xtalkcal.hardware import load_chip
+from xtalkcal.measure import default_protocol, load_protocol
 
 MUTANTS = 200
 ROOT = Path(__file__).parents[1]

@@ -23,16 +23,15 @@ import tomllib
 
 from simulated_device import SimRig, demo_device_path
 from simulated_device.device import device_from_dict
-from xtalkcal.calibration import calibrate_chip
-from xtalkcal.chip import chip_from_dict
+from xtalkcal.calibrate import calibrate_chip
 from xtalkcal.cli import main
+from xtalkcal.common import NAME_RULE, FieldErrors
 from xtalkcal.compensation import CompensationSettings, PairSetting
 from xtalkcal.drift import Schedule, ScheduleFileError
 from xtalkcal.exceptions import ConfigError
-from xtalkcal.ledger import Ledger
-from xtalkcal.protocol import default_protocol, load_protocol, protocol_from_dict
-from xtalkcal.sweep import BatchRunner
-from xtalkcal.tomlfields import NAME_RULE, FieldErrors
+from xtalkcal.hardware import chip_from_dict
+from xtalkcal.measure import BatchRunner, default_protocol, load_protocol, protocol_from_dict
+from xtalkcal.store import Ledger
 
 ROOT = Path(__file__).parents[1]
 CHIP_FILE = ROOT / "simulated_device" / "data" / "grid9_chip.toml"

@@ -30,9 +30,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from xtalkcal import ledger as ledger_mod
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.ledger import (
+from xtalkcal.store import (
     KINDS,
     METHODS,
     SCHEMA_VERSION,
@@ -41,6 +40,9 @@ from xtalkcal.ledger import (
     LedgerValidationError,
     utc_timestamp,
 )
+from xtalkcal.store import codec as codec_mod
+from xtalkcal.store import files as files_mod
+from xtalkcal.store import ledger as ledger_mod
 
 REPO = Path(__file__).resolve().parents[1]
 FIXTURE_V1 = Path(__file__).resolve().parent / "data" / "ledger_v1"
@@ -903,13 +905,14 @@ def test_migration_hook_runs_on_old_files(
         out["tag"] = np.array(["v2:" + t for t in cols["tag"]], dtype=object)
         return out
 
-    monkeypatch.setattr(ledger_mod, "SCHEMA_VERSION", 2)
-    monkeypatch.setattr(ledger_mod, "MIGRATIONS", {})
+    for mod in (codec_mod, files_mod, ledger_mod):  # every module that reads the version
+        monkeypatch.setattr(mod, "SCHEMA_VERSION", 2)
+    monkeypatch.setattr(codec_mod, "MIGRATIONS", {})
     with pytest.raises(LedgerError, match="has no migration to 2"):
         Ledger(fixture_copy)
-    monkeypatch.setattr(ledger_mod, "MIGRATIONS", {1: v1_to_v2})
+    monkeypatch.setattr(codec_mod, "MIGRATIONS", {1: v1_to_v2})
     monkeypatch.setattr(
-        ledger_mod, "SWEEP_READERS", {**ledger_mod.SWEEP_READERS, 2: ledger_mod._read_sweep_v1}
+        ledger_mod, "SWEEP_READERS", {**codec_mod.SWEEP_READERS, 2: codec_mod._read_sweep_v1}
     )
     led = Ledger(fixture_copy)
     assert {e.tag for e in led.entries()} == {"v2:fixture"}

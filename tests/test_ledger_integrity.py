@@ -19,7 +19,7 @@ from test_ledger import FIXTURE_V1, assert_same_dataset, canon, make_entry, smal
 
 from xtalkcal.cli import main
 from xtalkcal.exceptions import LedgerError, RigError
-from xtalkcal.ledger import Ledger, quarantine_commit, verify_ledger
+from xtalkcal.store import Ledger, quarantine_commit, verify_ledger
 
 MARKER = "xtalkcal-ledger.json"
 CHIP = "grid9-demo"  # the bundled demo chip, so that the calibrate tests can share ledgers
@@ -405,7 +405,7 @@ class CountingRig:
 
 @pytest.fixture
 def counting_rig(monkeypatch: pytest.MonkeyPatch, demo_chip):
-    from xtalkcal.chip import chip_from_dict
+    from xtalkcal.hardware import chip_from_dict
 
     CountingRig.calls = 0
     one = demo_chip.to_dict()

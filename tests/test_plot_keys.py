@@ -16,9 +16,9 @@ import pytest
 from matplotlib.colors import to_rgba
 from matplotlib.patches import Rectangle
 
-from xtalkcal.calibration import CalibrationResult, PairResult
-from xtalkcal.plot import plot_matrix_db, plot_matrix_phase
-from xtalkcal.protocol import protocol_from_dict
+from xtalkcal.calibrate import CalibrationResult, PairResult
+from xtalkcal.measure import protocol_from_dict
+from xtalkcal.outputs import plot_matrix_db, plot_matrix_phase
 
 PLOTS = (plot_matrix_db, plot_matrix_phase)
 

@@ -21,10 +21,10 @@ import pytest
 from simulated_device import SimRig, demo_device_path
 from xtalkcal.cli import main
 from xtalkcal.exceptions import ConfigError, RigError, SafetyLimitError, TimelineError
-from xtalkcal.ledger import Ledger
-from xtalkcal.rig import MIN_LEVELS, Counts, check_counts
-from xtalkcal.sweep import BatchRunner, _read
-from xtalkcal.timeline import Timeline
+from xtalkcal.hardware import MIN_LEVELS, Counts, Timeline, check_counts
+from xtalkcal.measure import BatchRunner
+from xtalkcal.measure.sweep import _read
+from xtalkcal.store import Ledger
 
 PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
          '[null]\nmax_rounds = 3\n')

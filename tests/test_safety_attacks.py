@@ -17,11 +17,18 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from xtalkcal.chip import chip_from_dict
 from xtalkcal.compensation import CompensationSettings, PairSetting, apply_to_waveforms
 from xtalkcal.exceptions import SafetyLimitError, TimelineError, XtalkcalError
-from xtalkcal.safety import check_timelines, envelope_energy_ns, envelope_peak
-from xtalkcal.timeline import Envelope, Timeline, Tone, envelope_values
+from xtalkcal.hardware import (
+    Envelope,
+    Timeline,
+    Tone,
+    check_timelines,
+    chip_from_dict,
+    envelope_energy_ns,
+    envelope_peak,
+    envelope_values,
+)
 
 REP_NS = 1e4
 CHIP = {

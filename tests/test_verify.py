@@ -11,7 +11,7 @@ from scipy.linalg import expm
 
 from simulated_device import SimRig, ToneBatch, demo_device_path, evolve_populations
 from xtalkcal.exceptions import FitInputError, TimelineError
-from xtalkcal.verify import (
+from xtalkcal.verification import (
     CLIFFORD_DECOMPOSITIONS,
     PRIMITIVES,
     PRIMITIVES_PER_CLIFFORD,
@@ -87,7 +87,8 @@ def test_ideal_sequences_compose_to_identity():
 
 
 def test_rotation_matches_the_timeline_phase_convention():
-    """exp(−i2π∫H) with H = ½(Ω a† + Ω* a), Ω = Ω₀e^{iφ} (xtalkcal.timeline), on {|0⟩,|1⟩}."""
+    """exp(−i2π∫H) with H = ½(Ω a† + Ω* a), Ω = Ω₀e^{iφ}
+    (xtalkcal.hardware.timeline), on {|0⟩,|1⟩}."""
     adag = np.array([[0, 0], [1, 0]], complex)
     for phi in (0.0, math.pi / 2, math.pi, -math.pi / 2, 0.7):
         for theta in (math.pi / 2, math.pi):
@@ -299,7 +300,7 @@ def test_readout_offsets_match_the_hidden_assignment_matrix(demo_device):
 def test_isolated_rb_is_coherence_limited(demo_device):
     """Drift off: the error per gate of q5 alone is the T1/T2 limit (within a factor 2).
 
-    Coherence limit per slot (module docstring of xtalkcal.verify; Nielsen 2002); the
+    Coherence limit per slot (module docstring of xtalkcal.verification; Nielsen 2002); the
     identity Clifford is an idle slot, so every primitive lasts one slot.
     """
     rig = SimRig(demo_device, seed=7, drift=False)
@@ -376,7 +377,7 @@ def test_own_drive_trim_matches_the_simulators_second_order_factor():
     """With every cancellation tone on, qubit j's own drive changes by
     1 + Σ_k X_jk(f_j)·r_kj (the tones other lines play at f_j reach j too). The
     amplitude-amplification measurement must find |that| − 1 (simulator truth)."""
-    from xtalkcal.verify import own_drive_trims
+    from xtalkcal.verification import own_drive_trims
 
     rig = SimRig(demo_device_path(), seed=5, drift=False)
     chip = rig.chip

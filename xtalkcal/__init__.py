@@ -12,7 +12,6 @@ try:
 except PackageNotFoundError:  # running from a source tree without installation
     __version__ = "0+unknown"
 
-from xtalkcal.chip import Chip, DriveLine, Qubit, SafetyLimits, load_chip
 from xtalkcal.exceptions import (
     ConfigError,
     FitInputError,
@@ -22,22 +21,33 @@ from xtalkcal.exceptions import (
     TimelineError,
     XtalkcalError,
 )
-from xtalkcal.rig import Counts, Rig
-from xtalkcal.safety import check_timelines
-from xtalkcal.timeline import Envelope, Timeline, Tone
+from xtalkcal.hardware import (
+    Chip,
+    Counts,
+    DriveLine,
+    Envelope,
+    Qubit,
+    Rig,
+    SafetyLimits,
+    Timeline,
+    Tone,
+    check_timelines,
+    load_chip,
+)
 
 # Measurement, storage and use (imported after the data types they build on).
-from xtalkcal.protocol import Protocol, load_protocol  # noqa: E402  isort: skip
-from xtalkcal.calibration import CalibrationResult, calibrate_chip  # noqa: E402  isort: skip
-from xtalkcal.ledger import Ledger, LedgerEntry  # noqa: E402  isort: skip
-from xtalkcal.compensation import (  # noqa: E402  isort: skip
+from xtalkcal.measure import Protocol, load_protocol  # noqa: E402  isort: skip
+from xtalkcal.calibrate import CalibrationResult, calibrate_chip  # noqa: E402  isort: skip
+from xtalkcal.store import Ledger, LedgerEntry  # noqa: E402  isort: skip
+from xtalkcal.compensation import (
     CompensationSettings,
     apply_to_timeline,
     apply_to_waveforms,
     multi_victim_settings,
     pairwise_settings,
 )
-from xtalkcal.recheck import run_due  # noqa: E402  isort: skip
+
+from xtalkcal.drift import run_due  # noqa: E402  isort: skip
 
 __all__ = [
     "__version__",

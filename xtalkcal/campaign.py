@@ -28,27 +28,20 @@ from pathlib import Path
 
 import numpy as np
 
-from xtalkcal.calibration import (
-    CalibrationResult,
-    calibrate_chip,
-    ledger_entries,
-    ledger_sweeps,
-    measured_couplings,
-)
+from xtalkcal.calibrate import CalibrationResult, calibrate_chip, measured_couplings
 from xtalkcal.compensation import (
     CompensationSettings,
+    Refinement,
     apply_to_timeline,
     multi_victim_settings,
     pairwise_settings,
+    refine_settings,
 )
-from xtalkcal.drift import Schedule
-from xtalkcal.ledger import Ledger
-from xtalkcal.protocol import Protocol
-from xtalkcal.recheck import PairCheck, recheck_column, run_due, schedule_after_calibration
-from xtalkcal.refine import Refinement, refine_settings
-from xtalkcal.rig import Rig
-from xtalkcal.sweep import BatchRunner
-from xtalkcal.verify import (
+from xtalkcal.drift import PairCheck, Schedule, recheck_column, run_due, schedule_after_calibration
+from xtalkcal.hardware import Rig
+from xtalkcal.measure import BatchRunner, Protocol
+from xtalkcal.store import Ledger, ledger_entries, ledger_sweeps
+from xtalkcal.verification import (
     DriveTrim,
     SimultaneousRBReport,
     draw_sequences,
@@ -87,7 +80,7 @@ class CampaignResult:
     verification: list[PairCheck] = field(default_factory=list)
     rb: SimultaneousRBReport | None = None
     # Change of each benchmarked qubit's own drive with compensation on, measured and
-    # divided out before benchmarking (:func:`xtalkcal.verify.own_drive_trims`).
+    # divided out before benchmarking (:func:`xtalkcal.verification.own_drive_trims`).
     trims: dict[str, DriveTrim] = field(default_factory=dict)
     drift: list[DriftSample] = field(default_factory=list)
     drift_actions: dict[str, int] = field(default_factory=dict)
@@ -194,7 +187,8 @@ def run_campaign(
     watch : sequence of str, optional
         Aggressor lines whose pairs the drift watch follows (default all calibrated).
     refine_rounds : int
-        Largest number of closed-loop refinement rounds (:func:`xtalkcal.refine.refine_settings`).
+        Largest number of closed-loop refinement rounds
+        (:func:`xtalkcal.compensation.refine_settings`).
     """
     out = Path(out)
     runner = BatchRunner(rig, out / "record", progress=progress)

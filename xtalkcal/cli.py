@@ -13,7 +13,7 @@ import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from xtalkcal import __version__
+from xtalkcal.common import __version__
 from xtalkcal.exceptions import ConfigError as XtalkcalConfigError
 from xtalkcal.exceptions import RigError, XtalkcalError
 
@@ -35,7 +35,7 @@ def _command(name: str):
 
 
 def _detect_format(path: str) -> str:
-    from xtalkcal.tomlfields import load_toml
+    from xtalkcal.common import load_toml
 
     data, _ = load_toml(path)
     return str(data.get("format", ""))
@@ -43,7 +43,7 @@ def _detect_format(path: str) -> str:
 
 def _print_errors(exc: XtalkcalError) -> None:
     """One line per problem (a file's readers collect all of its problems)."""
-    from xtalkcal.tomlfields import FieldErrors
+    from xtalkcal.common import FieldErrors
 
     for problem in exc.errors if isinstance(exc, FieldErrors) else (exc,):
         print(f"xtalkcal: error: {problem}", file=sys.stderr)
@@ -84,11 +84,11 @@ def _check_one(path: str) -> tuple[object, object, str]:
 
     Returns what was loaded, the chip it describes (None for other kinds), its OK line.
     """
-    from xtalkcal.chip import load_chip
-    from xtalkcal.tomlfields import read_text
+    from xtalkcal.common import read_text
+    from xtalkcal.hardware import load_chip
 
     if Path(path).is_dir():
-        from xtalkcal.ledger import verify_ledger
+        from xtalkcal.store import verify_ledger
 
         report = verify_ledger(path)
         if not report.ok:
@@ -106,7 +106,7 @@ def _check_one(path: str) -> tuple[object, object, str]:
         return dev, dev.chip(), (f"{path}: simulated device {dev.name!r}: "
                                  f"{len(dev.qubits)} qubits, {len(dev.couplings)} couplings — OK")
     if fmt == "xtalkcal-protocol":
-        from xtalkcal.protocol import load_protocol
+        from xtalkcal.measure import load_protocol
 
         proto = load_protocol(path)
         return proto, None, f"{path}: protocol {proto.name!r} — OK"
@@ -117,10 +117,10 @@ def _check_one(path: str) -> tuple[object, object, str]:
 
 def _check_json(path: str) -> tuple[object, None, str]:
     """A schedule or settings file (JSON), told apart by its ``format`` / ``schema``."""
+    from xtalkcal.common import load_json
     from xtalkcal.compensation import SETTINGS_SCHEMA, CompensationSettings
     from xtalkcal.drift import SCHEDULE_FORMAT, Schedule
-    from xtalkcal.protocol import default_protocol
-    from xtalkcal.tomlfields import load_json
+    from xtalkcal.measure import default_protocol
 
     doc, source = load_json(path)
     kind = doc.get("format", doc.get("schema")) if isinstance(doc, dict) else None
@@ -172,7 +172,7 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
     except (ImportError, AttributeError) as exc:
         raise XtalkcalConfigError("command line", "--rig",
                                   f"cannot load {spec!r}: {exc}") from None
-    from xtalkcal.rig import Rig
+    from xtalkcal.hardware import Rig
 
     try:
         rig = factory()
@@ -189,9 +189,9 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
 
 @_command("calibrate")
 def _cmd_calibrate(args: argparse.Namespace) -> int:
-    from xtalkcal.calibration import calibrate_chip
-    from xtalkcal.export import dumps, format_table
-    from xtalkcal.sweep import BatchRunner
+    from xtalkcal.calibrate import calibrate_chip
+    from xtalkcal.measure import BatchRunner
+    from xtalkcal.outputs import dumps, format_table
 
     protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
@@ -231,7 +231,7 @@ def _resumed_note(runner, record) -> str:
 def _open_ledger(path: str, chip: str):
     """The chip's ledger at ``path``, opened (every commit verified), or None if there is
     none yet (it is created when something is stored, so a failed run leaves no folder)."""
-    from xtalkcal.ledger import Ledger
+    from xtalkcal.store import Ledger
 
     if not Path(path).exists():
         return None
@@ -259,8 +259,7 @@ def _record_in_ledger(path: str, chip: str, result, *, resumed_from: str | None 
     import dataclasses
     import datetime as dt
 
-    from xtalkcal.calibration import ledger_entries, ledger_sweeps
-    from xtalkcal.ledger import Ledger
+    from xtalkcal.store import Ledger, ledger_entries, ledger_sweeps
 
     if not result.pairs and not result.sweeps:
         only = result.protocol.only_methods
@@ -337,8 +336,7 @@ def _measurement_key(e) -> tuple:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from simulated_device import SimRig, demo_device_path
     from xtalkcal.campaign import run_campaign
-    from xtalkcal.export import format_table
-    from xtalkcal.report import write_report
+    from xtalkcal.outputs import format_table, write_report
 
     protocol = _load_protocol(args.protocol)
     rig = SimRig(demo_device_path(), seed=args.seed, drift=True)
@@ -379,9 +377,8 @@ def _cmd_due(args: argparse.Namespace) -> int:
     """Do whatever is due now (cron-friendly), then exit."""
     import datetime as dt
 
-    from xtalkcal.drift import Schedule
-    from xtalkcal.ledger import Ledger
-    from xtalkcal.recheck import run_due
+    from xtalkcal.drift import Schedule, run_due
+    from xtalkcal.store import Ledger
 
     protocol = _load_protocol(args.protocol)
     if not Path(args.ledger).exists():
@@ -411,7 +408,7 @@ def _cmd_due(args: argparse.Namespace) -> int:
         for (a, v), e in current.entries.items():
             if e.kind != "survey":
                 schedule.calibrated((a, v), e.measured_at_s)
-    from xtalkcal.sweep import BatchRunner
+    from xtalkcal.measure import BatchRunner
 
     rep = run_due(rig, protocol, led, schedule, log=print,
                   runner=BatchRunner(rig, timeout_s=args.rig_timeout))
@@ -465,7 +462,7 @@ def _atomic_write(path: Path, text: str) -> None:
 
 def _load_protocol(path: str | None):
     """The protocol file given, or the built-in defaults (those of protocols/full.toml)."""
-    from xtalkcal.protocol import default_protocol, load_protocol
+    from xtalkcal.measure import default_protocol, load_protocol
 
     return load_protocol(path) if path else default_protocol()
 

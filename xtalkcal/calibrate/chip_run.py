@@ -1,0 +1,139 @@
+"""Calibrate a whole chip: plan its passes, run them on the rig and collect the result.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Collection, Mapping
+
+from xtalkcal.calibrate.passes import PassStart, _calibrate_pass
+from xtalkcal.calibrate.plan import (
+    RING_MARGIN,
+    RISE_PROBABILITY,
+    STRONGEST_DB,
+    pass_amplitude,
+    risk_map,
+    survey_radii,
+)
+from xtalkcal.calibrate.result import CalibrationResult
+from xtalkcal.hardware import Rig
+from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape, choose_method
+
+
+def calibrate_chip(
+    rig: Rig,
+    protocol: Protocol,
+    *,
+    runner: BatchRunner | None = None,
+    aggressors: list[str] | None = None,
+    column_parallel: bool = True,
+    key_prefix: str = "",
+    null_victims: Mapping[str, Collection[str]] | None = None,
+    log: Callable[[str], None] | None = None,
+) -> CalibrationResult:
+    """Survey every column and null every pair above the protocol's threshold.
+
+    Parameters
+    ----------
+    rig : Rig
+    protocol : Protocol
+    runner : BatchRunner, optional
+        Records batches (resumable); a plain one is made if not given.
+    aggressors : list of str, optional
+        Aggressor lines to calibrate (default all).
+    column_parallel : bool
+        True: all victims of an aggressor share the shots. False: one victim per pass
+        (the pair-by-pair baseline of the benchmarks).
+    null_victims : mapping of aggressor line to victims, optional
+        Pairs to null whatever their survey says (a recalibration of pairs already in use
+        must not fall back to a survey estimate).
+    key_prefix : str
+        Prefix of the batch keys in the runner's record (distinct calibrations sharing a
+        record folder need distinct prefixes).
+    log : callable, optional
+        Receives one line of progress text per pass.
+    """
+    chip = rig.chip
+    runner = runner or BatchRunner(rig)
+    say = log or (lambda s: None)
+    result = CalibrationResult(chip, protocol, rig.describe(), risk=risk_map(chip, protocol))
+    shape = PulseShape(protocol.pulse.duration_ns, protocol.pulse.sigma_ns)
+    for line in aggressors or list(chip.line_names):
+        own = chip.line(line).qubit
+        victims = [q for q in chip.qubit_names if q != own]
+        methods = {v: protocol.method_override(line, v)
+                   or choose_method(chip, line, v, protocol.windows) for v in victims}
+        if protocol.only_methods:
+            victims = [v for v in victims if methods[v] in protocol.only_methods]
+        groups = [[v for v in victims if methods[v] != "stark"],
+                  [v for v in victims if methods[v] == "stark"]]
+        for gi, group in enumerate(groups):
+            passes = [group] if column_parallel else [[v] for v in group]
+            for victims_of_pass in passes:
+                if victims_of_pass:
+                    # Column-parallel: the tones already found for this aggressor (in
+                    # the other pass, whose victims cannot be read out in this one)
+                    # ring around their nulls during later passes, so that the column
+                    # fit measures their leak onto this pass's victims (the multi-victim
+                    # solve needs it) instead of folding it into these victims' nulls.
+                    companions = _nulled_tones(result, protocol, line) if column_parallel else ()
+                    force = tuple((null_victims or {}).get(line, ()))
+                    handoff = _calibrate_pass(rig, runner, protocol, result, line,
+                                              victims_of_pass,
+                                              [methods[v] for v in victims_of_pass], shape,
+                                              stark=(gi == 1), say=say, companions=companions,
+                                              key_prefix=key_prefix, force=force,
+                                              split=column_parallel)
+                    _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
+                                     methods, shape, say=say, key_prefix=key_prefix)
+                    for v in handoff.resurvey:
+                        # Surveyed again alone: a pulse spacing coherent for it and its
+                        # own selection (as pair by pair), the column's tones ringing.
+                        _calibrate_pass(rig, runner, protocol, result, line, [v],
+                                        [methods[v]], shape, stark=False, say=say,
+                                        companions=_nulled_tones(result, protocol, line),
+                                        key_prefix=key_prefix,
+                                        force=force, split=True)
+    result.shots = runner.shots_executed + runner.shots_resumed
+    result.rig_seconds = runner.rig_seconds
+    return result
+
+
+def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shape, *, say,
+                     key_prefix):
+    """Null the resonant victims a split survey handed over, one pass each.
+
+    Each pass starts at the survey's estimate, with the K its own victim allows, and the
+    column's other tones ringing (those nulled already around their nulls, those still
+    waiting around their survey estimates), so the couplings between them come out.
+    """
+    chip = rig.chip
+    amp = pass_amplitude(protocol, chip, line)
+    waiting = {v: z for v, z, *_ in handoff}
+    for v, z0, kappa, k_survey, sigma in handoff:
+        del waiting[v]
+        one = ColumnProbe(chip, line, (v,), amplitude=amp, repeats=1, methods=(methods[v],),
+                          shape=shape)
+        theta = one.expected_rotation_per_pulse(v, STRONGEST_DB)
+        k_max = int(protocol.survey.max_train_ns // one.spacing_ns)
+        # The K that keeps a null up to the strongest crosstalk unambiguous, or — the
+        # pass's own rule for raising K — the K whose ring (radius ∝ 1/K) stays
+        # RING_MARGIN survey errors wide, at most ×4 the survey's.
+        cap = survey_radii(one)[0]
+        r_survey = min(math.sqrt(RISE_PROBABILITY / max(kappa, 1e-12)), cap)
+        k_sharp = min(int(k_survey * r_survey / (RING_MARGIN * sigma)), 4 * k_survey)
+        K = max(k_survey, min(max(int((math.pi / 4) / theta), k_sharp), k_max))
+        rad = min(math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2)),
+                  cap)
+        companions = _nulled_tones(result, protocol, line) + tuple(waiting.items())
+        _calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
+                        stark=False, say=say, companions=companions, key_prefix=key_prefix,
+                        force=(v,), start=PassStart((z0,), (rad,), K))
+
+
+def _nulled_tones(result: CalibrationResult, protocol: Protocol, line: str
+                  ) -> tuple[tuple[str, complex], ...]:
+    """(victim, tone at its null) of every pair of ``line`` nulled so far."""
+    amp = pass_amplitude(protocol, result.chip, line)
+    return tuple((p.victim, -p.x * amp) for p in result.pairs
+                 if p.aggressor == line and p.accepted and p.nulled)

@@ -1,0 +1,77 @@
+"""Drift: re-check design and analysis, trend models, the next-check policy, the schedule file
+and the rig-side re-check of due pairs.
+
+May import: :mod:`xtalkcal.compensation` and below. Nothing here imports a later stage of the flow.
+"""
+
+from xtalkcal.drift.analysis import (
+    DEFAULT_RECHECK_RULES,
+    DriftInputError,
+    FollowUp,
+    RecheckDecision,
+    RecheckOutcome,
+    RecheckRules,
+    analyse_recheck,
+    analyse_recheck_counts,
+    recheck_design,
+    recheck_radius,
+)
+from xtalkcal.drift.policy import (
+    NextCheck,
+    next_check,
+)
+from xtalkcal.drift.recheck import (
+    MAX_BIRGE,
+    DueReport,
+    PairCheck,
+    recheck_column,
+    run_due,
+    schedule_after_calibration,
+    take_out_co_victim_leak,
+    unplayable_reason,
+)
+from xtalkcal.drift.schedule import (
+    SCHEDULE_FORMAT,
+    SCHEDULE_SCHEMA_VERSION,
+    Pair,
+    PairSlot,
+    Schedule,
+    ScheduleFileError,
+)
+from xtalkcal.drift.trends import (
+    PairTrend,
+    RandomWalkRate,
+    pair_trend,
+)
+
+__all__ = [
+    "PairTrend",
+    "RandomWalkRate",
+    "pair_trend",
+    "NextCheck",
+    "next_check",
+    "Pair",
+    "PairSlot",
+    "SCHEDULE_FORMAT",
+    "SCHEDULE_SCHEMA_VERSION",
+    "Schedule",
+    "ScheduleFileError",
+    "DEFAULT_RECHECK_RULES",
+    "DriftInputError",
+    "FollowUp",
+    "RecheckDecision",
+    "RecheckOutcome",
+    "RecheckRules",
+    "analyse_recheck",
+    "analyse_recheck_counts",
+    "recheck_design",
+    "recheck_radius",
+    "DueReport",
+    "MAX_BIRGE",
+    "PairCheck",
+    "recheck_column",
+    "run_due",
+    "schedule_after_calibration",
+    "take_out_co_victim_leak",
+    "unplayable_reason",
+]

@@ -1,0 +1,205 @@
+"""The next-check policy: when each pair is looked at again, from its trend and its margin.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+if TYPE_CHECKING:
+    from xtalkcal.measure import RecheckSettings
+from xtalkcal.drift.analysis import (
+    DEFAULT_RECHECK_RULES,
+    DriftInputError,
+    FollowUp,
+    RecheckDecision,
+    RecheckOutcome,
+    RecheckRules,
+    _finite_real,
+    _lin,
+)
+from xtalkcal.drift.trends import PairTrend
+
+# --------------------------------------------------------------------------------------------
+# Adaptive intervals
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class NextCheck:
+    """When to re-check a pair next, and what it needs before then.
+
+    Attributes
+    ----------
+    interval_h : float
+        Hours until the next re-check, within the protocol's ``[min, max]`` interval.
+    follow_up : FollowUp
+        Work the pair needs now (re-centre, recalibrate) or ``NONE``.
+    reason : str
+        How the interval was chosen.
+    decision : RecheckDecision or None
+        The re-check decision the interval was based on (None for a trend alone).
+    hours_left : float or None
+        The trend's predicted hours from now until the tolerance is reached, if known.
+    """
+
+    interval_h: float
+    follow_up: FollowUp
+    reason: str
+    decision: RecheckDecision | None = None
+    hours_left: float | None = None
+
+
+def _interval_limits(settings: RecheckSettings) -> tuple[float, float, float]:
+    lo = _finite_real("settings.min_interval_hours", settings.min_interval_hours)
+    hi = _finite_real("settings.max_interval_hours", settings.max_interval_hours)
+    start = _finite_real("settings.interval_hours", settings.interval_hours)
+    if not 0 < lo <= hi:
+        raise DriftInputError(
+            f"settings need 0 < min_interval_hours <= max_interval_hours, got {lo!r}, {hi!r}"
+        )
+    return lo, hi, start
+
+
+def next_check(
+    outcome_or_trend: RecheckOutcome | PairTrend | Sequence[RecheckOutcome | PairTrend],
+    previous_interval_h: float | None,
+    settings: RecheckSettings,
+    *,
+    rules: RecheckRules = DEFAULT_RECHECK_RULES,
+    safety: float = 0.5,
+    lengthen: float = 2.0,
+    modest_lengthen: float = 1.5,
+    shorten: float = 0.5,
+) -> NextCheck:
+    """Choose the next re-check interval of a pair from its latest re-check and/or trend.
+
+    ``base`` is ``previous_interval_h`` (``settings.interval_hours`` when None). Rules:
+
+    * **broken**: ``min_interval_hours`` and follow-up ``recalibrate`` (full calibration).
+    * **drifted**: ``shorten * base`` (0.5); follow-up ``recentre`` when the re-check's own
+      estimate is good enough to adopt (``k`` times the largest stderr axis of ``dX`` below the
+      tolerance, ``k = rules.confidence_sigma``), else ``recalibrate``. The trend is not used:
+      it describes the value being replaced.
+    * **within**: ``lengthen * base`` (2) when comfortable (upper ``k``-sigma bound at least
+      ``rules.comfort_db`` below the tolerance), ``modest_lengthen * base`` (1.5) when
+      confidently within, ``base`` otherwise.
+    * **trend** (with a within, or alone): the interval is capped at ``safety * hours_left``
+      (0.5 of the predicted hours from now until ``mean + 1 sigma`` of the residual reaches
+      the tolerance, :meth:`PairTrend.predicted_residual`), so a check lands well before the
+      predicted exit. A trend alone proposes ``lengthen * base`` under that cap; a trend
+      without rates (1-2 entries) keeps ``base``.
+
+    Growth is therefore at most ``lengthen`` per check (common practice for back-off schemes:
+    grow geometrically, never jump). The result is clamped to
+    ``[min_interval_hours, max_interval_hours]``.
+
+    Parameters
+    ----------
+    outcome_or_trend : RecheckOutcome, PairTrend, or a sequence of at most one of each
+        The evidence.
+    previous_interval_h : float or None
+        Interval that led to this check, h.
+    settings : RecheckSettings
+        The protocol's ``[recheck]`` table (interval limits and the starting interval).
+    rules : RecheckRules
+        ``confidence_sigma`` for the re-centre test.
+    safety : float
+        Fraction of the predicted hours left at which to check, in (0, 1].
+    lengthen, modest_lengthen, shorten : float
+        Interval factors (``lengthen >= modest_lengthen >= 1 > shorten > 0``).
+
+    Returns
+    -------
+    NextCheck
+    """
+    lo, hi, start = _interval_limits(settings)
+    if not 0 < safety <= 1:
+        raise DriftInputError(f"safety must lie in (0, 1], got {safety!r}")
+    if not (lengthen >= modest_lengthen >= 1 > shorten > 0):
+        raise DriftInputError(
+            "need lengthen >= modest_lengthen >= 1 > shorten > 0, got "
+            f"{lengthen!r}, {modest_lengthen!r}, {shorten!r}"
+        )
+    items = (
+        list(outcome_or_trend)
+        if isinstance(outcome_or_trend, Sequence)
+        else [outcome_or_trend]
+    )
+    outcomes = [x for x in items if isinstance(x, RecheckOutcome)]
+    trends = [x for x in items if isinstance(x, PairTrend)]
+    if len(outcomes) + len(trends) != len(items) or len(outcomes) > 1 or len(trends) > 1:
+        raise DriftInputError(
+            "next_check takes a RecheckOutcome, a PairTrend, or one of each; got "
+            + ", ".join(type(x).__name__ for x in items)
+        )
+    if not items:
+        raise DriftInputError("next_check needs a RecheckOutcome or a PairTrend")
+    outcome = outcomes[0] if outcomes else None
+    trend = trends[0] if trends else None
+    base = start if previous_interval_h is None else _finite_real(
+        "previous_interval_h", previous_interval_h
+    )
+    if base <= 0:
+        raise DriftInputError(f"previous_interval_h must be positive, got {base!r}")
+
+    follow_up = FollowUp.NONE
+    decision = None if outcome is None else outcome.decision
+    hours_left = None if trend is None else trend.hours_left
+    use_trend = True
+    if outcome is None:
+        proposal = base if trend is None or hours_left is None else lengthen * base
+        why = (
+            "trend without rates: interval kept"
+            if hours_left is None
+            else f"trend: lengthened x{lengthen:g} unless the prediction says otherwise"
+        )
+    elif outcome.decision is RecheckDecision.BROKEN:
+        proposal, follow_up, use_trend = lo, FollowUp.RECALIBRATE, False
+        why = f"re-check broken ({outcome.cause.value}): recalibrate, then check at the minimum"
+    elif outcome.decision is RecheckDecision.DRIFTED:
+        proposal, use_trend = shorten * base, False
+        tol = _lin(outcome.tolerance_db)
+        axis = math.sqrt(max(float(np.linalg.eigvalsh(outcome.shift_covariance)[-1]), 0.0))
+        # Adopting the re-check's null leaves its estimation error as the new residual; it
+        # must sit well inside the tolerance. (Shifts beyond the probed region are already
+        # broken, so no distance rule is needed here.)
+        adoptable = rules.confidence_sigma * axis < tol
+        follow_up = FollowUp.RECENTRE if adoptable else FollowUp.RECALIBRATE
+        why = (
+            f"drifted: shortened x{shorten:g}; "
+            + (
+                "the re-check's null is precise enough to adopt (re-centre)"
+                if adoptable
+                else "the re-check's null is too uncertain to adopt (recalibrate)"
+            )
+        )
+    elif outcome.comfortable:
+        proposal, why = lengthen * base, f"comfortably within: lengthened x{lengthen:g}"
+    elif outcome.confident:
+        proposal, why = modest_lengthen * base, f"within: lengthened x{modest_lengthen:g}"
+    else:
+        proposal, why = base, "within, but not confidently: interval kept"
+
+    if use_trend and hours_left is not None:
+        cap = safety * hours_left
+        if cap < proposal:
+            proposal = cap
+            why += (
+                f"; capped at {safety:g} of the {hours_left:.3g} h predicted before the "
+                "residual reaches the tolerance"
+            )
+    interval = min(max(proposal, lo), hi)
+    if interval != proposal:
+        why += f"; clamped to [{lo:g}, {hi:g}] h"
+    return NextCheck(
+        interval_h=float(interval),
+        follow_up=follow_up,
+        reason=why,
+        decision=decision,
+        hours_left=hours_left,
+    )

@@ -1,0 +1,66 @@
+"""Fits of sweep data: paraboloid, ring, nonlinear and column fits of a cancellation null, their
+estimates and the verdicts that accept or reject them. Pure numerics: no rig, no files.
+
+May import: :mod:`xtalkcal.common` and :mod:`xtalkcal.exceptions` only. Nothing here imports a
+later stage of the flow.
+"""
+
+from xtalkcal.fits.column import (
+    ColumnNullFit,
+    fit_paraboloid_column,
+    linearise_fringe,
+)
+from xtalkcal.fits.estimates import (
+    NullEstimate,
+    NullFitValues,
+    ParaboloidBatch,
+    RingBatch,
+    RingEstimate,
+    RingValues,
+)
+from xtalkcal.fits.nonlinear import (
+    fit_null,
+    fit_null_gaussian,
+    null_signal,
+)
+from xtalkcal.fits.paraboloid import (
+    binomial_signal,
+    fit_paraboloid,
+    fit_paraboloid_counts,
+)
+from xtalkcal.fits.ring import (
+    fit_ring,
+)
+from xtalkcal.fits.verdicts import (
+    DEFAULT_RULES,
+    NullModel,
+    RejectedEstimateError,
+    RejectionReason,
+    Verdict,
+    VerdictRules,
+)
+
+__all__ = [
+    "DEFAULT_RULES",
+    "NullModel",
+    "RejectedEstimateError",
+    "RejectionReason",
+    "Verdict",
+    "VerdictRules",
+    "NullEstimate",
+    "NullFitValues",
+    "ParaboloidBatch",
+    "RingBatch",
+    "RingEstimate",
+    "RingValues",
+    "fit_ring",
+    "fit_null",
+    "fit_null_gaussian",
+    "null_signal",
+    "ColumnNullFit",
+    "fit_paraboloid_column",
+    "linearise_fringe",
+    "binomial_signal",
+    "fit_paraboloid",
+    "fit_paraboloid_counts",
+]

@@ -1,0 +1,218 @@
+"""Drive limits, checked before anything is sent to hardware.
+
+Microwave power into a dilution refrigerator heats it; too much can disturb or
+damage the experiment. Every rig (and every dry run of a sweep) calls
+:func:`check_timelines` first and executes nothing if it raises. The check trusts
+nothing it is handed: a plug-in may build tones by any route, so every field is
+validated again here, not only when a :class:`~xtalkcal.hardware.Tone` is made.
+
+What is checked, per timeline and per line, against the chip file:
+
+* **every field**: amplitudes, times, frequencies and phases finite; amplitude ≥ 0
+  (a sign is a phase of π), duration > 0, start ≥ 0, frequency > 0; envelope
+  parameters finite and consistent with the duration; the rig's repetition time
+  finite and > 0;
+* **peak amplitude**: Σ a_k·max|E_k| over tones that overlap in time on the same line
+  (tones at different frequencies can beat up to the sum), against
+  min(line ``max_amplitude``, lab ``limits.max_amplitude``). max|E| is computed in
+  closed form (:func:`envelope_peak`), never by sampling, so a narrow DRAG pulse
+  cannot hide its peak between samples;
+* **average power** (only if the lab sets ``limits.max_average_power_dbm``): the
+  energy ∫|y(t)|² dt of the line's summed waveform over one repetition period, times
+  the line's full-scale power. Energies of single envelopes are closed-form
+  (:func:`envelope_energy_ns`). Two tones on one line add in amplitude, so their cross
+  term counts: exactly where they are copies of one envelope at one frequency (a pulse
+  and its cancellation tone), otherwise by the Cauchy–Schwarz bound
+  2·min(√(E_k E_l), p_k p_l·overlap), which no phase or frequency can exceed.
+
+A tone occupies [start, start + duration); tones that only touch do not overlap.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+
+from xtalkcal.exceptions import SafetyLimitError, TimelineError
+from xtalkcal.hardware.chip import Chip
+from xtalkcal.hardware.timeline import Envelope, Timeline, Tone
+
+__all__ = ["LineLoad", "line_loads", "check_timelines", "envelope_peak", "envelope_energy_ns"]
+
+
+def _lifted_edge(env: Envelope, duration_ns: float) -> float:
+    return math.exp(-((duration_ns / 2) ** 2) / (2 * env.sigma_ns**2))
+
+
+@lru_cache(maxsize=4096)
+def envelope_peak(env: Envelope, duration_ns: float) -> float:
+    """An upper bound on max|E(τ)| over the pulse (exact but for DRAG).
+
+    The lifted gaussian peaks at 1; for DRAG, |E|² = g² + β²g'² with g and g' real,
+    so |E| ≤ √(1 + β²·max|g'|²). |g'| = (|x|/σ²)·e^{−x²/2σ²}/(1 − edge) rises up to
+    |x| = σ, so its largest value in the window |x| ≤ T/2 is at x = min(σ, T/2).
+    Flattop and square peak at 1.
+    """
+    if env.kind == "drag":
+        s = env.sigma_ns
+        x = min(s, duration_ns / 2)
+        slope = x / s**2 * math.exp(-(x * x) / (2 * s * s)) / (1 - _lifted_edge(env, duration_ns))
+        return math.sqrt(1.0 + (env.drag_ns * slope) ** 2)
+    return 1.0
+
+
+@lru_cache(maxsize=4096)
+def envelope_energy_ns(env: Envelope, duration_ns: float) -> float:
+    """∫|E(τ)|² dτ over the pulse (ns), in closed form.
+
+    With a = T/2 and the lifted gaussian g = (G − e)/(1 − e), G = exp(−x²/2σ²):
+    ∫G² = σ√π·erf(a/σ), ∫G = σ√(2π)·erf(a/(σ√2)), and for DRAG
+    ∫g'² = [√π/2·erf(a/σ) − (a/σ)e^{−a²/σ²}]/(σ(1 − e)²). A flattop with cosine ramps r
+    gives T − 1.25·r (each ramp ∫sin⁴ = 3r/8).
+    """
+    T = duration_ns
+    if env.kind in ("gaussian", "drag"):
+        s, a = env.sigma_ns, T / 2
+        e = _lifted_edge(env, T)
+        g2 = s * math.sqrt(math.pi) * math.erf(a / s)
+        g1 = s * math.sqrt(2 * math.pi) * math.erf(a / (s * math.sqrt(2)))
+        energy = (g2 - 2 * e * g1 + e * e * T) / (1 - e) ** 2
+        if env.kind == "drag":
+            u = a / s
+            dg2 = (0.5 * math.sqrt(math.pi) * math.erf(u) - u * math.exp(-u * u)) / (
+                s * (1 - e) ** 2)
+            energy += env.drag_ns**2 * dg2
+        return energy
+    if env.kind == "flattop":
+        return T - 1.25 * env.ramp_ns
+    return T
+
+
+@dataclass(frozen=True)
+class LineLoad:
+    """Worst-case drive of one line in one timeline.
+
+    Attributes
+    ----------
+    line : str
+    peak_amplitude : float
+        Upper bound on the peak |amplitude| (fraction of full scale).
+    energy_ns : float
+        Upper bound on ∫|y|² dt of the line's summed waveform (ns, full scale = 1).
+    """
+
+    line: str
+    peak_amplitude: float
+    energy_ns: float
+
+
+def _same_shape(a: Tone, b: Tone) -> bool:
+    return (a.start_ns == b.start_ns and a.duration_ns == b.duration_ns
+            and a.freq_ghz == b.freq_ghz and a.envelope == b.envelope)
+
+
+def _cross_energy(a: Tone, b: Tone, pa: float, pb: float, ea: float, eb: float) -> float:
+    """An upper bound on 2·Re∫A_a·conj(A_b)·e^{−i2π(f_a − f_b)t} dt."""
+    overlap = min(a.end_ns, b.end_ns) - max(a.start_ns, b.start_ns)
+    if overlap <= 0:
+        return 0.0
+    if _same_shape(a, b):
+        # One envelope, one carrier: the cross term is exact, and may be negative.
+        unit = envelope_energy_ns(a.envelope, float(a.duration_ns))
+        return 2 * a.amplitude * b.amplitude * math.cos(a.phase_rad - b.phase_rad) * unit
+    return 2 * min(math.sqrt(ea * eb), pa * pb * overlap)
+
+
+def line_loads(timeline: Timeline) -> dict[str, LineLoad]:
+    """Peak-amplitude and energy bounds per line of one timeline (fields not checked)."""
+    by_line: dict[str, list[tuple[Tone, float, float]]] = {}
+    for tone in timeline.tones:
+        T = float(tone.duration_ns)
+        by_line.setdefault(tone.line, []).append((
+            tone,
+            tone.amplitude * envelope_peak(tone.envelope, T),
+            tone.amplitude**2 * envelope_energy_ns(tone.envelope, T),
+        ))
+    loads = {}
+    for line, items in by_line.items():
+        # Sweep over start/end events; the bound is the largest sum of overlapping peaks.
+        events = sorted([(t.start_ns, 1, p) for t, p, _ in items]
+                        + [(t.end_ns, 0, p) for t, p, _ in items])
+        current = worst = 0.0
+        for _, kind, p in events:  # ends (kind 0) sort before starts at the same instant
+            current = current + p if kind == 1 else current - p
+            worst = max(worst, current)
+        energy = sum(e for *_, e in items)
+        order = sorted(items, key=lambda it: it[0].start_ns)
+        for i, (a, pa, ea) in enumerate(order):
+            for b, pb, eb in order[i + 1:]:
+                if b.start_ns >= a.end_ns:
+                    break
+                energy += _cross_energy(a, b, pa, pb, ea, eb)
+        loads[line] = LineLoad(line, worst, max(energy, 0.0))
+    return loads
+
+
+def _finite_positive(value: object, what: str) -> float:
+    # A string or bool is a plug-in's mistake, not a repetition time.
+    ok = isinstance(value, numbers.Real) and not isinstance(value, bool)
+    v = float(value) if ok else math.nan  # type: ignore[arg-type]
+    if not (math.isfinite(v) and v > 0):
+        raise SafetyLimitError(f"{what} = {value!r}: must be a finite number > 0 (ns). "
+                               "Nothing was sent.")
+    return v
+
+
+def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: float) -> None:
+    """Refuse timelines that would exceed a line's limits, or are not well formed.
+
+    Parameters
+    ----------
+    chip : Chip
+        Supplies per-line and lab limits.
+    timelines : sequence of Timeline
+    repetition_ns : float
+        Time between shot starts (ns), for the average power; finite and > 0.
+
+    Raises
+    ------
+    SafetyLimitError
+        Naming the timeline, the line, the value and the limit. Nothing is executed.
+    TimelineError
+        A tone field that is not finite or not in range (re-checked here, whatever
+        built the tone).
+    """
+    rep = _finite_positive(repetition_ns, "the rig's repetition_ns")
+    names = chip.line_names
+    pmax = chip.limits.max_average_power_dbm
+    for k, tl in enumerate(timelines):
+        label = getattr(tl, "label", "") or f"timeline[{k}]"
+        if not isinstance(tl, Timeline):
+            raise SafetyLimitError(f"{label}: not a Timeline; nothing was sent.")
+        try:
+            tl.validate(lines=names)
+        except TimelineError as exc:
+            raise SafetyLimitError(f"{exc}. Nothing was sent.") from exc
+        for line, load in line_loads(tl).items():
+            limit = chip.amplitude_limit(line)
+            if not load.peak_amplitude <= limit * (1 + 1e-12):
+                raise SafetyLimitError(
+                    f"{label}: line {line} would reach peak amplitude {load.peak_amplitude:.4g}, "
+                    f"above its limit {limit:.4g} (chip file {chip.source}: lines.max_amplitude / "
+                    "limits.max_amplitude). Nothing was sent."
+                )
+            if pmax is not None:
+                fs = chip.line(line).full_scale_dbm
+                assert fs is not None  # guaranteed by chip validation
+                mean = load.energy_ns / max(rep, tl.end_ns)
+                if mean > 0:
+                    dbm = fs + 10 * math.log10(mean)
+                    if not dbm <= pmax + 1e-9:
+                        raise SafetyLimitError(
+                            f"{label}: line {line} would average {dbm:.2f} dBm over a "
+                            f"{rep:g} ns repetition, above limits.max_average_power_dbm "
+                            f"= {pmax:g} dBm (chip file {chip.source}). Nothing was sent."
+                        )

@@ -1,0 +1,126 @@
+"""The measured matrix and cancellation ratios as a versioned JSON file of our own schema.
+
+Schema ``xtalkcal-matrix/1`` (all angles in degrees, magnitudes in dB = 20·log10|·|)::
+
+    {
+      "schema": "xtalkcal-matrix/1",
+      "chip": "grid9-demo",
+      "created_utc": "2026-12-01T22:00:00+00:00",
+      "software": "xtalkcal 0.1.0",
+      "rig": "simulated_device.SimRig(...)",
+      "protocol": "full",
+      "threshold_db": -40.0,
+      "pairs": [
+        {
+          "aggressor_line": "d4", "aggressor_qubit": "q4", "victim": "q5",
+          "victim_line": "d5", "frequency_ghz": 4.78,
+          "method": "leakage", "stage": "null", "nulled": true,
+          "verdict": "accepted", "reason": "",
+          "crosstalk": {"re": ..., "im": ..., "magnitude_db": ..., "phase_deg": ...,
+                        "stderr_db": ..., "covariance": [[..,..],[..,..]]},
+          "ratio":     {"re": ..., "im": ..., "magnitude_db": ..., "phase_deg": ...},
+          "shots": 12000, "repeats": 2, "measured_at_s": 12.3
+        }, ...
+      ]
+    }
+
+``crosstalk`` is X_ij(f) = C_ij(f)/C_ii(f) at ``frequency_ghz`` (the aggressor's tone);
+``ratio`` is r_ij = −X_ij: for each tone s(t) at f_j on the aggressor line, the victim
+line adds r_ij·s(t) at f_j. ``stderr_db`` is 20·log10 of sqrt(trace covariance) —
+the residual crosstalk level one standard error of the estimate leaves. A rejected
+pair carries ``verdict = "rejected"``, a ``reason``, and no numbers.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import math
+from typing import Any
+
+from xtalkcal.calibrate import CalibrationResult
+from xtalkcal.common import __version__
+
+__all__ = ["MATRIX_SCHEMA", "result_to_json", "format_table"]
+
+MATRIX_SCHEMA = "xtalkcal-matrix/1"
+
+
+def _c(z: complex) -> dict[str, float]:
+    return {"re": z.real, "im": z.imag,
+            "magnitude_db": 20 * math.log10(abs(z)) if z else -math.inf,
+            "phase_deg": math.degrees(math.atan2(z.imag, z.real))}
+
+
+def result_to_json(result: CalibrationResult) -> dict[str, Any]:
+    """The result as a JSON-able dictionary of schema ``xtalkcal-matrix/1``."""
+    chip = result.chip
+    pairs = []
+    for p in result.pairs:
+        d: dict[str, Any] = {
+            "aggressor_line": p.aggressor,
+            "aggressor_qubit": chip.line(p.aggressor).qubit,
+            "victim": p.victim,
+            "victim_line": chip.line_of(p.victim).name,
+            "frequency_ghz": p.freq_ghz,
+            "method": p.method,
+            "stage": p.stage,
+            "nulled": p.nulled,
+            "verdict": "accepted" if p.accepted else "rejected",
+            "reason": p.reason,
+            "shots": p.shots,
+            "repeats": p.repeats,
+            "measured_at_s": p.measured_at_s,
+        }
+        if p.accepted and p.x is not None and p.x_cov is not None:
+            d["crosstalk"] = _c(p.x) | {
+                "stderr_db": 20 * math.log10(p.stderr) if p.stderr > 0 else -math.inf,
+                "covariance": [[float(v) for v in row] for row in p.x_cov],
+            }
+            d["ratio"] = _c(-p.x)
+        pairs.append(d)
+    return {
+        "schema": MATRIX_SCHEMA,
+        "chip": chip.name,
+        "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "software": f"xtalkcal {__version__}",
+        "rig": result.rig_description,
+        "protocol": result.protocol.name,
+        "threshold_db": result.protocol.survey.threshold_db,
+        "total_shots": result.shots,
+        "rig_seconds": result.rig_seconds,
+        "pairs": pairs,
+    }
+
+
+def dumps(result: CalibrationResult) -> str:
+    """JSON text (infinite dB values written as null)."""
+    def clean(o):
+        if isinstance(o, float) and not math.isfinite(o):
+            return None
+        if isinstance(o, dict):
+            return {k: clean(v) for k, v in o.items()}
+        if isinstance(o, list):
+            return [clean(v) for v in o]
+        return o
+
+    return json.dumps(clean(result_to_json(result)), indent=2)
+
+
+def format_table(result: CalibrationResult) -> str:
+    """A compact text table: one line per pair, strongest first."""
+    rows = []
+    for p in result.pairs:
+        if p.accepted:
+            phase = math.degrees(math.atan2(p.x.imag, p.x.real))
+            stage = "nulled" if p.nulled else "survey"
+            rows.append((p.magnitude_db, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
+                         f"{p.magnitude_db:7.1f} dB {phase:7.1f}° "
+                         f"{20 * math.log10(p.stderr):7.1f} dB  {stage}"))
+        else:
+            rows.append((-999, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
+                         f"{'rejected: ' + p.reason:>28}"))
+    rows.sort(key=lambda r: -r[0])
+    head = (f"{'line':>6}   {'victim':<6} {'method':<9} {'|X|':>10} {'arg X':>8} "
+            f"{'σ of X':>10}  stage")
+    return "\n".join([head] + [r[1] for r in rows])

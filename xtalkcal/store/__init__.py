@@ -1,0 +1,65 @@
+"""The matrix store: ledger entries, their HDF5 commit files with digests, and snapshot views of
+the matrix at any time.
+
+May import: :mod:`xtalkcal.calibrate` and below. Nothing here imports a later stage of the flow.
+"""
+
+from xtalkcal.store.codec import (
+    MIGRATIONS,
+    SWEEP_READERS,
+    Columns,
+)
+from xtalkcal.store.entries import (
+    KINDS,
+    METHODS,
+    SCHEMA_VERSION,
+    VERDICTS,
+    Kind,
+    LedgerEntry,
+    LedgerValidationError,
+    Method,
+    Verdict,
+    utc_timestamp,
+)
+from xtalkcal.store.from_calibration import (
+    ledger_entries,
+    ledger_sweeps,
+)
+from xtalkcal.store.ledger import (
+    CommitCheck,
+    CommitReceipt,
+    CommitStatus,
+    Ledger,
+    LedgerReport,
+    quarantine_commit,
+    verify_ledger,
+)
+from xtalkcal.store.snapshots import (
+    MatrixSnapshot,
+)
+
+__all__ = [
+    "ledger_entries",
+    "ledger_sweeps",
+    "KINDS",
+    "Kind",
+    "LedgerEntry",
+    "LedgerValidationError",
+    "METHODS",
+    "Method",
+    "SCHEMA_VERSION",
+    "VERDICTS",
+    "Verdict",
+    "utc_timestamp",
+    "Columns",
+    "MIGRATIONS",
+    "SWEEP_READERS",
+    "MatrixSnapshot",
+    "CommitCheck",
+    "CommitReceipt",
+    "CommitStatus",
+    "Ledger",
+    "LedgerReport",
+    "quarantine_commit",
+    "verify_ledger",
+]

@@ -1,0 +1,243 @@
+"""Commit files on disk: names, atomic writes, fsyncs, the writer lock, markers and SHA-256
+digests.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import re
+import uuid
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import MappingProxyType
+from typing import Any
+
+import filelock
+
+from xtalkcal.exceptions import LedgerError
+from xtalkcal.store.entries import SCHEMA_VERSION, LedgerEntry
+
+_FORMAT = "xtalkcal-ledger"
+_MARKER_NAME = "xtalkcal-ledger.json"
+_LOCK_NAME = "ledger.lock"
+_TMP_PREFIX = ".tmp-"
+_FINAL_RE = re.compile(r"^(\d{10,})-(\d{10,})\.h5$")
+_DIGEST_SUFFIX = ".sha256.json"
+_DIGEST_RE = re.compile(r"^(\d{10,})-(\d{10,})\.sha256\.json$")
+_DIGEST_FORMAT = "xtalkcal-commit-digest"
+_QUARANTINE = "quarantine"
+_HASH_BLOCK = 1 << 20  # bytes read at a time while hashing
+# How often a reader re-lists the directory when files vanish under it (compaction).
+_MAX_LIST_ATTEMPTS = 20
+
+
+# --------------------------------------------------------------------------------------------
+# The ledger
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _CommitFile:
+    name: str
+    first: int
+    last: int
+    schema_version: int
+    entries: tuple[LedgerEntry, ...]
+    sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
+    verified: bool  # its digest matched (False: a legacy file without one)
+    stamp: tuple[int, int, int]  # (size, mtime_ns, inode) when it was checked
+
+
+def _stamp(path: Path) -> tuple[int, int, int]:
+    st = os.stat(path)
+    return (st.st_size, st.st_mtime_ns, st.st_ino)
+
+
+@dataclass(frozen=True)
+class _View:
+    entries: tuple[LedgerEntry, ...] = ()
+    by_pair: Mapping[tuple[str, str], tuple[LedgerEntry, ...]] = field(default_factory=dict)
+    sweeps: Mapping[str, tuple[str, str, int]] = field(default_factory=dict)
+    last_seq: int = 0
+
+
+class _Vanished(Exception):
+    """A listed file disappeared before it could be opened (a compaction removed it)."""
+
+
+class _BadCommit(Exception):
+    """One commit file is damaged; ``problem`` says how (without the file name)."""
+
+    def __init__(self, problem: str) -> None:
+        self.problem = problem
+        super().__init__(problem)
+
+
+def _time_key(e: LedgerEntry) -> tuple[float, int, int]:
+    return (e.measured_at_s, e.seq, e.position)
+
+
+def _final_name(first: int, last: int) -> str:
+    return f"{first:010d}-{last:010d}.h5"
+
+
+def _fsync_dir(path: Path) -> None:
+    if os.name == "nt":  # Windows cannot open directories; NTFS renames are journaled
+        return
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_file(path: Path) -> None:
+    fd = os.open(path, os.O_RDWR)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _atomic_write_bytes(directory: Path, name: str, payload: bytes) -> None:
+    tmp = directory / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}.json"
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(payload)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, directory / name)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    _fsync_dir(directory)
+
+
+@dataclass(frozen=True)
+class _Marker:
+    """The ledger marker: chip, and which commit files may lack a digest."""
+
+    chip: str
+    info: Mapping[str, Any]
+    legacy_files: frozenset[str] | None  # None: a ledger from before digests existed
+
+
+def _read_marker(path: Path) -> _Marker:
+    marker = path / _MARKER_NAME
+    if not marker.is_file():
+        raise LedgerError(
+            f"{path}: not a ledger (no {_MARKER_NAME}); create one with "
+            "Ledger.create(path, chip=...)"
+        )
+    try:
+        info = json.loads(marker.read_text(encoding="utf-8"))
+    except (OSError, ValueError, RecursionError) as exc:
+        raise LedgerError(f"{marker}: unreadable ledger marker ({exc})") from exc
+    if not isinstance(info, dict) or info.get("format") != _FORMAT:
+        raise LedgerError(f"{marker}: not an xtalkcal ledger marker (format field)")
+    version = info.get("schema_version")
+    if isinstance(version, bool) or not isinstance(version, int) or version < 1:
+        raise LedgerError(f"{marker}: schema_version must be a positive integer, got {version!r}")
+    if version > SCHEMA_VERSION:
+        raise LedgerError(
+            f"{marker}: ledger has schema_version {version}, this xtalkcal reads up to "
+            f"{SCHEMA_VERSION}; upgrade xtalkcal to open it"
+        )
+    chip = info.get("chip")
+    if not isinstance(chip, str) or not chip:
+        raise LedgerError(f"{marker}: chip must be a non-empty string")
+    legacy = None
+    if "integrity" in info:
+        integ = info["integrity"]
+        names = integ.get("legacy_files") if isinstance(integ, dict) else None
+        if (
+            not isinstance(integ, dict)
+            or integ.get("digest") != "sha256"
+            or not isinstance(names, list)
+            or not all(isinstance(n, str) and _FINAL_RE.match(n) for n in names)
+        ):
+            raise LedgerError(
+                f"{marker}: integrity: expected {{\"digest\": \"sha256\", \"legacy_files\": "
+                f"[commit file names]}}, got {integ!r}"
+            )
+        legacy = frozenset(names)
+    return _Marker(chip, MappingProxyType(info), legacy)
+
+
+def _write_marker(root: Path, info: Mapping[str, Any]) -> None:
+    payload = json.dumps(dict(info), ensure_ascii=False, indent=1).encode()
+    _atomic_write_bytes(root, _MARKER_NAME, payload)
+
+
+def _digest_name(first: int, last: int) -> str:
+    return f"{first:010d}-{last:010d}{_DIGEST_SUFFIX}"
+
+
+def _hash_file(path: Path) -> tuple[int, str]:
+    """(size in bytes, SHA-256 hex digest) of a file, read in blocks."""
+    h = hashlib.sha256()
+    size = 0
+    with open(path, "rb") as fh:
+        while block := fh.read(_HASH_BLOCK):
+            h.update(block)
+            size += len(block)
+    return size, h.hexdigest()
+
+
+def _read_digest(path: Path) -> dict[str, Any]:
+    """A digest file's fields; raises `_BadCommit` if it is not one, OSError if unreadable."""
+    raw = path.read_bytes()
+    try:
+        info = json.loads(raw.decode("utf-8"))
+    except (ValueError, RecursionError) as exc:
+        raise _BadCommit(f"its digest file {path.name} is not valid JSON ({exc})") from None
+    ok = (
+        isinstance(info, dict)
+        and info.get("format") == _DIGEST_FORMAT
+        and isinstance(info.get("file"), str)
+        and isinstance(info.get("tmp"), str)
+        and isinstance(info.get("size"), int)
+        and isinstance(info.get("sha256"), str)
+        and re.fullmatch(r"[0-9a-f]{64}", info["sha256"]) is not None
+    )
+    if not ok:
+        raise _BadCommit(
+            f"its digest file {path.name} lacks the fields of {_DIGEST_FORMAT!r} "
+            "(format, file, tmp, size, sha256)"
+        )
+    return info
+
+
+def _check_digest(commit: Path, info: Mapping[str, Any]) -> None:
+    """Raise `_BadCommit` unless ``commit`` has the size and SHA-256 its digest file says."""
+    if info["file"] != commit.name:
+        raise _BadCommit(f"its digest file names another file, {info['file']!r}")
+    size, sha = _hash_file(commit)
+    if size != info["size"]:
+        raise _BadCommit(
+            f"{size} bytes, but {info['size']} were written (truncated or extended)"
+        )
+    if sha != info["sha256"]:
+        raise _BadCommit(
+            "SHA-256 mismatch: the file changed after it was written (bit rot, a bad disk "
+            "or an edit)"
+        )
+
+
+@contextlib.contextmanager
+def _writer_lock(root: Path, timeout_s: float) -> Iterator[None]:
+    """Hold the ledger's exclusive writer lock (LedgerError if it stays busy)."""
+    lock = filelock.FileLock(str(root / _LOCK_NAME), timeout=timeout_s)
+    try:
+        lock.acquire()
+    except filelock.Timeout as exc:
+        raise LedgerError(
+            f"{root}: another writer holds the lock for more than {timeout_s} s") from exc
+    try:
+        yield
+    finally:
+        lock.release()
