@@ -21,7 +21,7 @@ from xtalkcal.calibrate import (
 )
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits import fit_null, fit_paraboloid_counts, null_signal
-from xtalkcal.fits.nonlinear import _null_signal_jacobian
+from xtalkcal.fits.nonlinear import null_signal_jacobian
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -91,9 +91,9 @@ def test_model_jacobian_matches_finite_differences(model):
 
     def mean(t):
         a = t[4] if model == "saturating" else math.nan
-        return _null_signal_jacobian(z, k, t[0], t[1], t[2], t[3], a, model)[0]
+        return null_signal_jacobian(z, k, t[0], t[1], t[2], t[3], a, model)[0]
 
-    _, jac = _null_signal_jacobian(z, k, *theta[:4], amp, model)
+    _, jac = null_signal_jacobian(z, k, *theta[:4], amp, model)
     for i in range(n_par):
         h = 1e-6 * max(abs(theta[i]), 1e-2)
         tp, tm = theta.copy(), theta.copy()

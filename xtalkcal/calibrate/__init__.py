@@ -18,7 +18,9 @@ from xtalkcal.calibrate.design import (
 )
 from xtalkcal.calibrate.passes import (
     PassStart,
+    calibrate_pass,
     measure_probe,
+    shots_per_point,
 )
 from xtalkcal.calibrate.plan import (
     JOINT_NULL_SPAN,
@@ -50,6 +52,8 @@ from xtalkcal.calibrate.search import (
 )
 
 __all__ = [
+    "calibrate_pass",
+    "shots_per_point",
     "AdaptiveNullSearch",
     "SearchStateError",
     "SearchStep",

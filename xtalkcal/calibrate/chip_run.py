@@ -6,7 +6,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Collection, Mapping
 
-from xtalkcal.calibrate.passes import PassStart, _calibrate_pass
+from xtalkcal.calibrate.passes import PassStart, calibrate_pass
 from xtalkcal.calibrate.plan import (
     RING_MARGIN,
     RISE_PROBABILITY,
@@ -78,7 +78,7 @@ def calibrate_chip(
                     # solve needs it) instead of folding it into these victims' nulls.
                     companions = _nulled_tones(result, protocol, line) if column_parallel else ()
                     force = tuple((null_victims or {}).get(line, ()))
-                    handoff = _calibrate_pass(rig, runner, protocol, result, line,
+                    handoff = calibrate_pass(rig, runner, protocol, result, line,
                                               victims_of_pass,
                                               [methods[v] for v in victims_of_pass], shape,
                                               stark=(gi == 1), say=say, companions=companions,
@@ -89,7 +89,7 @@ def calibrate_chip(
                     for v in handoff.resurvey:
                         # Surveyed again alone: a pulse spacing coherent for it and its
                         # own selection (as pair by pair), the column's tones ringing.
-                        _calibrate_pass(rig, runner, protocol, result, line, [v],
+                        calibrate_pass(rig, runner, protocol, result, line, [v],
                                         [methods[v]], shape, stark=False, say=say,
                                         companions=_nulled_tones(result, protocol, line),
                                         key_prefix=key_prefix,
@@ -126,7 +126,7 @@ def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shap
         rad = min(math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2)),
                   cap)
         companions = _nulled_tones(result, protocol, line) + tuple(waiting.items())
-        _calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
+        calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
                         stark=False, say=say, companions=companions, key_prefix=key_prefix,
                         force=(v,), start=PassStart((z0,), (rad,), K))
 

@@ -12,7 +12,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import optimize
 
 from xtalkcal.exceptions import FitInputError
-from xtalkcal.fits.nonlinear import _fisher_covariance, _null_signal_jacobian
+from xtalkcal.fits import fisher_covariance, null_signal_jacobian
 
 DesignModel = Literal["paraboloid", "saturating"]
 
@@ -145,7 +145,7 @@ def null_fisher_information(
     else:
         raise FitInputError(f"model must be 'paraboloid' or 'saturating', got {model!r}")
     zs = complex(z_star)
-    p, jac = _null_signal_jacobian(z, k, zs.real, zs.imag, floor, curvature, amp, model)
+    p, jac = null_signal_jacobian(z, k, zs.real, zs.imag, floor, curvature, amp, model)
     pt = np.clip(p, 1e-9, 1 - 1e-9)
     w = n / (pt * (1 - pt))
     info = jac.T @ (jac * w[:, None])
@@ -184,7 +184,7 @@ def cramer_rao_bound(
         amplitude=amplitude,
         amplification=amplification,
     )
-    return _fisher_covariance(info)[:2, :2]
+    return fisher_covariance(info)[:2, :2]
 
 
 def _ring_with_centre(

@@ -61,7 +61,7 @@ class PassStart:
     repeats: int
 
 
-def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
+def calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
                     companions=(), key_prefix="", force=(), start: PassStart | None = None,
                     split=False):
     """One pass: survey (unless ``start``), then the null rounds; results into ``result``.
@@ -169,7 +169,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
     least = 4 * tones_n + 2
     n_ring = ring_points_for(tones_n, max(protocol.survey.ring_points, least))
     n_null = ring_points_for(tones_n, max(protocol.null.points_per_ring, least))
-    null_shots = _shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
+    null_shots = shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
                                   n_null)
 
     def rings(centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0) -> np.ndarray:
@@ -189,7 +189,7 @@ def _calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape
         copies = max(1, round(n_ring / max(protocol.survey.ring_points, 1)))
         pts0 = rings(np.zeros(V, complex), radius, n_ring)
         pts0 = np.vstack([pts0[:1]] * (copies - 1) + [pts0])
-        measure(pts0, _shots_per_point(protocol.survey.shots, protocol.survey.ring_points,
+        measure(pts0, shots_per_point(protocol.survey.shots, protocol.survey.ring_points,
                                        n_ring + copies - 1), f"{tag}-survey", 0)
         est = fit()
         survey_time = _data_time(runner, rig)
@@ -425,7 +425,7 @@ class _Handoff:
     resurvey: list[str]
 
 
-def _shots_per_point(nominal: int, nominal_points: int, points: int) -> int:
+def shots_per_point(nominal: int, nominal_points: int, points: int) -> int:
     """Shots per point that keep a ring's total at ``nominal × nominal_points``."""
     return max(50, int(round(nominal * max(nominal_points, 1) / points)))
 

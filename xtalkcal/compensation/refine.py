@@ -38,11 +38,11 @@ from xtalkcal.calibrate import (
     RISE_STARK_RAD,
     CalibrationResult,
     PassStart,
+    calibrate_pass,
     measured_couplings,
     nulled_pass_groups,
     pass_amplitude,
 )
-from xtalkcal.calibrate.passes import _calibrate_pass
 from xtalkcal.compensation.settings import CompensationSettings
 from xtalkcal.compensation.solve import multi_victim_settings
 from xtalkcal.hardware import Rig
@@ -149,7 +149,7 @@ def refine_settings(
                     centres=tuple(pairs[v].ratio * amp for v in group),
                     radii=tuple(_first_radius(calibration, cal[v], K) for v in group),
                     repeats=K)
-                _calibrate_pass(rig, runner, protocol, res, line, group,
+                calibrate_pass(rig, runner, protocol, res, line, group,
                                 [cal[v].method for v in group], shape, stark=stark,
                                 say=say, key_prefix=f"{key_prefix}{rnd}-",
                                 companions=tuple((v, pairs[v].ratio * amp) for v in other),

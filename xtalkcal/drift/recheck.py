@@ -41,10 +41,10 @@ from xtalkcal.calibrate import (
     pass_amplitude,
     ring_around,
     ring_points_for,
+    shots_per_point,
     stark_windows,
     survey_radii,
 )
-from xtalkcal.calibrate.passes import _shots_per_point
 from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import FollowUp, RecheckDecision, RecheckOutcome, analyse_recheck
 from xtalkcal.drift.schedule import Pair, Schedule
@@ -247,7 +247,7 @@ def recheck_column(
             if pr is not None and pr[0] > 0:
                 radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
         n = ring_points_for(len(group), settings.points)
-        shots = _shots_per_point(settings.shots_per_point, settings.points, n)
+        shots = shots_per_point(settings.shots_per_point, settings.points, n)
         pts = ring_around(z_stored, radius, n)
         sig = measure_probe(runner, probe, pts, shots,
                             f"{key}-{aggressor}-{'stark' if stark else 'res-' + group[0]}")

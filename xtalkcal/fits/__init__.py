@@ -19,9 +19,11 @@ from xtalkcal.fits.estimates import (
     RingValues,
 )
 from xtalkcal.fits.nonlinear import (
+    fisher_covariance,
     fit_null,
     fit_null_gaussian,
     null_signal,
+    null_signal_jacobian,
 )
 from xtalkcal.fits.paraboloid import (
     binomial_signal,
@@ -41,6 +43,8 @@ from xtalkcal.fits.verdicts import (
 )
 
 __all__ = [
+    "fisher_covariance",
+    "null_signal_jacobian",
     "DEFAULT_RULES",
     "NullModel",
     "RejectedEstimateError",

@@ -71,7 +71,7 @@ def null_signal(
     zz = np.asarray(z, dtype=complex)
     kk = np.broadcast_to(np.asarray(amplification, dtype=float), zz.shape)
     model: NullModel = "paraboloid" if amplitude is None else "saturating"
-    p, _ = _null_signal_jacobian(
+    p, _ = null_signal_jacobian(
         zz.ravel(),
         kk.ravel(),
         z_star.real,
@@ -84,7 +84,7 @@ def null_signal(
     return p.reshape(zz.shape)
 
 
-def _null_signal_jacobian(
+def null_signal_jacobian(
     z: NDArray[np.complex128],
     k: NDArray[np.float64],
     xs: float,
@@ -127,7 +127,7 @@ def _null_signal_jacobian(
     return p, jac
 
 
-def _fisher_covariance(info: NDArray[np.float64], n_interest: int = 2) -> NDArray[np.float64]:
+def fisher_covariance(info: NDArray[np.float64], n_interest: int = 2) -> NDArray[np.float64]:
     """Covariance from a Fisher matrix, nuisance parameters marginalised.
 
     The interest block is the inverse of the Schur complement
@@ -268,7 +268,7 @@ def _make_params(
 
 def _model_mean(zn: Any, k: Any, v: Mapping[str, float], model: NullModel) -> Any:
     amp = (1 - v["floor"]) * v["frac"] if model == "saturating" else math.nan
-    p, _ = _null_signal_jacobian(zn, k, v["x"], v["y"], v["floor"], v["kappa"], amp, model)
+    p, _ = null_signal_jacobian(zn, k, v["x"], v["y"], v["floor"], v["kappa"], amp, model)
     return p
 
 
@@ -609,7 +609,7 @@ def _finish_binomial(
     dof = npts - n_par
     floor = v["floor"]
     amp = (1 - floor) * v["frac"] if model == "saturating" else math.nan
-    p, jac = _null_signal_jacobian(zn, ka, v["x"], v["y"], floor, v["kappa"], amp, model)
+    p, jac = null_signal_jacobian(zn, ka, v["x"], v["y"], floor, v["kappa"], amp, model)
     pt = np.clip(p, 0.5 / n, 1 - 0.5 / n)
     w = n / (pt * (1 - pt))
     chi2 = float(np.sum((kc - n * p) ** 2 / (n * pt * (1 - pt))))
@@ -630,7 +630,7 @@ def _finish_binomial(
         names.append("amp")
     jf = np.stack(cols, axis=-1)
     info = jf.T @ (jf * w[:, None])
-    cov = _fisher_covariance(info)
+    cov = fisher_covariance(info)
     if not np.all(np.isfinite(cov[:2, :2])):
         return _rejected(
             method,
@@ -784,12 +784,12 @@ def fit_null_gaussian(
             dof,
             (1,),
         )
-    p, jac = _null_signal_jacobian(
+    p, jac = null_signal_jacobian(
         zn, ones, v["x"], v["y"], v["floor"], v["kappa"], math.nan, "paraboloid"
     )
     chi2 = float(np.sum(((sa - p) * inv_sig) ** 2))
     info = jac.T @ (jac * (inv_sig**2)[:, None])
-    cov = _fisher_covariance(info)
+    cov = fisher_covariance(info)
     if not np.all(np.isfinite(cov[:2, :2])):
         return _rejected(
             method,
