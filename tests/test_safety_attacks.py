@@ -2,7 +2,7 @@
 
 The property test at the end holds the check against an independent audit written
 here: the summed complex waveform of each line, sampled finely on the global clock
-(phase convention of ``xtalkcal/timeline.py``), with its true peak and energy. No
+(phase convention of ``xtalkcal/hardware/timeline.py``), with its true peak and energy. No
 timeline the audit finds over a limit may pass the check.
 """
 

@@ -503,13 +503,8 @@ def build_parser() -> argparse.ArgumentParser:
                         "against any chip or device file given with them")
 
     k = add("calibrate", help="survey the matrix and null every significant pair")
-    k.add_argument("--protocol", default=None,
-                   help="protocol file (TOML) (default: the built-in defaults, those of "
-                        "protocols/full.toml)")
-    k.add_argument("--rig", default="sim",
-                   help="'sim' (bundled demo device), a device .toml, or module:factory")
-    k.add_argument("--seed", type=int, default=None, help="simulator seed")
-    _add_rig_timeout(k)
+    _add_protocol(k)
+    _add_rig(k)
     k.add_argument("--no-drift", action="store_true", help="freeze the simulator's drift")
     k.add_argument("--record", default=None,
                    help="directory to record each batch in; rerun with it to resume")
@@ -520,9 +515,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = add("demo", help="the whole job on the bundled simulated chip, with a report")
     d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
-    d.add_argument("--protocol", default=None,
-                   help="protocol file (TOML) (default: the built-in defaults, those of "
-                        "protocols/full.toml)")
+    _add_protocol(d)
     d.add_argument("--seed", type=int, default=None, help="simulator seed")
     d.add_argument("--aggressors", default=None,
                    help="comma-separated aggressor lines (default: all)")
@@ -539,18 +532,27 @@ def build_parser() -> argparse.ArgumentParser:
     u = add("due", help="re-check whatever is due now and exit (for cron)")
     u.add_argument("--ledger", required=True, help="the chip's ledger directory")
     u.add_argument("--schedule", required=True, help="schedule file (JSON; created if new)")
-    u.add_argument("--protocol", default=None,
-                   help="protocol file (TOML) (default: the built-in defaults, those of "
-                        "protocols/full.toml)")
-    u.add_argument("--rig", default="sim",
-                   help="'sim' (bundled demo device), a device .toml, or module:factory")
-    u.add_argument("--seed", type=int, default=None, help="simulator seed")
-    _add_rig_timeout(u)
+    _add_protocol(u)
+    _add_rig(u)
 
     e = add("export-chip", help="write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
     e.add_argument("-o", "--output", required=True, help="chip file to write")
     return p
+
+
+def _add_protocol(cmd: argparse.ArgumentParser) -> None:
+    cmd.add_argument("--protocol", default=None,
+                     help="protocol file (TOML) (default: the built-in defaults, those of "
+                          "protocols/full.toml)")
+
+
+def _add_rig(cmd: argparse.ArgumentParser) -> None:
+    """The rig options shared by the commands that measure: which rig, its seed, a timeout."""
+    cmd.add_argument("--rig", default="sim",
+                     help="'sim' (bundled demo device), a device .toml, or module:factory")
+    cmd.add_argument("--seed", type=int, default=None, help="simulator seed")
+    _add_rig_timeout(cmd)
 
 
 def _add_rig_timeout(cmd: argparse.ArgumentParser) -> None:

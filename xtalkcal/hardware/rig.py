@@ -1,25 +1,56 @@
 """The hardware interface: the few verbs xtalkcal needs from a control stack.
 
-A lab connects its own electronics by writing one class with these members; see
-DEVELOPERS.md ("Writing a rig for your hardware"). The bundled simulated device
-(``simulated_device.SimRig``) satisfies the same protocol.
+This docstring is the plug-in contract. A lab connects its own electronics by writing one
+class with the members below and naming its factory on the command line
+(``--rig package.module:factory``). The bundled simulated device
+(``simulated_device.SimRig``) satisfies the same contract.
 
-Contract
---------
+Example
+-------
+.. code-block:: python
+
+    class MyLabRig:
+        @property
+        def chip(self) -> xtalkcal.Chip: ...       # load_chip("our_chip.toml")
+        @property
+        def repetition_ns(self) -> float: ...      # time between shot starts
+        def describe(self) -> str: ...             # recorded with every data set
+        def now(self) -> float: ...                # wall clock, seconds
+        def run(self, timelines, shots) -> xtalkcal.Counts:
+            xtalkcal.check_timelines(self.chip, timelines, self.repetition_ns)  # FIRST
+            ...  # compile tones to your AWG, play, read out, discriminate levels 0/1/2
+
+Members
+-------
 ``chip``
     The :class:`~xtalkcal.hardware.Chip` the rig drives (names, nominal values, limits).
 ``repetition_ns``
-    Time between shot starts (ns); sets average power and the time a run costs.
+    Time between shot starts (ns), finite and > 0; sets average power and the time a run
+    costs.
 ``describe()``
     A short free-text description recorded with every data set.
 ``run(timelines, shots)``
     Execute every timeline ``shots`` times and return :class:`Counts`. All timelines of
     one call read the same qubits. It must call
     :func:`xtalkcal.hardware.check_timelines` (or an equivalent, at least as strict)
-    **before** anything is executed, and raise :class:`~xtalkcal.exceptions.RigError`
-    for driver failures.
+    **before** anything is uploaded or played, and raise
+    :class:`~xtalkcal.exceptions.RigError` for driver failures.
 ``now()``
     The rig's clock (s): wall time for hardware, simulated time for the simulator.
+``advance_clock_to(t_s)`` (optional)
+    For a rig whose clock restarts with the process (the simulator). When a resumed run
+    answers a batch from its ``--record``, :class:`~xtalkcal.measure.BatchRunner` calls it
+    with the batch's recorded ``finished_s``, so the batches measured after the resume
+    carry the same times (and, on the simulator, see the same drift) as an uninterrupted
+    run. It must never move the clock back. A rig on a wall clock omits it.
+
+What a timeline means
+---------------------
+* The RF voltage of a line is ``V_fs·Re[A(t)·e^{−i2πft}]`` with ``A = a·e^{iφ}·E(t − t0)``
+  (:mod:`xtalkcal.hardware.timeline` defines the envelopes ``E``).
+* Tone phases are referenced to one global clock that starts at 0 each shot
+  (phase-continuous carriers). If your hardware resets oscillator phase per pulse, add
+  ``2π·f·t_start`` when you compile a tone.
 
 What ``run`` must return
 ------------------------
@@ -38,12 +69,15 @@ What the toolkit checks
 -----------------------
 :class:`~xtalkcal.measure.BatchRunner` checks every one of these points with
 :func:`check_counts` before the counts are used or recorded (and again when a recorded
-batch is replayed); a failure is a :class:`~xtalkcal.exceptions.RigError` naming the
-batch, what was wrong and what was expected, and nothing of that batch is kept. Any
-other exception a plug-in's ``run`` raises is reported as a ``RigError`` naming the
-batch, with the original chained; ``SafetyLimitError``, ``TimelineError`` and
-``RigError`` raised by the plug-in pass through as they are. A ``run`` that does not
-return within the runner's optional timeout is abandoned with a ``RigError``.
+batch is replayed; records also carry a checksum of their data); a failure is a
+:class:`~xtalkcal.exceptions.RigError` naming the batch, what was wrong and what was
+expected, and nothing of that batch is kept. Any other exception a plug-in's ``run``
+raises is reported as a ``RigError`` naming the batch, with the original chained;
+``SafetyLimitError``, ``TimelineError`` and ``RigError`` raised by the plug-in pass
+through as they are. A ``run`` that does not return within the runner's optional
+timeout (``BatchRunner(timeout_s=...)``, ``--rig-timeout``) is abandoned with a
+``RigError``; the call keeps running in a daemon thread, so the rig is considered
+unusable and the runner sends it nothing more.
 
 What cannot be checked: a rig that labels its qubits correctly but fills in another
 qubit's data (or another timeline's), or whose counts are plausible but wrong. Those
