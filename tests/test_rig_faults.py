@@ -21,7 +21,7 @@ import pytest
 from simulated_device import SimRig, demo_device_path
 from xtalkcal.cli import main
 from xtalkcal.exceptions import ConfigError, RigError, SafetyLimitError, TimelineError
-from xtalkcal.hardware import MIN_LEVELS, Counts, Timeline, check_counts
+from xtalkcal.hardware import MIN_LEVELS, Counts, SafetyLimits, Timeline, check_counts
 from xtalkcal.measure import BatchRunner
 from xtalkcal.measure.sweep import _read
 from xtalkcal.store import Ledger
@@ -448,3 +448,48 @@ def test_cli_a_bad_batch_is_measured_again_on_rerun(tmp_path, capsys):
         ok = check_counts(counts, batch=path.name, readout=counts.qubits,
                           n_timelines=counts.counts.shape[0], shots=counts.shots)
         assert (ok.counts >= 0).all() and (ok.counts.sum(axis=2) == ok.shots).all()
+
+
+class _UnstatedRig(FaultyRig):
+    """An honest plug-in whose chip states no limits (a chip file without [limits])."""
+
+    runs = 0
+
+    @property
+    def chip(self):
+        return dataclasses.replace(self.sim.chip, limits=SafetyLimits(), source="lab-chip.toml")
+
+    def run(self, timelines, shots):
+        _UnstatedRig.runs += 1
+        return super().run(timelines, shots)
+
+
+def unstated_rig():
+    return _UnstatedRig()
+
+
+def test_cli_a_plugin_without_stated_limits_is_refused_before_any_shot(tmp_path, capsys):
+    # Power into a cryostat: a lab's own rig is driven only under limits its chip file
+    # states. The bundled simulator runs without them; a plug-in does not.
+    _UnstatedRig.runs = 0
+    assert _calibrate(tmp_path, "unstated_rig") == 2
+    line = _one_line_error(capsys)
+    assert "lab-chip.toml: limits: no [limits] table" in line, line
+    assert _UnstatedRig.runs == 0 and _accepted(tmp_path) == []
+    assert not (tmp_path / "m.json").exists()
+
+
+def test_check_warns_about_a_chip_file_without_limits(tmp_path, capsys, demo_chip):
+    import tomli_w
+
+    bare = demo_chip.to_dict()
+    del bare["limits"]
+    path = tmp_path / "chip.toml"
+    path.write_text(tomli_w.dumps(bare))
+    assert main(["check", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert f"warning: {path}: no [limits] table" in out
+    stated = tmp_path / "stated.toml"
+    stated.write_text(tomli_w.dumps(demo_chip.to_dict()))
+    assert main(["check", str(stated)]) == 0
+    assert "warning" not in capsys.readouterr().out

@@ -179,6 +179,58 @@ def test_apply_to_waveforms_refuses_nan_samples(chip):
     assert np.isfinite(out["db"]).all()
 
 
+# --- the cryostat's total heat load: summed over lines ------------------------------------
+
+def _total_chip(total_dbm):
+    d = copy.deepcopy(CHIP)
+    d["limits"]["max_total_average_power_dbm"] = total_dbm
+    return chip_from_dict(d)
+
+
+def test_lines_each_within_their_limit_are_refused_together_above_the_total():
+    # −20 dBm full scale, −40 dBm per line. A 0.45 square tone of 300 ns per 10 µs averages
+    # 0.45²·300/1e4 = 0.006075 of full scale, −42.16 dBm, on each line; two lines together
+    # 2·0.006075·10 µW = 0.1215 µW, −39.15 dBm. Under a −40 dBm total that is refused,
+    # though each line alone is within its own limit; under −39 dBm it passes.
+    per_line_dbm = -20.0 + 10 * math.log10(0.45**2 * 300 / REP_NS)
+    both_dbm = 10 * math.log10(2 * 10 ** (per_line_dbm / 10))
+    assert per_line_dbm < -40.0 < both_dbm < -39.0
+    tones = (Tone("da", 0.0, 300.0, 5.0, 0.45), Tone("db", 0.0, 300.0, 5.3, 0.45))
+    tl = Timeline(tones, ("a", "b"))
+    with pytest.raises(SafetyLimitError, match="max_total_average_power_dbm") as info:
+        check_timelines(_total_chip(-40.0), [tl], REP_NS)
+    assert f"{both_dbm:.2f} dBm" in str(info.value)
+    check_timelines(_total_chip(-39.0), [tl], REP_NS)
+    # One line alone at the same level is within the −40 dBm total.
+    check_timelines(_total_chip(-40.0), [Timeline(tones[:1], ("a",))], REP_NS)
+
+
+def test_a_total_limit_needs_every_lines_full_scale():
+    d = copy.deepcopy(CHIP)
+    d["limits"] = {"max_amplitude": 0.9, "max_total_average_power_dbm": -40.0}
+    del d["lines"][1]["full_scale_dbm"]
+    with pytest.raises(XtalkcalError, match=r"max_total_average_power_dbm.*full_scale_dbm.*db"):
+        chip_from_dict(d)
+
+
+def test_a_chip_built_in_code_without_full_scale_is_refused_not_skipped(chip):
+    # Validation of a chip file guarantees full_scale_dbm where a power limit is set; a
+    # chip built in code may lack it, and then the check refuses instead of skipping.
+    line = dataclasses.replace(chip.line("db"), full_scale_dbm=None)
+    bare = dataclasses.replace(chip, lines=(chip.line("da"), line))
+    with pytest.raises(SafetyLimitError, match="no full_scale_dbm"):
+        check_timelines(bare, [Timeline((Tone("db", 0.0, 20.0, 5.3, 0.1),), ("b",))], REP_NS)
+
+
+def test_limits_are_stated_only_by_a_limits_table():
+    assert chip_from_dict(CHIP).limits.stated
+    bare = {k: v for k, v in CHIP.items() if k != "limits"}
+    assert not chip_from_dict(bare).limits.stated
+    # The table is kept when a chip is written out, so an exported chip states its limits.
+    again = chip_from_dict(_total_chip(-41.0).to_dict())
+    assert again.limits.stated and again.limits.max_total_average_power_dbm == -41.0
+
+
 # --- 5. property: the check never passes what an independent audit finds over a limit ----
 
 def _audit(chip, tl: Timeline, rep: float) -> bool:

@@ -111,8 +111,12 @@ def _check_one(path: str) -> tuple[object, object, str]:
         proto = load_protocol(path)
         return proto, None, f"{path}: protocol {proto.name!r} — OK"
     chip = load_chip(path)
-    return chip, chip, (f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
-                  f"{len(chip.lines)} lines — OK")
+    ok = (f"{path}: chip {chip.name!r}: {len(chip.qubits)} qubits, "
+          f"{len(chip.lines)} lines — OK")
+    if not chip.limits.stated:
+        ok += ("\nwarning: " + path + ": no [limits] table: only the bundled simulator will "
+               "drive this chip; a lab's own rig refuses it until the lab states its limits")
+    return chip, chip, ok
 
 
 def _check_json(path: str) -> tuple[object, None, str]:
@@ -184,6 +188,15 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
         raise XtalkcalConfigError("command line", "--rig",
                                   f"{spec!r} did not return an object with the rig "
                                   "members (chip, repetition_ns, describe, run, now)")
+    limits = getattr(rig.chip, "limits", None)
+    if not getattr(limits, "stated", False):
+        # Power into a cryostat: a lab's own rig runs only under limits the lab wrote down.
+        raise XtalkcalConfigError(
+            getattr(rig.chip, "source", "the rig's chip"), "limits",
+            "no [limits] table (or an empty one): a lab's own rig is driven only under "
+            "limits stated in its chip file; accepted: a [limits] table with max_amplitude "
+            "(and, with full_scale_dbm on every line, max_average_power_dbm and "
+            "max_total_average_power_dbm)")
     return rig
 
 

@@ -11,7 +11,13 @@ Chip file (TOML), field by field::
 
     [limits]                     # the lab's safety limits, applied to every line
     max_amplitude = 0.9          # peak |a| on any line, fraction of full scale (0, 1]
-    max_average_power_dbm = -50  # optional; needs every line's full_scale_dbm
+    max_average_power_dbm = -50  # optional, per line; needs every line's full_scale_dbm
+    max_total_average_power_dbm = -45  # optional, summed over all lines (the fridge's
+                                       # heat load); needs every line's full_scale_dbm
+
+A chip file without a ``[limits]`` table (or with an empty one) drives only the bundled
+simulator: a lab's own rig refuses it. The table states the limits the lab has decided;
+write it out even if it only repeats ``max_amplitude = 1.0``.
 
     [[qubits]]
     name = "q0"
@@ -133,10 +139,18 @@ class SafetyLimits:
         Peak |amplitude| allowed on any line (fraction of full scale).
     max_average_power_dbm : float or None
         Time-averaged power per line over one repetition (dBm); requires full scale.
+    max_total_average_power_dbm : float or None
+        Time-averaged power summed over all lines (dBm): the heat load the cryostat sees;
+        requires full scale.
+    stated : bool
+        Whether the chip file had a ``[limits]`` table. Without one, only the bundled
+        simulator may be driven.
     """
 
     max_amplitude: float = 1.0
     max_average_power_dbm: float | None = None
+    max_total_average_power_dbm: float | None = None
+    stated: bool = False
 
 
 @dataclass(frozen=True)
@@ -193,6 +207,7 @@ class Chip:
             {
                 "max_amplitude": self.limits.max_amplitude,
                 "max_average_power_dbm": self.limits.max_average_power_dbm,
+                "max_total_average_power_dbm": self.limits.max_total_average_power_dbm,
             }
         )
         return {
@@ -230,11 +245,19 @@ class Chip:
 
 
 def read_limits(lim: Fields) -> SafetyLimits:
-    """The lab's ``[limits]`` table (shared by chip and simulated-device files)."""
+    """The lab's ``[limits]`` table (shared by chip and simulated-device files).
+
+    The limits count as stated when the table holds at least one limit; an absent or
+    empty table states none.
+    """
     limits = SafetyLimits(
         max_amplitude=lim.number("max_amplitude", 1.0, lo=0.0, hi=1.0, lo_open=True),
         max_average_power_dbm=lim.number("max_average_power_dbm", None, lo=POWER_RANGE_DBM[0],
                                          hi=POWER_RANGE_DBM[1], unit="dBm"),
+        max_total_average_power_dbm=lim.number(
+            "max_total_average_power_dbm", None, lo=POWER_RANGE_DBM[0], hi=POWER_RANGE_DBM[1],
+            unit="dBm"),
+        stated=bool(lim.data),
     )
     lim.reject_unknown()
     return limits
@@ -358,12 +381,14 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
     for _, lt in line_blocks:
         lt.reject_unknown()
     lines = [ln for ln, _ in line_blocks]
-    if limits.max_average_power_dbm is not None and valid(limits.max_average_power_dbm):
+    for key in ("max_average_power_dbm", "max_total_average_power_dbm"):
+        if getattr(limits, key) is None or not valid(getattr(limits, key)):
+            continue
         unknown_fs = [ln.name if valid(ln.name) else lt.path
                       for ln, lt in line_blocks if ln.full_scale_dbm is None]
         if unknown_fs:
             lim.report(
-                "max_average_power_dbm",
+                key,
                 f"needs full_scale_dbm on every line (missing on {', '.join(unknown_fs)}); "
                 "accepted: give each line's full_scale_dbm",
             )

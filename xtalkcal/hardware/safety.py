@@ -24,6 +24,9 @@ What is checked, per timeline and per line, against the chip file:
   term counts: exactly where they are copies of one envelope at one frequency (a pulse
   and its cancellation tone), otherwise by the Cauchy–Schwarz bound
   2·min(√(E_k E_l), p_k p_l·overlap), which no phase or frequency can exceed.
+* **total average power** (only if the lab sets ``limits.max_total_average_power_dbm``):
+  the sum over lines of those average powers, in mW. Different lines are different
+  cables into the cryostat, so their heat adds whatever the phases.
 
 A tone occupies [start, start + duration); tones that only touch do not overlap.
 """
@@ -188,6 +191,7 @@ def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: fl
     rep = _finite_positive(repetition_ns, "the rig's repetition_ns")
     names = chip.line_names
     pmax = chip.limits.max_average_power_dbm
+    ptotal = chip.limits.max_total_average_power_dbm
     for k, tl in enumerate(timelines):
         label = getattr(tl, "label", "") or f"timeline[{k}]"
         if not isinstance(tl, Timeline):
@@ -196,6 +200,7 @@ def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: fl
             tl.validate(lines=names)
         except TimelineError as exc:
             raise SafetyLimitError(f"{exc}. Nothing was sent.") from exc
+        total_mw = 0.0
         for line, load in line_loads(tl).items():
             limit = chip.amplitude_limit(line)
             if not load.peak_amplitude <= limit * (1 + 1e-12):
@@ -204,15 +209,29 @@ def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: fl
                     f"above its limit {limit:.4g} (chip file {chip.source}: lines.max_amplitude / "
                     "limits.max_amplitude). Nothing was sent."
                 )
-            if pmax is not None:
-                fs = chip.line(line).full_scale_dbm
-                assert fs is not None  # guaranteed by chip validation
-                mean = load.energy_ns / max(rep, tl.end_ns)
-                if mean > 0:
-                    dbm = fs + 10 * math.log10(mean)
-                    if not dbm <= pmax + 1e-9:
-                        raise SafetyLimitError(
-                            f"{label}: line {line} would average {dbm:.2f} dBm over a "
-                            f"{rep:g} ns repetition, above limits.max_average_power_dbm "
-                            f"= {pmax:g} dBm (chip file {chip.source}). Nothing was sent."
-                        )
+            if pmax is None and ptotal is None:
+                continue
+            fs = chip.line(line).full_scale_dbm
+            if fs is None:  # a chip file cannot lack it (validation); a chip built in code can
+                raise SafetyLimitError(
+                    f"{label}: line {line} has no full_scale_dbm, so its average power "
+                    f"cannot be checked against the limits of {chip.source}. Nothing was sent.")
+            mean = load.energy_ns / max(rep, tl.end_ns)
+            if mean <= 0:
+                continue
+            dbm = fs + 10 * math.log10(mean)
+            total_mw += 10 ** (dbm / 10)
+            if pmax is not None and not dbm <= pmax + 1e-9:
+                raise SafetyLimitError(
+                    f"{label}: line {line} would average {dbm:.2f} dBm over a "
+                    f"{rep:g} ns repetition, above limits.max_average_power_dbm "
+                    f"= {pmax:g} dBm (chip file {chip.source}). Nothing was sent."
+                )
+        if ptotal is not None and total_mw > 0:
+            total_dbm = 10 * math.log10(total_mw)
+            if not total_dbm <= ptotal + 1e-9:
+                raise SafetyLimitError(
+                    f"{label}: all lines together would average {total_dbm:.2f} dBm over a "
+                    f"{rep:g} ns repetition, above limits.max_total_average_power_dbm "
+                    f"= {ptotal:g} dBm (chip file {chip.source}). Nothing was sent."
+                )
