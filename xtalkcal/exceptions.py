@@ -12,6 +12,7 @@ __all__ = [
     "SafetyLimitError",
     "TimelineError",
     "RigError",
+    "InterlockRefused",
     "LedgerError",
     "FitInputError",
 ]
@@ -54,6 +55,10 @@ class TimelineError(XtalkcalError, ValueError):
 
 class RigError(XtalkcalError, RuntimeError):
     """The hardware back end failed; driver errors are mapped to this at the rig boundary."""
+
+
+class InterlockRefused(RigError):
+    """The lab's interlock did not approve a batch; nothing of it was sent."""
 
 
 class LedgerError(XtalkcalError, OSError):

@@ -333,6 +333,21 @@ class Fields:
                 return self.reject(key, problem)
         return list(value)
 
+    def argv(self, key: str, default: Any = REQUIRED, *, max_len: int = 4096) -> Any:
+        """A command and its arguments: a non-empty list of non-empty strings (no NUL)."""
+        value = self._get(key, default)
+        if value is INVALID or (value is None and default is None):
+            return value
+        if not isinstance(value, list) or not value:
+            return self.reject(key, "expected the program and its arguments as a list of "
+                                    'strings, e.g. ["/opt/lab/bin/check", "--strict"] (no shell)')
+        for arg in value:
+            if not isinstance(arg, str) or not arg or "\0" in arg or len(arg) > max_len:
+                return self.reject(key, "every argument must be a non-empty string of at "
+                                        f"most {max_len} characters without NUL; got "
+                                        f"{short_repr(arg)}")
+        return list(value)
+
     def name_lists(self, key: str, default: Any = REQUIRED) -> Any:
         """A list of lists of non-empty strings (groups of names)."""
         value = self._get(key, default)

@@ -24,6 +24,9 @@ from xtalkcal.hardware.chip import (
     read_limits,
     read_transmon_nominal,
 )
+from xtalkcal.hardware.interlock import (
+    Interlock,
+)
 from xtalkcal.hardware.rig import (
     MIN_LEVELS,
     Counts,
@@ -51,6 +54,7 @@ from xtalkcal.hardware.timeline import (
 )
 
 __all__ = [
+    "Interlock",
     "ANHARMONICITY_RANGE_GHZ",
     "CHIP_FORMAT",
     "CHIP_VERSION",

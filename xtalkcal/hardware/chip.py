@@ -36,6 +36,12 @@ write it out even if it only repeats ``max_amplitude = 1.0``.
 
     [readout]
     groups = [["q0", "q1"], ["q2"]]   # qubits read out on one feedline; default all together
+
+    [interlock]                  # optional: a lab command that must approve every batch
+    command = ["/opt/lab/bin/fridge-ok"]   # argv, no shell; exit 0 approves
+    timeout_s = 30.0             # silence past this counts as a refusal
+
+(:mod:`xtalkcal.hardware.interlock` says how the command is run.)
 """
 
 from __future__ import annotations
@@ -47,6 +53,7 @@ from pathlib import Path
 from typing import Any
 
 from xtalkcal.common import REQUIRED, Fields, load_toml, read_header, valid
+from xtalkcal.hardware.interlock import Interlock, interlock_from_table
 
 __all__ = ["Qubit", "DriveLine", "SafetyLimits", "Chip", "load_chip", "chip_from_dict"]
 
@@ -163,6 +170,7 @@ class Chip:
     readout_groups: tuple[tuple[str, ...], ...]
     limits: SafetyLimits = field(default_factory=SafetyLimits)
     source: str = "<memory>"
+    interlock: Interlock | None = None
 
     def qubit(self, name: str) -> Qubit:
         """The qubit called ``name`` (KeyError listing the known names otherwise)."""
@@ -241,6 +249,7 @@ class Chip:
                 for ln in self.lines
             ],
             "readout": {"groups": [list(g) for g in self.readout_groups]},
+            **({"interlock": self.interlock.to_dict()} if self.interlock else {}),
         }
 
 
@@ -393,6 +402,9 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
                 "accepted: give each line's full_scale_dbm",
             )
 
+    interlock = interlock_from_table(top.table("interlock", None),
+                                     isinstance(data.get("interlock"), Mapping))
+
     ro = top.table("readout", None)
     groups = ro.name_lists("groups", None)
     if groups is None:
@@ -403,7 +415,7 @@ def chip_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> Chip
     top.reject_unknown()
     top.finish()
     return Chip(name, tuple(qubits), tuple(lines), tuple(tuple(g) for g in groups), limits,
-                source)
+                source, interlock)
 
 
 def _check_partition(ro: Fields, key: str, groups: list[list[str]], qnames: list[str]) -> None:

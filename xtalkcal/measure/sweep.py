@@ -17,6 +17,10 @@ checked again (and against the checksum stored with it) when it is replayed. Any
 exception from a plug-in's ``run`` becomes a :class:`~xtalkcal.exceptions.RigError`
 naming the batch, and a ``run`` that hangs can be abandoned after a timeout.
 
+If the chip file names an interlock (:mod:`xtalkcal.hardware.interlock`), it must approve
+every batch before it is sent; a refusal stops the run like a rig failure, and a run
+with a record resumes from the refused batch.
+
 A rig may have an optional method ``advance_clock_to(t_s)`` (never moving its clock
 back); a replayed batch calls it with the batch's recorded ``finished_s``, so a resumed
 run's new batches carry the same rig times as an uninterrupted run.
@@ -153,8 +157,12 @@ class BatchRunner:
             # Same key, different request (e.g. a later calibration reusing a run folder):
             # the record must not stand in for a measurement it is not.
             log.warning("recorded batch %s was made for other timelines; measuring anew", key)
-        # Dry run: refuse before anything reaches the rig.
+        # Dry run: refuse before anything reaches the rig; then the lab's interlock, if
+        # its chip file names one, must approve the batch.
         check_timelines(self.rig.chip, timelines, self.rig.repetition_ns)
+        interlock = getattr(self.rig.chip, "interlock", None)
+        if interlock is not None:
+            interlock.approve(chip=self.rig.chip.name, batch=key)
         # Checked before anything is counted or recorded: a bad answer leaves no trace,
         # and a rerun with the same record measures the batch again.
         counts = check_counts(self._call_rig(key, timelines, shots), batch=key, **request)
