@@ -194,6 +194,8 @@ def test_cli_a_refusal_mid_run_stops_cleanly_and_the_run_resumes(tmp_path, guard
     # Cooled down: the interlock approves again and the same command resumes.
     guarded.interlock = Interlock((PY, "-c", "pass"))
     assert main(args) == 0
-    assert "resumed from" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "resumed from" in out
+    assert "limits in force, from derived from" in out and "interlock: " + PY in out
     assert (tmp_path / "m.json").exists()
     assert any(e.accepted for e in Ledger(tmp_path / "ledger").entries())

@@ -28,6 +28,7 @@ from xtalkcal.hardware import (
     envelope_energy_ns,
     envelope_peak,
     envelope_values,
+    limits_summary,
 )
 
 REP_NS = 1e4
@@ -331,3 +332,14 @@ def test_the_property_test_explores_both_sides(chip):
 
     count()
     assert seen["passed"] >= 20 and seen["refused"] >= 20, seen
+
+
+def test_the_limits_in_force_are_named_with_their_file():
+    chip = _total_chip(-38.5)
+    line = limits_summary(chip)
+    assert line.startswith("limits in force, from <memory>: ")
+    assert "peak amplitude ≤ 0.5–0.9 of full scale (per line)" in line
+    assert "average power ≤ -40 dBm per line" in line
+    assert "≤ -38.5 dBm all lines together" in line and "interlock: none" in line
+    bare = chip_from_dict({k: v for k, v in CHIP.items() if k != "limits"})
+    assert "(no [limits] table: defaults)" in limits_summary(bare)

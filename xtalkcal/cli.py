@@ -16,6 +16,7 @@ from pathlib import Path
 from xtalkcal.common import __version__
 from xtalkcal.exceptions import ConfigError as XtalkcalConfigError
 from xtalkcal.exceptions import RigError, XtalkcalError
+from xtalkcal.hardware import limits_summary
 
 __all__ = ["main"]
 
@@ -209,6 +210,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
     protocol.check_against(rig.chip)  # names in overrides, before any rig time
+    print(limits_summary(rig.chip), flush=True)
     # A broken ledger is found before any rig time is spent, not after the calibration.
     led = _open_ledger(args.ledger, rig.chip.name) if args.ledger else None
     out = Path(args.output)
@@ -360,6 +362,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
                                   "folder or pass --force")
     print(f"xtalkcal demo on the bundled simulated chip {rig.chip.name!r} "
           f"({len(rig.chip.qubits)} qubits); report in {out}/")
+    print(limits_summary(rig.chip), flush=True)
     bar = _progress_bar(args)
     lines = args.aggressors.split(",") if args.aggressors else None
     rb = [q for q in args.rb_qubits.split(",") if q] if args.rb_qubits else []
@@ -417,6 +420,7 @@ def _cmd_due(args: argparse.Namespace) -> int:
     protocol.check_against(rig.chip)  # before any rig time: names in overrides and
     schedule = Schedule.load_or_new(args.schedule, protocol.recheck)
     schedule.check_against(rig.chip)  # in the schedule's pairs
+    print(limits_summary(rig.chip), flush=True)
     if not len(schedule):
         for (a, v), e in current.entries.items():
             if e.kind != "survey":

@@ -39,6 +39,7 @@ from xtalkcal.hardware.safety import (
     check_timelines,
     envelope_energy_ns,
     envelope_peak,
+    limits_summary,
     line_loads,
 )
 from xtalkcal.hardware.timeline import (
@@ -90,5 +91,6 @@ __all__ = [
     "check_timelines",
     "envelope_energy_ns",
     "envelope_peak",
+    "limits_summary",
     "line_loads",
 ]

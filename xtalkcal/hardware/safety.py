@@ -43,7 +43,8 @@ from xtalkcal.exceptions import SafetyLimitError, TimelineError
 from xtalkcal.hardware.chip import Chip
 from xtalkcal.hardware.timeline import Envelope, Timeline, Tone
 
-__all__ = ["LineLoad", "line_loads", "check_timelines", "envelope_peak", "envelope_energy_ns"]
+__all__ = ["LineLoad", "line_loads", "check_timelines", "envelope_peak", "envelope_energy_ns",
+           "limits_summary"]
 
 
 def _lifted_edge(env: Envelope, duration_ns: float) -> float:
@@ -235,3 +236,23 @@ def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: fl
                     f"{rep:g} ns repetition, above limits.max_total_average_power_dbm "
                     f"= {ptotal:g} dBm (chip file {chip.source}). Nothing was sent."
                 )
+
+
+def limits_summary(chip: Chip) -> str:
+    """One line naming the limits in force and the chip file they come from.
+
+    Every command that drives a rig prints it, and the report repeats it, so that nobody
+    runs under limits they did not mean.
+    """
+    lim = chip.limits
+    own = sorted({chip.amplitude_limit(ln.name) for ln in chip.lines})
+    peak = (f"peak amplitude ≤ {own[0]:g} of full scale on every line" if len(own) == 1 else
+            f"peak amplitude ≤ {own[0]:g}–{own[-1]:g} of full scale (per line)")
+    avg = ("average power per line: no limit" if lim.max_average_power_dbm is None
+           else f"average power ≤ {lim.max_average_power_dbm:g} dBm per line")
+    total = ("all lines together: no limit" if lim.max_total_average_power_dbm is None
+             else f"≤ {lim.max_total_average_power_dbm:g} dBm all lines together")
+    lock = ("interlock: none" if getattr(chip, "interlock", None) is None
+            else f"interlock: {chip.interlock.command[0]}")
+    stated = "" if lim.stated else " (no [limits] table: defaults)"
+    return f"limits in force, from {chip.source}{stated}: {peak}; {avg}; {total}; {lock}"
