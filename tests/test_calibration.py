@@ -525,6 +525,7 @@ def test_demo_runs_end_to_end_reduced(tmp_path):
     md = (out / "report.md").read_text()
     assert "verification (" in md and "drift watch:" in md and "randomized benchmarking" in md
     assert "closed-loop refinement:" in md and "closed-loop" in md.split("refinement:")[1]
+    assert "## Drive limits in force" in md and "average power ≤ -40 dBm per line" in md
     from xtalkcal.compensation import CompensationSettings
     from xtalkcal.store import Ledger
 

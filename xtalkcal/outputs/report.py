@@ -11,6 +11,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 
 from xtalkcal.calibrate import CalibrationResult
+from xtalkcal.hardware import limits_summary
 from xtalkcal.outputs.export import dumps, format_table
 from xtalkcal.outputs.plot import (
     plot_drift,
@@ -79,6 +80,10 @@ def write_report(result: CalibrationResult, out: str | Path, *,
     if worst is not None:
         lines.append(f"- worst true residual of a nulled pair: {worst:.1f} dB")
     lines += extra
+    lines += ["", "## Drive limits in force", "", "- " + limits_summary(result.chip)]
+    lines += [f"- line {ln.name} ({ln.qubit}): peak ≤ {result.chip.amplitude_limit(ln.name):g}"
+              + (f", full scale {ln.full_scale_dbm:g} dBm" if ln.full_scale_dbm is not None
+                 else "") for ln in result.chip.lines]
     lines += ["", "## Matrix", "", "```", format_table(result), "```", ""]
     for title, name in figs:
         lines += [f"## {title}", "", f"![{title}]({name})", ""]
