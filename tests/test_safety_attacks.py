@@ -21,6 +21,7 @@ from xtalkcal.compensation import CompensationSettings, PairSetting, apply_to_wa
 from xtalkcal.exceptions import SafetyLimitError, TimelineError, XtalkcalError
 from xtalkcal.hardware import (
     Envelope,
+    PowerTally,
     Timeline,
     Tone,
     check_timelines,
@@ -202,6 +203,15 @@ def test_lines_each_within_their_limit_are_refused_together_above_the_total():
         check_timelines(_total_chip(-40.0), [tl], REP_NS)
     assert f"{both_dbm:.2f} dBm" in str(info.value)
     check_timelines(_total_chip(-39.0), [tl], REP_NS)
+    tally = PowerTally()
+    tally.add(_total_chip(-39.0), [tl], REP_NS, shots=100)
+    assert tally.peak == pytest.approx({"da": 0.45, "db": 0.45})
+    assert tally.average_dbm == pytest.approx({"da": per_line_dbm, "db": per_line_dbm})
+    assert tally.total_dbm == pytest.approx(both_dbm)
+    assert (tally.batches, tally.timelines, tally.shots) == (1, 1, 100)
+    with pytest.raises(SafetyLimitError):  # the tally checks as it counts
+        tally.add(_total_chip(-40.0), [tl], REP_NS, shots=100)
+    assert tally.batches == 1
     # One line alone at the same level is within the −40 dBm total.
     check_timelines(_total_chip(-40.0), [Timeline(tones[:1], ("a",))], REP_NS)
 

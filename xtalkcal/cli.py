@@ -231,6 +231,7 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
           f"wrote {out}")
     if said:
         print(said)
+    print(runner.tally.summary())
     return EXIT_FAILED if n_rej else EXIT_OK
 
 

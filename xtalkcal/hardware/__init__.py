@@ -36,6 +36,7 @@ from xtalkcal.hardware.rig import (
 )
 from xtalkcal.hardware.safety import (
     LineLoad,
+    PowerTally,
     check_timelines,
     envelope_energy_ns,
     envelope_peak,
@@ -88,6 +89,7 @@ __all__ = [
     "check_counts",
     "common_readout",
     "LineLoad",
+    "PowerTally",
     "check_timelines",
     "envelope_energy_ns",
     "envelope_peak",

@@ -36,7 +36,7 @@ from __future__ import annotations
 import math
 import numbers
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 
 from xtalkcal.exceptions import SafetyLimitError, TimelineError
@@ -44,7 +44,7 @@ from xtalkcal.hardware.chip import Chip
 from xtalkcal.hardware.timeline import Envelope, Timeline, Tone
 
 __all__ = ["LineLoad", "line_loads", "check_timelines", "envelope_peak", "envelope_energy_ns",
-           "limits_summary"]
+           "limits_summary", "PowerTally"]
 
 
 def _lifted_edge(env: Envelope, duration_ns: float) -> float:
@@ -170,6 +170,68 @@ def _finite_positive(value: object, what: str) -> float:
     return v
 
 
+def _average_dbm(chip: Chip, label: str, line: str, load: LineLoad, rep: float,
+                 end_ns: float) -> float | None:
+    """Average power of a line over one repetition (dBm); None if it carries nothing."""
+    fs = chip.line(line).full_scale_dbm
+    if fs is None:  # a chip file cannot lack it (validation); a chip built in code can
+        raise SafetyLimitError(
+            f"{label}: line {line} has no full_scale_dbm, so its average power "
+            f"cannot be checked against the limits of {chip.source}. Nothing was sent.")
+    mean = load.energy_ns / max(rep, end_ns)
+    return fs + 10 * math.log10(mean) if mean > 0 else None
+
+
+def _checked_loads(chip: Chip, k: int, tl: object, rep: float
+                   ) -> tuple[dict[str, LineLoad], dict[str, float]]:
+    """One timeline's loads and per-line average powers (dBm), every limit checked."""
+    label = getattr(tl, "label", "") or f"timeline[{k}]"
+    if not isinstance(tl, Timeline):
+        raise SafetyLimitError(f"{label}: not a Timeline; nothing was sent.")
+    try:
+        tl.validate(lines=chip.line_names)
+    except TimelineError as exc:
+        raise SafetyLimitError(f"{exc}. Nothing was sent.") from exc
+    pmax = chip.limits.max_average_power_dbm
+    ptotal = chip.limits.max_total_average_power_dbm
+    loads = line_loads(tl)
+    powers: dict[str, float] = {}
+    for line, load in loads.items():
+        limit = chip.amplitude_limit(line)
+        if not load.peak_amplitude <= limit * (1 + 1e-12):
+            raise SafetyLimitError(
+                f"{label}: line {line} would reach peak amplitude {load.peak_amplitude:.4g}, "
+                f"above its limit {limit:.4g} (chip file {chip.source}: lines.max_amplitude / "
+                "limits.max_amplitude). Nothing was sent."
+            )
+        if pmax is None and ptotal is None and chip.line(line).full_scale_dbm is None:
+            continue  # no power limit, and no full scale to state a power in
+        dbm = _average_dbm(chip, label, line, load, rep, tl.end_ns)
+        if dbm is None:
+            continue
+        powers[line] = dbm
+        if pmax is not None and not dbm <= pmax + 1e-9:
+            raise SafetyLimitError(
+                f"{label}: line {line} would average {dbm:.2f} dBm over a "
+                f"{rep:g} ns repetition, above limits.max_average_power_dbm "
+                f"= {pmax:g} dBm (chip file {chip.source}). Nothing was sent."
+            )
+    if ptotal is not None and powers:
+        total_dbm = _sum_dbm(powers.values())
+        if not total_dbm <= ptotal + 1e-9:
+            raise SafetyLimitError(
+                f"{label}: all lines together would average {total_dbm:.2f} dBm over a "
+                f"{rep:g} ns repetition, above limits.max_total_average_power_dbm "
+                f"= {ptotal:g} dBm (chip file {chip.source}). Nothing was sent."
+            )
+    return loads, powers
+
+
+def _sum_dbm(values) -> float:
+    """Powers in dBm added as powers (different lines heat the fridge independently)."""
+    return 10 * math.log10(sum(10 ** (v / 10) for v in values))
+
+
 def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: float) -> None:
     """Refuse timelines that would exceed a line's limits, or are not well formed.
 
@@ -190,53 +252,96 @@ def check_timelines(chip: Chip, timelines: Sequence[Timeline], repetition_ns: fl
         built the tone).
     """
     rep = _finite_positive(repetition_ns, "the rig's repetition_ns")
-    names = chip.line_names
-    pmax = chip.limits.max_average_power_dbm
-    ptotal = chip.limits.max_total_average_power_dbm
     for k, tl in enumerate(timelines):
-        label = getattr(tl, "label", "") or f"timeline[{k}]"
-        if not isinstance(tl, Timeline):
-            raise SafetyLimitError(f"{label}: not a Timeline; nothing was sent.")
-        try:
-            tl.validate(lines=names)
-        except TimelineError as exc:
-            raise SafetyLimitError(f"{exc}. Nothing was sent.") from exc
-        total_mw = 0.0
-        for line, load in line_loads(tl).items():
-            limit = chip.amplitude_limit(line)
-            if not load.peak_amplitude <= limit * (1 + 1e-12):
-                raise SafetyLimitError(
-                    f"{label}: line {line} would reach peak amplitude {load.peak_amplitude:.4g}, "
-                    f"above its limit {limit:.4g} (chip file {chip.source}: lines.max_amplitude / "
-                    "limits.max_amplitude). Nothing was sent."
-                )
-            if pmax is None and ptotal is None:
-                continue
-            fs = chip.line(line).full_scale_dbm
-            if fs is None:  # a chip file cannot lack it (validation); a chip built in code can
-                raise SafetyLimitError(
-                    f"{label}: line {line} has no full_scale_dbm, so its average power "
-                    f"cannot be checked against the limits of {chip.source}. Nothing was sent.")
-            mean = load.energy_ns / max(rep, tl.end_ns)
-            if mean <= 0:
-                continue
-            dbm = fs + 10 * math.log10(mean)
-            total_mw += 10 ** (dbm / 10)
-            if pmax is not None and not dbm <= pmax + 1e-9:
-                raise SafetyLimitError(
-                    f"{label}: line {line} would average {dbm:.2f} dBm over a "
-                    f"{rep:g} ns repetition, above limits.max_average_power_dbm "
-                    f"= {pmax:g} dBm (chip file {chip.source}). Nothing was sent."
-                )
-        if ptotal is not None and total_mw > 0:
-            total_dbm = 10 * math.log10(total_mw)
-            if not total_dbm <= ptotal + 1e-9:
-                raise SafetyLimitError(
-                    f"{label}: all lines together would average {total_dbm:.2f} dBm over a "
-                    f"{rep:g} ns repetition, above limits.max_total_average_power_dbm "
-                    f"= {ptotal:g} dBm (chip file {chip.source}). Nothing was sent."
-                )
+        _checked_loads(chip, k, tl, rep)
 
+
+@dataclass
+class PowerTally:
+    """The most drive each line, and all lines together, received over many batches.
+
+    :class:`~xtalkcal.measure.BatchRunner` keeps one for every batch it sends (and a dry
+    run for every batch it would send), so that a run can say afterwards what it did to
+    the fridge, in the terms of the limits.
+
+    Attributes
+    ----------
+    peak : dict of str → float
+        Largest peak amplitude per line (fraction of full scale).
+    average_dbm : dict of str → float
+        Largest average power per line over one repetition (dBm; lines with a full scale).
+    total_dbm : float or None
+        Largest average power of all lines together in one timeline (dBm).
+    batches, timelines, shots : int
+        What was counted.
+    """
+
+    peak: dict[str, float] = field(default_factory=dict)
+    average_dbm: dict[str, float] = field(default_factory=dict)
+    total_dbm: float | None = None
+    batches: int = 0
+    timelines: int = 0
+    shots: int = 0
+
+    def add(self, chip: Chip, timelines: Sequence[Timeline], repetition_ns: float,
+            shots: int) -> None:
+        """Check a batch (as :func:`check_timelines`) and count it."""
+        rep = _finite_positive(repetition_ns, "the rig's repetition_ns")
+        for k, tl in enumerate(timelines):
+            loads, powers = _checked_loads(chip, k, tl, rep)
+            for line, load in loads.items():
+                self.peak[line] = max(self.peak.get(line, 0.0), load.peak_amplitude)
+            for line, dbm in powers.items():
+                self.average_dbm[line] = max(self.average_dbm.get(line, -math.inf), dbm)
+            if powers:
+                total = _sum_dbm(powers.values())
+                self.total_dbm = total if self.total_dbm is None else max(self.total_dbm, total)
+        self.batches += 1
+        self.timelines += len(timelines)
+        self.shots += len(timelines) * int(shots)
+
+    def lines(self, chip: Chip) -> list[str]:
+        """A table, one row per line driven, and a row for all lines together."""
+        rows = [f"{'line':<8} {'peak':>7} {'limit':>7} {'avg dBm':>9} {'limit':>7}"]
+        pmax = chip.limits.max_average_power_dbm
+        for line in chip.line_names:
+            if line not in self.peak:
+                continue
+            avg = self.average_dbm.get(line)
+            rows.append(f"{line:<8} {self.peak[line]:>7.3f} {chip.amplitude_limit(line):>7.3f} "
+                        f"{'-' if avg is None else f'{avg:.1f}':>9} "
+                        f"{'-' if pmax is None else f'{pmax:g}':>7}")
+        ptot = chip.limits.max_total_average_power_dbm
+        tot = "-" if self.total_dbm is None else f"{self.total_dbm:.1f}"
+        lim = "-" if ptot is None else f"{ptot:g}"
+        rows.append(f"{'all':<8} {'':>7} {'':>7} {tot:>9} {lim:>7}")
+        return rows
+
+    def summary(self) -> str:
+        """One line: the largest peak and average power of any line, and of all together."""
+        if not self.peak:
+            return "drive sent: none"
+        line = max(self.peak, key=self.peak.get)
+        text = f"largest drive sent: peak {self.peak[line]:.3g} of full scale ({line})"
+        if self.average_dbm:
+            hot = max(self.average_dbm, key=self.average_dbm.get)
+            text += f", average {self.average_dbm[hot]:.1f} dBm ({hot})"
+        if self.total_dbm is not None:
+            text += f", all lines together {self.total_dbm:.1f} dBm"
+        return text + f"; {self.batches} batches, {self.shots:,} shots"
+
+    def merge(self, other: PowerTally) -> None:
+        """Count another tally's batches in this one."""
+        for line, v in other.peak.items():
+            self.peak[line] = max(self.peak.get(line, 0.0), v)
+        for line, v in other.average_dbm.items():
+            self.average_dbm[line] = max(self.average_dbm.get(line, -math.inf), v)
+        if other.total_dbm is not None:
+            self.total_dbm = (other.total_dbm if self.total_dbm is None
+                              else max(self.total_dbm, other.total_dbm))
+        self.batches += other.batches
+        self.timelines += other.timelines
+        self.shots += other.shots
 
 def limits_summary(chip: Chip) -> str:
     """One line naming the limits in force and the chip file they come from.

@@ -44,7 +44,7 @@ import h5py
 import numpy as np
 
 from xtalkcal.exceptions import RigError, SafetyLimitError, TimelineError
-from xtalkcal.hardware import Counts, Rig, Timeline, check_counts, check_timelines, common_readout
+from xtalkcal.hardware import Counts, PowerTally, Rig, Timeline, check_counts, common_readout
 
 __all__ = ["BatchRunner"]
 
@@ -81,6 +81,8 @@ class BatchRunner:
         batches as they took when they were first recorded.
     rig_seconds : float
         Their sum: the rig time the whole set of batches cost (read only).
+    tally : PowerTally
+        The most drive each line (and all lines together) got from the batches sent.
     last_finished_s : float or None
         Rig clock at the end of the latest batch returned, executed or resumed: when its
         data were taken (a resumed batch keeps the time it was first measured at).
@@ -105,6 +107,7 @@ class BatchRunner:
         self.rig_seconds_executed = 0.0
         self.rig_seconds_resumed = 0.0
         self.last_finished_s: float | None = None
+        self.tally = PowerTally()
 
     @property
     def rig_seconds(self) -> float:
@@ -159,10 +162,12 @@ class BatchRunner:
             log.warning("recorded batch %s was made for other timelines; measuring anew", key)
         # Dry run: refuse before anything reaches the rig; then the lab's interlock, if
         # its chip file names one, must approve the batch.
-        check_timelines(self.rig.chip, timelines, self.rig.repetition_ns)
+        batch = PowerTally()
+        batch.add(self.rig.chip, timelines, self.rig.repetition_ns, shots)  # check_timelines
         interlock = getattr(self.rig.chip, "interlock", None)
         if interlock is not None:
             interlock.approve(chip=self.rig.chip.name, batch=key)
+        self.tally.merge(batch)
         # Checked before anything is counted or recorded: a bad answer leaves no trace,
         # and a rerun with the same record measures the batch again.
         counts = check_counts(self._call_rig(key, timelines, shots), batch=key, **request)
