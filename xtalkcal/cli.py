@@ -211,6 +211,8 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
     protocol.check_against(rig.chip)  # names in overrides, before any rig time
     print(limits_summary(rig.chip), flush=True)
+    if args.dry_run:
+        return _dry_run_calibrate(rig, protocol)
     # A broken ledger is found before any rig time is spent, not after the calibration.
     led = _open_ledger(args.ledger, rig.chip.name) if args.ledger else None
     out = Path(args.output)
@@ -233,6 +235,58 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         print(said)
     print(runner.tally.summary())
     return EXIT_FAILED if n_rej else EXIT_OK
+
+
+class _DryRig:
+    """Stands where the rig stands in a dry run: the lab chip's limits, the rig's
+    repetition time, and answers from a crosstalk-free stand-in; nothing reaches the rig."""
+
+    def __init__(self, rig) -> None:
+        import dataclasses
+
+        from simulated_device import SimRig
+        from simulated_device.standin import standin_device
+
+        self._chip = dataclasses.replace(rig.chip, interlock=None)  # nothing to approve
+        self._rep = rig.repetition_ns
+        self._desc = rig.describe()
+        self._sim = SimRig(standin_device(rig.chip, rig.repetition_ns), seed=1, drift=False)
+
+    @property
+    def chip(self):
+        return self._chip
+
+    @property
+    def repetition_ns(self) -> float:
+        return self._rep
+
+    def describe(self) -> str:
+        return f"dry run of {self._desc}"
+
+    def now(self) -> float:
+        return self._sim.now()
+
+    def run(self, timelines, shots):
+        return self._sim.run(timelines, shots)
+
+
+def _dry_run_calibrate(rig, protocol) -> int:
+    """Plan a calibration, check every planned batch against the limits, send nothing."""
+    from xtalkcal.calibrate import calibrate_chip
+    from xtalkcal.measure import BatchRunner
+
+    dry = _DryRig(rig)
+    runner = BatchRunner(dry)
+    calibrate_chip(dry, protocol, runner=runner, log=lambda s: log.info(s))
+    t = runner.tally
+    print(f"dry run: nothing was sent to {rig.describe()}")
+    print(f"planned before any data: {t.batches} batches, {t.shots:,} shots, about "
+          f"{t.shots * rig.repetition_ns * 1e-9:.1f} s of rig time (the surveys of every "
+          "column), each within the limits above; largest drive per line:")
+    print("\n".join(t.lines(rig.chip)))
+    print("The null searches depend on what the surveys find: each of their batches is "
+          "checked against the same limits before it is sent.")
+    return EXIT_OK
 
 
 def _resumed_note(runner, record) -> str:
@@ -530,6 +584,9 @@ def build_parser() -> argparse.ArgumentParser:
     k.add_argument("--ledger", default=None,
                    help="the chip's ledger directory to append the estimates to (created if new)")
     k.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    k.add_argument("--dry-run", action="store_true",
+                   help="send nothing: plan the batches that need no data (the surveys), "
+                        "check them against the limits and print the drive per line")
 
     d = add("demo", help="the whole job on the bundled simulated chip, with a report")
     d.add_argument("--out", default="xtalkcal-demo", help="report folder to create")
