@@ -205,7 +205,7 @@ def _make_rig(spec: str, *, seed: int | None, drift: bool, start_s: float = 0.0)
 def _cmd_calibrate(args: argparse.Namespace) -> int:
     from xtalkcal.calibrate import calibrate_chip
     from xtalkcal.measure import BatchRunner
-    from xtalkcal.outputs import dumps, format_table
+    from xtalkcal.outputs import dumps, format_table, unsettled_pairs
 
     protocol = _load_protocol(args.protocol)
     rig = _make_rig(args.rig, seed=args.seed, drift=not args.no_drift)
@@ -227,14 +227,18 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
         said = _record_in_ledger(args.ledger, rig.chip.name, result, ledger=led,
                                  resumed_from=args.record if runner.shots_resumed else None)
     print(format_table(result))
-    n_rej = sum(not p.accepted and p.nulled for p in result.pairs)
+    failures, warnings = unsettled_pairs(result)
     print(f"\n{len(result.pairs)} pairs, {result.shots} shots, "
           f"{result.rig_seconds:.1f} s of rig time{_resumed_note(runner, args.record)}; "
           f"wrote {out}")
     if said:
         print(said)
     print(runner.tally.summary())
-    return EXIT_FAILED if n_rej else EXIT_OK
+    for text in warnings:
+        print(f"warning: {text}")
+    for text in failures:
+        print(f"unsettled: {text}")
+    return EXIT_FAILED if failures else EXIT_OK
 
 
 class _DryRig:

@@ -8,6 +8,7 @@ from xtalkcal.outputs.export import (
     dumps,
     format_table,
     result_to_json,
+    unsettled_pairs,
 )
 from xtalkcal.outputs.plot import (
     matrix_axes,
@@ -37,4 +38,5 @@ __all__ = [
     "dumps",
     "format_table",
     "result_to_json",
+    "unsettled_pairs",
 ]

@@ -38,7 +38,7 @@ import json
 import math
 from typing import Any
 
-from xtalkcal.calibrate import CalibrationResult
+from xtalkcal.calibrate import NULL_CONFIDENCE, CalibrationResult
 from xtalkcal.common import __version__
 
 __all__ = ["MATRIX_SCHEMA", "result_to_json", "format_table"]
@@ -107,13 +107,57 @@ def dumps(result: CalibrationResult) -> str:
     return json.dumps(clean(result_to_json(result)), indent=2)
 
 
+# What each rejection means for the pair, said to the person reading the run's end.
+_WHY = {
+    "too_few_points": "too few usable points to fit",
+    "fit_failed": "the fit did not converge",
+    "saturated": "the signal saturated over the sweep",
+    "outside_region": "the fitted null lies outside the swept region (a strong leak)",
+    "model_mismatch": "the data do not follow the null model",
+}
+
+
+def _nulled_above_target(result: CalibrationResult, p) -> float | None:
+    """The 99 % error bound of X (dB) of a nulled pair, if it exceeds the protocol's target."""
+    if not (p.accepted and p.nulled) or not math.isfinite(p.stderr):
+        return None
+    bound_db = 20 * math.log10(max(p.stderr * NULL_CONFIDENCE, 1e-300))
+    return bound_db if bound_db > result.protocol.null.target_residual_db else None
+
+
+def unsettled_pairs(result: CalibrationResult) -> tuple[list[str], list[str]]:
+    """Pairs a calibration could not settle, one line each: (failures, warnings).
+
+    A failure is a pair rejected for any reason but "no signal" (its crosstalk is
+    unknown and possibly strong, and it is not compensated); the command exits non-zero
+    for them. A warning is a pair nulled with a 99 % error bound above the protocol's
+    target residual.
+    """
+    failures, warnings = [], []
+    for p in result.pairs:
+        if not p.accepted and p.reason != "no_signal":
+            why = _WHY.get(p.reason, p.reason)
+            failures.append(f"{p.aggressor} → {p.victim} ({p.method}): rejected at the "
+                            f"{p.stage} stage, {p.reason}: {why}; not compensated")
+        elif (bound := _nulled_above_target(result, p)) is not None:
+            warnings.append(f"{p.aggressor} → {p.victim} ({p.method}): nulled, but its error "
+                            f"of X may reach {bound:.1f} dB (99 %), above the target "
+                            f"{result.protocol.null.target_residual_db:g} dB")
+    return failures, warnings
+
+
 def format_table(result: CalibrationResult) -> str:
-    """A compact text table: one line per pair, strongest first."""
+    """A compact text table: one line per pair, strongest first.
+
+    A nulled pair whose error bound exceeds the target is marked ``nulled*``.
+    """
     rows = []
     for p in result.pairs:
         if p.accepted:
             phase = math.degrees(math.atan2(p.x.imag, p.x.real))
             stage = "nulled" if p.nulled else "survey"
+            if _nulled_above_target(result, p) is not None:
+                stage = "nulled* (error above target)"
             rows.append((p.magnitude_db, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
                          f"{p.magnitude_db:7.1f} dB {phase:7.1f}° "
                          f"{20 * math.log10(p.stderr):7.1f} dB  {stage}"))
