@@ -1,5 +1,5 @@
-"""Commit files on disk: names, atomic writes, fsyncs, the writer lock, markers and SHA-256
-digests.
+"""Commit files on disk: names and listings, atomic writes, fsyncs, the writer lock, markers and
+SHA-256 digests.
 """
 
 from __future__ import annotations
@@ -18,8 +18,9 @@ from typing import Any
 
 import filelock
 
+import xtalkcal.store.schema as schema
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.entries import SCHEMA_VERSION, LedgerEntry
+from xtalkcal.store.entries import LedgerEntry
 
 _FORMAT = "xtalkcal-ledger"
 _MARKER_NAME = "xtalkcal-ledger.json"
@@ -35,13 +36,10 @@ _HASH_BLOCK = 1 << 20  # bytes read at a time while hashing
 _MAX_LIST_ATTEMPTS = 20
 
 
-# --------------------------------------------------------------------------------------------
-# The ledger
-# --------------------------------------------------------------------------------------------
-
-
 @dataclass(frozen=True)
 class _CommitFile:
+    """One commit file as read and checked: its range, entries and where its sweeps are."""
+
     name: str
     first: int
     last: int
@@ -85,6 +83,62 @@ def _final_name(first: int, last: int) -> str:
     return f"{first:010d}-{last:010d}.h5"
 
 
+def _temporary(directory: Path, suffix: str) -> Path:
+    """A fresh temporary file name in ``directory``, unique across processes."""
+    return directory / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}{suffix}"
+
+
+def _numbered(directory: Path, pattern: re.Pattern[str]) -> list[tuple[int, int, str]]:
+    """(first, last, name) of every file in ``directory`` whose name matches ``pattern``."""
+    found = []
+    with os.scandir(directory) as it:
+        for item in it:
+            m = pattern.match(item.name)
+            if m:
+                found.append((int(m.group(1)), int(m.group(2)), item.name))
+    return found
+
+
+def _list_final(root: Path) -> list[tuple[int, int, str]]:
+    """The finalised commit files of a ledger, unsorted."""
+    return _numbered(root, _FINAL_RE)
+
+
+def _list_digests(root: Path) -> dict[tuple[int, int], str]:
+    """The digest files of a ledger, by sequence range."""
+    return {(first, last): name for first, last, name in _numbered(root, _DIGEST_RE)}
+
+
+def _list_quarantine(root: Path) -> list[tuple[int, int, str]]:
+    """The commit files set aside in ``quarantine/``, sorted."""
+    qdir = root / _QUARANTINE
+    if not qdir.is_dir():
+        return []
+    return sorted(_numbered(qdir, _FINAL_RE))
+
+
+def _covering(
+    root: Path, listing: list[tuple[int, int, str]]
+) -> tuple[list[tuple[int, int, str]], list[tuple[int, int, str]]]:
+    """Split a listing into the files to read and the redundant ones they contain."""
+    keep, redundant = [], []
+    reach = 0
+    for first, last, name in sorted(listing, key=lambda t: (t[0], -t[1])):
+        if first > last:
+            raise LedgerError(f"{root / name}: malformed sequence range")
+        if first > reach:
+            keep.append((first, last, name))
+            reach = last
+        elif last <= reach:
+            redundant.append((first, last, name))
+        else:
+            raise LedgerError(
+                f"{root}: commit files overlap without nesting ({name}); "
+                "the ledger was modified by something other than xtalkcal"
+            )
+    return keep, redundant
+
+
 def _fsync_dir(path: Path) -> None:
     if os.name == "nt":  # Windows cannot open directories; NTFS renames are journaled
         return
@@ -104,7 +158,7 @@ def _fsync_file(path: Path) -> None:
 
 
 def _atomic_write_bytes(directory: Path, name: str, payload: bytes) -> None:
-    tmp = directory / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}.json"
+    tmp = _temporary(directory, ".json")
     try:
         with open(tmp, "wb") as fh:
             fh.write(payload)
@@ -142,10 +196,10 @@ def _read_marker(path: Path) -> _Marker:
     version = info.get("schema_version")
     if isinstance(version, bool) or not isinstance(version, int) or version < 1:
         raise LedgerError(f"{marker}: schema_version must be a positive integer, got {version!r}")
-    if version > SCHEMA_VERSION:
+    if version > schema.SCHEMA_VERSION:
         raise LedgerError(
             f"{marker}: ledger has schema_version {version}, this xtalkcal reads up to "
-            f"{SCHEMA_VERSION}; upgrade xtalkcal to open it"
+            f"{schema.SCHEMA_VERSION}; upgrade xtalkcal to open it"
         )
     chip = info.get("chip")
     if not isinstance(chip, str) or not chip:
