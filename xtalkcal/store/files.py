@@ -139,22 +139,22 @@ def _covering(
     return keep, redundant
 
 
+def _fsync_opened(path: Path, flags: int) -> None:
+    fd = os.open(path, flags)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 def _fsync_dir(path: Path) -> None:
     if os.name == "nt":  # Windows cannot open directories; NTFS renames are journaled
         return
-    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+    _fsync_opened(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
 
 
 def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDWR)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+    _fsync_opened(path, os.O_RDWR)
 
 
 def _atomic_write_bytes(directory: Path, name: str, payload: bytes) -> None:

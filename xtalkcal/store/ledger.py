@@ -262,10 +262,8 @@ class Ledger:
 
         Parameters
         ----------
-        aggressor : str
-            Drive line name.
-        victim : str
-            Qubit name.
+        aggressor, victim : str
+            The pair, as for `history`.
 
         Returns
         -------
