@@ -11,7 +11,7 @@ import os
 import re
 import uuid
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
@@ -20,7 +20,6 @@ import filelock
 
 import xtalkcal.store.schema as schema
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.entries import LedgerEntry
 
 _FORMAT = "xtalkcal-ledger"
 _MARKER_NAME = "xtalkcal-ledger.json"
@@ -36,35 +35,9 @@ _HASH_BLOCK = 1 << 20  # bytes read at a time while hashing
 _MAX_LIST_ATTEMPTS = 20
 
 
-@dataclass(frozen=True)
-class _CommitFile:
-    """One commit file as read and checked: its range, entries and where its sweeps are."""
-
-    name: str
-    first: int
-    last: int
-    schema_version: int
-    entries: tuple[LedgerEntry, ...]
-    sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
-    verified: bool  # its digest matched (False: a legacy file without one)
-    stamp: tuple[int, int, int]  # (size, mtime_ns, inode) when it was checked
-
-
 def _stamp(path: Path) -> tuple[int, int, int]:
     st = os.stat(path)
     return (st.st_size, st.st_mtime_ns, st.st_ino)
-
-
-@dataclass(frozen=True)
-class _View:
-    entries: tuple[LedgerEntry, ...] = ()
-    by_pair: Mapping[tuple[str, str], tuple[LedgerEntry, ...]] = field(default_factory=dict)
-    sweeps: Mapping[str, tuple[str, str, int]] = field(default_factory=dict)
-    last_seq: int = 0
-
-
-class _Vanished(Exception):
-    """A listed file disappeared before it could be opened (a compaction removed it)."""
 
 
 class _BadCommit(Exception):
@@ -73,10 +46,6 @@ class _BadCommit(Exception):
     def __init__(self, problem: str) -> None:
         self.problem = problem
         super().__init__(problem)
-
-
-def _time_key(e: LedgerEntry) -> tuple[float, int, int]:
-    return (e.measured_at_s, e.seq, e.position)
 
 
 def _final_name(first: int, last: int) -> str:

@@ -13,15 +13,13 @@ from xtalkcal.store.files import (
     _DIGEST_SUFFIX,
     _QUARANTINE,
     _BadCommit,
-    _CommitFile,
     _final_name,
     _list_digests,
     _list_quarantine,
     _Marker,
     _read_digest,
-    _Vanished,
 )
-from xtalkcal.store.reading import _load
+from xtalkcal.store.reading import _CommitFile, _load, _Vanished
 
 CommitStatus = Literal["ok", "unverified", "bad", "missing", "quarantined"]
 

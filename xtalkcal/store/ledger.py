@@ -21,16 +21,19 @@ from xtalkcal.exceptions import LedgerError
 from xtalkcal.store.entries import LedgerEntry, LedgerValidationError
 from xtalkcal.store.files import (
     _MAX_LIST_ATTEMPTS,
-    _CommitFile,
     _covering,
     _list_final,
     _read_marker,
-    _Vanished,
-    _View,
     _writer_lock,
 )
 from xtalkcal.store.integrity import CommitCheck, LedgerReport, _judge
-from xtalkcal.store.reading import _build_view, _read_stored_sweep
+from xtalkcal.store.reading import (
+    _build_view,
+    _CommitFile,
+    _read_stored_sweep,
+    _Vanished,
+    _View,
+)
 from xtalkcal.store.snapshots import _VIEW_ATTRS, MatrixSnapshot, _entry_table
 from xtalkcal.store.writing import (
     CommitReceipt,

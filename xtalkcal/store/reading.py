@@ -5,6 +5,7 @@ all of them gathered into one view, and sweeps read back later.
 from __future__ import annotations
 
 from collections.abc import Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
 
@@ -20,15 +21,44 @@ from xtalkcal.store.files import (
     _MARKER_NAME,
     _BadCommit,
     _check_digest,
-    _CommitFile,
     _digest_name,
     _Marker,
     _read_digest,
     _stamp,
-    _time_key,
-    _Vanished,
-    _View,
 )
+
+
+@dataclass(frozen=True)
+class _CommitFile:
+    """One commit file as read and checked: its range, entries and where its sweeps are."""
+
+    name: str
+    first: int
+    last: int
+    schema_version: int
+    entries: tuple[LedgerEntry, ...]
+    sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
+    verified: bool  # its digest matched (False: a legacy file without one)
+    stamp: tuple[int, int, int]  # (size, mtime_ns, inode) when it was checked
+
+
+@dataclass(frozen=True)
+class _View:
+    """Every entry and sweep of a ledger, as the queries use them."""
+
+    entries: tuple[LedgerEntry, ...] = ()
+    by_pair: Mapping[tuple[str, str], tuple[LedgerEntry, ...]] = field(default_factory=dict)
+    sweeps: Mapping[str, tuple[str, str, int]] = field(default_factory=dict)
+    last_seq: int = 0
+
+
+class _Vanished(Exception):
+    """A listed file disappeared before it could be opened (a compaction removed it)."""
+
+
+def _time_key(e: LedgerEntry) -> tuple[float, int, int]:
+    return (e.measured_at_s, e.seq, e.position)
+
 
 # What h5py raises for damaged files, missing members and wrong types.
 _DECODE_ERRORS = (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,

@@ -42,7 +42,6 @@ from xtalkcal.store.files import (
     _TMP_PREFIX,
     _atomic_write_bytes,
     _BadCommit,
-    _CommitFile,
     _covering,
     _digest_name,
     _final_name,
@@ -59,6 +58,7 @@ from xtalkcal.store.files import (
     _write_marker,
     _writer_lock,
 )
+from xtalkcal.store.reading import _CommitFile
 
 # A function that fills the ``sweeps`` group of a commit file being written.
 _SweepFiller = Callable[[h5py.Group], None]
