@@ -41,8 +41,7 @@ from xtalkcal.store import (
     utc_timestamp,
 )
 from xtalkcal.store import codec as codec_mod
-from xtalkcal.store import files as files_mod
-from xtalkcal.store import ledger as ledger_mod
+from xtalkcal.store import schema as schema_mod
 
 REPO = Path(__file__).resolve().parents[1]
 FIXTURE_V1 = Path(__file__).resolve().parent / "data" / "ledger_v1"
@@ -905,14 +904,13 @@ def test_migration_hook_runs_on_old_files(
         out["tag"] = np.array(["v2:" + t for t in cols["tag"]], dtype=object)
         return out
 
-    for mod in (codec_mod, files_mod, ledger_mod):  # every module that reads the version
-        monkeypatch.setattr(mod, "SCHEMA_VERSION", 2)
-    monkeypatch.setattr(codec_mod, "MIGRATIONS", {})
+    monkeypatch.setattr(schema_mod, "SCHEMA_VERSION", 2)  # the one place the store reads it
+    monkeypatch.setattr(schema_mod, "MIGRATIONS", {})
     with pytest.raises(LedgerError, match="has no migration to 2"):
         Ledger(fixture_copy)
-    monkeypatch.setattr(codec_mod, "MIGRATIONS", {1: v1_to_v2})
+    monkeypatch.setattr(schema_mod, "MIGRATIONS", {1: v1_to_v2})
     monkeypatch.setattr(
-        ledger_mod, "SWEEP_READERS", {**codec_mod.SWEEP_READERS, 2: codec_mod._read_sweep_v1}
+        schema_mod, "SWEEP_READERS", {**schema_mod.SWEEP_READERS, 2: codec_mod._read_sweep_v1}
     )
     led = Ledger(fixture_copy)
     assert {e.tag for e in led.entries()} == {"v2:fixture"}

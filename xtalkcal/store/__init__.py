@@ -5,14 +5,11 @@ May import: :mod:`xtalkcal.calibrate` and below. Nothing here imports a later st
 """
 
 from xtalkcal.store.codec import (
-    MIGRATIONS,
-    SWEEP_READERS,
     Columns,
 )
 from xtalkcal.store.entries import (
     KINDS,
     METHODS,
-    SCHEMA_VERSION,
     VERDICTS,
     Kind,
     LedgerEntry,
@@ -25,17 +22,26 @@ from xtalkcal.store.from_calibration import (
     ledger_entries,
     ledger_sweeps,
 )
-from xtalkcal.store.ledger import (
+from xtalkcal.store.integrity import (
     CommitCheck,
-    CommitReceipt,
     CommitStatus,
-    Ledger,
     LedgerReport,
-    quarantine_commit,
+)
+from xtalkcal.store.ledger import (
+    Ledger,
     verify_ledger,
+)
+from xtalkcal.store.schema import (
+    MIGRATIONS,
+    SCHEMA_VERSION,
+    SWEEP_READERS,
 )
 from xtalkcal.store.snapshots import (
     MatrixSnapshot,
+)
+from xtalkcal.store.writing import (
+    CommitReceipt,
+    quarantine_commit,
 )
 
 __all__ = [

@@ -1,5 +1,5 @@
 """The HDF5 layout of a commit: entry tables as columns, sweep datasets as plain arrays with their
-attributes, and the migrations of older layouts.
+attributes (the schema version and the upgrades of older layouts are in `schema`).
 """
 
 from __future__ import annotations
@@ -17,7 +17,6 @@ import xarray as xr
 from xtalkcal.exceptions import LedgerError
 from xtalkcal.store.entries import (
     _TEXT_FIELDS,
-    SCHEMA_VERSION,
     LedgerEntry,
     LedgerValidationError,
     _attr,
@@ -51,10 +50,6 @@ _TABLES = (("float64", _FLOAT_COLUMNS), ("int64", _INT_COLUMNS), ("text", _TEXT_
 
 Columns = dict[str, np.ndarray]
 """One 1-D array per column name; text columns are object arrays of str."""
-
-MIGRATIONS: dict[int, Callable[[Columns], Columns]] = {}
-"""Upgrade functions of the entry table: ``MIGRATIONS[v]`` turns version-``v`` columns into
-version ``v + 1`` columns. Empty while only version 1 exists; add one function per bump."""
 
 
 def _entries_to_columns(entries: Iterable[LedgerEntry]) -> Columns:
@@ -175,19 +170,6 @@ def _read_columns(f: h5py.File) -> Columns:
             if not isinstance(name, str) or name in cols:
                 raise _Malformed(f"{where}: column names must be distinct strings, got {name!r}")
             cols[name] = data[:, k]
-    return cols
-
-
-def _migrate(cols: Columns, version: int, source: str) -> Columns:
-    while version < SCHEMA_VERSION:
-        step = MIGRATIONS.get(version)
-        if step is None:
-            raise LedgerError(
-                f"{source}: schema_version {version} has no migration to {version + 1}; "
-                f"known migrations start at {sorted(MIGRATIONS) or 'none'}"
-            )
-        cols = step(cols)
-        version += 1
     return cols
 
 
@@ -433,6 +415,3 @@ def _read_sweep_v1(group: h5py.Group) -> xr.Dataset:
         (coords if g.attrs["role"] == "coord" else data_vars)[json.loads(g.attrs["name"])] = var
     return xr.Dataset(data_vars, coords=coords, attrs=_read_attr_group(group))
 
-
-SWEEP_READERS: dict[int, Callable[[h5py.Group], xr.Dataset]] = {1: _read_sweep_v1}
-"""Decoder of a stored sweep group, by the schema version of the file that holds it."""

@@ -16,9 +16,6 @@ import numpy as np
 
 from xtalkcal.exceptions import LedgerError
 
-SCHEMA_VERSION: int = 1
-"""Schema version written into every file by this code."""
-
 Method = Literal["leakage", "rotation", "stark", "survey", "manual"]
 Kind = Literal["survey", "null", "recheck", "manual"]
 Verdict = Literal["accepted", "rejected"]

@@ -1,5 +1,5 @@
-"""Commit files on disk: names, atomic writes, fsyncs, the writer lock, markers and SHA-256
-digests.
+"""Commit files on disk: names and listings, atomic writes, fsyncs, the writer lock, markers and
+SHA-256 digests.
 """
 
 from __future__ import annotations
@@ -11,15 +11,15 @@ import os
 import re
 import uuid
 from collections.abc import Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 import filelock
 
+import xtalkcal.store.schema as schema
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.entries import SCHEMA_VERSION, LedgerEntry
 
 _FORMAT = "xtalkcal-ledger"
 _MARKER_NAME = "xtalkcal-ledger.json"
@@ -35,38 +35,9 @@ _HASH_BLOCK = 1 << 20  # bytes read at a time while hashing
 _MAX_LIST_ATTEMPTS = 20
 
 
-# --------------------------------------------------------------------------------------------
-# The ledger
-# --------------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class _CommitFile:
-    name: str
-    first: int
-    last: int
-    schema_version: int
-    entries: tuple[LedgerEntry, ...]
-    sweeps: tuple[tuple[str, str], ...]  # (sweep_id, group path), commit order
-    verified: bool  # its digest matched (False: a legacy file without one)
-    stamp: tuple[int, int, int]  # (size, mtime_ns, inode) when it was checked
-
-
 def _stamp(path: Path) -> tuple[int, int, int]:
     st = os.stat(path)
     return (st.st_size, st.st_mtime_ns, st.st_ino)
-
-
-@dataclass(frozen=True)
-class _View:
-    entries: tuple[LedgerEntry, ...] = ()
-    by_pair: Mapping[tuple[str, str], tuple[LedgerEntry, ...]] = field(default_factory=dict)
-    sweeps: Mapping[str, tuple[str, str, int]] = field(default_factory=dict)
-    last_seq: int = 0
-
-
-class _Vanished(Exception):
-    """A listed file disappeared before it could be opened (a compaction removed it)."""
 
 
 class _BadCommit(Exception):
@@ -77,34 +48,86 @@ class _BadCommit(Exception):
         super().__init__(problem)
 
 
-def _time_key(e: LedgerEntry) -> tuple[float, int, int]:
-    return (e.measured_at_s, e.seq, e.position)
-
-
 def _final_name(first: int, last: int) -> str:
     return f"{first:010d}-{last:010d}.h5"
+
+
+def _temporary(directory: Path, suffix: str) -> Path:
+    """A fresh temporary file name in ``directory``, unique across processes."""
+    return directory / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}{suffix}"
+
+
+def _numbered(directory: Path, pattern: re.Pattern[str]) -> list[tuple[int, int, str]]:
+    """(first, last, name) of every file in ``directory`` whose name matches ``pattern``."""
+    found = []
+    with os.scandir(directory) as it:
+        for item in it:
+            m = pattern.match(item.name)
+            if m:
+                found.append((int(m.group(1)), int(m.group(2)), item.name))
+    return found
+
+
+def _list_final(root: Path) -> list[tuple[int, int, str]]:
+    """The finalised commit files of a ledger, unsorted."""
+    return _numbered(root, _FINAL_RE)
+
+
+def _list_digests(root: Path) -> dict[tuple[int, int], str]:
+    """The digest files of a ledger, by sequence range."""
+    return {(first, last): name for first, last, name in _numbered(root, _DIGEST_RE)}
+
+
+def _list_quarantine(root: Path) -> list[tuple[int, int, str]]:
+    """The commit files set aside in ``quarantine/``, sorted."""
+    qdir = root / _QUARANTINE
+    if not qdir.is_dir():
+        return []
+    return sorted(_numbered(qdir, _FINAL_RE))
+
+
+def _covering(
+    root: Path, listing: list[tuple[int, int, str]]
+) -> tuple[list[tuple[int, int, str]], list[tuple[int, int, str]]]:
+    """Split a listing into the files to read and the redundant ones they contain."""
+    keep, redundant = [], []
+    reach = 0
+    for first, last, name in sorted(listing, key=lambda t: (t[0], -t[1])):
+        if first > last:
+            raise LedgerError(f"{root / name}: malformed sequence range")
+        if first > reach:
+            keep.append((first, last, name))
+            reach = last
+        elif last <= reach:
+            redundant.append((first, last, name))
+        else:
+            raise LedgerError(
+                f"{root}: commit files overlap without nesting ({name}); "
+                "the ledger was modified by something other than xtalkcal"
+            )
+    return keep, redundant
+
+
+def _fsync_opened(path: Path, flags: int) -> None:
+    fd = os.open(path, flags)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
 
 
 def _fsync_dir(path: Path) -> None:
     if os.name == "nt":  # Windows cannot open directories; NTFS renames are journaled
         return
-    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+    _fsync_opened(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
 
 
 def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDWR)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+    _fsync_opened(path, os.O_RDWR)
 
 
 def _atomic_write_bytes(directory: Path, name: str, payload: bytes) -> None:
-    tmp = directory / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}.json"
+    tmp = _temporary(directory, ".json")
     try:
         with open(tmp, "wb") as fh:
             fh.write(payload)
@@ -142,10 +165,10 @@ def _read_marker(path: Path) -> _Marker:
     version = info.get("schema_version")
     if isinstance(version, bool) or not isinstance(version, int) or version < 1:
         raise LedgerError(f"{marker}: schema_version must be a positive integer, got {version!r}")
-    if version > SCHEMA_VERSION:
+    if version > schema.SCHEMA_VERSION:
         raise LedgerError(
             f"{marker}: ledger has schema_version {version}, this xtalkcal reads up to "
-            f"{SCHEMA_VERSION}; upgrade xtalkcal to open it"
+            f"{schema.SCHEMA_VERSION}; upgrade xtalkcal to open it"
         )
     chip = info.get("chip")
     if not isinstance(chip, str) or not chip:

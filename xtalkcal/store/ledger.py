@@ -1,194 +1,53 @@
 """The ledger: an append-only store of crosstalk measurements and their history.
+
+The `Ledger` class is the face of the store; the work behind it is done by `reading` (decoding
+commit files into one view), `integrity` (judging every commit file), `writing` (commit files
+under the writer lock) and `files` (names, listings, digests and the marker on disk).
 """
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
-import json
 import math
 import numbers
 import os
-import uuid
-from collections.abc import Callable, Iterable, Iterator, Mapping
-from dataclasses import dataclass
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 from types import MappingProxyType
-from typing import Literal
 
-import filelock
-import h5py
 import xarray as xr
 
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.codec import (
-    _LIBVER,
-    SWEEP_READERS,
-    _columns_to_entries,
-    _encode_sweep,
-    _entries_to_columns,
-    _member,
-    _migrate,
-    _positional,
-    _read_columns,
-    _write_columns,
-    _write_sweep,
-)
-from xtalkcal.store.entries import (
-    SCHEMA_VERSION,
-    LedgerEntry,
-    LedgerValidationError,
-    _attr,
-    _check_entry,
-    _check_text,
-    _Malformed,
-    utc_timestamp,
-)
+from xtalkcal.store.entries import LedgerEntry, LedgerValidationError
 from xtalkcal.store.files import (
-    _DIGEST_FORMAT,
-    _DIGEST_RE,
-    _DIGEST_SUFFIX,
-    _FINAL_RE,
-    _FORMAT,
-    _LOCK_NAME,
-    _MARKER_NAME,
     _MAX_LIST_ATTEMPTS,
-    _QUARANTINE,
-    _TMP_PREFIX,
-    _atomic_write_bytes,
-    _BadCommit,
-    _check_digest,
-    _CommitFile,
-    _digest_name,
-    _final_name,
-    _fsync_dir,
-    _fsync_file,
-    _hash_file,
-    _read_digest,
+    _covering,
+    _list_final,
     _read_marker,
-    _stamp,
-    _time_key,
-    _Vanished,
-    _View,
-    _write_marker,
     _writer_lock,
 )
+from xtalkcal.store.integrity import CommitCheck, LedgerReport, _judge
+from xtalkcal.store.reading import (
+    _build_view,
+    _CommitFile,
+    _read_stored_sweep,
+    _Vanished,
+    _View,
+)
 from xtalkcal.store.snapshots import _VIEW_ATTRS, MatrixSnapshot, _entry_table
-
-
-@dataclass(frozen=True)
-class CommitReceipt:
-    """What `Ledger.append` wrote.
-
-    Parameters
-    ----------
-    seq : int
-        Commit sequence number.
-    file : pathlib.Path
-        The immutable file holding the commit.
-    entries : tuple of LedgerEntry
-        The stored entries (with ``seq`` and ``position`` filled in).
-    sweep_ids : tuple of str
-        Ids of the sweeps stored with the commit.
-    """
-
-    seq: int
-    file: Path
-    entries: tuple[LedgerEntry, ...]
-    sweep_ids: tuple[str, ...]
-
-
-CommitStatus = Literal["ok", "unverified", "bad", "missing", "quarantined"]
-
-
-@dataclass(frozen=True)
-class CommitCheck:
-    """The state of one commit file (or of a range of commits no file holds).
-
-    Parameters
-    ----------
-    file : str
-        Name of the commit file inside the ledger directory (for ``"missing"``: the name a
-        file holding the range would have).
-    first, last : int
-        Range of commit sequence numbers.
-    status : {"ok", "unverified", "bad", "missing", "quarantined"}
-        ``ok``: digest matches and the content decodes. ``unverified``: decodes, but was
-        written before digests existed. ``bad``: damaged (see ``problem``). ``missing``: no
-        file holds these commits. ``quarantined``: set aside in ``quarantine/``.
-    problem : str
-        What is wrong (``""`` unless bad or missing).
-    """
-
-    file: str
-    first: int
-    last: int
-    status: CommitStatus
-    problem: str = ""
-
-    @property
-    def failed(self) -> bool:
-        """True for a damaged or missing commit (readers refuse the ledger)."""
-        return self.status in ("bad", "missing")
-
-    def line(self, root: Path) -> str:
-        """One line for people, naming the file."""
-        seqs = f"commit {self.first}" if self.first == self.last else (
-            f"commits {self.first}..{self.last}")
-        text = {"ok": "OK (SHA-256 verified)",
-                "unverified": "OK, unverified (written before commit digests existed)",
-                "quarantined": "set aside in quarantine (not part of the history)"}
-        return f"{root / self.file}: {seqs}: {text.get(self.status) or self.problem}"
-
-
-@dataclass(frozen=True)
-class LedgerReport:
-    """What `Ledger.verify` found: one `CommitCheck` per commit file, in sequence order.
-
-    Parameters
-    ----------
-    path : pathlib.Path
-        The ledger directory.
-    chip : str
-        Chip the ledger belongs to.
-    commits : tuple of CommitCheck
-        Every commit file read, every quarantined file and every missing range.
-    """
-
-    path: Path
-    chip: str
-    commits: tuple[CommitCheck, ...]
-
-    @property
-    def failed(self) -> tuple[CommitCheck, ...]:
-        """The damaged and missing commits."""
-        return tuple(c for c in self.commits if c.failed)
-
-    @property
-    def ok(self) -> bool:
-        """True when every commit can be read (unverified legacy files included)."""
-        return not self.failed
-
-    def lines(self) -> list[str]:
-        """One line per commit file, then a summary line."""
-        out = [c.line(self.path) for c in self.commits]
-        n_ok = sum(c.status in ("ok", "unverified") for c in self.commits)
-        out.append(f"{self.path}: ledger of chip {self.chip!r}: {n_ok} commit files readable, "
-                   f"{len(self.failed)} damaged or missing")
-        return out
-
-    def error(self) -> LedgerError:
-        """The one-line error every reader raises for this state (call only if not ok)."""
-        bad = self.failed
-        listed = "; ".join(f"{c.file}: {c.problem}" for c in bad)
-        files = "s" if len(bad) > 1 else ""
-        return LedgerError(
-            f"{self.path}: {len(bad)} damaged or missing commit{files}, nothing was read: "
-            f"{listed}. The other {len(self.commits) - len(bad)} commit files are intact; "
-            f"to read them, move each damaged file with its {_DIGEST_SUFFIX} file into "
-            f"{self.path / _QUARANTINE}/ (xtalkcal.store.quarantine_commit), which removes "
-            f"its entries from the history; `xtalkcal check {self.path}` lists every commit"
-        )
+from xtalkcal.store.writing import (
+    CommitReceipt,
+    _check_batch,
+    _check_links,
+    _make_ledger_dir,
+    _merged_sweeps,
+    _new_sweeps,
+    _next_seq,
+    _remove_redundant,
+    _remove_temporaries,
+    _start_digests,
+    _write_commit,
+)
 
 
 class Ledger:
@@ -221,7 +80,6 @@ class Ledger:
         self._marker = _read_marker(self._path)
         self._chip = self._marker.chip
         self._lock_timeout_s = float(lock_timeout_s)
-        self._lock = filelock.FileLock(str(self._path / _LOCK_NAME), timeout=lock_timeout_s)
         self._files: dict[str, _CommitFile] = {}
         self._view = _View()
 
@@ -257,34 +115,7 @@ class Ledger:
             If a ledger exists (without ``exist_ok``), belongs to another chip, or the
             directory holds unrelated files.
         """
-        if not isinstance(chip, str):
-            raise LedgerValidationError("Ledger.create", "chip", f"must be str, got {chip!r}")
-        _check_text("Ledger.create", "chip", chip, required=True, exact=True)
-        root = Path(path)
-        root.mkdir(parents=True, exist_ok=True)
-        with _writer_lock(root, lock_timeout_s):
-            if (root / _MARKER_NAME).exists():
-                existing = _read_marker(root).chip
-                if not exist_ok:
-                    raise LedgerError(f"{root}: a ledger already exists (chip {existing!r})")
-                if existing != chip:
-                    raise LedgerError(f"{root}: ledger belongs to chip {existing!r}, not {chip!r}")
-            else:
-                foreign = sorted(
-                    n for n in os.listdir(root) if n != _LOCK_NAME and not n.startswith(_TMP_PREFIX)
-                )
-                if foreign:
-                    raise LedgerError(
-                        f"{root}: directory is not empty and not a ledger ({foreign[:3]}...)"
-                    )
-                info = {
-                    "format": _FORMAT,
-                    "schema_version": SCHEMA_VERSION,
-                    "chip": chip,
-                    "created_utc": utc_timestamp(),
-                    "integrity": {"digest": "sha256", "legacy_files": []},
-                }
-                _write_marker(root, info)
+        root = _make_ledger_dir(path, chip, exist_ok=exist_ok, lock_timeout_s=lock_timeout_s)
         return cls(root, lock_timeout_s=lock_timeout_s)
 
     # -- properties -------------------------------------------------------------------------
@@ -308,168 +139,10 @@ class Ledger:
     def __repr__(self) -> str:
         return f"Ledger({str(self._path)!r}, chip={self._chip!r})"
 
-    # -- reading ----------------------------------------------------------------------------
+    # -- keeping up with the directory ------------------------------------------------------
 
     def _list_final(self) -> list[tuple[int, int, str]]:
-        found = []
-        with os.scandir(self._path) as it:
-            for item in it:
-                m = _FINAL_RE.match(item.name)
-                if m:
-                    found.append((int(m.group(1)), int(m.group(2)), item.name))
-        return found
-
-    def _covering(self, listing: list[tuple[int, int, str]]) -> tuple[list, list]:
-        """Split a listing into the files to read and the redundant ones they contain."""
-        keep, redundant = [], []
-        reach = 0
-        for first, last, name in sorted(listing, key=lambda t: (t[0], -t[1])):
-            if first > last:
-                raise LedgerError(f"{self._path / name}: malformed sequence range")
-            if first > reach:
-                keep.append((first, last, name))
-                reach = last
-            elif last <= reach:
-                redundant.append((first, last, name))
-            else:
-                raise LedgerError(
-                    f"{self._path}: commit files overlap without nesting ({name}); "
-                    "the ledger was modified by something other than xtalkcal"
-                )
-        return keep, redundant
-
-    def _list_digests(self) -> dict[tuple[int, int], str]:
-        found = {}
-        with os.scandir(self._path) as it:
-            for item in it:
-                m = _DIGEST_RE.match(item.name)
-                if m:
-                    found[(int(m.group(1)), int(m.group(2)))] = item.name
-        return found
-
-    def _list_quarantine(self) -> list[tuple[int, int, str]]:
-        qdir = self._path / _QUARANTINE
-        if not qdir.is_dir():
-            return []
-        return sorted(
-            (int(m.group(1)), int(m.group(2)), m.group(0))
-            for m in map(_FINAL_RE.match, os.listdir(qdir))
-            if m
-        )
-
-    def _load(self, first: int, last: int, name: str) -> _CommitFile:
-        """Check one commit file's digest and decode it.
-
-        Raises `_Vanished` if it was removed meanwhile (compaction) and `_BadCommit` for
-        anything else that is wrong with it, so that each file is judged on its own.
-        """
-        path = self._path / name
-        digest_path = self._path / _digest_name(first, last)
-        try:
-            stamp = _stamp(path)
-            try:
-                digest = _read_digest(digest_path)
-            except FileNotFoundError:
-                digest = None
-            if digest is None:
-                if not path.exists():
-                    raise _Vanished(name)  # compaction deletes the commit file first
-                legacy = self._marker.legacy_files
-                if legacy is not None and name not in legacy:
-                    raise _BadCommit(
-                        f"its digest file {digest_path.name} is missing (every commit "
-                        "written since digests exist has one)"
-                    )
-            else:
-                _check_digest(path, digest)
-            with h5py.File(path, "r", locking=False) as fh:
-                version, entries, sweeps = self._decode(fh, first, last)
-        except FileNotFoundError as exc:
-            raise _Vanished(name) from exc
-        except (_BadCommit, _Vanished):
-            raise
-        except LedgerError as exc:
-            raise _BadCommit(str(exc).replace(f"{path}: ", "")) from exc
-        except _Malformed as exc:
-            raise _BadCommit(f"not a well-formed commit: {exc}") from exc
-        except (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,
-                RecursionError) as exc:
-            # h5py reports damaged files, missing members and wrong types this way.
-            raise _BadCommit(
-                f"cannot be decoded as a ledger commit ({type(exc).__name__}: {exc})"
-            ) from exc
-        return _CommitFile(
-            name, first, last, version, tuple(entries), tuple(sweeps), digest is not None, stamp
-        )
-
-    def _decode(
-        self, fh: h5py.File, first: int, last: int
-    ) -> tuple[int, list[LedgerEntry], list[tuple[str, str]]]:
-        """(schema version, entries, sweeps) of an open commit file; `_Malformed` if its
-        structure is not the one written here."""
-        if fh.attrs.get("format") != _FORMAT:
-            raise _Malformed("not an xtalkcal ledger commit file (format attribute)")
-        version = _attr(fh, "schema_version", int, "/")
-        if version > SCHEMA_VERSION:
-            raise _Malformed(
-                f"schema_version {version} is newer than this xtalkcal reads "
-                f"({SCHEMA_VERSION}); upgrade xtalkcal"
-            )
-        if version < 1:
-            raise _Malformed(f"schema_version must be >= 1, got {version}")
-        chip = _attr(fh, "chip", str, "/")
-        if chip != self._chip:
-            raise _Malformed(
-                f"belongs to chip {chip!r}, but the ledger marker {_MARKER_NAME} says "
-                f"{self._chip!r}"
-            )
-        if (_attr(fh, "seq_first", int, "/"), _attr(fh, "seq_last", int, "/")) != (first, last):
-            raise _Malformed("the sequence range in the file disagrees with its name")
-        entries = _columns_to_entries(_migrate(_read_columns(fh), version, "entries"))
-        for e in entries:
-            if not first <= e.seq <= last:
-                raise _Malformed(f"entry seq {e.seq} outside {first}..{last}")
-        if len({(e.seq, e.position) for e in entries}) != len(entries):
-            raise _Malformed("two entries share a (seq, position)")
-        entries.sort(key=lambda e: (e.seq, e.position))
-        sweeps = []
-        for g in _positional(_member(fh, "sweeps", h5py.Group, "/")):
-            if not isinstance(g, h5py.Group):
-                raise _Malformed(f"{g.name}: a sweep must be an HDF5 group")
-            sid = _attr(g, "sweep_id", str, g.name)
-            if not first <= _attr(g, "seq", int, g.name) <= last:
-                raise _Malformed(f"{g.name}: sweep seq outside {first}..{last}")
-            for member in ("variables", "attrs"):
-                _member(g, member, h5py.Group, g.name + "/")
-            sweeps.append((sid, g.name))
-        if len({sid for sid, _ in sweeps}) != len(sweeps):
-            raise _Malformed("a sweep id is stored twice")
-        return version, entries, sweeps
-
-    def _orphan_digest(self, first: int, last: int, name: str) -> str | None:
-        """Judge a digest file above every commit: a write in progress or killed before its
-        rename (None), or the record of a commit file that has gone (the problem)."""
-        digest_path = self._path / name
-        try:
-            info = _read_digest(digest_path)
-        except FileNotFoundError:
-            return None  # a writer cleaned it up
-        except _BadCommit as exc:
-            return exc.problem
-        if (self._path / info["tmp"]).exists():
-            return None  # still being written, or left by a killed writer
-        if (self._path / info["file"]).exists():
-            raise _Vanished(name)  # renamed in since the listing: list again
-        try:
-            again = _read_digest(digest_path)
-        except FileNotFoundError:
-            return None
-        if again != info:
-            raise _Vanished(name)  # a new writer took the number: list again
-        return (
-            f"its digest file {name} is there, but the commit file {info['file']} is not "
-            "(deleted or moved)"
-        )
+        return _list_final(self._path)
 
     def _scan(
         self, *, rehash: bool, listing: list[tuple[int, int, str]] | None = None
@@ -477,67 +150,26 @@ class Ledger:
         """Load every commit file still needed (all with ``rehash``) and judge each one."""
         for _ in range(_MAX_LIST_ATTEMPTS):
             self._marker = _read_marker(self._path)  # legacy ledgers switch on first write
-            keep, _redundant = self._covering(listing or self._list_final())
+            keep, _redundant = _covering(self._path, listing or self._list_final())
             listing = None
-            files: dict[str, _CommitFile] = {}
-            checks: list[CommitCheck] = []
+            cached = {} if rehash else self._files
             try:
-                for first, last, name in keep:
-                    cf = None if rehash else self._files.get(name)
-                    try:
-                        cf = cf or self._load(first, last, name)
-                    except _BadCommit as bad:
-                        checks.append(CommitCheck(name, first, last, "bad", bad.problem))
-                        continue
-                    files[name] = cf
-                    status: CommitStatus = "ok" if cf.verified else "unverified"
-                    checks.append(CommitCheck(name, first, last, status))
-                top = max((la for _, la, _ in keep), default=0)
-                for (first, last), name in sorted(self._list_digests().items()):
-                    if first > top:
-                        problem = self._orphan_digest(first, last, name)
-                        if problem:
-                            checks.append(CommitCheck(
-                                _final_name(first, last), first, last, "missing", problem))
+                return _judge(self._path, self._chip, self._marker, keep, cached)
             except _Vanished:
                 continue  # a compaction replaced files between listing and opening
-            checks += self._gaps(keep)
-            checks.sort(key=lambda c: (c.first, c.last))
-            return files, checks
         raise LedgerError(f"{self._path}: directory kept changing while being read")
-
-    def _gaps(self, keep: list[tuple[int, int, str]]) -> list[CommitCheck]:
-        """Quarantined files, and ranges of sequence numbers no file holds."""
-        out = []
-        quarantined = self._list_quarantine()
-        for first, last, name in quarantined:
-            out.append(CommitCheck(f"{_QUARANTINE}/{name}", first, last, "quarantined"))
-        held = sorted([(f, la) for f, la, _ in keep] + [(f, la) for f, la, _ in quarantined])
-        digests = self._list_digests()
-        expected = 1
-        for first, last in held:
-            if first > expected:
-                a, b = expected, first - 1
-                name = _final_name(a, b)
-                seqs = f"commit {a}" if a == b else f"commits {a}..{b}"
-                problem = f"{seqs} missing: no file holds them (deleted or moved)"
-                if (a, b) in digests:
-                    problem += f"; its digest file {digests[(a, b)]} is still there"
-                out.append(CommitCheck(name, a, b, "missing", problem))
-            expected = max(expected, last + 1)
-        return out
 
     def _refresh(self) -> None:
         """Bring the in-memory view up to the finalised files on disk, or raise."""
         listing = self._list_final()
-        keep, _redundant = self._covering(listing)
+        keep, _redundant = _covering(self._path, listing)
         if [n for _, _, n in keep] == list(self._files):
             return
         files, checks = self._scan(rehash=False, listing=listing)
         if any(c.failed for c in checks):
             raise LedgerReport(self._path, self._chip, tuple(checks)).error()
         self._files = files
-        self._view = self._build_view(files)
+        self._view = _build_view(self._path, files)
 
     def verify(self) -> LedgerReport:
         """Check every commit file again (digest and decoding) and say which are good.
@@ -552,26 +184,7 @@ class Ledger:
         _files, checks = self._scan(rehash=True)
         return LedgerReport(self._path, self._chip, tuple(checks))
 
-    def _build_view(self, files: Mapping[str, _CommitFile]) -> _View:
-        entries: list[LedgerEntry] = []
-        sweeps: dict[str, tuple[str, str, int]] = {}
-        for cf in files.values():
-            entries.extend(cf.entries)
-            for sid, gpath in cf.sweeps:
-                if sid in sweeps:
-                    raise LedgerError(f"{self._path}: sweep id {sid!r} stored twice")
-                sweeps[sid] = (cf.name, gpath, cf.schema_version)
-        by_pair: dict[tuple[str, str], list[LedgerEntry]] = {}
-        for e in entries:
-            by_pair.setdefault((e.aggressor, e.victim), []).append(e)
-        return _View(
-            entries=tuple(entries),
-            by_pair=MappingProxyType(
-                {p: tuple(sorted(v, key=_time_key)) for p, v in by_pair.items()}
-            ),
-            sweeps=MappingProxyType(sweeps),
-            last_seq=max((cf.last for cf in files.values()), default=0),
-        )
+    # -- reading ----------------------------------------------------------------------------
 
     def entries(self) -> tuple[LedgerEntry, ...]:
         """Every stored entry (accepted and rejected), in commit order.
@@ -652,10 +265,8 @@ class Ledger:
 
         Parameters
         ----------
-        aggressor : str
-            Drive line name.
-        victim : str
-            Qubit name.
+        aggressor, victim : str
+            The pair, as for `history`.
 
         Returns
         -------
@@ -705,155 +316,12 @@ class Ledger:
             if sweep_id not in self._view.sweeps:
                 raise KeyError(f"{self._path}: no sweep {sweep_id!r}")
             name, gpath, version = self._view.sweeps[sweep_id]
-            path = self._path / name
-            try:
-                self._recheck(self._files[name])
-                fh = h5py.File(path, "r", locking=False)
-            except LedgerError:
-                raise
-            except OSError as exc:
-                if not path.exists():
-                    continue  # compacted away after the listing; list again
-                raise LedgerError(f"{path}: cannot be read ({exc})") from exc
-            try:
-                with fh:
-                    return SWEEP_READERS[version](fh[gpath])
-            except (OSError, KeyError, ValueError, TypeError, IndexError, AttributeError,
-                    RecursionError) as exc:
-                # HDF5 reports a Fletcher-32 mismatch as a failed filter (the only filter
-                # this code writes).
-                why = ("a data checksum (Fletcher-32) failed: the file changed after it was "
-                       "written" if "filter returned failure" in str(exc)
-                       else f"{type(exc).__name__}: {exc}")
-                raise LedgerError(
-                    f"{path}: sweep {sweep_id!r} cannot be decoded ({why}); "
-                    f"`xtalkcal check {self._path}` checks every commit"
-                ) from exc
+            ds = _read_stored_sweep(self._path, self._files[name], gpath, version, sweep_id)
+            if ds is not None:
+                return ds
         raise LedgerError(f"{self._path}: directory kept changing while being read")
 
-    def _recheck(self, cf: _CommitFile) -> None:
-        """Check a commit file's digest again if the file changed since it was checked.
-
-        Sweeps are read from disk long after the ledger was opened; a rewritten or replaced
-        file is seen by its size, time or inode (rot in place leaves those, and is caught by
-        the Fletcher-32 checksums of the data).
-        """
-        path = self._path / cf.name
-        if _stamp(path) == cf.stamp:
-            return
-        first, last = cf.first, cf.last
-        try:
-            _check_digest(path, _read_digest(self._path / _digest_name(first, last)))
-        except FileNotFoundError:
-            if not path.exists():
-                raise
-            raise LedgerError(
-                f"{path}: changed since it was read, and its digest file is missing"
-            ) from None
-        except _BadCommit as exc:
-            raise LedgerError(f"{path}: {exc.problem}") from None
-
     # -- writing ----------------------------------------------------------------------------
-
-    @contextlib.contextmanager
-    def _locked(self) -> Iterator[None]:
-        try:
-            self._lock.acquire()
-        except filelock.Timeout as exc:
-            raise LedgerError(
-                f"{self._path}: another writer holds the lock for more than "
-                f"{self._lock_timeout_s} s"
-            ) from exc
-        try:
-            yield
-        finally:
-            self._lock.release()
-
-    def _remove_temporaries(self) -> None:
-        # Called under the lock, after a refresh that found every commit: no live writer
-        # owns a temporary file now, and a digest file without its commit file is the
-        # leftover of a killed writer (above every commit) or of a compaction (inside a
-        # kept range). Digests go first, so that a crash here never leaves a digest file
-        # whose temporary file has gone (which would read as a deleted commit).
-        kept = [(f, la) for f, la, _ in self._covering(self._list_final())[0]]
-        top = max((la for _, la in kept), default=0)
-        for (first, last), name in self._list_digests().items():
-            if (self._path / _final_name(first, last)).exists():
-                continue
-            if first > top:
-                try:
-                    orphan = _read_digest(self._path / name)
-                except _BadCommit as exc:
-                    raise LedgerError(f"{self._path / name}: {exc.problem}") from None
-                if not (self._path / orphan["tmp"]).exists():
-                    # Not a killed writer's: the commit file it describes has gone.
-                    raise LedgerError(
-                        f"{self._path / orphan['file']}: missing, but its digest file {name} "
-                        "is there (deleted or moved); nothing was written"
-                    )
-            elif not any(f <= first and last <= la for f, la in kept):
-                raise LedgerError(f"{self._path / _final_name(first, last)}: missing, but its "
-                                  f"digest file {name} is there; nothing was written")
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(self._path / name)
-        with os.scandir(self._path) as it:
-            stale = [item.path for item in it if item.name.startswith(_TMP_PREFIX)]
-        for p in stale:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(p)
-
-    def _start_digests(self) -> None:
-        """On a ledger from before digests (under the lock): record its files as legacy, so
-        that from now on a commit file without a digest is an error."""
-        if self._marker.legacy_files is not None:
-            return
-        keep, _ = self._covering(self._list_final())
-        info = {
-            **self._marker.info,
-            "integrity": {"digest": "sha256", "legacy_files": [n for _, _, n in keep]},
-        }
-        _write_marker(self._path, info)
-        self._marker = _read_marker(self._path)
-
-    def _write_commit(
-        self,
-        first: int,
-        last: int,
-        entries: Iterable[LedgerEntry],
-        fill_sweeps: Callable[[h5py.Group], None],
-    ) -> Path:
-        """Write one immutable commit file: temp name, fsync, atomic rename, fsync dir."""
-        final = self._path / _final_name(first, last)
-        if final.exists():
-            raise LedgerError(f"{final}: already exists; refusing to overwrite a commit")
-        tmp = self._path / f"{_TMP_PREFIX}{os.getpid()}-{uuid.uuid4().hex}.h5"
-        digest = self._path / _digest_name(first, last)
-        renamed = False
-        try:
-            with h5py.File(tmp, "w", libver=_LIBVER) as fh:
-                fh.attrs["format"] = _FORMAT
-                fh.attrs["schema_version"] = SCHEMA_VERSION
-                fh.attrs["chip"] = self._chip
-                fh.attrs["seq_first"] = first
-                fh.attrs["seq_last"] = last
-                fh.attrs["written_utc"] = utc_timestamp()
-                _write_columns(fh, _entries_to_columns(entries))
-                fill_sweeps(fh.create_group("sweeps"))
-            _fsync_file(tmp)
-            size, sha = _hash_file(tmp)
-            record = {"format": _DIGEST_FORMAT, "file": final.name, "tmp": tmp.name,
-                      "size": size, "sha256": sha}
-            # Durable before the rename: a visible commit always has its digest.
-            _atomic_write_bytes(self._path, digest.name, json.dumps(record, indent=1).encode())
-            os.replace(tmp, final)
-            renamed = True
-        finally:
-            if not renamed:
-                for leftover in (digest, tmp):
-                    with contextlib.suppress(FileNotFoundError):
-                        leftover.unlink()
-        _fsync_dir(self._path)
-        return final
 
     def append(
         self,
@@ -884,41 +352,14 @@ class Ledger:
         LedgerError
             If the lock cannot be taken or the file cannot be written.
         """
-        batch = list(entries)
-        sweep_map = dict(sweeps or {})
-        if not batch and not sweep_map:
-            raise LedgerValidationError(
-                "Ledger.append", "entries", "nothing to commit (no entries, no sweeps)"
-            )
-        for k, e in enumerate(batch):
-            _check_entry(e, f"entry[{k}]")
-        plans = [_encode_sweep(sid, ds) for sid, ds in sweep_map.items()]
-        with self._locked():
+        batch, sweep_map, plans = _check_batch(entries, sweeps)
+        with _writer_lock(self._path, self._lock_timeout_s):
             self._refresh()
-            known = self._view.sweeps
-            for sid in sweep_map:
-                if sid in known:
-                    raise LedgerValidationError(
-                        f"sweep {sid!r}", "sweep_id", "already stored; sweep ids are unique"
-                    )
-            for k, e in enumerate(batch):
-                if e.sweep_id and e.sweep_id not in known and e.sweep_id not in sweep_map:
-                    raise LedgerValidationError(
-                        f"entry[{k}] ({e.aggressor!r} -> {e.victim!r})",
-                        "sweep_id",
-                        f"{e.sweep_id!r} is neither in this batch nor stored",
-                    )
-            self._remove_temporaries()
-            self._start_digests()
-            # Numbers of quarantined commits are never given again (they may come back).
-            seq = max([self._view.last_seq, *(la for _, la, _ in self._list_quarantine())]) + 1
+            _check_links(batch, sweep_map, self._view.sweeps)
+            self._prepare_write()
+            seq = _next_seq(self._path, self._view.last_seq)
             stored = tuple(dataclasses.replace(e, seq=seq, position=k) for k, e in enumerate(batch))
-
-            def fill(group: h5py.Group) -> None:
-                for k, plan in enumerate(plans):
-                    _write_sweep(group.create_group(str(k)), plan, seq)
-
-            path = self._write_commit(seq, seq, stored, fill)
+            path = _write_commit(self._path, self._chip, seq, seq, stored, _new_sweeps(plans, seq))
             self._refresh()
         return CommitReceipt(seq, path, stored, tuple(sweep_map))
 
@@ -934,43 +375,28 @@ class Ledger:
         int
             Number of files merged (0 if there was nothing to merge).
         """
-        with self._locked():
+        with _writer_lock(self._path, self._lock_timeout_s):
             self._refresh()
-            keep, redundant = self._covering(self._list_final())
+            keep, redundant = _covering(self._path, self._list_final())
             merged = 0
             if len(keep) >= 2:
                 files = [self._files[n] for _, _, n in keep]
-
-                def fill(group: h5py.Group) -> None:
-                    k = 0
-                    for cf in files:
-                        with h5py.File(self._path / cf.name, "r", locking=False) as src:
-                            for sid, gpath in cf.sweeps:
-                                if cf.schema_version == SCHEMA_VERSION:
-                                    src.copy(src[gpath], group, name=str(k))
-                                else:
-                                    seq = int(src[gpath].attrs["seq"])
-                                    ds = SWEEP_READERS[cf.schema_version](src[gpath])
-                                    _write_sweep(
-                                        group.create_group(str(k)), _encode_sweep(sid, ds), seq
-                                    )
-                                k += 1
-
-                self._remove_temporaries()
-                self._start_digests()
+                self._prepare_write()
                 all_entries = [e for cf in files for e in cf.entries]
-                self._write_commit(files[0].first, files[-1].last, all_entries, fill)
+                fill = _merged_sweeps(self._path, files)
+                _write_commit(self._path, self._chip, files[0].first, files[-1].last,
+                              all_entries, fill)
                 merged = len(files)
                 redundant = redundant + keep
-            for first, last, name in redundant:
-                # The commit file before its digest (readers rely on that order).
-                for gone in (name, _digest_name(first, last)):
-                    with contextlib.suppress(FileNotFoundError):
-                        os.unlink(self._path / gone)
-            if redundant:
-                _fsync_dir(self._path)
+            _remove_redundant(self._path, redundant)
             self._refresh()
         return merged
+
+    def _prepare_write(self) -> None:
+        """Under the lock, before a commit file is written: clear leftovers of killed writers
+        and make sure this ledger keeps digests."""
+        _remove_temporaries(self._path)
+        self._marker = _start_digests(self._path, self._marker)
 
 
 def verify_ledger(path: str | os.PathLike[str]) -> LedgerReport:
@@ -994,46 +420,3 @@ def verify_ledger(path: str | os.PathLike[str]) -> LedgerReport:
     led = Ledger.__new__(Ledger)
     led._setup(path, 60.0)
     return led.verify()
-
-
-def quarantine_commit(
-    path: str | os.PathLike[str], name: str, *, lock_timeout_s: float = 60.0
-) -> Path:
-    """Set a damaged commit file aside so that the rest of the ledger can be read.
-
-    The file and its digest file move into ``<ledger>/quarantine/``; its entries and sweeps
-    leave the history and its sequence numbers no longer count as missing. Moving the two
-    files back undoes it.
-
-    Parameters
-    ----------
-    path : str or os.PathLike
-        The ledger directory.
-    name : str
-        Name of the commit file, e.g. ``"0000000003-0000000003.h5"``.
-    lock_timeout_s : float, optional
-        How long to wait for the writer lock, s.
-
-    Returns
-    -------
-    pathlib.Path
-        Where the commit file is now.
-    """
-    root = Path(path)
-    _read_marker(root)
-    m = _FINAL_RE.match(str(name))
-    if m is None or not (root / name).is_file():
-        raise LedgerError(f"{root}: {name!r} is not a commit file of this ledger")
-    first, last = int(m.group(1)), int(m.group(2))
-    qdir = root / _QUARANTINE
-    with _writer_lock(root, lock_timeout_s):
-        qdir.mkdir(exist_ok=True)
-        if (qdir / name).exists():
-            raise LedgerError(f"{qdir / name}: already in quarantine; move it elsewhere first")
-        os.replace(root / name, qdir / name)
-        digest = _digest_name(first, last)
-        with contextlib.suppress(FileNotFoundError):
-            os.replace(root / digest, qdir / digest)
-        _fsync_dir(qdir)
-        _fsync_dir(root)
-    return qdir / name
