@@ -314,3 +314,19 @@ def test_junk_in_any_field_gives_config_errors_only(which, data):
         if isinstance(exc, FieldErrors):
             assert len(lines) == len(exc.errors)
 
+
+
+def test_located_errors_survive_pickling():
+    # A file's error must cross a process boundary intact: file, field and problem.
+    import pickle
+
+    from xtalkcal.common import FieldErrors
+    from xtalkcal.drift import ScheduleFileError
+    from xtalkcal.exceptions import ConfigError
+
+    one = ConfigError("chip.toml", "qubits[0].f01_ghz", "expected a number")
+    for err in (one, ScheduleFileError("s.json", "pairs", "expected a list"),
+                FieldErrors([one, ConfigError("chip.toml", "name", "missing (required)")])):
+        back = pickle.loads(pickle.dumps(err))
+        assert type(back) is type(err) and str(back) == str(err)
+        assert (back.source, back.field, back.problem) == (err.source, err.field, err.problem)

@@ -41,6 +41,11 @@ class ConfigError(XtalkcalError, ValueError):
         self.problem = problem
         super().__init__(f"{source}: {field}: {problem}")
 
+    def __reduce__(self) -> tuple[object, ...]:
+        # Exception pickles its formatted message as the only argument; keep the fields,
+        # so that an error crosses a process boundary (a worker, a killed writer's report).
+        return (type(self), (self.source, self.field, self.problem))
+
 
 class SafetyLimitError(XtalkcalError, ValueError):
     """A requested drive would exceed a line's amplitude or power limit.

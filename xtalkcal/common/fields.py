@@ -106,6 +106,9 @@ class FieldErrors(ConfigError):
         self.errors: tuple[ConfigError, ...] = tuple(errors)
         self.args = ("\n".join(str(e) for e in self.errors),)
 
+    def __reduce__(self) -> tuple[object, ...]:
+        return (type(self), (self.errors,))
+
 
 def read_header(
     data: Mapping[str, Any], source: str, *, kind: str, version: int, hint: str = ""
