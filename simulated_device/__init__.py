@@ -3,6 +3,23 @@
 This package is the ground truth every xtalkcal test rests on. Its physics is
 validated against SciPy's Mathieu functions (transmon levels) and QuTiP (driven,
 damped dynamics); see tests/test_device_*.py.
+
+What it owns:
+
+* device files (:mod:`simulated_device.device`): the hidden truth of a chip (true
+  couplings with phases and delays, relaxation, readout errors, drift, electronics
+  jitter), and the chip file a lab would write, derived from it;
+* transmon levels (:mod:`simulated_device.transmon`) and the driven, damped dynamics
+  (:mod:`simulated_device.dynamics`);
+* seeded drift versus simulated time (:mod:`simulated_device.drift`,
+  :mod:`simulated_device.drift_state`);
+* :class:`SimRig` (:mod:`simulated_device.rig`), which runs timelines into counts.
+
+May import: :mod:`xtalkcal.hardware`, :mod:`xtalkcal.common` and :mod:`xtalkcal.exceptions`
+only. It stands where a lab's rig stands: it knows the chip, timelines, the rig protocol and
+the safety check, and nothing the calibration builds on top of them, so no result can lean
+on the simulator's insides. In xtalkcal only the command line imports it, as its default
+rig (both rules are checked by tests/test_layers.py).
 """
 
 from importlib import resources

@@ -190,28 +190,20 @@ class DeviceSpec:
 
     # ------------------------------------------------------------------ lookups
     def qubit(self, name: str) -> QubitTruth:
-        for q in self.qubits:
-            if q.name == name:
-                return q
-        raise KeyError(name)
+        """The qubit called ``name`` (KeyError(name) otherwise)."""
+        return _first(self.qubits, "name", name)
 
     def line(self, name: str) -> LineTruth:
-        for ln in self.lines:
-            if ln.name == name:
-                return ln
-        raise KeyError(name)
+        """The line called ``name`` (KeyError(name) otherwise)."""
+        return _first(self.lines, "name", name)
 
     def line_of(self, qubit: str) -> LineTruth:
-        for ln in self.lines:
-            if ln.qubit == qubit:
-                return ln
-        raise KeyError(qubit)
+        """The line meant for ``qubit`` (KeyError(qubit) otherwise)."""
+        return _first(self.lines, "qubit", qubit)
 
     def coupling(self, line: str, qubit: str) -> CouplingTruth | None:
-        for c in self.couplings:
-            if c.line == line and c.qubit == qubit:
-                return c
-        return None
+        """The leak of ``line`` onto ``qubit``, or None where they do not couple."""
+        return next((c for c in self.couplings if c.line == line and c.qubit == qubit), None)
 
     def chip(self) -> Chip:
         """The chip file a lab would have: nominal values only, no hidden truth."""
@@ -236,6 +228,14 @@ class DeviceSpec:
             limits=self.limits,
             source=f"derived from {self.source}",
         )
+
+
+def _first(items: tuple[Any, ...], attribute: str, value: str) -> Any:
+    """The first of ``items`` whose ``attribute`` equals ``value``; KeyError(value) if none."""
+    for item in items:
+        if getattr(item, attribute) == value:
+            return item
+    raise KeyError(value)
 
 
 def load_device(path: str | Path) -> DeviceSpec:

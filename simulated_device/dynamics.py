@@ -357,23 +357,9 @@ def _active_envelope(kind, p, i, t):
 
 
 @nb.njit(cache=True)
-def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi, gen_diss,
-                     start, dur, freq, omega, code, sigma, drag, ramp, n_tones, max_step,
-                     phase_per_step, env_fraction, w, sw):
-    """Advance ρ (in place) over a time-dependent interval [ta, ta + span] by Magnus-4 steps.
-
-    ``w`` and ``sw`` hold the run's L×L and L²×L² work arrays (allocated once per run by
-    ``_evolve_one``). The Hamiltonian is tridiagonal, H = D + z(t)·X + z̄(t)·X† with
-    D = diag(ε_n − n·f) and X = Σ λ_n|n+1⟩⟨n|, so the Magnus exponent
-    Ω = (dt/2)(A1 + A2) + (√3/12)dt²[A2, A1] (A = −i2πH at the two Gauss points) is written
-    out in closed form, without products:
-    [H2, H1] = (z1 − z2)[D, X] + (z̄1 − z̄2)[D, X†] + 2i·Im(z2 z̄1)[X, X†], where
-    [D, X] = Σ (d_{n+1} − d_n)λ_n|n+1⟩⟨n| and [X, X†] = Σ (λ_{n−1}² − λ_n²)|n⟩⟨n|.
-    """
-    (om, U, X2, X3, tmp, T, dvec, lam2, kind, par, half_om, wph, zph, rot, p1, p2) = w
-    sarg, _, sX2, sX3, stmp, d_half, d_full, _ = sw
+def _frame_diagonal(levels_ghz, ladder, f_cur, dvec, lam2):
+    """Fill d_n = ε_n − n·f and λ_n² for the frame ``f_cur``; return the spread of d."""
     L = levels_ghz.shape[0]
-    tm = ta + 0.5 * span
     for n in range(L):
         dvec[n] = levels_ghz[n] - n * f_cur
     for n in range(L - 1):
@@ -383,7 +369,25 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
     for n in range(L):
         dmin = min(dmin, dvec[n])
         dmax = max(dmax, dvec[n])
-    spread = dmax - dmin
+    return dmax - dmin
+
+
+@nb.njit(cache=True)
+def _active_tones(tm, f_cur, spread, max_step, env_fraction, start, dur, freq, omega, code, sigma,
+                  drag, ramp, n_tones, kind, par, half_om, wph):
+    """Gather the tones active at ``tm`` with their per-interval envelope constants.
+
+    For active tone ``i`` this fills its envelope branch ``kind[i]`` and constants ``par[i]``
+    (see :func:`_active_envelope`), half its Rabi rate ``half_om[i]`` and the angular rate
+    ``wph[i]`` of its phase in the frame ``f_cur``. A Gaussian σ or a ramp bounds the step
+    (``env_fraction`` of it), and each tone's offset from the frame widens ``spread``.
+
+    Returns
+    -------
+    n_act, step, spread
+        Number of active tones, the step bound from ``max_step`` and the envelopes, and the
+        largest residual frequency (diagonal spread or a tone's offset).
+    """
     step = max_step
     n_act = 0
     for k in range(n_tones):
@@ -419,23 +423,123 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
         else:
             kind[n_act] = _ENV_ONE
         n_act += 1
+    return n_act, step, spread
+
+
+@nb.njit(cache=True)
+def _step_phases(n_act, wph, dt, c1, c2, rot, p1, p2):
+    """Per-step phase factors of each active tone: one step, and the two Gauss points."""
+    for i in range(n_act):
+        rot[i] = complex(math.cos(wph[i] * dt), math.sin(wph[i] * dt))
+        p1[i] = complex(math.cos(wph[i] * c1 * dt), math.sin(wph[i] * c1 * dt))
+        p2[i] = complex(math.cos(wph[i] * c2 * dt), math.sin(wph[i] * c2 * dt))
+
+
+@nb.njit(cache=True)
+def _split_channels(gen_diss, dt, sarg, d_half, d_full, sX2, sX3, stmp):
+    """Dissipation channels exp(G·dt/2) into ``d_half`` and exp(G·dt) into ``d_full``."""
+    _scaled_into(gen_diss, 0.5 * dt, sarg)
+    _expm_into(sarg, d_half, sX2, sX3, stmp)
+    _scaled_into(gen_diss, dt, sarg)
+    _expm_into(sarg, d_full, sX2, sX3, stmp)
+
+
+@nb.njit(cache=True)
+def _gauss_point_drives(n_act, kind, par, half_om, zph, p1, p2, rot, t0, c1, c2, dt):
+    """Drive amplitudes z1, z2 at the step's two Gauss points; advances ``zph`` by one step."""
+    z1 = 0.0 + 0.0j
+    z2 = 0.0 + 0.0j
+    for i in range(n_act):
+        ki = kind[i]
+        z1 += half_om[i] * _active_envelope(ki, par, i, t0 + c1 * dt) * (zph[i] * p1[i])
+        z2 += half_om[i] * _active_envelope(ki, par, i, t0 + c2 * dt) * (zph[i] * p2[i])
+        zph[i] *= rot[i]
+    return z1, z2
+
+
+@nb.njit(cache=True)
+def _magnus_exponent(om, z1, z2, dvec, lam2, ladder, dt, a_lin, kap):
+    """Fill the tridiagonal Magnus exponent Ω of one step (closed form, see
+    :func:`_magnus_interval`); entries off the tridiagonal are left as they are (zero)."""
+    L = dvec.shape[0]
+    sz = z1 + z2
+    dz = z1 - z2
+    im21 = (z2 * np.conj(z1)).imag
+    # Diagonal of Ω (purely imaginary); a common shift is a global phase of U, which
+    # cancels in UρU†, so it is centred to lower the norm (and the Taylor degree).
+    vmin = 1e300
+    vmax = -1e300
+    for n in range(L):
+        comm = 0.0
+        if n >= 1:
+            comm += lam2[n - 1]
+        if n <= L - 2:
+            comm -= lam2[n]
+        v = -TWO_PI * dt * dvec[n] + 2.0 * kap * im21 * comm
+        om[n, n] = complex(0.0, v)
+        vmin = min(vmin, v)
+        vmax = max(vmax, v)
+    centre = 0.5 * (vmin + vmax)
+    for n in range(L):
+        om[n, n] = complex(0.0, om[n, n].imag - centre)
+    for n in range(L - 1):
+        dd = dvec[n + 1] - dvec[n]
+        om[n + 1, n] = (a_lin * sz + kap * dz * dd) * ladder[n]
+        om[n, n + 1] = (a_lin * np.conj(sz) - kap * np.conj(dz) * dd) * ladder[n]
+
+
+@nb.njit(cache=True)
+def _conjugate(U, rho, T):
+    """ρ ← UρU† in place, computing the upper triangle and mirroring it (ρ stays Hermitian);
+    ``T`` is an L×L work matrix."""
+    L = rho.shape[0]
+    _mm(U, rho, T)
+    for m in range(L):
+        for k in range(m, L):
+            acc = 0.0 + 0.0j
+            for p in range(L):
+                acc += T[m, p] * np.conj(U[k, p])
+            rho[m, k] = acc
+            if k != m:
+                rho[k, m] = np.conj(acc)
+
+
+@nb.njit(cache=True)
+def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi, gen_diss,
+                     start, dur, freq, omega, code, sigma, drag, ramp, n_tones, max_step,
+                     phase_per_step, env_fraction, w, sw):
+    """Advance ρ (in place) over a time-dependent interval [ta, ta + span] by Magnus-4 steps.
+
+    ``w`` and ``sw`` hold the run's L×L and L²×L² work arrays (allocated once per run by
+    ``_evolve_one``). The Hamiltonian is tridiagonal, H = D + z(t)·X + z̄(t)·X† with
+    D = diag(ε_n − n·f) and X = Σ λ_n|n+1⟩⟨n|, so the Magnus exponent
+    Ω = (dt/2)(A1 + A2) + (√3/12)dt²[A2, A1] (A = −i2πH at the two Gauss points) is written
+    out in closed form, without products:
+    [H2, H1] = (z1 − z2)[D, X] + (z̄1 − z̄2)[D, X†] + 2i·Im(z2 z̄1)[X, X†], where
+    [D, X] = Σ (d_{n+1} − d_n)λ_n|n+1⟩⟨n| and [X, X†] = Σ (λ_{n−1}² − λ_n²)|n⟩⟨n|.
+
+    Steps: the frame's diagonal, the active tones (which bound the step), the phase factors
+    per step, the split dissipation channels, then per step the drive at the Gauss points,
+    Ω, U = exp(Ω), ρ ← UρU† and the dissipation channel.
+    """
+    (om, U, X2, X3, tmp, T, dvec, lam2, kind, par, half_om, wph, zph, rot, p1, p2) = w
+    sarg, _, sX2, sX3, stmp, d_half, d_full, _ = sw
+    tm = ta + 0.5 * span
+    spread = _frame_diagonal(levels_ghz, ladder, f_cur, dvec, lam2)
+    n_act, step, spread = _active_tones(tm, f_cur, spread, max_step, env_fraction, start, dur,
+                                        freq, omega, code, sigma, drag, ramp, n_tones, kind, par,
+                                        half_om, wph)
     if spread > 0.0:
         step = min(step, phase_per_step / (TWO_PI * spread))
     nsteps = int(math.ceil(span / step))
     dt = span / nsteps
     c1 = 0.5 - SQRT3 / 6.0
     c2 = 0.5 + SQRT3 / 6.0
-    for i in range(n_act):
-        rot[i] = complex(math.cos(wph[i] * dt), math.sin(wph[i] * dt))
-        p1[i] = complex(math.cos(wph[i] * c1 * dt), math.sin(wph[i] * c1 * dt))
-        p2[i] = complex(math.cos(wph[i] * c2 * dt), math.sin(wph[i] * c2 * dt))
+    _step_phases(n_act, wph, dt, c1, c2, rot, p1, p2)
     # Strang splitting: the half-step channels of consecutive steps merge into one full step.
     damped = gamma1 > 0.0 or gamma_phi > 0.0
     if damped:
-        _scaled_into(gen_diss, 0.5 * dt, sarg)
-        _expm_into(sarg, d_half, sX2, sX3, stmp)
-        _scaled_into(gen_diss, dt, sarg)
-        _expm_into(sarg, d_full, sX2, sX3, stmp)
+        _split_channels(gen_diss, dt, sarg, d_half, d_full, sX2, sX3, stmp)
         _dissipate(d_half, rho)
     a_lin = -1j * math.pi * dt  # (dt/2)·(−i2π)
     kap = -(SQRT3 / 3.0) * math.pi * math.pi * dt * dt  # (√3/12)·dt²·(−i2π)²
@@ -444,48 +548,10 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
         if s % _PHASE_REFRESH == 0:
             for i in range(n_act):
                 zph[i] = complex(math.cos(wph[i] * t0), math.sin(wph[i] * t0))
-        z1 = 0.0 + 0.0j
-        z2 = 0.0 + 0.0j
-        for i in range(n_act):
-            ki = kind[i]
-            z1 += half_om[i] * _active_envelope(ki, par, i, t0 + c1 * dt) * (zph[i] * p1[i])
-            z2 += half_om[i] * _active_envelope(ki, par, i, t0 + c2 * dt) * (zph[i] * p2[i])
-            zph[i] *= rot[i]
-        sz = z1 + z2
-        dz = z1 - z2
-        im21 = (z2 * np.conj(z1)).imag
-        # Diagonal of Ω (purely imaginary); a common shift is a global phase of U, which
-        # cancels in UρU†, so it is centred to lower the norm (and the Taylor degree).
-        vmin = 1e300
-        vmax = -1e300
-        for n in range(L):
-            comm = 0.0
-            if n >= 1:
-                comm += lam2[n - 1]
-            if n <= L - 2:
-                comm -= lam2[n]
-            v = -TWO_PI * dt * dvec[n] + 2.0 * kap * im21 * comm
-            om[n, n] = complex(0.0, v)
-            vmin = min(vmin, v)
-            vmax = max(vmax, v)
-        centre = 0.5 * (vmin + vmax)
-        for n in range(L):
-            om[n, n] = complex(0.0, om[n, n].imag - centre)
-        for n in range(L - 1):
-            dd = dvec[n + 1] - dvec[n]
-            om[n + 1, n] = (a_lin * sz + kap * dz * dd) * ladder[n]
-            om[n, n + 1] = (a_lin * np.conj(sz) - kap * np.conj(dz) * dd) * ladder[n]
+        z1, z2 = _gauss_point_drives(n_act, kind, par, half_om, zph, p1, p2, rot, t0, c1, c2, dt)
+        _magnus_exponent(om, z1, z2, dvec, lam2, ladder, dt, a_lin, kap)
         _expm_into(om, U, X2, X3, tmp)
-        # ρ ← UρU†, computing the upper triangle and mirroring it (ρ stays Hermitian).
-        _mm(U, rho, T)
-        for m in range(L):
-            for k in range(m, L):
-                acc = 0.0 + 0.0j
-                for p in range(L):
-                    acc += T[m, p] * np.conj(U[k, p])
-                rho[m, k] = acc
-                if k != m:
-                    rho[k, m] = np.conj(acc)
+        _conjugate(U, rho, T)
         if damped:
             _dissipate(d_half if s == nsteps - 1 else d_full, rho)
 

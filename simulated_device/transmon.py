@@ -346,14 +346,9 @@ def charge_basis_levels(
 
     Parameters
     ----------
-    ej_ghz, ec_ghz : float
-        Josephson and charging energies in GHz, > 0.
-    n_levels : int, default 3
-        Number of levels L ≥ 2.
-    ng : float, default 0
-        Offset charge in units of 2e.
-    n_cut : int, optional
-        Charge cut-off; default :func:`default_n_cut`.
+    ej_ghz, ec_ghz, n_levels, ng, n_cut
+        As for :func:`charge_basis_spectrum`, which this function diagonalises with; here
+        ``n_levels`` (L) must be at least 2.
 
     Returns
     -------
