@@ -366,6 +366,9 @@ def charge_basis_levels(
     >>> round(levels.f01_ghz, 3), round(levels.anharmonicity_ghz, 3)
     (6.063, -0.277)
     """
+    if isinstance(n_levels, int | np.integer) and not isinstance(n_levels, bool) \
+            and n_levels < 2:  # one level has no 0–1 element to normalise by
+        raise ValueError(f"n_levels must be at least 2, got {n_levels}")
     spectrum = charge_basis_spectrum(ej_ghz, ec_ghz, n_levels=n_levels, ng=ng, n_cut=n_cut)
     elements = spectrum.charge_elements
     n01 = elements[1, 0]

@@ -388,3 +388,11 @@ def test_ejec_rejects_unreachable_frequencies() -> None:
         ejec_from_frequencies(5.0, -4.9)
     with pytest.raises(ValueError, match="f01_ghz"):
         ejec_from_frequencies(-5.0, -0.2)
+
+
+def test_one_level_is_refused_with_a_value_error():
+    # The ladder is normalised by the 0–1 charge element, which one level does not have.
+    from simulated_device.transmon import charge_basis_levels
+
+    with pytest.raises(ValueError, match="n_levels must be at least 2"):
+        charge_basis_levels(15.0, 0.22, n_levels=1)
