@@ -27,6 +27,7 @@ from xtalkcal.fits.verdicts import (
     RejectionReason,
     Verdict,
     VerdictRules,
+    _verdict_for,
 )
 
 # ---------------------------------------------------------------------------
@@ -430,7 +431,7 @@ def _judged(
     dof = sweep.dof
     return NullEstimate(
         method=sweep.method,
-        verdict=Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED,
+        verdict=_verdict_for(reason),
         reason=reason,
         message=message,
         n_points=sweep.n_points,
