@@ -12,13 +12,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits.estimates import NullEstimate, NullFitValues
-from xtalkcal.fits.verdicts import (
-    DEFAULT_RULES,
-    RejectionReason,
-    Verdict,
-    VerdictRules,
-    _verdict_for,
-)
+from xtalkcal.fits.verdicts import DEFAULT_RULES, RejectionReason, Verdict, VerdictRules
 
 # ----------------------------------------------------------------------------- column fits
 
@@ -204,7 +198,7 @@ def _column_victim(
                            floor=float(b[off] - kappa * abs(a) ** 2),
                            floor_stderr=float(math.sqrt(cov_b[off, off])), curvature=kappa,
                            curvature_stderr=sk)
-    verdict = _verdict_for(reason)
+    verdict = Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
     est = NullEstimate(method="paraboloid-column", verdict=verdict, reason=reason, message=msg,
                        n_points=n, total_shots=None,
                        reduced_chi2=chi2 / dof if dof > 0 else math.nan, dof=dof,
