@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any, Generic, TypeVar, overload
 
 import numpy as np
@@ -81,8 +81,11 @@ _NAN_VALUES = NullFitValues(
 _V = TypeVar("_V")
 
 
+@dataclass(frozen=True, eq=False, repr=False)
 class _Guarded(Generic[_V]):
-    """Shared rule: the numbers of a rejected estimate are not handed out."""
+    """The fields every estimate starts with, and the shared rule: the numbers of a rejected
+    estimate are not handed out. Each estimate adds its own ``_values`` (a field with a default).
+    """
 
     method: str
     verdict: Verdict
@@ -92,7 +95,8 @@ class _Guarded(Generic[_V]):
     total_shots: int | None
     reduced_chi2: float
     dof: int
-    _values: _V
+    if TYPE_CHECKING:
+        _values: _V
 
     @property
     def accepted(self) -> bool:
@@ -210,14 +214,6 @@ class NullEstimate(_Guarded[NullFitValues]):
         always quoted at ``K = 1``.
     """
 
-    method: str
-    verdict: Verdict
-    reason: RejectionReason
-    message: str
-    n_points: int
-    total_shots: int | None
-    reduced_chi2: float
-    dof: int
     amplifications: tuple[int, ...] = (1,)
     _values: NullFitValues = field(default=_NAN_VALUES, repr=False)
 
@@ -346,6 +342,7 @@ class RingValues:
 
 
 _NAN_RING = RingValues(*(math.nan,) * 6)
+_RING_KEYS = tuple(f.name for f in fields(RingValues))
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -355,14 +352,6 @@ class RingEstimate(_Guarded[RingValues]):
     Same rule as :class:`NullEstimate`: values raise when rejected.
     """
 
-    method: str
-    verdict: Verdict
-    reason: RejectionReason
-    message: str
-    n_points: int
-    total_shots: int | None
-    reduced_chi2: float
-    dof: int
     _values: RingValues = field(default=_NAN_RING, repr=False)
 
     direction = _Value[float]("direction", "Angle of ``z* - centre`` (rad).")
@@ -378,14 +367,7 @@ class RingEstimate(_Guarded[RingValues]):
         d = self._record_head("xtalkcal.ring_estimate")
         if self.accepted:
             v = self._values
-            d.update(
-                direction=json_float(v.direction),
-                direction_stderr=json_float(v.direction_stderr),
-                amplitude=json_float(v.amplitude),
-                amplitude_stderr=json_float(v.amplitude_stderr),
-                offset=json_float(v.offset),
-                offset_stderr=json_float(v.offset_stderr),
-            )
+            d.update({k: json_float(getattr(v, k)) for k in _RING_KEYS})
         return d
 
     def __repr__(self) -> str:
@@ -559,19 +541,7 @@ class RingBatch(_Batch):
         """The :class:`RingEstimate` of one ring of the batch."""
         idx, reason = self._member(index)
         r = self._raw
-        vals = RingValues(
-            *(
-                float(r[k][idx])
-                for k in (
-                    "direction",
-                    "direction_stderr",
-                    "amplitude",
-                    "amplitude_stderr",
-                    "offset",
-                    "offset_stderr",
-                )
-            )
-        )
+        vals = RingValues(*(float(r[k][idx]) for k in _RING_KEYS))
         if reason is RejectionReason.NONE:
             msg = "accepted"
         elif reason is RejectionReason.NO_SIGNAL:

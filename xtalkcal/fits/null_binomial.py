@@ -189,7 +189,6 @@ def _amplification_array(amplification: ArrayLike, n: int) -> NDArray[np.float64
     return ka
 
 
-
 # ---------------------------------------------------------------------------
 # Iterated reweighting and the choice of branch
 # ---------------------------------------------------------------------------
@@ -235,7 +234,6 @@ def _binomial_irls(
     p_fit = np.clip(_model_mean(zn, ka, pars.valuesdict(), model), 1e-12, 1 - 1e-12)
     nll2 = -2.0 * float(np.sum(kc * np.log(p_fit) + (n - kc) * np.log1p(-p_fit)))
     return _LmfitOutcome(dict(pars.valuesdict()), success, nll2, nfev)
-
 
 
 def _best_branch(
