@@ -138,14 +138,7 @@ def fit_null(
     sweep = _screen(method, za, n_par, f"the {model} model", int(np.sum(n)), amps, rules)
     if isinstance(sweep, NullEstimate):
         return sweep
-    p_obs, sig = binomial_signal(kc, n)
-    st = _first_start(initial, sweep, p_obs, sig, ka)
-    starts = [st]
-    if initial is None and model == "saturating":
-        # A second start with the ceiling at the data maximum.
-        top = float(np.max(p_obs)) - max(st.floor, 0.0)
-        alt_amp = float(np.clip(top, 0.02, 0.999 * (1 - max(st.floor, 0.0))))
-        starts.append(_Start(st.x, st.y, st.floor, st.kappa, alt_amp))
+    starts = _binomial_starts(initial, sweep, kc, n, ka, model)
     best = _best_branch(sweep.zn, kc, n, ka, starts, model, min_amplitude)
     if best is None:
         return sweep.rejected(
@@ -190,8 +183,29 @@ def _amplification_array(amplification: ArrayLike, n: int) -> NDArray[np.float64
 
 
 # ---------------------------------------------------------------------------
-# Iterated reweighting and the choice of branch
+# Starts, iterated reweighting and the choice of branch
 # ---------------------------------------------------------------------------
+
+
+def _binomial_starts(
+    initial: NullEstimate | Mapping[str, Any] | None,
+    sweep: _Sweep,
+    kc: NDArray[np.float64],
+    n: NDArray[np.float64],
+    ka: NDArray[np.float64],
+    model: NullModel,
+) -> list[_Start]:
+    """Starting values: the caller's, or the data's; with the data's, the saturating model
+    gets a second start with the ceiling at the data maximum.
+    """
+    p_obs, sig = binomial_signal(kc, n)
+    st = _first_start(initial, sweep, p_obs, sig, ka)
+    starts = [st]
+    if initial is None and model == "saturating":
+        top = float(np.max(p_obs)) - max(st.floor, 0.0)
+        alt_amp = float(np.clip(top, 0.02, 0.999 * (1 - max(st.floor, 0.0))))
+        starts.append(_Start(st.x, st.y, st.floor, st.kappa, alt_amp))
+    return starts
 
 
 def _binomial_irls(
