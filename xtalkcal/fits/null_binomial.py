@@ -16,7 +16,6 @@ from numpy.typing import ArrayLike, NDArray
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits.estimates import NullEstimate
 from xtalkcal.fits.null_lsq import (
-    _first_start,
     _judged,
     _lmfit_least_squares,
     _LmfitOutcome,
@@ -25,6 +24,7 @@ from xtalkcal.fits.null_lsq import (
     _model_mean,
     _screen,
     _Start,
+    _start_values,
     _Sweep,
     _weighted_residual,
 )
@@ -138,7 +138,9 @@ def fit_null(
     sweep = _screen(method, za, n_par, f"the {model} model", int(np.sum(n)), amps, rules)
     if isinstance(sweep, NullEstimate):
         return sweep
-    starts = _binomial_starts(initial, sweep, kc, n, ka, model)
+    p_obs, sig = binomial_signal(kc, n)
+    saturating = model == "saturating"
+    starts = _start_values(initial, sweep, p_obs, sig, ka, second_ceiling=saturating)
     best = _best_branch(sweep.zn, kc, n, ka, starts, model, min_amplitude)
     if best is None:
         return sweep.rejected(
@@ -183,29 +185,8 @@ def _amplification_array(amplification: ArrayLike, n: int) -> NDArray[np.float64
 
 
 # ---------------------------------------------------------------------------
-# Starts, iterated reweighting and the choice of branch
+# Iterated reweighting and the choice of branch
 # ---------------------------------------------------------------------------
-
-
-def _binomial_starts(
-    initial: NullEstimate | Mapping[str, Any] | None,
-    sweep: _Sweep,
-    kc: NDArray[np.float64],
-    n: NDArray[np.float64],
-    ka: NDArray[np.float64],
-    model: NullModel,
-) -> list[_Start]:
-    """Starting values: the caller's, or the data's; with the data's, the saturating model
-    gets a second start with the ceiling at the data maximum.
-    """
-    p_obs, sig = binomial_signal(kc, n)
-    st = _first_start(initial, sweep, p_obs, sig, ka)
-    starts = [st]
-    if initial is None and model == "saturating":
-        top = float(np.max(p_obs)) - max(st.floor, 0.0)
-        alt_amp = float(np.clip(top, 0.02, 0.999 * (1 - max(st.floor, 0.0))))
-        starts.append(_Start(st.x, st.y, st.floor, st.kappa, alt_amp))
-    return starts
 
 
 def _binomial_irls(

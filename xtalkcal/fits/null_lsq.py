@@ -231,17 +231,28 @@ def _default_start(
     return _Start(z0.real, z0.imag, float(np.min(s)), kap, None)
 
 
-def _first_start(
+def _start_values(
     initial: NullEstimate | Mapping[str, Any] | None,
     sweep: _Sweep,
     s: NDArray[np.float64],
     sigma: NDArray[np.float64],
     k: NDArray[np.float64],
-) -> _Start:
-    """The caller's starting values if given, else those from the data."""
+    *,
+    second_ceiling: bool = False,
+) -> list[_Start]:
+    """Starting values: the caller's if given, else those from the data.
+
+    With ``second_ceiling`` (saturating model) and no caller's values, a second start follows
+    with the fringe ceiling at the data maximum.
+    """
     if initial is not None:
-        return _start_from_initial(initial, sweep.centre, sweep.scale)
-    return _default_start(sweep.zn, s, sigma, k)
+        return [_start_from_initial(initial, sweep.centre, sweep.scale)]
+    st = _default_start(sweep.zn, s, sigma, k)
+    if not second_ceiling:
+        return [st]
+    top = float(np.max(s)) - max(st.floor, 0.0)
+    alt_amp = float(np.clip(top, 0.02, 0.999 * (1 - max(st.floor, 0.0))))
+    return [st, _Start(st.x, st.y, st.floor, st.kappa, alt_amp)]
 
 
 # ---------------------------------------------------------------------------
@@ -487,7 +498,7 @@ def fit_null_gaussian(
     if isinstance(sweep, NullEstimate):
         return sweep
     ones = np.ones(sweep.n_points)
-    st = _first_start(initial, sweep, sa, sg, ones)
+    (st,) = _start_values(initial, sweep, sa, sg, ones)
     inv_sig = 1 / sg
     out = _lmfit_least_squares(
         _weighted_residual(sweep.zn, ones, sa, inv_sig, "paraboloid"),
