@@ -21,7 +21,7 @@ from xtalkcal.calibrate import (
 )
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits import fit_null, fit_paraboloid_counts, null_signal
-from xtalkcal.fits.nonlinear import null_signal_jacobian
+from xtalkcal.fits.null_model import null_signal_jacobian
 
 ROOT = Path(__file__).resolve().parents[1]
 

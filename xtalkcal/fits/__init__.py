@@ -18,10 +18,14 @@ from xtalkcal.fits.estimates import (
     RingEstimate,
     RingValues,
 )
-from xtalkcal.fits.nonlinear import (
-    fisher_covariance,
+from xtalkcal.fits.null_binomial import (
     fit_null,
+)
+from xtalkcal.fits.null_lsq import (
     fit_null_gaussian,
+)
+from xtalkcal.fits.null_model import (
+    fisher_covariance,
     null_signal,
     null_signal_jacobian,
 )

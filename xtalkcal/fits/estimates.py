@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Any, Generic, TypeVar, overload
 
 import numpy as np
@@ -23,6 +23,7 @@ from xtalkcal.fits.verdicts import (
     RejectionReason,
     Verdict,
     VerdictRules,
+    _verdict_for,
 )
 
 
@@ -80,13 +81,22 @@ _NAN_VALUES = NullFitValues(
 _V = TypeVar("_V")
 
 
+@dataclass(frozen=True, eq=False, repr=False)
 class _Guarded(Generic[_V]):
-    """Shared rule: the numbers of a rejected estimate are not handed out."""
+    """The fields every estimate starts with, and the shared rule: the numbers of a rejected
+    estimate are not handed out. Each estimate adds its own ``_values`` (a field with a default).
+    """
 
+    method: str
     verdict: Verdict
     reason: RejectionReason
     message: str
-    _values: _V
+    n_points: int
+    total_shots: int | None
+    reduced_chi2: float
+    dof: int
+    if TYPE_CHECKING:
+        _values: _V
 
     @property
     def accepted(self) -> bool:
@@ -107,6 +117,21 @@ class _Guarded(Generic[_V]):
         Never store, export or act on these for a rejected estimate.
         """
         return self._values
+
+    def _record_head(self, schema: str) -> dict[str, Any]:
+        """The first keys of :meth:`to_dict`, common to every estimate, valid or not."""
+        return {
+            "schema": schema,
+            "schema_version": _SCHEMA_VERSION,
+            "method": self.method,
+            "verdict": self.verdict.value,
+            "reason": self.reason.value,
+            "message": self.message,
+            "n_points": int(self.n_points),
+            "total_shots": None if self.total_shots is None else int(self.total_shots),
+            "reduced_chi2": json_float(self.reduced_chi2),
+            "dof": int(self.dof),
+        }
 
 
 _T = TypeVar("_T")
@@ -189,14 +214,6 @@ class NullEstimate(_Guarded[NullFitValues]):
         always quoted at ``K = 1``.
     """
 
-    method: str
-    verdict: Verdict
-    reason: RejectionReason
-    message: str
-    n_points: int
-    total_shots: int | None
-    reduced_chi2: float
-    dof: int
     amplifications: tuple[int, ...] = (1,)
     _values: NullFitValues = field(default=_NAN_VALUES, repr=False)
 
@@ -231,19 +248,8 @@ class NullEstimate(_Guarded[NullFitValues]):
     # -- records --------------------------------------------------------
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record. Numeric values only when accepted."""
-        d: dict[str, Any] = {
-            "schema": "xtalkcal.null_estimate",
-            "schema_version": _SCHEMA_VERSION,
-            "method": self.method,
-            "verdict": self.verdict.value,
-            "reason": self.reason.value,
-            "message": self.message,
-            "n_points": int(self.n_points),
-            "total_shots": None if self.total_shots is None else int(self.total_shots),
-            "reduced_chi2": json_float(self.reduced_chi2),
-            "dof": int(self.dof),
-            "amplifications": [int(k) for k in self.amplifications],
-        }
+        d = self._record_head("xtalkcal.null_estimate")
+        d["amplifications"] = [int(k) for k in self.amplifications]
         if self.accepted:
             v = self._values
             d.update(
@@ -336,6 +342,7 @@ class RingValues:
 
 
 _NAN_RING = RingValues(*(math.nan,) * 6)
+_RING_KEYS = tuple(f.name for f in fields(RingValues))
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -345,14 +352,6 @@ class RingEstimate(_Guarded[RingValues]):
     Same rule as :class:`NullEstimate`: values raise when rejected.
     """
 
-    method: str
-    verdict: Verdict
-    reason: RejectionReason
-    message: str
-    n_points: int
-    total_shots: int | None
-    reduced_chi2: float
-    dof: int
     _values: RingValues = field(default=_NAN_RING, repr=False)
 
     direction = _Value[float]("direction", "Angle of ``z* - centre`` (rad).")
@@ -365,28 +364,10 @@ class RingEstimate(_Guarded[RingValues]):
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record. Numeric values only when accepted."""
-        d: dict[str, Any] = {
-            "schema": "xtalkcal.ring_estimate",
-            "schema_version": _SCHEMA_VERSION,
-            "method": self.method,
-            "verdict": self.verdict.value,
-            "reason": self.reason.value,
-            "message": self.message,
-            "n_points": int(self.n_points),
-            "total_shots": None if self.total_shots is None else int(self.total_shots),
-            "reduced_chi2": json_float(self.reduced_chi2),
-            "dof": int(self.dof),
-        }
+        d = self._record_head("xtalkcal.ring_estimate")
         if self.accepted:
             v = self._values
-            d.update(
-                direction=json_float(v.direction),
-                direction_stderr=json_float(v.direction_stderr),
-                amplitude=json_float(v.amplitude),
-                amplitude_stderr=json_float(v.amplitude_stderr),
-                offset=json_float(v.offset),
-                offset_stderr=json_float(v.offset_stderr),
-            )
+            d.update({k: json_float(getattr(v, k)) for k in _RING_KEYS})
         return d
 
     def __repr__(self) -> str:
@@ -409,8 +390,52 @@ def _mask(arr: NDArray[Any], ok: NDArray[np.bool_]) -> NDArray[Any]:
     return out
 
 
+_E = TypeVar("_E", "NullEstimate", "RingEstimate")
+
+
+class _Batch:
+    """Shared by the batch results: reasons, and one member's estimate."""
+
+    n_points: int
+    reason_codes: NDArray[np.int64]
+    reduced_chi2: NDArray[np.float64]
+    dof: int
+
+    def reasons(self) -> NDArray[np.object_]:
+        """Array of :class:`RejectionReason` with the batch shape."""
+        return np.asarray(_REASONS, dtype=object)[self.reason_codes]
+
+    def _member(self, index: int | tuple[int, ...]) -> tuple[tuple[Any, ...], RejectionReason]:
+        """Index tuple and rejection reason of one member of the batch."""
+        idx = np.index_exp[index] if not isinstance(index, tuple) else index
+        return idx, _REASONS[int(self.reason_codes[idx])]
+
+    def _member_estimate(
+        self,
+        cls: type[_E],
+        idx: tuple[Any, ...],
+        reason: RejectionReason,
+        message: str,
+        method: str,
+        total_shots: int | None,
+        values: Any,
+    ) -> _E:
+        """The estimate of member ``idx`` with its verdict, message and values."""
+        return cls(
+            method=method,
+            verdict=_verdict_for(reason),
+            reason=reason,
+            message=message,
+            n_points=self.n_points,
+            total_shots=total_shots,
+            reduced_chi2=float(self.reduced_chi2[idx]),
+            dof=self.dof,
+            _values=values,
+        )
+
+
 @dataclass(frozen=True, eq=False)
-class ParaboloidBatch:
+class ParaboloidBatch(_Batch):
     """Results of :func:`fit_paraboloid` over a batch of sweeps.
 
     Array attributes have the batch shape (``z`` and ``s`` minus their last
@@ -455,10 +480,6 @@ class ParaboloidBatch:
         "curvature_stderr", "Standard errors of ``curvature``."
     )
 
-    def reasons(self) -> NDArray[np.object_]:
-        """Array of :class:`RejectionReason` with the batch shape."""
-        return np.asarray(_REASONS, dtype=object)[self.reason_codes]
-
     def unchecked(self, name: str) -> NDArray[Any]:
         """Raw fitted array regardless of verdicts -- diagnostics only.
 
@@ -472,10 +493,7 @@ class ParaboloidBatch:
 
     def estimate(self, index: int | tuple[int, ...] = ()) -> NullEstimate:
         """The :class:`NullEstimate` of one sweep of the batch."""
-        idx = np.index_exp[index] if not isinstance(index, tuple) else index
-        code = int(self.reason_codes[idx])
-        reason = _REASONS[code]
-        verdict = Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
+        idx, reason = self._member(index)
         r = self._raw
         cov = np.asarray(r["covariance"][idx], dtype=float)
         values = NullFitValues(
@@ -488,21 +506,11 @@ class ParaboloidBatch:
         )
         shots = None if self.total_shots is None else int(self.total_shots[idx])
         msg = _paraboloid_message(reason, {k: v[idx] for k, v in r.items()}, self.dof, self.rules)
-        return NullEstimate(
-            method=self.method,
-            verdict=verdict,
-            reason=reason,
-            message=msg,
-            n_points=self.n_points,
-            total_shots=shots,
-            reduced_chi2=float(self.reduced_chi2[idx]),
-            dof=self.dof,
-            _values=values,
-        )
+        return self._member_estimate(NullEstimate, idx, reason, msg, self.method, shots, values)
 
 
 @dataclass(frozen=True, eq=False)
-class RingBatch:
+class RingBatch(_Batch):
     """Results of :func:`fit_ring` over a batch of rings (NaN where rejected)."""
 
     shape: tuple[int, ...]
@@ -525,32 +533,15 @@ class RingBatch:
     )
     offset = _Masked[NDArray[np.float64]]("offset", "Ring means ``a0`` (signal units).")
 
-    def reasons(self) -> NDArray[np.object_]:
-        return np.asarray(_REASONS, dtype=object)[self.reason_codes]
-
     def unchecked(self, name: str) -> NDArray[Any]:
         """Raw fitted array regardless of verdicts -- diagnostics only."""
         return self._raw[name]
 
     def estimate(self, index: int | tuple[int, ...] = ()) -> RingEstimate:
         """The :class:`RingEstimate` of one ring of the batch."""
-        idx = np.index_exp[index] if not isinstance(index, tuple) else index
-        reason = _REASONS[int(self.reason_codes[idx])]
-        verdict = Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
+        idx, reason = self._member(index)
         r = self._raw
-        vals = RingValues(
-            *(
-                float(r[k][idx])
-                for k in (
-                    "direction",
-                    "direction_stderr",
-                    "amplitude",
-                    "amplitude_stderr",
-                    "offset",
-                    "offset_stderr",
-                )
-            )
-        )
+        vals = RingValues(*(float(r[k][idx]) for k in _RING_KEYS))
         if reason is RejectionReason.NONE:
             msg = "accepted"
         elif reason is RejectionReason.NO_SIGNAL:
@@ -562,17 +553,8 @@ class RingBatch:
             msg = f"{self.n_points} ring points; at least 5 needed"
         else:
             msg = "the ring angles do not determine a sinusoid (degenerate design)"
-        return RingEstimate(
-            method="ring_harmonic_wls",
-            verdict=verdict,
-            reason=reason,
-            message=msg,
-            n_points=self.n_points,
-            total_shots=None,
-            reduced_chi2=float(self.reduced_chi2[idx]),
-            dof=self.dof,
-            _values=vals,
-        )
+        method = "ring_harmonic_wls"
+        return self._member_estimate(RingEstimate, idx, reason, msg, method, None, vals)
 
 
 def _paraboloid_message(

@@ -55,6 +55,23 @@ def _broadcast(**arrays: NDArray[Any]) -> tuple[NDArray[Any], ...]:
     return tuple(np.broadcast_to(v, shape) for v in arrays.values())
 
 
+def _weighted(
+    points_name: str, points: NDArray[Any], s: NDArray[np.float64], sigma: ArrayLike | None
+) -> tuple[NDArray[Any], NDArray[np.float64], NDArray[np.float64]]:
+    """Points and signals broadcast together, with weights ``1/sigma**2`` (ones without sigma).
+
+    ``points_name`` names the points array in a broadcast error.
+    """
+    if sigma is None:
+        pts, sa = _broadcast(**{points_name: points, "s": s})
+        return pts, sa, np.ones(sa.shape)
+    sg = _as_real(sigma, "sigma")
+    if np.any(sg <= 0):
+        raise FitInputError("sigma must be positive at every point")
+    pts, sa, sg = _broadcast(**{points_name: points, "s": s, "sigma": sg})
+    return pts, sa, 1.0 / (sg * sg)
+
+
 def binomial_signal(
     counts: ArrayLike, shots: ArrayLike
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
@@ -343,15 +360,7 @@ def fit_paraboloid(
             f"z and s must have the same number of points on the last axis, "
             f"got {za.shape[-1]} and {sa.shape[-1]}"
         )
-    if sigma is not None:
-        sg = _as_real(sigma, "sigma")
-        if np.any(sg <= 0):
-            raise FitInputError("sigma must be positive at every point")
-        za, sa, sg = _broadcast(z=za, s=sa, sigma=sg)
-        w = 1.0 / (sg * sg)
-    else:
-        za, sa = _broadcast(z=za, s=sa)
-        w = np.ones(sa.shape)
+    za, sa, w = _weighted("z", za, sa, sigma)
     total = None
     if shots is not None:
         sh = _as_real(shots, "shots")

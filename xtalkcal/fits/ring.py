@@ -8,7 +8,7 @@ from numpy.typing import ArrayLike
 
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits.estimates import RingBatch
-from xtalkcal.fits.paraboloid import _as_real, _batched_wls, _broadcast
+from xtalkcal.fits.paraboloid import _as_real, _batched_wls, _weighted
 from xtalkcal.fits.verdicts import _CODE, DEFAULT_RULES, RejectionReason, VerdictRules
 
 # ---------------------------------------------------------------------------
@@ -69,15 +69,7 @@ def fit_ring(
         raise FitInputError(
             f"phi and s must have the same number of points, got {ph.shape[-1]} and {sa.shape[-1]}"
         )
-    if sigma is not None:
-        sg = _as_real(sigma, "sigma")
-        if np.any(sg <= 0):
-            raise FitInputError("sigma must be positive at every point")
-        ph, sa, sg = _broadcast(phi=ph, s=sa, sigma=sg)
-        w = 1 / sg**2
-    else:
-        ph, sa = _broadcast(phi=ph, s=sa)
-        w = np.ones(sa.shape)
+    ph, sa, w = _weighted("phi", ph, sa, sigma)
     shape, n = sa.shape[:-1], sa.shape[-1]
     dof = n - 3
     nan = np.full(shape, np.nan)

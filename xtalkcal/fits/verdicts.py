@@ -54,6 +54,11 @@ _REASONS: tuple[RejectionReason, ...] = tuple(RejectionReason)
 _CODE = {r: i for i, r in enumerate(_REASONS)}
 
 
+def _verdict_for(reason: RejectionReason) -> Verdict:
+    """``accepted`` when nothing rejected the estimate, else ``rejected``."""
+    return Verdict.ACCEPTED if reason is RejectionReason.NONE else Verdict.REJECTED
+
+
 class RejectedEstimateError(XtalkcalError, ValueError):
     """A value was requested from an estimate whose verdict is *rejected*."""
 
