@@ -10,18 +10,10 @@ from pathlib import Path
 import matplotlib.pyplot as plt
 import numpy as np
 
+import xtalkcal.outputs.plot as plots
 from xtalkcal.calibrate import CalibrationResult
 from xtalkcal.hardware import limits_summary
 from xtalkcal.outputs.export import dumps, format_table
-from xtalkcal.outputs.plot import (
-    plot_drift,
-    plot_gate_errors,
-    plot_matrix_db,
-    plot_matrix_phase,
-    plot_null_landscape,
-    plot_residuals,
-    plot_verification,
-)
 
 __all__ = ["write_report"]
 
@@ -46,8 +38,9 @@ def write_report(result: CalibrationResult, out: str | Path, *,
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     figs: list[tuple[str, str]] = []
-    figs.append(("Crosstalk magnitude", _save(plot_matrix_db(result), out / "matrix_db.png")))
-    figs.append(("Crosstalk phase", _save(plot_matrix_phase(result), out / "matrix_phase.png")))
+    figs.append(("Crosstalk magnitude", _save(plots.plot_matrix_db(result), out / "matrix_db.png")))
+    figs.append(("Crosstalk phase",
+                 _save(plots.plot_matrix_phase(result), out / "matrix_phase.png")))
     nulled = [p for p in result.pairs if p.accepted and p.nulled]
     leak = [p for p in nulled if p.method == "leakage"]
     for p in (leak or nulled)[:1] + sorted(nulled, key=lambda p: -abs(p.x))[:1]:
@@ -56,11 +49,11 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         name = f"null_{p.aggressor}_{p.victim}.png"
         if any(f[1] == name for f in figs):
             continue
-        ax = plot_null_landscape(sweep, p.victim, z_star=-p.x * amp, cov=p.x_cov * amp**2)
+        ax = plots.plot_null_landscape(sweep, p.victim, z_star=-p.x * amp, cov=p.x_cov * amp**2)
         figs.append((f"Null search {p.aggressor} → {p.victim} ({p.method})", _save(ax, out / name)))
     worst = None
     if truth:
-        figs.append(("Residuals", _save(plot_residuals(result, truth), out / "residuals.png")))
+        figs.append(("Residuals", _save(plots.plot_residuals(result, truth), out / "residuals.png")))
         res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
         worst = max(res) if res else None
     extra: list[str] = []
@@ -129,7 +122,8 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
                 if r is not None:
                     true_after[(c.aggressor, c.victim)] = 20 * math.log10(
                         max(abs(truth[(c.aggressor, c.victim)] + r), 1e-12))
-        ax = plot_verification(campaign.verification, campaign.calibration, truth=true_after)
+        ax = plots.plot_verification(campaign.verification, campaign.calibration,
+                                     truth=true_after)
         figs.append(("Verification", _save(ax, out / "verification.png")))
         n_in = sum(c.outcome.decision.value == "within" for c in campaign.verification)
         n_sure = sum(c.outcome.decision.value == "within" and c.outcome.confident
@@ -143,7 +137,7 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
             f"{worst.victim}, {worst.outcome.residual_db:.1f} dB with an upper bound of "
             f"{worst.outcome.residual_upper_db:.1f} dB")
     if campaign.rb is not None:
-        ax = plot_gate_errors(campaign.rb)
+        ax = plots.plot_gate_errors(campaign.rb)
         figs.append(("Gate errors", _save(ax, out / "gate_errors.png")))
         lines += ["", "## Simultaneous randomized benchmarking", ""]
         if campaign.trims:
@@ -154,7 +148,7 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
                                   for q, t in campaign.trims.items()) + ".", ""]
         lines += ["```", campaign.rb.table(), "```"]
     if campaign.drift:
-        axes = plot_drift(campaign.drift, campaign.tolerance_db)
+        axes = plots.plot_drift(campaign.drift, campaign.tolerance_db)
         figs.append(("Drift watch", _save(axes[0], out / "drift.png")))
         tr = [s.true_residual_db for s in campaign.drift if s.true_residual_db is not None]
         acts = ", ".join(f"{v} {k}" for k, v in campaign.drift_actions.items())
