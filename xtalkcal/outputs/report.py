@@ -53,7 +53,8 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         figs.append((f"Null search {p.aggressor} → {p.victim} ({p.method})", _save(ax, out / name)))
     worst = None
     if truth:
-        figs.append(("Residuals", _save(plots.plot_residuals(result, truth), out / "residuals.png")))
+        ax = plots.plot_residuals(result, truth)
+        figs.append(("Residuals", _save(ax, out / "residuals.png")))
         res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
         worst = max(res) if res else None
     extra: list[str] = []
