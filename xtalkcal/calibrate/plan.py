@@ -216,7 +216,7 @@ def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
     return groups + ([stark] if stark else [])
 
 
-def _companion_radius(amp: float, chip: Chip, victim: str, centre: complex) -> float:
+def companion_radius(amp: float, chip: Chip, victim: str, centre: complex) -> float:
     """Ring radius of a tone that varies only to reach the other victims (a companion)."""
     return min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
                0.45 * chip.amplitude_limit(chip.line_of(victim).name) - abs(centre))
