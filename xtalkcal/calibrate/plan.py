@@ -36,7 +36,7 @@ STARK_PHASE_MAX = 1.5
 # Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
 STRONGEST_DB = -20.0
 #: A victim joins a joint resonant null pass only if its null lies within this many
-#: final ring radii (RING_MARGIN target errors) of zero (see calibrate_pass).
+#: final ring radii (RING_MARGIN target errors) of zero (see passes.hand_over).
 JOINT_NULL_SPAN = 2.0
 
 
