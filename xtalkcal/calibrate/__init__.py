@@ -16,11 +16,17 @@ from xtalkcal.calibrate.design import (
     optimal_ring_radius,
     ring_design,
 )
-from xtalkcal.calibrate.passes import (
-    PassStart,
-    calibrate_pass,
+from xtalkcal.calibrate.pass_data import (
     measure_probe,
     shots_per_point,
+)
+from xtalkcal.calibrate.pass_plan import (
+    PassRequest,
+    PassStart,
+)
+from xtalkcal.calibrate.passes import (
+    Handoff,
+    calibrate_pass,
 )
 from xtalkcal.calibrate.plan import (
     JOINT_NULL_SPAN,
@@ -84,5 +90,7 @@ __all__ = [
     "survey_radii",
     "calibrate_chip",
     "PassStart",
+    "PassRequest",
+    "Handoff",
     "measure_probe",
 ]

@@ -6,7 +6,8 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Collection, Mapping
 
-from xtalkcal.calibrate.passes import PassStart, calibrate_pass
+from xtalkcal.calibrate.pass_plan import PassRequest, PassStart
+from xtalkcal.calibrate.passes import calibrate_pass
 from xtalkcal.calibrate.plan import (
     RING_MARGIN,
     RISE_PROBABILITY,
@@ -78,22 +79,19 @@ def calibrate_chip(
                     # solve needs it) instead of folding it into these victims' nulls.
                     companions = _nulled_tones(result, protocol, line) if column_parallel else ()
                     force = tuple((null_victims or {}).get(line, ()))
-                    handoff = calibrate_pass(rig, runner, protocol, result, line,
-                                              victims_of_pass,
-                                              [methods[v] for v in victims_of_pass], shape,
-                                              stark=(gi == 1), say=say, companions=companions,
-                                              key_prefix=key_prefix, force=force,
-                                              split=column_parallel)
+                    handoff = calibrate_pass(rig, runner, protocol, result, PassRequest(
+                        line, victims_of_pass, [methods[v] for v in victims_of_pass], shape,
+                        stark=(gi == 1), companions=companions, key_prefix=key_prefix,
+                        force=force, split=column_parallel), say=say)
                     _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
                                      methods, shape, say=say, key_prefix=key_prefix)
                     for v in handoff.resurvey:
                         # Surveyed again alone: a pulse spacing coherent for it and its
                         # own selection (as pair by pair), the column's tones ringing.
-                        calibrate_pass(rig, runner, protocol, result, line, [v],
-                                        [methods[v]], shape, stark=False, say=say,
-                                        companions=_nulled_tones(result, protocol, line),
-                                        key_prefix=key_prefix,
-                                        force=force, split=True)
+                        calibrate_pass(rig, runner, protocol, result, PassRequest(
+                            line, [v], [methods[v]], shape, stark=False,
+                            companions=_nulled_tones(result, protocol, line),
+                            key_prefix=key_prefix, force=force, split=True), say=say)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
@@ -126,9 +124,9 @@ def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shap
         rad = min(math.sqrt(RISE_PROBABILITY / (max(kappa, 1e-12) * (K / k_survey) ** 2)),
                   cap)
         companions = _nulled_tones(result, protocol, line) + tuple(waiting.items())
-        calibrate_pass(rig, runner, protocol, result, line, [v], [methods[v]], shape,
-                        stark=False, say=say, companions=companions, key_prefix=key_prefix,
-                        force=(v,), start=PassStart((z0,), (rad,), K))
+        calibrate_pass(rig, runner, protocol, result, PassRequest(
+            line, [v], [methods[v]], shape, stark=False, companions=companions,
+            key_prefix=key_prefix, force=(v,), start=PassStart((z0,), (rad,), K)), say=say)
 
 
 def _nulled_tones(result: CalibrationResult, protocol: Protocol, line: str

@@ -1,462 +1,302 @@
 """One calibration pass: a column of victims under one aggressor, from survey to stated nulls.
+
+:func:`calibrate_pass` runs these steps in order, each a function of its own:
+
+1. :func:`~xtalkcal.calibrate.pass_plan.plan_pass` — the fixed numbers of the pass (K,
+   radii, ring sizes, target);
+2. :func:`survey` — one ring centred on 0, whose fit selects the victims to null, or
+   :func:`start_from_nulls` — a first ring around known nulls (refinement);
+3. :func:`hand_over` — which victims a split resonant survey leaves to passes of their
+   own (one-by-one nulls, or a survey alone);
+4. :func:`~xtalkcal.calibrate.stages.null_stages` — the K stages: ring after ring around
+   the nulls, K raised as they sharpen, until the stop rule, the round limit or the shot
+   budget ends them;
+5. :func:`write_pass` — the pairs, couplings and sweep record into the result.
 """
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import xarray as xr
 
-from xtalkcal.calibrate.plan import (
-    JOINT_NULL_SPAN,
-    NULL_CONFIDENCE,
-    RING_MARGIN,
-    RISE_PROBABILITY,
-    RISE_STARK_RAD,
-    STRONGEST_DB,
-    _companion_radius,
-    pass_amplitude,
-    ring_around,
-    ring_points_for,
-    ring_radius_caps,
-    stark_windows,
-    survey_radii,
-)
-from xtalkcal.calibrate.result import PairResult
-from xtalkcal.fits import ColumnNullFit, VerdictRules, fit_paraboloid_column, linearise_fringe
+from xtalkcal.calibrate.pass_data import PassRecord, birge_ratio, null_sigma, shots_per_point
+from xtalkcal.calibrate.pass_plan import PassPlan, PassRequest, Say, plan_pass
+from xtalkcal.calibrate.plan import JOINT_NULL_SPAN, RING_MARGIN
+from xtalkcal.calibrate.result import CalibrationResult, PairResult
+from xtalkcal.calibrate.stages import StageState, null_stages
 from xtalkcal.hardware import Rig
-from xtalkcal.measure import BatchRunner, ColumnProbe
-
-_RULES = VerdictRules(mismatch_pvalue=0.0)
-
-
-def measure_probe(runner: BatchRunner, probe: ColumnProbe, points: np.ndarray, shots: int,
-                  key: str):
-    """Run a probe at ``points`` (n, V) as one recorded batch; its :class:`ProbeSignals`.
-
-    Stark probes get their reference timelines (no aggressor) in the same batch.
-    """
-    tls = probe.timelines(points, label=f"{key}:")
-    ref = probe.reference_timelines(label=f"{key}:ref") if probe.has_stark else []
-    counts = runner.run(key, tls + ref, shots)
-    n = len(tls)
-    main = _slice(counts, 0, n)
-    refc = _slice(counts, n, n + len(ref)) if ref else None
-    return probe.signals(main, points.shape[0], refc)
+from xtalkcal.measure import BatchRunner, Protocol
 
 
 @dataclass(frozen=True)
-class PassStart:
-    """Where a pass without a survey starts (refinement from known nulls).
+class PassOpening:
+    """Where the K stages start: what the survey (or the start) left.
 
-    ``centres`` and ``radii`` per victim (fraction of full scale), ``repeats`` the
-    amplification K to use.
+    Attributes
+    ----------
+    centre : ndarray of complex (V,)
+        Current estimate of each null (0 where the survey found none).
+    selected : ndarray of bool (V,)
+        Victims to null.
+    estimates : tuple of NullEstimate, or None
+        The survey's fit (None for a pass from known nulls).
+    survey_time : float
+        When the opening's data were taken (rig clock, s).
+    rounds : int
+        Rounds measured so far.
     """
 
-    centres: tuple[complex, ...]
-    radii: tuple[float, ...]
-    repeats: int
-
-
-def calibrate_pass(rig, runner, protocol, result, line, victims, methods, shape, *, stark, say,
-                    companions=(), key_prefix="", force=(), start: PassStart | None = None,
-                    split=False):
-    """One pass: survey (unless ``start``), then the null rounds; results into ``result``.
-
-    With ``split`` a resonant pass that selects more than one victim, or one that its
-    pulse spacing is not tuned for, stops after its survey and returns
-    ``[(victim, z*, κ, K)]`` for them (their results are not recorded): the caller nulls
-    each in a pass of its own, whose pulse spacing makes that victim's rotations add up
-    coherently so that K can be raised for it.
-    """
-    chip = rig.chip
-    amp = pass_amplitude(protocol, chip, line)
-    base = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=1,
-                       methods=tuple(methods), shape=shape)
-    spacing = base.spacing_ns
-    if stark:
-        k_survey = max(1, int(protocol.survey.max_train_ns // shape.duration_ns))
-    else:
-        # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
-        # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
-        theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
-        k_survey = max(1, min(int((math.pi / 4) / theta),
-                              int(protocol.survey.max_train_ns // spacing)))
-    K = int(start.repeats) if start is not None else k_survey
-    comp_names = tuple(q for q, _ in companions)
-    windows = stark_windows(chip, line, victims, methods, amp, K, shape) if stark else ()
-    probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=K,
-                        methods=tuple(methods), shape=shape, merged=stark,
-                        companions=comp_names, stark_windows_ns=windows)
-    k_max = max(K, int(protocol.survey.max_train_ns // spacing))
-    f = probe.freq_ghz
-    V = len(victims)
-    radius = survey_radii(probe)
-    cap = ring_radius_caps(probe)
-    # Companion tones: a ring around their nulls as wide as a resonant victim's survey
-    # ring (their own signal does not matter here; the ring only has to reach the
-    # victims through the couplings).
-    comp_centre = np.array([z for _, z in companions], dtype=complex)
-    comp_radius = np.array([_companion_radius(amp, chip, q, z) for q, z in companions])
-    tag = f"{line}-{'stark' if stark else 'res'}"
-    if tag in result.sweeps:  # pair-by-pair passes: one record per victim
-        tag = f"{tag}-{victims[0]}"
-    pts_all: list[np.ndarray] = []
-    comp_all: list[np.ndarray] = []
-    sig_all: list[np.ndarray] = []
-    err_all: list[np.ndarray] = []
-    shots_all: list[np.ndarray] = []
-    round_all: list[np.ndarray] = []
-    k_all: list[np.ndarray] = []  # amplification K of each point
-
-    def measure(points: np.ndarray, shots: int, key: str, rnd: int) -> None:
-        s = measure_probe(runner, probe, points, shots, key_prefix + key)
-        k_all.append(np.full(points.shape[0], probe.repeats))
-        pts_all.append(points[:, :V])
-        comp_all.append(points[:, V:])
-        sig_all.append(s.signal)
-        err_all.append(s.stderr)
-        shots_all.append(s.shots)
-        round_all.append(np.full(points.shape[0], rnd))
-
-    def fit(k: int | None = None):
-        """Column fit of the points taken at amplification ``k`` (default: the current)."""
-        kk = np.concatenate(k_all)
-        use = kk == (probe.repeats if k is None else k)
-        Z = np.vstack(pts_all).T[:, use]  # (V, n)
-        S = np.vstack(sig_all).T[:, use]
-        E = np.vstack(err_all).T[:, use].copy()
-        # Once a resonant victim has two rings centred near its null, the wide survey
-        # ring is dropped from its fit (a weight of ~0): sin² signals are symmetric in
-        # |z − z*| but not quadratic, and mixing radii far apart would bias z*. A Stark
-        # phase is quadratic at any radius the survey uses, so its survey points stay.
-        rnd = np.concatenate(round_all)[use]
-        if rnd.max() >= 2 and (rnd == 0).any():
-            E[np.ix_(searched & ~stark_rows, rnd == 0)] *= 1e6
-        # The other victims' tones are in the model (fit_paraboloid_column): each null is
-        # that of the aggressor's leak alone, and the couplings between the victims'
-        # lines at this frequency come out too. Weak non-quadratic terms remain: the
-        # covariance is scaled by the reduced chi-square (Birge ratio) instead of
-        # rejecting the fit for them.
-        # Stark signals are referred to one reference measurement per batch (round):
-        # each round gets its own offset, which absorbs that shared error.
-        groups = np.zeros(Z.shape, dtype=np.int64)
-        groups[stark_rows] = rnd
-        tones = np.vstack(comp_all).T[:, use] if comp_names else None
-        col = fit_paraboloid_column(Z, S, E, groups=groups, tones=tones, rules=_RULES)
-        # Resonant signals saturate as sin²: refit them unfolded about the floors just
-        # found (linearise_fringe), else an off-centre ring pulls each null towards its
-        # centre by several σ once K is raised.
-        rows = [i for i in range(V) if not stark_rows[i] and col.estimates[i].accepted]
-        if rows:
-            S, E = S.copy(), E.copy()
-            floors = np.array([col.estimates[i].floor for i in rows])[:, None]
-            S[rows], E[rows] = linearise_fringe(S[rows], E[rows], floors)
-            col = fit_paraboloid_column(Z, S, E, groups=groups, tones=tones, rules=_RULES)
-        return _ColumnFit(col)
-
-    searched = np.zeros(V, bool)  # victims whose null is being searched
-    stark_rows = np.array([m == "stark" for m in methods])
-    # Rings longer than the protocol asks for (to keep victims apart) share the same
-    # shots per ring: every victim gets the information the protocol intends per round,
-    # and a column's cost does not grow with its number of victims.
-    # A ring alone (the survey; the first ring at a raised K) must over-determine each
-    # victim's column model: 3 + an offset + 4 per other varying tone, plus 2 to spare.
-    tones_n = V + len(comp_names)
-    least = 4 * tones_n + 2
-    n_ring = ring_points_for(tones_n, max(protocol.survey.ring_points, least))
-    n_null = ring_points_for(tones_n, max(protocol.null.points_per_ring, least))
-    null_shots = shots_per_point(protocol.null.shots_per_point, protocol.null.points_per_ring,
-                                  n_null)
-
-    def rings(centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0) -> np.ndarray:
-        return ring_around(np.concatenate([centre, comp_centre]),
-                           np.concatenate([rad, comp_radius]), n, phase0=phase0)
-
-    # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error| then
-    # stays below the target residual with ≥ 99 % probability (Rayleigh tail e^{−k²/2}).
-    target = 10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE
-    rounds = 0
-    if start is None:
-        # The survey ring is centred on 0, not on the nulls: each null's error then
-        # carries |z*|·δκ/κ, and κ is told apart from the offset only by the centre point
-        # (every ring point of a victim has the same |z|). A long ring (many victims)
-        # repeats its centre so that it keeps the share of the shots it has in a ring of
-        # the protocol's length.
-        copies = max(1, round(n_ring / max(protocol.survey.ring_points, 1)))
-        pts0 = rings(np.zeros(V, complex), radius, n_ring)
-        pts0 = np.vstack([pts0[:1]] * (copies - 1) + [pts0])
-        measure(pts0, shots_per_point(protocol.survey.shots, protocol.survey.ring_points,
-                                       n_ring + copies - 1), f"{tag}-survey", 0)
-        est = fit()
-        survey_time = _data_time(runner, rig)
-        thr = 10 ** (protocol.survey.threshold_db / 20)
-        selected = np.zeros(V, bool)
-        for i in range(V):
-            e = est.estimate(i)
-            if e.accepted:
-                x = -e.z_star / amp
-                sx = _sigma(e) / amp
-                selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
-            else:
-                # "No signal" means |X| is small against the ring: bound it from the floor.
-                selected[i] = False
-        say(f"{line}: K={K}, survey of {V} victims, {int(selected.sum())} above "
-            f"{protocol.survey.threshold_db:g} dB")
-        centre = np.array([est.estimate(i).z_star if est.estimate(i).accepted else 0j
-                           for i in range(V)])
-    else:
-        # A pass from known nulls (refinement): no survey, every victim searched, the
-        # first ring at the radius its stored curvature gives.
-        centre = np.asarray(start.centres, dtype=complex)
-        selected = np.ones(V, bool)
-        searched[:] = True
-        rad0 = np.minimum(np.asarray(start.radii, dtype=float), radius)
-        measure(rings(centre, rad0, n_null), null_shots, f"{tag}-null00", 1)
-        survey_time = _data_time(runner, rig)
-        rounds = 1
-        say(f"{line}: K={K}, refining {V} victims from their current settings")
-    handoff = []
-    resurvey: list[str] = []
-    coherent = np.array([not stark and probe.coherent(v) for v in victims])
-    handed = np.zeros(V, bool)
-    if split and not stark and start is None:
-        # A resonant victim the train is not coherent for sees K pulses add up with
-        # whatever phase its detuning gives them, possibly cancelling: a survey fit
-        # without signal says nothing of its |X| then. It is surveyed again alone; one
-        # selected is nulled in a pass of its own (K can be raised only for the others).
-        if V > 1:
-            resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
-                        and not est.estimate(i).accepted]
-        handed = selected & ~coherent
-        # Victims nulled in the same shots share one model, in which each one's tone
-        # leaks onto the others (couplings c_ik). Its rings circle its own null z*_k, so
-        # telling the aggressor's leak from c_ik·z*_k needs rings as wide as |z*_k|, and
-        # a null ring shrinks as 1/K to a few target errors: a victim whose null lies
-        # far beyond that would make the others' errors stop falling as K rises. Such
-        # a victim is nulled in a pass of its own; here its tone rings wide around its
-        # survey estimate, like a companion's, which keeps the others' models apart.
-        # Judged on the survey's lower 2σ bound: a victim surveyed with a wide error (its
-        # K set by another) is not sent away on noise alone.
-        joint = selected & coherent
-        sigma0 = np.array([_sigma(est.estimate(i)) if est.estimate(i).accepted else 0.0
-                           for i in range(V)])
-        big = joint & (np.abs(centre) - 2 * sigma0 > JOINT_NULL_SPAN * RING_MARGIN * target)
-        if joint.sum() > 1 and big.any():
-            keep = joint & ~big
-            if not keep.any():
-                keep[int(np.argmax(joint))] = True
-            handed |= joint & ~keep
-        handoff = [(victims[i], est.estimate(i).z_star, est.estimate(i).curvature, K,
-                    _sigma(est.estimate(i)))
-                   for i in range(V) if handed[i]]
-        selected &= ~handed
-    searched[:] = selected
-    budget = protocol.null.shot_budget
-    spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
-    # Victims selected only because their survey was imprecise (|X| + 2σ at the
-    # threshold), which the rings at a raised K have since shown to lie below it: no
-    # longer searched; their measurement at that K is kept (estimate, K, time).
-    cleared: dict[int, tuple[Any, int, float]] = {}
-    while selected.any() and rounds < protocol.null.max_rounds and spent < budget:
-        rounds += 1
-        est = fit()
-        if start is None and rounds >= 2:
-            for i in np.flatnonzero(selected):
-                e = est.estimate(i)
-                if (e.accepted and victims[i] not in force
-                        and (abs(e.z_star) + 2 * _sigma(e)) / amp < thr):
-                    selected[i] = False
-                    cleared[int(i)] = (e, probe.repeats, _data_time(runner, rig))
-                    say(f"{line}: {victims[i]} below {protocol.survey.threshold_db:g} dB "
-                        f"at K={probe.repeats}, not nulled")
-            if not selected.any():
-                break
-        rad = np.zeros(V)
-        done = np.ones(V, bool)
-        for i in range(V):
-            e = est.estimate(i)
-            if selected[i] and e.accepted:
-                centre[i] = e.z_star
-                rise = RISE_STARK_RAD if methods[i] == "stark" else RISE_PROBABILITY
-                rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), cap[i])
-                done[i] = _sigma(e) <= target
-                if methods[i] != "stark":
-                    # A sin² signal is not quadratic far up its fringe, and off-centre
-                    # on its ring that pulls the fitted null towards the ring's centre;
-                    # the error says nothing of it. Done only once the latest ring was
-                    # centred on the null to within RING_MARGIN of its radius and rose
-                    # no more than twice the rule's amount (a ring planned from another
-                    # K or spacing can rise much further).
-                    last = pts_all[-1]
-                    r_last = abs(last[1, i] - last[0, i])
-                    done[i] &= (abs(e.z_star - last[0, i]) <= r_last / RING_MARGIN
-                                and e.curvature * r_last**2 <= 2 * RISE_PROBABILITY)
-            elif selected[i]:
-                rad[i] = radius[i]
-                done[i] = False
-            elif handed[i]:
-                rad[i] = _companion_radius(amp, chip, victims[i], centre[i])
-            else:
-                rad[i] = 0.0
-        if done.all():
-            break
-        raise_k = [i for i in range(V) if selected[i]]
-        if (not stark and raise_k and coherent[raise_k].all()
-                and all(est.estimate(i).accepted for i in raise_k)):
-            # Raise K as the nulls sharpen, from the survey's estimates on (curvature ∝
-            # K², so the error of z* ∝ 1/K at equal shots): as far as keeps every ring
-            # (radius ∝ 1/K) RING_MARGIN errors wide, at most ×4 per round, or — if that
-            # is more — to the K that keeps a null up to the strongest crosstalk
-            # unambiguous for each victim being nulled (the survey's K was set by the
-            # column's most responsive victim, which may be nulled elsewhere); within
-            # the longest train. Only for victims the train is coherent for (for the
-            # others K pulses do not amplify K-fold).
-            k_cur = probe.repeats
-            k_sharp = [min(int(k_cur * rad[i] / (RING_MARGIN * _sigma(est.estimate(i)))),
-                           4 * k_cur) for i in raise_k]
-            k_safe = [int((math.pi / 4) / probe.expected_rotation_per_pulse(
-                victims[i], STRONGEST_DB)) for i in raise_k]
-            k_new = min(min(map(max, k_sharp, k_safe)), k_max)
-            if k_new > k_cur:
-                probe = ColumnProbe(chip, line, tuple(victims), amplitude=amp, repeats=k_new,
-                                    methods=tuple(methods), shape=shape, merged=False,
-                                    companions=comp_names)
-                # The rise rule at the curvature the new K gives (κ ∝ K²): a ring
-                # shrinks as 1/K unless it was held at the cap, when it shrinks less.
-                for i in raise_k:
-                    rad[i] = min(math.sqrt(RISE_PROBABILITY / max(
-                        est.estimate(i).curvature * (k_new / k_cur) ** 2, 1e-12)), cap[i])
-                say(f"{line}: K raised to {k_new} for "
-                    f"{', '.join(victims[i] for i in raise_k)}")
-        pts = rings(centre, rad, n_null, phase0=math.pi / n_null * rounds)
-        measure(pts, null_shots, f"{tag}-null{rounds:02d}", rounds)
-        spent = sum(int(s.sum()) for s in shots_all) // max(V, 1)
-    est = fit()
-    first = fit(K)  # survey-stage victims (and the couplings) from the points at the first K
-    # A victim whose fit at a raised K failed falls back on the points at the first K.
-    final = [est.estimate(i) if selected[i] and est.estimate(i).accepted
-             else first.estimate(i) for i in range(V)]
-    at_final_k = [selected[i] and est.estimate(i).accepted for i in range(V)]
-    now = _data_time(runner, rig)
-    result.couplings[tag] = (tuple(victims), tuple(victims) + comp_names, first.fit.couplings,
-                             first.fit.couplings_stderr)
-    for i, v in enumerate(victims):
-        if handed[i] or v in resurvey:
-            continue  # nulled, or surveyed again, in passes of their own
-        e = final[i]
-        reps = probe.repeats if at_final_k[i] else K
-        when = now if selected[i] else survey_time
-        if i in cleared:
-            e, reps, when = cleared[i]
-        nshots = int(np.vstack(shots_all)[:, i].sum())
-        if e.accepted:
-            x = -e.z_star / amp
-            cov = np.asarray(e.covariance) * _birge(e) / amp**2
-            result.pairs.append(PairResult(line, v, methods[i], f, True, "", complex(x), cov,
-                                           bool(selected[i]), nshots, reps, when,
-                                           "null" if selected[i] else "survey", tag,
-                                           float(e.reduced_chi2)))
-        else:
-            result.pairs.append(PairResult(line, v, methods[i], f, False, e.reason.value, None,
-                                           None, False, nshots, reps, survey_time,
-                                           "survey", tag, float(e.reduced_chi2)))
-    Z = np.vstack(pts_all)
-    extra = {}
-    if comp_names:
-        T = np.vstack(comp_all)
-        extra = {
-            "tone_re": (("point", "companion"), T.real, {
-                "units": "fraction of full scale",
-                "long_name": "tone of a victim nulled in another pass, real part"}),
-            "tone_im": (("point", "companion"), T.imag, {
-                "units": "fraction of full scale", "long_name": "same, imaginary part"}),
-        }
-    kap = np.array([e.curvature if e.accepted else math.nan for e in final])
-    kap_err = np.array([e.curvature_stderr * math.sqrt(_birge(e)) if e.accepted else math.nan
-                        for e in final])
-    result.sweeps[tag] = xr.Dataset(
-        {
-            **extra,
-            "curvature": (("victim",), kap, {"long_name": "fitted curvature κ of the signal",
-                                             "units": "signal per (fraction of full scale)²"}),
-            "curvature_stderr": (("victim",), kap_err, {"long_name": "standard error of κ"}),
-            "z_re": (("point", "victim"), Z.real, {"units": "fraction of full scale",
-                                                   "long_name": "cancellation tone, real part"}),
-            "z_im": (("point", "victim"), Z.imag, {"units": "fraction of full scale",
-                                                   "long_name": "cancellation tone, imag part"}),
-            "signal": (("point", "victim"), np.vstack(sig_all), {"long_name": "error signal"}),
-            "stderr": (("point", "victim"), np.vstack(err_all), {"long_name": "standard error"}),
-            "shots": (("point", "victim"), np.vstack(shots_all), {"units": "shots"}),
-            "round": (("point",), np.concatenate(round_all), {"long_name": "search round"}),
-            "repeats": (("point",), np.concatenate(k_all), {"long_name": "amplification K"}),
-            "coupling_re": (("victim", "from_victim"), first.fit.couplings.real,
-                            {"long_name": "field at victim from from_victim's line, real part",
-                             "units": "relative to the victim's own line"}),
-            "coupling_im": (("victim", "from_victim"), first.fit.couplings.imag,
-                            {"long_name": "same, imaginary part",
-                             "units": "relative to the victim's own line"}),
-            "coupling_stderr": (("victim", "from_victim"), first.fit.couplings_stderr,
-                                {"long_name": "standard error of the coupling (√trace)",
-                                 "units": "relative to the victim's own line"}),
-        },
-        coords={"victim": list(victims), "from_victim": list(victims) + list(comp_names),
-                **({"companion": list(comp_names)} if comp_names else {})},
-        attrs={"aggressor": line, "frequency_ghz": f, "repeats": probe.repeats,
-               "aggressor_amplitude": amp,
-               "methods": ",".join(methods), "rig": rig.describe(),
-               "spacing_ns": probe.spacing_ns, "phase_step_rad": probe.phase_step_rad},
-    )
-    return _Handoff(handoff, resurvey)
+    centre: np.ndarray
+    selected: np.ndarray
+    estimates: tuple[Any, ...] | None
+    survey_time: float
+    rounds: int
 
 
 @dataclass(frozen=True)
-class _Handoff:
+class Handoff:
     """Victims of a split resonant survey left to passes of their own.
 
     ``nulls``: ``(victim, z*, κ, K, σ)`` of those selected, to be nulled one by one;
-    ``resurvey``: those the pass's pulse spacing could not see, to be surveyed alone.
+    ``resurvey``: those the pass's pulse spacing could not see, to be surveyed alone;
+    ``handed``: per victim, whether it is nulled elsewhere (its tone rings here like a
+    companion's).
     """
 
     nulls: list[tuple[str, complex, float, int, float]]
     resurvey: list[str]
+    handed: np.ndarray = field(default_factory=lambda: np.zeros(0, bool))
 
 
-def shots_per_point(nominal: int, nominal_points: int, points: int) -> int:
-    """Shots per point that keep a ring's total at ``nominal × nominal_points``."""
-    return max(50, int(round(nominal * max(nominal_points, 1) / points)))
+def calibrate_pass(rig: Rig, runner: BatchRunner, protocol: Protocol,
+                   result: CalibrationResult, request: PassRequest, *,
+                   say: Say | None = None) -> Handoff:
+    """One pass: survey (unless ``request.start``), then the null rounds; into ``result``.
+
+    With ``request.split`` a resonant pass that selects more than one victim, or one
+    that its pulse spacing is not tuned for, hands them over after its survey (their
+    results are not recorded): the caller nulls each in a pass of its own, whose pulse
+    spacing makes that victim's rotations add up coherently so that K can be raised
+    for it.
+
+    Parameters
+    ----------
+    rig : Rig
+    runner : BatchRunner
+        Runs and records the batches.
+    protocol : Protocol
+    result : CalibrationResult
+        Receives the pairs, couplings and sweep record of the pass.
+    request : PassRequest
+        What the pass is asked to do.
+    say : callable, optional
+        Receives lines of progress text.
+
+    Returns
+    -------
+    Handoff
+        The victims left to passes of their own (empty unless ``request.split``).
+    """
+    say = say or (lambda s: None)
+    plan = plan_pass(rig.chip, protocol, result, request)
+    record = PassRecord(runner, rig, request.key_prefix, plan.n_victims,
+                        bool(request.companions))
+    if request.start is None:
+        opening = survey(plan, record, say)
+    else:
+        opening = start_from_nulls(plan, record, say)
+    V = plan.n_victims
+    handoff = Handoff([], [], np.zeros(V, bool))
+    if request.split and not request.stark and request.start is None:
+        handoff = hand_over(request.victims, opening.estimates, opening.selected,
+                            plan.coherent, opening.centre, plan.target, plan.probe.repeats)
+    selected = opening.selected & ~handoff.handed
+    state = StageState(plan.probe, opening.centre, selected, selected.copy(), handoff.handed,
+                       opening.rounds)
+    state = null_stages(plan, record, state, say)
+    write_pass(result, plan, record, opening, handoff, state)
+    return handoff
 
 
-@dataclass(frozen=True)
-class _ColumnFit:
-    fit: ColumnNullFit
+def survey(plan: PassPlan, record: PassRecord, say: Say) -> PassOpening:
+    """Measure the survey ring and select the victims above the threshold.
 
-    def estimate(self, i: int):
-        return self.fit.estimates[i]
+    The survey ring is centred on 0, not on the nulls: each null's error then carries
+    |z*|·δκ/κ, and κ is told apart from the offset only by the centre point (every ring
+    point of a victim has the same |z|). A long ring (many victims) repeats its centre so
+    that it keeps the share of the shots it has in a ring of the protocol's length.
+    """
+    proto, V = plan.protocol, plan.n_victims
+    copies = max(1, round(plan.n_ring / max(proto.survey.ring_points, 1)))
+    pts0 = plan.rings(np.zeros(V, complex), plan.radius, plan.n_ring)
+    pts0 = np.vstack([pts0[:1]] * (copies - 1) + [pts0])
+    record.measure(plan.probe, pts0,
+                   shots_per_point(proto.survey.shots, proto.survey.ring_points,
+                                   plan.n_ring + copies - 1), f"{plan.tag}-survey", 0)
+    est = record.fit(plan.probe.repeats, np.zeros(V, bool), plan.stark_rows).estimates
+    survey_time = record.data_time()
+    selected = survey_selection(est, plan.amp, plan.thr, plan.request.victims,
+                                plan.request.force)
+    say(f"{plan.request.line}: K={plan.probe.repeats}, survey of {V} victims, "
+        f"{int(selected.sum())} above {proto.survey.threshold_db:g} dB")
+    centre = np.array([e.z_star if e.accepted else 0j for e in est])
+    return PassOpening(centre, selected, tuple(est), survey_time, 0)
 
 
-def _sigma(e) -> float:
-    """1σ semi-major axis of an estimate's null, made honest by its Birge ratio."""
-    return e.position_stderr * math.sqrt(_birge(e))
+def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
+                     victims: Sequence[str], force: Sequence[str]) -> np.ndarray:
+    """Which victims a survey selects for nulling.
+
+    A victim is selected if its fit is accepted and |X| + 2σ reaches the threshold, or
+    if it is forced; a fit without signal means |X| is small against the ring.
+
+    Parameters
+    ----------
+    estimates : sequence of NullEstimate
+        The survey's estimates, one per victim.
+    amp : float
+        Aggressor amplitude (X = −z*/amp).
+    thr : float
+        Threshold on |X| (linear).
+    victims, force : sequence of str
+        Names of the victims; those to null whatever the survey says.
+
+    Returns
+    -------
+    ndarray of bool (V,)
+    """
+    selected = np.zeros(len(victims), bool)
+    for i, e in enumerate(estimates):
+        if e.accepted:
+            x = -e.z_star / amp
+            sx = null_sigma(e) / amp
+            selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
+    return selected
 
 
-def _birge(e) -> float:
-    """max(1, reduced chi-square): the factor that makes a covariance honest."""
-    chi = e.reduced_chi2
-    return max(1.0, float(chi)) if math.isfinite(chi) else 1.0
+def start_from_nulls(plan: PassPlan, record: PassRecord, say: Say) -> PassOpening:
+    """Measure a first ring around known nulls (refinement): no survey.
+
+    Every victim is searched, its first ring at the radius its stored curvature gives
+    (at most the survey's).
+    """
+    start = plan.request.start
+    V = plan.n_victims
+    centre = np.asarray(start.centres, dtype=complex)
+    rad0 = np.minimum(np.asarray(start.radii, dtype=float), plan.radius)
+    record.measure(plan.probe, plan.rings(centre, rad0, plan.n_null), plan.null_shots,
+                   f"{plan.tag}-null00", 1)
+    survey_time = record.data_time()
+    say(f"{plan.request.line}: K={plan.probe.repeats}, refining {V} victims from their "
+        "current settings")
+    return PassOpening(centre, np.ones(V, bool), None, survey_time, 1)
 
 
-def _data_time(runner: BatchRunner, rig: Rig) -> float:
-    """When the latest data were taken (rig clock, s): a resumed batch keeps its own time."""
-    t = runner.last_finished_s
-    return float(t) if t is not None else rig.now()
+def hand_over(victims: Sequence[str], estimates: Sequence[Any], selected: np.ndarray,
+              coherent: np.ndarray, centre: np.ndarray, target: float,
+              repeats: int) -> Handoff:
+    """Which victims of a resonant survey are left to passes of their own.
+
+    A resonant victim the train is not coherent for sees K pulses add up with whatever
+    phase its detuning gives them, possibly cancelling: a survey fit without signal says
+    nothing of its |X| then. It is surveyed again alone; one selected is nulled in a pass
+    of its own (K can be raised only for the others).
+
+    Victims nulled in the same shots share one model, in which each one's tone leaks
+    onto the others (couplings c_ik). Its rings circle its own null z*_k, so telling the
+    aggressor's leak from c_ik·z*_k needs rings as wide as |z*_k|, and a null ring
+    shrinks as 1/K to a few target errors: a victim whose null lies far beyond that
+    would make the others' errors stop falling as K rises. Such a victim is nulled in a
+    pass of its own; here its tone rings wide around its survey estimate, like a
+    companion's, which keeps the others' models apart. Judged on the survey's lower 2σ
+    bound: a victim surveyed with a wide error (its K set by another) is not sent away
+    on noise alone. At least one joint victim stays.
+
+    Parameters
+    ----------
+    victims : sequence of str
+    estimates : sequence of NullEstimate
+        The survey's estimates.
+    selected, coherent : ndarray of bool (V,)
+        Victims the survey selected; victims the train is coherent for.
+    centre : ndarray of complex (V,)
+        The survey's nulls (0 where it found none).
+    target : float
+        The stop rule's 1σ target (fraction of full scale).
+    repeats : int
+        The survey's K.
+    """
+    V = len(victims)
+    resurvey = []
+    if V > 1:
+        resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
+                    and not estimates[i].accepted]
+    handed = selected & ~coherent
+    joint = selected & coherent
+    sigma0 = np.array([null_sigma(e) if e.accepted else 0.0 for e in estimates])
+    big = joint & (np.abs(centre) - 2 * sigma0 > JOINT_NULL_SPAN * RING_MARGIN * target)
+    if joint.sum() > 1 and big.any():
+        keep = joint & ~big
+        if not keep.any():
+            keep[int(np.argmax(joint))] = True
+        handed |= joint & ~keep
+    nulls = [(victims[i], estimates[i].z_star, estimates[i].curvature, repeats,
+              null_sigma(estimates[i])) for i in range(V) if handed[i]]
+    return Handoff(nulls, resurvey, handed)
 
 
-def _slice(counts, a: int, b: int):
-    from xtalkcal.hardware import Counts
+def write_pass(result: CalibrationResult, plan: PassPlan, record: PassRecord,
+               opening: PassOpening, handoff: Handoff, state: StageState) -> None:
+    """Record the pass: a pair per victim kept here, the couplings and the sweep.
 
-    return Counts(counts.qubits, counts.counts[a:b], counts.shots, counts.started_s,
-                  counts.finished_s)
+    The victims still selected get their fit at the final K (falling back on the points
+    at the first K if it failed); the others, and the couplings, come from the points at
+    the first K. Victims handed over or surveyed again are left to their own passes.
+    """
+    req, probe = plan.request, state.probe
+    k_first = plan.probe.repeats
+    selected = state.selected
+    est = record.fit(probe.repeats, state.searched, plan.stark_rows).estimates
+    first = record.fit(k_first, state.searched, plan.stark_rows)
+    at_final_k = [bool(selected[i] and est[i].accepted) for i in range(plan.n_victims)]
+    final = [est[i] if at_final_k[i] else first.estimates[i] for i in range(plan.n_victims)]
+    now = record.data_time()
+    comp_names = plan.companion_names
+    result.couplings[plan.tag] = (req.victims, req.victims + comp_names, first.couplings,
+                                  first.couplings_stderr)
+    for i, v in enumerate(req.victims):
+        if handoff.handed[i] or v in handoff.resurvey:
+            continue  # nulled, or surveyed again, in passes of their own
+        e = final[i]
+        reps = probe.repeats if at_final_k[i] else k_first
+        when = now if selected[i] else opening.survey_time
+        if i in state.cleared:
+            e, reps, when = state.cleared[i]
+        result.pairs.append(_pair_result(plan, i, e, bool(selected[i]),
+                                         record.victim_shots(i), reps, when,
+                                         opening.survey_time))
+    result.sweeps[plan.tag] = record.dataset(
+        req.victims, comp_names, final, first,
+        attrs={"aggressor": req.line, "frequency_ghz": plan.probe.freq_ghz,
+               "repeats": probe.repeats, "aggressor_amplitude": plan.amp,
+               "methods": ",".join(req.methods), "rig": record.rig.describe(),
+               "spacing_ns": probe.spacing_ns, "phase_step_rad": probe.phase_step_rad})
+
+
+def _pair_result(plan: PassPlan, i: int, e, nulled: bool, shots: int, repeats: int,
+                 when: float, survey_time: float) -> PairResult:
+    """Victim ``i``'s pair from its estimate ``e`` (a rejected fit: the survey's verdict)."""
+    req, amp = plan.request, plan.amp
+    v, method, f = req.victims[i], req.methods[i], plan.probe.freq_ghz
+    if e.accepted:
+        x = -e.z_star / amp
+        cov = np.asarray(e.covariance) * birge_ratio(e) / amp**2
+        return PairResult(req.line, v, method, f, True, "", complex(x), cov, nulled, shots,
+                          repeats, when, "null" if nulled else "survey", plan.tag,
+                          float(e.reduced_chi2))
+    return PairResult(req.line, v, method, f, False, e.reason.value, None, None, False,
+                      shots, repeats, survey_time, "survey", plan.tag, float(e.reduced_chi2))
+

@@ -36,7 +36,7 @@ STARK_PHASE_MAX = 1.5
 # Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
 STRONGEST_DB = -20.0
 #: A victim joins a joint resonant null pass only if its null lies within this many
-#: final ring radii (RING_MARGIN target errors) of zero (see calibrate_pass).
+#: final ring radii (RING_MARGIN target errors) of zero (see passes.hand_over).
 JOINT_NULL_SPAN = 2.0
 
 
@@ -216,7 +216,7 @@ def nulled_pass_groups(methods: Mapping[str, str]) -> list[list[str]]:
     return groups + ([stark] if stark else [])
 
 
-def _companion_radius(amp: float, chip: Chip, victim: str, centre: complex) -> float:
+def companion_radius(amp: float, chip: Chip, victim: str, centre: complex) -> float:
     """Ring radius of a tone that varies only to reach the other victims (a companion)."""
     return min(amp * 10 ** (STRONGEST_DB / 20) * 1.5,
                0.45 * chip.amplitude_limit(chip.line_of(victim).name) - abs(centre))

@@ -37,6 +37,7 @@ from xtalkcal.calibrate import (
     RISE_PROBABILITY,
     RISE_STARK_RAD,
     CalibrationResult,
+    PassRequest,
     PassStart,
     calibrate_pass,
     measured_couplings,
@@ -149,11 +150,10 @@ def refine_settings(
                     centres=tuple(pairs[v].ratio * amp for v in group),
                     radii=tuple(_first_radius(calibration, cal[v], K) for v in group),
                     repeats=K)
-                calibrate_pass(rig, runner, protocol, res, line, group,
-                                [cal[v].method for v in group], shape, stark=stark,
-                                say=say, key_prefix=f"{key_prefix}{rnd}-",
-                                companions=tuple((v, pairs[v].ratio * amp) for v in other),
-                                start=start)
+                calibrate_pass(rig, runner, protocol, res, PassRequest(
+                    line, group, [cal[v].method for v in group], shape, stark=stark,
+                    companions=tuple((v, pairs[v].ratio * amp) for v in other),
+                    key_prefix=f"{key_prefix}{rnd}-", start=start), say=say)
         missing = [(p.aggressor, p.victim) for p in res.pairs if not p.accepted]
         if missing:
             # A pass that cannot locate a null it located before is not refined further:

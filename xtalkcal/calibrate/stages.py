@@ -1,0 +1,211 @@
+"""The K stages of a calibration pass: ring after ring around the nulls, K raised as they
+sharpen, until the stop rule, the round limit or the shot budget ends the search.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from xtalkcal.calibrate.pass_data import PassRecord, null_sigma
+from xtalkcal.calibrate.pass_plan import PassPlan, Say
+from xtalkcal.calibrate.plan import (
+    RING_MARGIN,
+    RISE_PROBABILITY,
+    RISE_STARK_RAD,
+    STRONGEST_DB,
+    companion_radius,
+)
+from xtalkcal.measure import ColumnProbe
+
+
+@dataclass(frozen=True)
+class StageState:
+    """What one K stage hands to the next.
+
+    Attributes
+    ----------
+    probe : ColumnProbe
+        The probe at the current K.
+    centre : ndarray of complex (V,)
+        Current estimate of each null.
+    selected : ndarray of bool (V,)
+        Victims still being nulled.
+    searched : ndarray of bool (V,)
+        Victims whose null was searched from the first stage on (fit weights).
+    handed : ndarray of bool (V,)
+        Victims nulled in passes of their own.
+    rounds : int
+        Rounds measured (or begun) so far.
+    cleared : mapping of int to (NullEstimate, int, float)
+        Victims found below the threshold at a raised K: the estimate, its K and time.
+    """
+
+    probe: ColumnProbe
+    centre: np.ndarray
+    selected: np.ndarray
+    searched: np.ndarray
+    handed: np.ndarray
+    rounds: int
+    cleared: Mapping[int, tuple[Any, int, float]] = field(default_factory=dict)
+
+
+def null_stages(plan: PassPlan, record: PassRecord, state: StageState, say: Say
+                ) -> StageState:
+    """The K stages: one :func:`k_stage` after another until the search ends.
+
+    It ends when no victim is left to null, every victim's null is found
+    (:func:`null_found`), the protocol's round limit is reached or its shot budget
+    (per victim) is spent.
+    """
+    null = plan.protocol.null
+    while (state.selected.any() and state.rounds < null.max_rounds
+           and record.spent() < null.shot_budget):
+        state, measured = k_stage(plan, record, state, say)
+        if not measured:
+            break
+    return state
+
+
+def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
+            ) -> tuple[StageState, bool]:
+    """One stage: fit, drop victims shown below the threshold, stop or measure a ring.
+
+    Returns the next state and whether a ring was measured (False: the search ends).
+    """
+    req = plan.request
+    rounds = state.rounds + 1
+    probe = state.probe
+    est = record.fit(probe.repeats, state.searched, plan.stark_rows).estimates
+    selected, cleared = state.selected.copy(), dict(state.cleared)
+    if req.start is None and rounds >= 2:
+        # Victims selected only because their survey was imprecise (|X| + 2σ at the
+        # threshold), which the rings at a raised K have since shown to lie below it:
+        # no longer searched; their measurement at that K is kept (estimate, K, time).
+        for i in np.flatnonzero(selected):
+            e = est[i]
+            if (e.accepted and req.victims[i] not in req.force
+                    and (abs(e.z_star) + 2 * null_sigma(e)) / plan.amp < plan.thr):
+                selected[i] = False
+                cleared[int(i)] = (e, probe.repeats, record.data_time())
+                say(f"{req.line}: {req.victims[i]} below "
+                    f"{plan.protocol.survey.threshold_db:g} dB at K={probe.repeats}, "
+                    "not nulled")
+    ended = StageState(probe, state.centre, selected, state.searched, state.handed, rounds,
+                       cleared)
+    if req.start is None and rounds >= 2 and not selected.any():
+        return ended, False
+    centre = state.centre.copy()
+    rad = np.zeros(plan.n_victims)
+    done = np.ones(plan.n_victims, bool)
+    last = record.last_ring()
+    for i in range(plan.n_victims):
+        e = est[i]
+        if selected[i] and e.accepted:
+            centre[i] = e.z_star
+            rise = RISE_STARK_RAD if req.methods[i] == "stark" else RISE_PROBABILITY
+            rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), plan.cap[i])
+            done[i] = null_found(e, req.methods[i], plan.target, last[:, i])
+        elif selected[i]:
+            rad[i] = plan.radius[i]
+            done[i] = False
+        elif state.handed[i]:
+            rad[i] = companion_radius(plan.amp, plan.chip, req.victims[i], centre[i])
+    if done.all():
+        return ended, False
+    probe, rad = raise_k(plan, probe, est, selected, rad, say)
+    pts = plan.rings(centre, rad, plan.n_null, phase0=math.pi / plan.n_null * rounds)
+    record.measure(probe, pts, plan.null_shots, f"{plan.tag}-null{rounds:02d}", rounds)
+    return StageState(probe, centre, selected, state.searched, state.handed, rounds,
+                      cleared), True
+
+
+def null_found(e, method: str, target: float, last_ring: np.ndarray) -> bool:
+    """The stop rule: whether a victim's null is known well enough to end its search.
+
+    Its 1σ error (Birge-scaled) must be at most ``target``. A sin² signal is not
+    quadratic far up its fringe, and off-centre on its ring that pulls the fitted null
+    towards the ring's centre; the error says nothing of it. A resonant victim is done
+    only once the latest ring was centred on the null to within RING_MARGIN of its
+    radius and rose no more than twice the rule's amount (a ring planned from another K
+    or spacing can rise much further).
+
+    Parameters
+    ----------
+    e : NullEstimate
+        The victim's accepted estimate.
+    method : str
+        Its read-out (``"stark"``: the error alone decides).
+    target : float
+        1σ target (fraction of full scale).
+    last_ring : ndarray of complex (n,)
+        The victim's tones in the latest batch: its centre first, then the ring (as
+        :func:`ring_around` lays them out); the radius is ``|last_ring[1] −
+        last_ring[0]|``.
+    """
+    done = null_sigma(e) <= target
+    if method != "stark":
+        r_last = abs(last_ring[1] - last_ring[0])
+        done &= (abs(e.z_star - last_ring[0]) <= r_last / RING_MARGIN
+                 and e.curvature * r_last**2 <= 2 * RISE_PROBABILITY)
+    return bool(done)
+
+
+def raise_k(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any], selected: np.ndarray,
+            rad: np.ndarray, say: Say) -> tuple[ColumnProbe, np.ndarray]:
+    """Raise K as the nulls sharpen; the probe and ring radii for the next ring.
+
+    Only in a resonant pass, once every victim being nulled has an accepted fit and the
+    train is coherent for each (for the others K pulses do not amplify K-fold). A raised
+    K shrinks each ring by the rise rule at the curvature the new K gives (κ ∝ K²),
+    less if it was held at the cap.
+    """
+    req = plan.request
+    nulling = [i for i in range(plan.n_victims) if selected[i]]
+    if (req.stark or not nulling or not plan.coherent[nulling].all()
+            or not all(est[i].accepted for i in nulling)):
+        return probe, rad
+    k_cur = probe.repeats
+    k_new = raised_repeats(
+        k_cur, plan.k_max, [rad[i] for i in nulling], [null_sigma(est[i]) for i in nulling],
+        [int((math.pi / 4) / probe.expected_rotation_per_pulse(req.victims[i], STRONGEST_DB))
+         for i in nulling])
+    if k_new <= k_cur:
+        return probe, rad
+    probe = ColumnProbe(plan.chip, req.line, req.victims, amplitude=plan.amp, repeats=k_new,
+                        methods=req.methods, shape=req.shape, merged=False,
+                        companions=plan.companion_names)
+    rad = rad.copy()
+    for i in nulling:
+        rad[i] = min(math.sqrt(RISE_PROBABILITY / max(
+            est[i].curvature * (k_new / k_cur) ** 2, 1e-12)), plan.cap[i])
+    say(f"{req.line}: K raised to {k_new} for {', '.join(req.victims[i] for i in nulling)}")
+    return probe, rad
+
+
+def raised_repeats(k_cur: int, k_max: int, radii: Sequence[float], sigmas: Sequence[float],
+                   k_safe: Sequence[int]) -> int:
+    """The K the nulls' sharpness allows for the next ring (used only if above ``k_cur``).
+
+    Curvature ∝ K², so the error of z* ∝ 1/K at equal shots: K is raised as far as keeps
+    every ring (radius ∝ 1/K) RING_MARGIN errors wide, at most ×4 per round, or — if
+    that is more — to the K that keeps a null up to the strongest crosstalk unambiguous
+    for each victim (``k_safe``: the survey's K was set by the column's most responsive
+    victim, which may be nulled elsewhere); within the longest train ``k_max``.
+
+    Parameters
+    ----------
+    k_cur, k_max : int
+        Current K; largest K.
+    radii, sigmas : sequence of float
+        Per victim being nulled: its planned ring radius and its null's 1σ error.
+    k_safe : sequence of int
+        Per victim: the largest unambiguous K.
+    """
+    k_sharp = [min(int(k_cur * r / (RING_MARGIN * s)), 4 * k_cur)
+               for r, s in zip(radii, sigmas, strict=True)]
+    return min(min(map(max, k_sharp, k_safe)), k_max)
