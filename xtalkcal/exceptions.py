@@ -8,6 +8,7 @@ from __future__ import annotations
 
 __all__ = [
     "XtalkcalError",
+    "LocatedError",
     "ConfigError",
     "SafetyLimitError",
     "TimelineError",
@@ -22,29 +23,41 @@ class XtalkcalError(Exception):
     """Base class of all errors raised deliberately by xtalkcal."""
 
 
-class ConfigError(XtalkcalError, ValueError):
-    """A chip, device or protocol file is malformed.
+class LocatedError(XtalkcalError):
+    """An error about one field of one thing, said as ``where: field: problem``.
 
     Parameters
     ----------
-    source : str
-        The file (or other origin) the value came from.
+    where : str
+        The file, object or other origin that failed.
     field : str
         Dotted path of the offending field, e.g. ``qubit[2].f01_ghz``.
     problem : str
         What is wrong and what would be accepted.
     """
 
-    def __init__(self, source: str, field: str, problem: str) -> None:
-        self.source = source
+    def __init__(self, where: str, field: str, problem: str) -> None:
+        self.where = where
         self.field = field
         self.problem = problem
-        super().__init__(f"{source}: {field}: {problem}")
+        super().__init__(f"{where}: {field}: {problem}")
 
     def __reduce__(self) -> tuple[object, ...]:
-        # Exception pickles its formatted message as the only argument; keep the fields,
-        # so that an error crosses a process boundary (a worker, a killed writer's report).
-        return (type(self), (self.source, self.field, self.problem))
+        # Exception (and OSError) pickle the formatted message as the only argument; keep
+        # the fields, so that an error crosses a process boundary intact.
+        return (type(self), (self.where, self.field, self.problem))
+
+
+class ConfigError(LocatedError, ValueError):
+    """A chip, device, protocol, schedule or settings file is malformed.
+
+    A :class:`LocatedError` whose ``where`` is the file (also readable as ``source``).
+    """
+
+    @property
+    def source(self) -> str:
+        """The file (or other origin) the value came from."""
+        return self.where
 
 
 class SafetyLimitError(XtalkcalError, ValueError):

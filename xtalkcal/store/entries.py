@@ -14,7 +14,7 @@ from typing import Any, Literal, get_args
 import h5py
 import numpy as np
 
-from xtalkcal.exceptions import LedgerError
+from xtalkcal.exceptions import LedgerError, LocatedError
 
 Method = Literal["leakage", "rotation", "stark", "survey", "manual"]
 Kind = Literal["survey", "null", "recheck", "manual"]
@@ -25,28 +25,12 @@ KINDS: tuple[str, ...] = get_args(Kind)
 VERDICTS: tuple[str, ...] = get_args(Verdict)
 
 
-class LedgerValidationError(LedgerError, ValueError):
+class LedgerValidationError(LocatedError, LedgerError, ValueError):
     """An entry, sweep or argument handed to the ledger is invalid; nothing was written.
 
-    Parameters
-    ----------
-    where : str
-        Which object failed, e.g. ``entry[3] (L1 -> q2)`` or ``sweep 'ring-7'``.
-    field : str
-        Name of the offending field.
-    problem : str
-        What is wrong and what would be accepted.
+    A :class:`~xtalkcal.exceptions.LocatedError`: ``where`` says which object failed, e.g.
+    ``entry[3] (L1 -> q2)`` or ``sweep 'ring-7'``.
     """
-
-    def __init__(self, where: str, field: str, problem: str) -> None:
-        self.where = where
-        self.field = field
-        self.problem = problem
-        super().__init__(f"{where}: {field}: {problem}")
-
-    def __reduce__(self) -> tuple[Any, ...]:
-        # OSError's own pickling would pass the formatted message as errno; keep our fields.
-        return (type(self), (self.where, self.field, self.problem))
 
 
 class _Malformed(Exception):
