@@ -11,12 +11,18 @@ PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
          '[null]\nmax_rounds = 3\n')
 
 
-def test_due_rechecks_what_is_due_and_records_it(tmp_path, capsys):
+def _calibrated(tmp_path):
+    """A leakage-only calibration of the bundled chip into a new ledger."""
     proto = tmp_path / "p.toml"
     proto.write_text(PROTO)
     led, sched = tmp_path / "ledger", tmp_path / "schedule.json"
     assert main(["calibrate", "--protocol", str(proto), "--ledger", str(led), "-q",
                  "-o", str(tmp_path / "m.json")]) == 0
+    return proto, led, sched
+
+
+def test_due_rechecks_what_is_due_and_records_it(tmp_path, capsys):
+    proto, led, sched = _calibrated(tmp_path)
     n0 = len(Ledger(led).entries())
     assert main(["due", "--protocol", str(proto), "--ledger", str(led),
                  "--schedule", str(sched)]) == 0
@@ -48,11 +54,7 @@ def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
     """A later survey-only estimate means no tone is in use: nothing to re-check."""
     import dataclasses
 
-    proto = tmp_path / "p.toml"
-    proto.write_text(PROTO)
-    led, sched = tmp_path / "ledger", tmp_path / "schedule.json"
-    assert main(["calibrate", "--protocol", str(proto), "--ledger", str(led), "-q",
-                 "-o", str(tmp_path / "m.json")]) == 0
+    proto, led, sched = _calibrated(tmp_path)
     assert main(["due", "--protocol", str(proto), "--ledger", str(led),
                  "--schedule", str(sched)]) == 0
     ledger = Ledger(led)

@@ -9,8 +9,8 @@ from __future__ import annotations
 import dataclasses
 
 import pytest
+from plugin_rigs import SimPlugin
 
-from simulated_device import SimRig, demo_device_path
 from simulated_device.standin import standin_device
 from xtalkcal.cli import main
 from xtalkcal.hardware import SafetyLimits
@@ -19,28 +19,18 @@ PROTO = ('name = "leak"\n[methods]\nonly = ["leakage"]\n[survey]\nshots = 500\n'
          '[null]\nmax_rounds = 3\n')
 
 
-class UntouchableRig:
+class UntouchableRig(SimPlugin):
     """A plug-in that must never be asked to play anything."""
 
     limits = SafetyLimits(max_amplitude=0.9, max_average_power_dbm=-40.0, stated=True)
-
-    def __init__(self) -> None:
-        self.sim = SimRig(demo_device_path(), seed=1, drift=False)
 
     @property
     def chip(self):
         return dataclasses.replace(self.sim.chip, limits=UntouchableRig.limits,
                                    source="lab-chip.toml")
 
-    @property
-    def repetition_ns(self) -> float:
-        return self.sim.repetition_ns
-
     def describe(self) -> str:
         return "untouchable lab rig"
-
-    def now(self) -> float:
-        return 0.0
 
     def run(self, timelines, shots):
         raise AssertionError("a dry run sent a batch to the rig")

@@ -14,8 +14,8 @@ import textwrap
 from pathlib import Path
 
 import pytest
+from plugin_rigs import SimPlugin
 
-from simulated_device import SimRig, demo_device_path
 from xtalkcal.cli import main
 from xtalkcal.exceptions import ConfigError, InterlockRefused, RigError
 from xtalkcal.hardware import Interlock, Timeline, Tone, chip_from_dict
@@ -33,31 +33,15 @@ def _script(tmp_path: Path, body: str) -> tuple[str, ...]:
     return (PY, str(path))
 
 
-class GuardedRig:
+class GuardedRig(SimPlugin):
     """The simulator behind a plug-in whose chip names an interlock; counts its runs."""
 
     runs = 0
     interlock: Interlock | None = None
 
-    def __init__(self) -> None:
-        self.sim = SimRig(demo_device_path(), seed=1, drift=False)
-
     @property
     def chip(self):
         return dataclasses.replace(self.sim.chip, interlock=GuardedRig.interlock)
-
-    @property
-    def repetition_ns(self) -> float:
-        return self.sim.repetition_ns
-
-    def describe(self) -> str:
-        return "guarded " + self.sim.describe()
-
-    def now(self) -> float:
-        return self.sim.now()
-
-    def advance_clock_to(self, t_s: float) -> None:
-        self.sim.advance_clock_to(t_s)
 
     def run(self, timelines, shots):
         GuardedRig.runs += 1

@@ -17,8 +17,8 @@ import threading
 import h5py
 import numpy as np
 import pytest
+from plugin_rigs import SimPlugin
 
-from simulated_device import SimRig, demo_device_path
 from xtalkcal.cli import main
 from xtalkcal.exceptions import ConfigError, RigError, SafetyLimitError, TimelineError
 from xtalkcal.hardware import MIN_LEVELS, Counts, SafetyLimits, Timeline, check_counts
@@ -32,7 +32,7 @@ KEY = "attack-batch"
 
 
 # ----------------------------------------------------------------------------- fake rigs
-class FaultyRig:
+class FaultyRig(SimPlugin):
     """The simulator behind a plug-in that corrupts its answers.
 
     ``corrupt(counts, call)`` gets the simulator's honest :class:`Counts` and the number
@@ -40,24 +40,13 @@ class FaultyRig:
     """
 
     def __init__(self, corrupt=None, *, fail=None, seed: int = 1) -> None:
-        self.sim = SimRig(demo_device_path(), seed=seed, drift=False)
+        super().__init__(seed=seed)
         self.corrupt = corrupt or (lambda c, n: c)
         self.fail = fail
         self.calls = 0
 
-    @property
-    def chip(self):
-        return self.sim.chip
-
-    @property
-    def repetition_ns(self) -> float:
-        return self.sim.repetition_ns
-
     def describe(self) -> str:
         return "attack rig over " + self.sim.describe()
-
-    def now(self) -> float:
-        return self.sim.now()
 
     def run(self, timelines, shots):
         self.calls += 1
