@@ -5,16 +5,20 @@ May import: :mod:`xtalkcal.compensation` and below. Nothing here imports a later
 """
 
 from xtalkcal.drift.analysis import (
+    analyse_recheck,
+    analyse_recheck_counts,
+)
+from xtalkcal.drift.design import (
+    recheck_design,
+    recheck_radius,
+)
+from xtalkcal.drift.inputs import DriftInputError
+from xtalkcal.drift.outcome import (
     DEFAULT_RECHECK_RULES,
-    DriftInputError,
     FollowUp,
     RecheckDecision,
     RecheckOutcome,
     RecheckRules,
-    analyse_recheck,
-    analyse_recheck_counts,
-    recheck_design,
-    recheck_radius,
 )
 from xtalkcal.drift.policy import (
     NextCheck,

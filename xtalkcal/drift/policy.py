@@ -12,15 +12,13 @@ import numpy as np
 
 if TYPE_CHECKING:
     from xtalkcal.measure import RecheckSettings
-from xtalkcal.drift.analysis import (
+from xtalkcal.drift.inputs import DriftInputError, _finite_real, _lin
+from xtalkcal.drift.outcome import (
     DEFAULT_RECHECK_RULES,
-    DriftInputError,
     FollowUp,
     RecheckDecision,
     RecheckOutcome,
     RecheckRules,
-    _finite_real,
-    _lin,
 )
 from xtalkcal.drift.trends import PairTrend
 

@@ -46,7 +46,8 @@ from xtalkcal.calibrate import (
     survey_radii,
 )
 from xtalkcal.common import __version__
-from xtalkcal.drift.analysis import FollowUp, RecheckDecision, RecheckOutcome, analyse_recheck
+from xtalkcal.drift.analysis import analyse_recheck
+from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.trends import pair_trend
 from xtalkcal.exceptions import SafetyLimitError
