@@ -31,7 +31,6 @@ from xtalkcal.drift.recheck import (
     recheck_column,
     run_due,
     schedule_after_calibration,
-    take_out_co_victim_leak,
     unplayable_reason,
 )
 from xtalkcal.drift.schedule import (
@@ -42,6 +41,7 @@ from xtalkcal.drift.schedule import (
     Schedule,
     ScheduleFileError,
 )
+from xtalkcal.drift.stored_sweep import take_out_co_victim_leak
 from xtalkcal.drift.trends import (
     PairTrend,
     RandomWalkRate,

@@ -202,6 +202,22 @@ def _outcome(
     )
 
 
+def _design_problem(inp: _RecheckInput) -> tuple[str, RejectionReason] | None:
+    """Rule 1 of :func:`analyse_recheck` before any fit: too few points, or no ring."""
+    n_par = 3 if inp.prior is not None and inp.prior[1] == 0.0 else 4
+    if inp.n < n_par:
+        return (
+            f"{inp.n} probe points; the re-check needs at least {n_par}",
+            RejectionReason.TOO_FEW_POINTS,
+        )
+    if not inp.rho > 0:
+        return (
+            "all probe points sit on the stored null; a ring around it is needed",
+            RejectionReason.FIT_FAILED,
+        )
+    return None
+
+
 @dataclass(frozen=True)
 class _RingFit:
     """The weighted fit of ``c0 + c1 x + c2 y + c3 r**2`` (coordinates scaled by ``rho``)."""
@@ -506,21 +522,9 @@ def analyse_recheck(
     inp = _checked_input(
         z_points, signal, stderr, z_stored, amplitude, tolerance_db, curvature_prior
     )
-    n_par = 3 if inp.prior is not None and inp.prior[1] == 0.0 else 4
-    if inp.n < n_par:
-        return _outcome(
-            inp,
-            RecheckDecision.BROKEN,
-            f"{inp.n} probe points; the re-check needs at least {n_par}",
-            RejectionReason.TOO_FEW_POINTS,
-        )
-    if not inp.rho > 0:
-        return _outcome(
-            inp,
-            RecheckDecision.BROKEN,
-            "all probe points sit on the stored null; a ring around it is needed",
-            RejectionReason.FIT_FAILED,
-        )
+    unfit = _design_problem(inp)
+    if unfit is not None:
+        return _outcome(inp, RecheckDecision.BROKEN, *unfit)
     fit = _fit_ring(inp)
     if fit.coef is None:
         return _outcome(
