@@ -295,6 +295,7 @@ def _estimate(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules) -> _Estima
     """Null shift, ``dX``, floor and curvature with their errors (delta method) from ``fit``."""
     assert fit.coef is not None and fit.cov is not None
     rho, cov_c = inp.rho, fit.cov
+    data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
     c0, c1, c2, c3 = (float(c) for c in fit.coef)
     dof = inp.dof
     redchi = fit.chi2 / dof if dof > 0 else math.nan
@@ -341,8 +342,8 @@ def _estimate(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules) -> _Estima
         null_covariance=cov_d,
         curvature=kappa,
         curvature_stderr=kappa_se,
-        data_curvature=fit.data_curvature,
-        data_curvature_stderr=fit.data_curvature_stderr,
+        data_curvature=data_k,
+        data_curvature_stderr=data_k_se,
         floor=floor,
         floor_stderr=floor_se,
         reduced_chi2=redchi,
