@@ -22,8 +22,8 @@ from xtalkcal.drift.inputs import (
     _as_1d,
     _check_tolerance,
     _db,
-    _finite_real,
     _lin,
+    _parse_prior,
 )
 from xtalkcal.drift.outcome import (
     DEFAULT_RECHECK_RULES,
@@ -43,26 +43,6 @@ def _mag_stderr(v: complex, cov: NDArray[np.float64]) -> float:
         u = np.array([v.real, v.imag]) / m
         return float(math.sqrt(max(u @ cov @ u, 0.0)))
     return float(math.sqrt(max(np.linalg.eigvalsh(cov)[-1], 0.0)))
-
-
-def _parse_prior(prior: float | tuple[float, float] | None) -> tuple[float, float] | None:
-    if prior is None:
-        return None
-    if isinstance(prior, tuple | list):
-        if len(prior) != 2:
-            raise DriftInputError(
-                f"curvature_prior must be kappa or (kappa, stderr), got {len(prior)} values"
-            )
-        k, s = _finite_real("curvature_prior[0]", prior[0]), _finite_real(
-            "curvature_prior[1]", prior[1]
-        )
-    else:
-        k, s = _finite_real("curvature_prior", prior), 0.0
-    if k <= 0 or s < 0:
-        raise DriftInputError(
-            f"curvature_prior needs kappa > 0 and stderr >= 0, got kappa={k!r}, stderr={s!r}"
-        )
-    return k, s
 
 
 def _wls(

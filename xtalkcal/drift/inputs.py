@@ -58,3 +58,23 @@ def _as_1d(name: str, a: ArrayLike, *, complex_ok: bool) -> NDArray[Any]:
     if not np.all(np.isfinite(arr)):
         raise DriftInputError(f"{name} contains non-finite values")
     return arr
+
+
+def _parse_prior(prior: float | tuple[float, float] | None) -> tuple[float, float] | None:
+    if prior is None:
+        return None
+    if isinstance(prior, tuple | list):
+        if len(prior) != 2:
+            raise DriftInputError(
+                f"curvature_prior must be kappa or (kappa, stderr), got {len(prior)} values"
+            )
+        k, s = _finite_real("curvature_prior[0]", prior[0]), _finite_real(
+            "curvature_prior[1]", prior[1]
+        )
+    else:
+        k, s = _finite_real("curvature_prior", prior), 0.0
+    if k <= 0 or s < 0:
+        raise DriftInputError(
+            f"curvature_prior needs kappa > 0 and stderr >= 0, got kappa={k!r}, stderr={s!r}"
+        )
+    return k, s
