@@ -724,7 +724,8 @@ def test_malformed_schedule_files_name_the_field(mutate: object, match: str) -> 
         Schedule.from_json("{", SETTINGS)
 
 
-@pytest.mark.parametrize("module", ["analysis", "trends", "policy", "schedule"])
+@pytest.mark.parametrize("module", ["analysis", "design", "inputs", "outcome", "stored_sweep",
+                                    "trends", "policy", "schedule"])
 def test_drift_logic_stays_hardware_free(module: str) -> None:
     # Layer rule: drift logic never imports the rig, probes, sweeps or the simulator (only the
     # rig-side re-check in drift/recheck.py does; the protocol module pulls in the probes, so

@@ -145,6 +145,179 @@ def settings_all_on_db(truth: Truth, chip, settings: CompensationSettings, t_s: 
                default=-np.inf)
 
 
+@dataclass
+class _Job:
+    """What the steps of :func:`run_campaign` share: the rig, the protocol, the output folder,
+    one batch runner and the shots each step spent."""
+
+    rig: Rig
+    protocol: Protocol
+    out: Path
+    runner: BatchRunner
+    say: Callable[[str], None]
+    shots: dict[str, int] = field(default_factory=dict)
+
+
+def _calibrate(job: _Job, aggressors: Sequence[str] | None
+               ) -> tuple[CalibrationResult, Ledger]:
+    """Step 1: calibrate the columns and record them in a new ledger under ``job.out``."""
+    rig, runner, chip = job.rig, job.runner, job.rig.chip
+    job.say(f"1/4 calibrating {len(aggressors or chip.line_names)} aggressor columns")
+    cal = calibrate_chip(rig, job.protocol, runner=runner,
+                         aggressors=list(aggressors or []) or None)
+    job.shots["calibration"] = runner.shots_executed + runner.shots_resumed
+    led = Ledger.create(job.out / "ledger", chip=chip.name, exist_ok=True)
+    led.append(ledger_entries(cal, run_tag="cal0"), sweeps=ledger_sweeps(cal, run_tag="cal0"))
+    return cal, led
+
+
+def _compensation(job: _Job, cal: CalibrationResult, led: Ledger, refine_rounds: int
+                  ) -> tuple[CompensationSettings, Refinement, CompensationSettings]:
+    """Step 2: the multi-victim solve, then closed-loop refinement, recorded in the ledger;
+    the settings written as JSON and CSV. Returns (first solve, refinement, settings)."""
+    rig, runner, chip = job.rig, job.runner, job.rig.chip
+    job.say("2/4 compensation settings: multi-victim solve, then closed-loop refinement")
+    first = multi_victim_settings(cal, chip, couplings=measured_couplings(cal))
+    before = runner.shots_executed
+    ref = refine_settings(rig, job.protocol, cal, first, runner=runner, rounds=refine_rounds)
+    job.shots["refinement"] = runner.shots_executed - before
+    for k, r in enumerate(ref.results, start=1):
+        # measured near the operating point, every other tone ringing: the current matrix
+        led.append(ledger_entries(r, run_tag=f"refine{k}"),
+                   sweeps=ledger_sweeps(r, run_tag=f"refine{k}"))
+    settings = ref.settings if ref.results else first
+    job.say(f"    {len(ref.results)} refinement round(s), largest moves "
+            + ", ".join(f"{m:.1f}σ" for m in ref.moves)
+            + (" (converged)" if ref.converged else ""))
+    settings.write_json(job.out / "settings.json")
+    settings.write_csv(job.out / "settings.csv")
+    return first, ref, settings
+
+
+def _all_on_truth(result: CampaignResult, truth: Truth, rig: Rig, cal: CalibrationResult,
+                  first: CompensationSettings) -> None:
+    """Simulator only: the true all-on fields of the pairwise, multi-victim and closed-loop
+    settings, and per pair with the settings in use."""
+    chip, settings = rig.chip, result.settings
+    t = rig.now()
+    result.all_on_db = {
+        "pairwise": settings_all_on_db(truth, chip, pairwise_settings(cal, chip), t),
+        "multi-victim": settings_all_on_db(truth, chip, first, t),
+        "closed-loop": settings_all_on_db(truth, chip, settings, t)}
+    result.all_on_pair_db = {p.key: _db(_field_with(truth, settings, p.key, t))
+                             for p in settings}
+
+
+def _verify(job: _Job, led: Ledger, result: CampaignResult) -> None:
+    """Step 3a: every nulled pair re-measured with all of its aggressor's tones on."""
+    runner, protocol = job.runner, job.protocol
+    job.say("3/4 verification: residuals re-measured with all compensation on")
+    snap = led.current()
+    before = runner.shots_executed
+    # A one-off statement for the report, not a routine check: VERIFY_SHOTS_FACTOR times
+    # the re-check's shots, so that it resolves each residual well below the tolerance.
+    rc = protocol.recheck
+    verify_protocol = replace(protocol, recheck=replace(
+        rc, shots_per_point=VERIFY_SHOTS_FACTOR * rc.shots_per_point))
+    for a in sorted({a for (a, _v), e in snap.entries.items() if e.kind == "null"}):
+        victims = [v for (aa, v), e in snap.entries.items() if aa == a and e.kind == "null"]
+        result.verification += recheck_column(job.rig, verify_protocol, snap, a, victims,
+                                              runner=runner, ledger=led, key=f"verify-{a}")
+    job.shots["verification"] = runner.shots_executed - before
+
+
+def _benchmark(job: _Job, result: CampaignResult, rb_qubits: Sequence[str],
+               rb_lengths: Sequence[int], rb_draws: int, rb_shots: int) -> None:
+    """Step 3b: simultaneous RB of ``rb_qubits`` without and with compensation (own drives
+    re-trimmed with compensation on)."""
+    rig, runner, chip, settings = job.rig, job.runner, job.rig.chip, result.settings
+    job.say(f"    simultaneous randomized benchmarking of {', '.join(rb_qubits)}")
+    seqs = draw_sequences(list(rb_qubits), list(rb_lengths), rb_draws, rng=7)
+
+    def compensate(tl):
+        return apply_to_timeline(tl, settings, chip, repetition_ns=rig.repetition_ns)
+
+    before = runner.shots_executed
+    # The cancellation tones that protect the others at a qubit's own frequency
+    # reach that qubit too: its gate amplitudes are re-trimmed with compensation on
+    # (common practice), measured here rather than taken from the matrix (which
+    # holds the fields at the victims, not back at the aggressor's own qubit).
+    result.trims = own_drive_trims(rig, list(rb_qubits), compensate, runner=runner,
+                                   key="trim")
+    job.shots["gate re-trim"] = runner.shots_executed - before
+    before = runner.shots_executed
+    retrim = {chip.line_of(q).name: (chip.qubit(q).f01_ghz, 1.0 / (1.0 + t.change))
+              for q, t in result.trims.items()}
+
+    def compensate_trimmed(tl):
+        tones = tuple(
+            t.scaled(retrim[t.line][1], t.line)
+            if t.line in retrim and abs(t.freq_ghz - retrim[t.line][0]) < 1e-6 else t
+            for t in tl.tones)
+        return compensate(replace(tl, tones=tones))
+
+    result.rb = simultaneous_rb(rig, seqs, transforms={"uncompensated": None,
+                                                       "compensated": compensate_trimmed},
+                                shots=rb_shots, runner=runner, rng=7)
+    job.shots["benchmarking"] = runner.shots_executed - before
+
+
+def _drift_samples(rig: Rig, led: Ledger, pairs: list[tuple[str, str]],
+                   checks: list[PairCheck], truth: Truth | None, coupling_lookup
+                   ) -> list[DriftSample]:
+    """One moment of the drift watch: per followed pair still in use, the true residual
+    (simulator only) and what a re-check at this moment measured."""
+    checked = {(c.aggressor, c.victim): c for c in checks}
+    cur = led.current()
+    in_use = (settings_in_use(cur, rig.chip, coupling_lookup) if truth is not None
+              else None)
+    keys = {p.key for p in in_use} if in_use is not None else set(pairs)
+    samples = []
+    for pair in pairs:
+        if pair not in cur or pair not in keys:
+            continue
+        tr = None if in_use is None else _db(_field_with(truth, in_use, pair, rig.now()))
+        c = checked.get(pair)
+        samples.append(DriftSample(
+            rig.now(), pair[0], pair[1], tr,
+            None if c is None else float(c.outcome.residual_db),
+            None if c is None else c.outcome.decision.value))
+    return samples
+
+
+def _drift_watch(job: _Job, result: CampaignResult, led: Ledger, ref: Refinement, *,
+                 days: float, advance: Callable[[float], None], truth: Truth | None,
+                 step_h: float, watch: Sequence[str] | None) -> None:
+    """Step 4: ``days`` of scheduled re-checks, the rig's time let pass ``step_h`` at a
+    time; the schedule saved under ``job.out``."""
+    rig, protocol, runner, cal = job.rig, job.protocol, job.runner, result.calibration
+    job.say(f"4/4 drift watch: {days:g} days of scheduled re-checks")
+    schedule = Schedule(protocol.recheck)
+    schedule_after_calibration(schedule, cal, rig.now())
+    if watch is not None:
+        for pair in schedule.pairs():
+            if pair[0] not in watch:
+                schedule.remove(pair)
+    t_end = rig.now() + days * 86400.0
+    before = runner.shots_executed
+    actions = {"rechecks": 0, "recentred": 0, "recalibrated columns": 0}
+    pairs = list(schedule.pairs())
+    # the truth compares the field with the settings a lab would derive from the
+    # ledger after each step (multi-victim solve, couplings measured in the
+    # refinement's passes, which see every direction, else in the calibration's)
+    coupling_lookup = _couplings_of(list(reversed(ref.results)) + [cal])
+    while rig.now() < t_end:
+        advance(step_h * 3600.0)
+        rep = run_due(rig, protocol, led, schedule, runner=runner)
+        actions["rechecks"] += len(rep.checked)
+        actions["recentred"] += len(rep.recentred)
+        actions["recalibrated columns"] += len(rep.recalibrated)
+        result.drift += _drift_samples(rig, led, pairs, rep.checked, truth, coupling_lookup)
+    schedule.save(job.out / "schedule.json")
+    job.shots["drift watch"] = runner.shots_executed - before
+    result.drift_actions = actions
+
+
 def run_campaign(
     rig: Rig,
     protocol: Protocol,
@@ -191,121 +364,20 @@ def run_campaign(
         (:func:`xtalkcal.compensation.refine_settings`).
     """
     out = Path(out)
-    runner = BatchRunner(rig, out / "record", progress=progress)
-    chip = rig.chip
-    say(f"1/4 calibrating {len(aggressors or chip.line_names)} aggressor columns")
-    cal = calibrate_chip(rig, protocol, runner=runner, aggressors=list(aggressors or []) or None)
-    shots = {"calibration": runner.shots_executed + runner.shots_resumed}
-    led = Ledger.create(out / "ledger", chip=chip.name, exist_ok=True)
-    led.append(ledger_entries(cal, run_tag="cal0"), sweeps=ledger_sweeps(cal, run_tag="cal0"))
-
-    say("2/4 compensation settings: multi-victim solve, then closed-loop refinement")
-    first = multi_victim_settings(cal, chip, couplings=measured_couplings(cal))
-    before = runner.shots_executed
-    ref = refine_settings(rig, protocol, cal, first, runner=runner, rounds=refine_rounds)
-    shots["refinement"] = runner.shots_executed - before
-    for k, r in enumerate(ref.results, start=1):
-        # measured near the operating point, every other tone ringing: the current matrix
-        led.append(ledger_entries(r, run_tag=f"refine{k}"),
-                   sweeps=ledger_sweeps(r, run_tag=f"refine{k}"))
-    settings = ref.settings if ref.results else first
-    say(f"    {len(ref.results)} refinement round(s), largest moves "
-        + ", ".join(f"{m:.1f}σ" for m in ref.moves) + (" (converged)" if ref.converged else ""))
-    settings.write_json(out / "settings.json")
-    settings.write_csv(out / "settings.csv")
+    job = _Job(rig, protocol, out, BatchRunner(rig, out / "record", progress=progress), say)
+    cal, led = _calibrate(job, aggressors)
+    first, ref, settings = _compensation(job, cal, led, refine_rounds)
     result = CampaignResult(cal, settings, tolerance_db=protocol.recheck.tolerance_db,
                             refinement=ref)
     if truth is not None:
-        t = rig.now()
-        result.all_on_db = {
-            "pairwise": settings_all_on_db(truth, chip, pairwise_settings(cal, chip), t),
-            "multi-victim": settings_all_on_db(truth, chip, first, t),
-            "closed-loop": settings_all_on_db(truth, chip, settings, t)}
-        result.all_on_pair_db = {p.key: _db(_field_with(truth, settings, p.key, t))
-                                 for p in settings}
+        _all_on_truth(result, truth, rig, cal, first)
 
-    say("3/4 verification: residuals re-measured with all compensation on")
-    snap = led.current()
-    before = runner.shots_executed
-    # A one-off statement for the report, not a routine check: VERIFY_SHOTS_FACTOR times
-    # the re-check's shots, so that it resolves each residual well below the tolerance.
-    rc = protocol.recheck
-    verify_protocol = replace(protocol, recheck=replace(
-        rc, shots_per_point=VERIFY_SHOTS_FACTOR * rc.shots_per_point))
-    for a in sorted({a for (a, _v), e in snap.entries.items() if e.kind == "null"}):
-        victims = [v for (aa, v), e in snap.entries.items() if aa == a and e.kind == "null"]
-        result.verification += recheck_column(rig, verify_protocol, snap, a, victims,
-                                              runner=runner, ledger=led, key=f"verify-{a}")
-    shots["verification"] = runner.shots_executed - before
+    _verify(job, led, result)
     if rb_qubits:
-        say(f"    simultaneous randomized benchmarking of {', '.join(rb_qubits)}")
-        seqs = draw_sequences(list(rb_qubits), list(rb_lengths), rb_draws, rng=7)
-
-        def compensate(tl):
-            return apply_to_timeline(tl, settings, chip, repetition_ns=rig.repetition_ns)
-
-        before = runner.shots_executed
-        # The cancellation tones that protect the others at a qubit's own frequency
-        # reach that qubit too: its gate amplitudes are re-trimmed with compensation on
-        # (common practice), measured here rather than taken from the matrix (which
-        # holds the fields at the victims, not back at the aggressor's own qubit).
-        result.trims = own_drive_trims(rig, list(rb_qubits), compensate, runner=runner,
-                                       key="trim")
-        shots["gate re-trim"] = runner.shots_executed - before
-        before = runner.shots_executed
-        retrim = {chip.line_of(q).name: (chip.qubit(q).f01_ghz, 1.0 / (1.0 + t.change))
-                  for q, t in result.trims.items()}
-
-        def compensate_trimmed(tl):
-            tones = tuple(
-                t.scaled(retrim[t.line][1], t.line)
-                if t.line in retrim and abs(t.freq_ghz - retrim[t.line][0]) < 1e-6 else t
-                for t in tl.tones)
-            return compensate(replace(tl, tones=tones))
-
-        result.rb = simultaneous_rb(rig, seqs, transforms={"uncompensated": None,
-                                                           "compensated": compensate_trimmed},
-                                    shots=rb_shots, runner=runner, rng=7)
-        shots["benchmarking"] = runner.shots_executed - before
+        _benchmark(job, result, rb_qubits, rb_lengths, rb_draws, rb_shots)
 
     if days > 0 and advance is not None:
-        say(f"4/4 drift watch: {days:g} days of scheduled re-checks")
-        schedule = Schedule(protocol.recheck)
-        schedule_after_calibration(schedule, cal, rig.now())
-        if watch is not None:
-            for pair in schedule.pairs():
-                if pair[0] not in watch:
-                    schedule.remove(pair)
-        t_end = rig.now() + days * 86400.0
-        before = runner.shots_executed
-        actions = {"rechecks": 0, "recentred": 0, "recalibrated columns": 0}
-        pairs = list(schedule.pairs())
-        # the truth compares the field with the settings a lab would derive from the
-        # ledger after each step (multi-victim solve, couplings measured in the
-        # refinement's passes, which see every direction, else in the calibration's)
-        coupling_lookup = _couplings_of(list(reversed(ref.results)) + [cal])
-        while rig.now() < t_end:
-            advance(step_h * 3600.0)
-            rep = run_due(rig, protocol, led, schedule, runner=runner)
-            actions["rechecks"] += len(rep.checked)
-            actions["recentred"] += len(rep.recentred)
-            actions["recalibrated columns"] += len(rep.recalibrated)
-            checked = {(c.aggressor, c.victim): c for c in rep.checked}
-            cur = led.current()
-            in_use = settings_in_use(cur, chip, coupling_lookup) if truth is not None else None
-            keys = {p.key for p in in_use} if in_use is not None else set(pairs)
-            for pair in pairs:
-                if pair not in cur or pair not in keys:
-                    continue
-                tr = None if in_use is None else _db(_field_with(truth, in_use, pair,
-                                                                 rig.now()))
-                c = checked.get(pair)
-                result.drift.append(DriftSample(
-                    rig.now(), pair[0], pair[1], tr,
-                    None if c is None else float(c.outcome.residual_db),
-                    None if c is None else c.outcome.decision.value))
-        schedule.save(out / "schedule.json")
-        shots["drift watch"] = runner.shots_executed - before
-        result.drift_actions = actions
-    result.shots = shots
+        _drift_watch(job, result, led, ref, days=days, advance=advance, truth=truth,
+                     step_h=step_h, watch=watch)
+    result.shots = job.shots
     return result

@@ -5,16 +5,20 @@ May import: :mod:`xtalkcal.compensation` and below. Nothing here imports a later
 """
 
 from xtalkcal.drift.analysis import (
+    analyse_recheck,
+    analyse_recheck_counts,
+)
+from xtalkcal.drift.design import (
+    recheck_design,
+    recheck_radius,
+)
+from xtalkcal.drift.inputs import DriftInputError
+from xtalkcal.drift.outcome import (
     DEFAULT_RECHECK_RULES,
-    DriftInputError,
     FollowUp,
     RecheckDecision,
     RecheckOutcome,
     RecheckRules,
-    analyse_recheck,
-    analyse_recheck_counts,
-    recheck_design,
-    recheck_radius,
 )
 from xtalkcal.drift.policy import (
     NextCheck,
@@ -27,7 +31,6 @@ from xtalkcal.drift.recheck import (
     recheck_column,
     run_due,
     schedule_after_calibration,
-    take_out_co_victim_leak,
     unplayable_reason,
 )
 from xtalkcal.drift.schedule import (
@@ -38,6 +41,7 @@ from xtalkcal.drift.schedule import (
     Schedule,
     ScheduleFileError,
 )
+from xtalkcal.drift.stored_sweep import take_out_co_victim_leak
 from xtalkcal.drift.trends import (
     PairTrend,
     RandomWalkRate,

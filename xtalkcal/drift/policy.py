@@ -12,15 +12,13 @@ import numpy as np
 
 if TYPE_CHECKING:
     from xtalkcal.measure import RecheckSettings
-from xtalkcal.drift.analysis import (
+from xtalkcal.drift.inputs import DriftInputError, _finite_real, _lin
+from xtalkcal.drift.outcome import (
     DEFAULT_RECHECK_RULES,
-    DriftInputError,
     FollowUp,
     RecheckDecision,
     RecheckOutcome,
     RecheckRules,
-    _finite_real,
-    _lin,
 )
 from xtalkcal.drift.trends import PairTrend
 
@@ -63,6 +61,104 @@ def _interval_limits(settings: RecheckSettings) -> tuple[float, float, float]:
             f"settings need 0 < min_interval_hours <= max_interval_hours, got {lo!r}, {hi!r}"
         )
     return lo, hi, start
+
+
+@dataclass(frozen=True)
+class _Factors:
+    """The interval factors of :func:`next_check`, checked."""
+
+    safety: float
+    lengthen: float
+    modest_lengthen: float
+    shorten: float
+
+    def __post_init__(self) -> None:
+        if not 0 < self.safety <= 1:
+            raise DriftInputError(f"safety must lie in (0, 1], got {self.safety!r}")
+        if not (self.lengthen >= self.modest_lengthen >= 1 > self.shorten > 0):
+            raise DriftInputError(
+                "need lengthen >= modest_lengthen >= 1 > shorten > 0, got "
+                f"{self.lengthen!r}, {self.modest_lengthen!r}, {self.shorten!r}"
+            )
+
+
+@dataclass(frozen=True)
+class _Step:
+    """An interval proposed from the evidence, before the trend's cap and the clamp."""
+
+    proposal: float
+    follow_up: FollowUp
+    why: str
+    use_trend: bool  # False when the trend describes the value being replaced
+
+
+def _evidence(
+    outcome_or_trend: RecheckOutcome | PairTrend | Sequence[RecheckOutcome | PairTrend],
+) -> tuple[RecheckOutcome | None, PairTrend | None]:
+    """The re-check outcome and the trend handed to :func:`next_check` (at most one of each)."""
+    items = (
+        list(outcome_or_trend)
+        if isinstance(outcome_or_trend, Sequence)
+        else [outcome_or_trend]
+    )
+    outcomes = [x for x in items if isinstance(x, RecheckOutcome)]
+    trends = [x for x in items if isinstance(x, PairTrend)]
+    if len(outcomes) + len(trends) != len(items) or len(outcomes) > 1 or len(trends) > 1:
+        raise DriftInputError(
+            "next_check takes a RecheckOutcome, a PairTrend, or one of each; got "
+            + ", ".join(type(x).__name__ for x in items)
+        )
+    if not items:
+        raise DriftInputError("next_check needs a RecheckOutcome or a PairTrend")
+    return (outcomes[0] if outcomes else None), (trends[0] if trends else None)
+
+
+def _trend_step(
+    trend: PairTrend | None, hours_left: float | None, base: float, factors: _Factors
+) -> _Step:
+    """The proposal from a trend alone (no re-check outcome)."""
+    proposal = base if trend is None or hours_left is None else factors.lengthen * base
+    why = (
+        "trend without rates: interval kept"
+        if hours_left is None
+        else f"trend: lengthened x{factors.lengthen:g} unless the prediction says otherwise"
+    )
+    return _Step(proposal, FollowUp.NONE, why, True)
+
+
+def _outcome_step(
+    outcome: RecheckOutcome, base: float, lo: float, rules: RecheckRules, factors: _Factors
+) -> _Step:
+    """The proposal from a re-check outcome: broken, drifted or within."""
+    if outcome.decision is RecheckDecision.BROKEN:
+        why = f"re-check broken ({outcome.cause.value}): recalibrate, then check at the minimum"
+        return _Step(lo, FollowUp.RECALIBRATE, why, False)
+    if outcome.decision is RecheckDecision.DRIFTED:
+        tol = _lin(outcome.tolerance_db)
+        axis = math.sqrt(max(float(np.linalg.eigvalsh(outcome.shift_covariance)[-1]), 0.0))
+        # Adopting the re-check's null leaves its estimation error as the new residual; it
+        # must sit well inside the tolerance. (Shifts beyond the probed region are already
+        # broken, so no distance rule is needed here.)
+        adoptable = rules.confidence_sigma * axis < tol
+        why = (
+            f"drifted: shortened x{factors.shorten:g}; "
+            + (
+                "the re-check's null is precise enough to adopt (re-centre)"
+                if adoptable
+                else "the re-check's null is too uncertain to adopt (recalibrate)"
+            )
+        )
+        follow_up = FollowUp.RECENTRE if adoptable else FollowUp.RECALIBRATE
+        return _Step(factors.shorten * base, follow_up, why, False)
+    if outcome.comfortable:
+        proposal = factors.lengthen * base
+        why = f"comfortably within: lengthened x{factors.lengthen:g}"
+    elif outcome.confident:
+        proposal = factors.modest_lengthen * base
+        why = f"within: lengthened x{factors.modest_lengthen:g}"
+    else:
+        proposal, why = base, "within, but not confidently: interval kept"
+    return _Step(proposal, FollowUp.NONE, why, True)
 
 
 def next_check(
@@ -118,74 +214,21 @@ def next_check(
     NextCheck
     """
     lo, hi, start = _interval_limits(settings)
-    if not 0 < safety <= 1:
-        raise DriftInputError(f"safety must lie in (0, 1], got {safety!r}")
-    if not (lengthen >= modest_lengthen >= 1 > shorten > 0):
-        raise DriftInputError(
-            "need lengthen >= modest_lengthen >= 1 > shorten > 0, got "
-            f"{lengthen!r}, {modest_lengthen!r}, {shorten!r}"
-        )
-    items = (
-        list(outcome_or_trend)
-        if isinstance(outcome_or_trend, Sequence)
-        else [outcome_or_trend]
-    )
-    outcomes = [x for x in items if isinstance(x, RecheckOutcome)]
-    trends = [x for x in items if isinstance(x, PairTrend)]
-    if len(outcomes) + len(trends) != len(items) or len(outcomes) > 1 or len(trends) > 1:
-        raise DriftInputError(
-            "next_check takes a RecheckOutcome, a PairTrend, or one of each; got "
-            + ", ".join(type(x).__name__ for x in items)
-        )
-    if not items:
-        raise DriftInputError("next_check needs a RecheckOutcome or a PairTrend")
-    outcome = outcomes[0] if outcomes else None
-    trend = trends[0] if trends else None
+    factors = _Factors(safety, lengthen, modest_lengthen, shorten)
+    outcome, trend = _evidence(outcome_or_trend)
     base = start if previous_interval_h is None else _finite_real(
         "previous_interval_h", previous_interval_h
     )
     if base <= 0:
         raise DriftInputError(f"previous_interval_h must be positive, got {base!r}")
 
-    follow_up = FollowUp.NONE
-    decision = None if outcome is None else outcome.decision
     hours_left = None if trend is None else trend.hours_left
-    use_trend = True
     if outcome is None:
-        proposal = base if trend is None or hours_left is None else lengthen * base
-        why = (
-            "trend without rates: interval kept"
-            if hours_left is None
-            else f"trend: lengthened x{lengthen:g} unless the prediction says otherwise"
-        )
-    elif outcome.decision is RecheckDecision.BROKEN:
-        proposal, follow_up, use_trend = lo, FollowUp.RECALIBRATE, False
-        why = f"re-check broken ({outcome.cause.value}): recalibrate, then check at the minimum"
-    elif outcome.decision is RecheckDecision.DRIFTED:
-        proposal, use_trend = shorten * base, False
-        tol = _lin(outcome.tolerance_db)
-        axis = math.sqrt(max(float(np.linalg.eigvalsh(outcome.shift_covariance)[-1]), 0.0))
-        # Adopting the re-check's null leaves its estimation error as the new residual; it
-        # must sit well inside the tolerance. (Shifts beyond the probed region are already
-        # broken, so no distance rule is needed here.)
-        adoptable = rules.confidence_sigma * axis < tol
-        follow_up = FollowUp.RECENTRE if adoptable else FollowUp.RECALIBRATE
-        why = (
-            f"drifted: shortened x{shorten:g}; "
-            + (
-                "the re-check's null is precise enough to adopt (re-centre)"
-                if adoptable
-                else "the re-check's null is too uncertain to adopt (recalibrate)"
-            )
-        )
-    elif outcome.comfortable:
-        proposal, why = lengthen * base, f"comfortably within: lengthened x{lengthen:g}"
-    elif outcome.confident:
-        proposal, why = modest_lengthen * base, f"within: lengthened x{modest_lengthen:g}"
+        step = _trend_step(trend, hours_left, base, factors)
     else:
-        proposal, why = base, "within, but not confidently: interval kept"
-
-    if use_trend and hours_left is not None:
+        step = _outcome_step(outcome, base, lo, rules, factors)
+    proposal, why = step.proposal, step.why
+    if step.use_trend and hours_left is not None:
         cap = safety * hours_left
         if cap < proposal:
             proposal = cap
@@ -198,8 +241,8 @@ def next_check(
         why += f"; clamped to [{lo:g}, {hi:g}] h"
     return NextCheck(
         interval_h=float(interval),
-        follow_up=follow_up,
+        follow_up=step.follow_up,
         reason=why,
-        decision=decision,
+        decision=None if outcome is None else outcome.decision,
         hours_left=hours_left,
     )

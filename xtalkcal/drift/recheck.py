@@ -46,11 +46,18 @@ from xtalkcal.calibrate import (
     survey_radii,
 )
 from xtalkcal.common import __version__
-from xtalkcal.drift.analysis import FollowUp, RecheckDecision, RecheckOutcome, analyse_recheck
+from xtalkcal.drift.analysis import analyse_recheck
+from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
 from xtalkcal.drift.schedule import Pair, Schedule
+from xtalkcal.drift.stored_sweep import (
+    _Couplings,
+    _pass_couplings,
+    _sweep_curvature,
+    take_out_co_victim_leak,
+)
 from xtalkcal.drift.trends import pair_trend
 from xtalkcal.exceptions import SafetyLimitError
-from xtalkcal.fits import RejectionReason, VerdictRules, fit_paraboloid
+from xtalkcal.fits import RejectionReason
 from xtalkcal.hardware import Chip, Rig
 from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape
 from xtalkcal.store import (
@@ -62,8 +69,7 @@ from xtalkcal.store import (
     utc_timestamp,
 )
 
-__all__ = ["PairCheck", "DueReport", "recheck_column", "run_due", "schedule_after_calibration",
-           "take_out_co_victim_leak"]
+__all__ = ["PairCheck", "DueReport", "recheck_column", "run_due", "schedule_after_calibration"]
 
 
 # Largest reduced chi-square of a re-check fit that is absorbed as extra scatter.
@@ -94,89 +100,152 @@ class DueReport:
     shots: int = 0
 
 
-def _pass_couplings(ledger: Ledger | None, entry: LedgerEntry
-                    ) -> tuple[tuple[str, ...], tuple[str, ...], np.ndarray, np.ndarray] | None:
-    """(victims, sources, C, σ_C) of the calibration pass behind ``entry``, from its sweep.
-
-    σ_C is 0 for sweeps stored before it was recorded."""
-    if ledger is None or not entry.sweep_id:
-        return None
-    try:
-        ds = ledger.sweep(entry.sweep_id)
-    except KeyError:  # not stored: no correction (a damaged one raises LedgerError)
-        return None
-    if "coupling_re" not in ds:
-        return None
-    names = tuple(str(v) for v in ds["victim"].values)
-    sources = tuple(str(v) for v in ds["from_victim"].values)
-    C = ds["coupling_re"].values + 1j * ds["coupling_im"].values
-    err = ds["coupling_stderr"].values if "coupling_stderr" in ds else np.zeros(C.shape)
-    return names, sources, C, np.where(np.isfinite(err), err, 0.0)
+def _column_in_use(snapshot: MatrixSnapshot, aggressor: str, wanted: list[str],
+                   silent: Iterable[str]) -> dict[str, LedgerEntry]:
+    """Stored entries of the tones of ``aggressor`` in use, by victim; KeyError for a wanted
+    victim without one."""
+    # The tones in use: pairs that were nulled (or re-checked since), not survey-only ones.
+    off = set(silent)
+    column = {v: e for (a, v), e in snapshot.entries.items()
+              if a == aggressor and e.kind != "survey" and v not in off}
+    missing = [v for v in wanted if v not in column]
+    if missing:
+        raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
+    return column
 
 
-def _sweep_curvature(ledger: Ledger | None, entry: LedgerEntry) -> tuple[float, float] | None:
-    """(κ, σκ) of the pair from its stored calibration sweep, or None."""
-    if ledger is None or not entry.sweep_id:
-        return None
-    try:
-        ds = ledger.sweep(entry.sweep_id)
-    except KeyError:  # not stored: no prior (a damaged one raises LedgerError)
-        return None
-    if entry.victim not in list(ds["victim"].values):
-        return None
-    s = ds.sel(victim=entry.victim)
-    if "curvature" in ds and math.isfinite(float(s.curvature)):
-        # The column fit's own κ (other tones and per-batch offsets modelled).
-        k = float(s.curvature)
-        return k, max(float(s.curvature_stderr), 0.25 * k)
-    z = s.z_re.values + 1j * s.z_im.values
-    rnd = ds["round"].values
-    keep = rnd >= 1 if rnd.max() >= 2 else np.ones(rnd.shape, bool)
-    e = fit_paraboloid(z[keep], s.signal.values[keep], s.stderr.values[keep],
-                       rules=VerdictRules(mismatch_pvalue=0.0)).estimate()
-    if not e.accepted:
-        return None
-    chi = e.reduced_chi2 if math.isfinite(e.reduced_chi2) else 1.0
-    # Saturating signals are not exactly quadratic, so the curvature seen depends on the
-    # ring radius: the prior is trusted to ±25 % at most.
-    sk = max(e.curvature_stderr * math.sqrt(max(1.0, chi)), 0.25 * e.curvature)
-    return float(e.curvature), float(sk)
+@dataclass(frozen=True)
+class _GroupProbe:
+    """One re-check batch of a column: its victims' stored entries, the probe that replays the
+    calibration's pass, the stored nulls as tones and the curvature priors."""
+
+    group: list[str]
+    entries: list[LedgerEntry]
+    stark: bool
+    amplification: int  # K, the largest of the group's
+    probe: ColumnProbe
+    z_stored: np.ndarray  # (V,) complex
+    priors: list[tuple[float, float] | None]
 
 
-def take_out_co_victim_leak(signal: np.ndarray, stderr: np.ndarray, d: np.ndarray,
-                            kappa: float, tones: np.ndarray, c: np.ndarray,
-                            c_err: np.ndarray, ringing: np.ndarray
-                            ) -> tuple[np.ndarray, np.ndarray]:
-    """A re-check's signal with the other tones' known leak onto its victim taken out.
+def _group_probe(chip: Chip, aggressor: str, group: list[str], column: dict[str, LedgerEntry],
+                 amp: float, shape: PulseShape, ledger: Ledger | None) -> _GroupProbe:
+    """The probe of one batch, every other tone of the column fixed at its stored null."""
+    stark = column[group[0]].method == "stark"
+    entries = [column[v] for v in group]
+    K = max(e.amplification for e in entries)
+    others = tuple((chip.line_of(v).name, -e.value * amp) for v, e in column.items()
+                   if v not in group)
+    methods = tuple(e.method for e in entries)
+    # the calibration's windows (a pure function of the nominal chip and the train)
+    windows = (stark_windows(chip, aggressor, group, methods, amp, K, shape) if stark
+               else ())
+    probe = ColumnProbe(chip, aggressor, tuple(group), amplitude=amp, repeats=K,
+                        methods=methods, shape=shape, merged=stark, fixed=others,
+                        stark_windows_ns=windows)
+    z_stored = np.array([-e.value * amp for e in entries])
+    priors = [_sweep_curvature(ledger, e) for e in entries]
+    return _GroupProbe(group, entries, stark, K, probe, z_stored, priors)
 
-    The victim's signal is ``S0 + κ|d + e + ℓ|²`` with ``d`` its own ring offset from the
-    stored null, ``e`` the residual sought and ``ℓ = Σ_k c_k·t_k`` the leak of the other
-    tones ``t_k`` through the couplings ``c_k`` the calibration's column fit measured.
-    Returned: the signal less ``κ(2 Re(d̄ℓ) + |ℓ|²)``, and its error with what the
-    couplings' own errors leave behind added — ``√2·κ|d|·(Σ σ_k²|t_k − t_k,centre|²)^½``
-    over the tones that ring (``ringing``). A tone's constant part leaves the same error
-    as in the stored value, which was found with the same couplings, so the residual is
-    free of it. The ringing part's remainder is bilinear in two rings, on other harmonics
-    than the victim's own, so it scatters the points rather than moving the null; on wide
-    rings it can exceed the shot noise (a verification on the demo chip was judged broken,
-    χ²/dof 4.1, before it was counted).
 
-    Parameters
-    ----------
-    signal, stderr, d : arrays (n,)
-        Signals, their errors, the victim's tone minus its stored null (point 0 the
-        ring's centre).
-    kappa : float
-        The pair's curvature.
-    tones : complex array (K, n)
-        The other tones per point; ``c``, ``c_err`` (K,) their couplings and the
-        couplings' √trace errors; ``ringing`` (K,) bool.
-    """
-    lead = (c[:, None] * tones).sum(axis=0)  # (0, n) when there are none: zeros
-    moving = np.abs(tones - tones[:, :1]) * ringing[:, None]
-    lead_var = ((c_err[:, None] * moving) ** 2).sum(axis=0)
-    out = signal - kappa * (2 * np.real(np.conj(d) * lead) + np.abs(lead) ** 2)
-    return out, np.hypot(stderr, math.sqrt(2) * kappa * np.abs(d) * np.sqrt(lead_var))
+def _ring_radii(gp: _GroupProbe) -> np.ndarray:
+    """Ring radius per victim of the batch (fraction of full scale)."""
+    # The calibration's rule: where the signal rises by a set amount; without a
+    # stored sweep, the survey's radius from the nominal chip.
+    radius = survey_radii(gp.probe)
+    for i, (e, pr) in enumerate(zip(gp.entries, gp.priors, strict=True)):
+        rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
+        if pr is not None and pr[0] > 0:
+            radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
+    return radius
+
+
+def _co_victim_tones(pts: np.ndarray, group: list[str], column: dict[str, LedgerEntry],
+                     amp: float) -> dict[str, np.ndarray]:
+    """Amplitude of every co-victim tone of the calibration pass in each timeline: rings for
+    the victims re-checked now, stored nulls for the others."""
+    tone_of = {v: pts[:, i] for i, v in enumerate(group)}
+    for v, e in column.items():
+        if v not in tone_of:
+            tone_of[v] = np.full(pts.shape[0], -e.value * amp)
+    return tone_of
+
+
+def _leak_taken_out(i: int, gp: _GroupProbe, pts: np.ndarray, signal: np.ndarray,
+                    stderr: np.ndarray, couplings: _Couplings | None,
+                    tone_of: dict[str, np.ndarray]
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """Victim ``i``'s signal without the co-victims' known leak, and the error of what is left.
+
+    Unchanged (``stderr`` itself as the error) without the pass's couplings or a prior."""
+    v, pr = gp.group[i], gp.priors[i]
+    if couplings is None or pr is None or v not in couplings[0]:
+        return signal, stderr
+    # The calibration's column fit measured how the other victims' lines
+    # reach this victim at this frequency; take their (known) leak out of
+    # the signal so that what is left is this pair's own paraboloid.
+    names, sources, C, C_err = couplings
+    iv = names.index(v)
+    known = [(k, u) for k, u in enumerate(sources)
+             if u != v and u in tone_of and np.isfinite(C[iv, k])]
+    return take_out_co_victim_leak(
+        signal, stderr, pts[:, i] - gp.z_stored[i], pr[0],
+        np.array([tone_of[u] for _, u in known], complex).reshape(len(known), len(pts)),
+        np.array([C[iv, k] for k, _ in known]),
+        np.array([C_err[iv, k] for k, _ in known]),
+        np.array([u in gp.group for _, u in known]))
+
+
+def _analyse_pair(z: np.ndarray, signal: np.ndarray, stderr: np.ndarray,
+                  remainder_err: np.ndarray, z0: complex, amp: float, tolerance_db: float,
+                  prior: tuple[float, float] | None) -> RecheckOutcome:
+    """One pair's re-check analysed, its errors widened only as far as the fit needs."""
+    def analyse(err):
+        o = analyse_recheck(z, signal, err, z0, amp, tolerance_db=tolerance_db,
+                            curvature_prior=prior)
+        return o, (o.decision is RecheckDecision.BROKEN
+                   and o.cause is RejectionReason.MODEL_MISMATCH)
+
+    # Shot noise alone first: what the couplings' errors leave of the ringing
+    # co-victims' leak lies on other harmonics than the null's and does not move
+    # it. Only if the points do not fit is that remainder counted in their errors
+    # (it can exceed the shot noise on wide rings), and a misfit still left is
+    # treated as extra scatter up to MAX_BIRGE (signals are not exactly
+    # quadratic): errors scaled by the Birge ratio. Beyond, the landscape is
+    # judged broken.
+    out, mismatch = analyse(stderr)
+    if mismatch and remainder_err is not stderr:
+        out, mismatch = analyse(remainder_err)
+    chi = out.reduced_chi2
+    if mismatch and math.isfinite(chi) and chi < MAX_BIRGE:
+        out, _ = analyse(remainder_err * math.sqrt(chi))
+    return out
+
+
+def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
+                   out: RecheckOutcome, amp: float, amplification: int, shots: int,
+                   now: float, tolerance_db: float) -> LedgerEntry:
+    """The ledger entry of one pair's re-check: accepted (a new current null) only when not
+    broken and precise enough to replace the stored null."""
+    x_new = -out.z_null / amp
+    cov = np.asarray(out.null_covariance) / amp**2
+    precise = math.sqrt(np.trace(cov)) <= 0.5 * 10 ** (tolerance_db / 20)
+    ok = (out.decision is not RecheckDecision.BROKEN and precise
+          and math.isfinite(out.reduced_chi2))
+    reason = "" if ok else (out.reason if out.decision is RecheckDecision.BROKEN else
+                            "re-check too imprecise to replace the stored null")
+    return LedgerEntry(
+        aggressor=aggressor, victim=victim, frequency_ghz=stored.frequency_ghz,
+        value=complex(x_new) if ok else complex(math.nan, math.nan),
+        covariance=tuple(map(tuple, cov)) if ok else ((math.nan,) * 2,) * 2,
+        method=stored.method, shots=shots, amplification=amplification,
+        quality=float(out.reduced_chi2) if ok else math.nan,
+        verdict="accepted" if ok else "rejected", reason=reason,
+        measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
+        software_version=f"xtalkcal {__version__}", kind="recheck",
+        tag=f"{out.decision.value}",
+        # the calibration sweep this analysis rests on (curvature, couplings)
+        sweep_id=stored.sweep_id)
 
 
 def recheck_column(
@@ -216,104 +285,27 @@ def recheck_column(
     shape = PulseShape(protocol.pulse.duration_ns, protocol.pulse.sigma_ns)
     settings = protocol.recheck
     wanted = list(victims)
-    # The tones in use: pairs that were nulled (or re-checked since), not survey-only ones.
-    off = set(silent)
-    column = {v: e for (a, v), e in snapshot.entries.items()
-              if a == aggressor and e.kind != "survey" and v not in off}
-    missing = [v for v in wanted if v not in column]
-    if missing:
-        raise KeyError(f"no stored null for {aggressor} → {', '.join(missing)}")
+    column = _column_in_use(snapshot, aggressor, wanted, silent)
     checks: list[PairCheck] = []
     for group in nulled_pass_groups({v: column[v].method for v in wanted}):
-        stark = column[group[0]].method == "stark"
-        entries = [column[v] for v in group]
-        K = max(e.amplification for e in entries)
-        others = tuple((chip.line_of(v).name, -e.value * amp) for v, e in column.items()
-                       if v not in group)
-        methods = tuple(e.method for e in entries)
-        # the calibration's windows (a pure function of the nominal chip and the train)
-        windows = (stark_windows(chip, aggressor, group, methods, amp, K, shape) if stark
-                   else ())
-        probe = ColumnProbe(chip, aggressor, tuple(group), amplitude=amp, repeats=K,
-                            methods=methods, shape=shape, merged=stark, fixed=others,
-                            stark_windows_ns=windows)
-        z_stored = np.array([-e.value * amp for e in entries])
-        priors = [_sweep_curvature(ledger, e) for e in entries]
-        # The calibration's rule: where the signal rises by a set amount; without a
-        # stored sweep, the survey's radius from the nominal chip.
-        radius = survey_radii(probe)
-        for i, (e, pr) in enumerate(zip(entries, priors, strict=True)):
-            rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
-            if pr is not None and pr[0] > 0:
-                radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
+        gp = _group_probe(chip, aggressor, group, column, amp, shape, ledger)
+        radius = _ring_radii(gp)
         n = ring_points_for(len(group), settings.points)
         shots = shots_per_point(settings.shots_per_point, settings.points, n)
-        pts = ring_around(z_stored, radius, n)
-        sig = measure_probe(runner, probe, pts, shots,
-                            f"{key}-{aggressor}-{'stark' if stark else 'res-' + group[0]}")
+        pts = ring_around(gp.z_stored, radius, n)
+        sig = measure_probe(runner, gp.probe, pts, shots,
+                            f"{key}-{aggressor}-{'stark' if gp.stark else 'res-' + group[0]}")
         now = rig.now()
-        C_info = _pass_couplings(ledger, entries[0])
-        # Amplitude of every co-victim tone of the calibration pass in each timeline:
-        # rings for the victims re-checked now, stored nulls for the others.
-        tone_of = {v: pts[:, i] for i, v in enumerate(group)}
-        for v, e in column.items():
-            if v not in tone_of:
-                tone_of[v] = np.full(pts.shape[0], -e.value * amp)
-        for i, (v, e, pr) in enumerate(zip(group, entries, priors, strict=True)):
-            signal, stderr = sig.signal[:, i], sig.stderr[:, i]
-            remainder_err = stderr
-            if C_info is not None and pr is not None and v in C_info[0]:
-                # The calibration's column fit measured how the other victims' lines
-                # reach this victim at this frequency; take their (known) leak out of
-                # the signal so that what is left is this pair's own paraboloid.
-                names, sources, C, C_err = C_info
-                iv = names.index(v)
-                known = [(k, u) for k, u in enumerate(sources)
-                         if u != v and u in tone_of and np.isfinite(C[iv, k])]
-                signal, remainder_err = take_out_co_victim_leak(
-                    signal, stderr, pts[:, i] - z_stored[i], pr[0],
-                    np.array([tone_of[u] for _, u in known], complex).reshape(len(known), len(pts)),
-                    np.array([C[iv, k] for k, _ in known]),
-                    np.array([C_err[iv, k] for k, _ in known]),
-                    np.array([u in group for _, u in known]))
-            def analyse(err, z=pts[:, i], s=signal, z0=z_stored[i], pr=pr):
-                o = analyse_recheck(z, s, err, z0, amp, tolerance_db=settings.tolerance_db,
-                                    curvature_prior=pr)
-                return o, (o.decision is RecheckDecision.BROKEN
-                           and o.cause is RejectionReason.MODEL_MISMATCH)
-
-            # Shot noise alone first: what the couplings' errors leave of the ringing
-            # co-victims' leak lies on other harmonics than the null's and does not move
-            # it. Only if the points do not fit is that remainder counted in their errors
-            # (it can exceed the shot noise on wide rings), and a misfit still left is
-            # treated as extra scatter up to MAX_BIRGE (signals are not exactly
-            # quadratic): errors scaled by the Birge ratio. Beyond, the landscape is
-            # judged broken.
-            out, mismatch = analyse(stderr)
-            if mismatch and remainder_err is not stderr:
-                out, mismatch = analyse(remainder_err)
-            chi = out.reduced_chi2
-            if mismatch and math.isfinite(chi) and chi < MAX_BIRGE:
-                out, _ = analyse(remainder_err * math.sqrt(chi))
-            x_new = -out.z_null / amp
-            cov = np.asarray(out.null_covariance) / amp**2
-            precise = math.sqrt(np.trace(cov)) <= 0.5 * 10 ** (settings.tolerance_db / 20)
-            ok = (out.decision is not RecheckDecision.BROKEN and precise
-                  and math.isfinite(out.reduced_chi2))
-            reason = "" if ok else (out.reason if out.decision is RecheckDecision.BROKEN else
-                                    "re-check too imprecise to replace the stored null")
-            entry = LedgerEntry(
-                aggressor=aggressor, victim=v, frequency_ghz=e.frequency_ghz,
-                value=complex(x_new) if ok else complex(math.nan, math.nan),
-                covariance=tuple(map(tuple, cov)) if ok else ((math.nan,) * 2,) * 2,
-                method=e.method, shots=int(sig.shots[:, i].sum()), amplification=K,
-                quality=float(out.reduced_chi2) if ok else math.nan,
-                verdict="accepted" if ok else "rejected", reason=reason,
-                measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
-                software_version=f"xtalkcal {__version__}", kind="recheck",
-                tag=f"{out.decision.value}",
-                # the calibration sweep this analysis rests on (curvature, couplings)
-                sweep_id=e.sweep_id)
+        couplings = _pass_couplings(ledger, gp.entries[0])
+        tone_of = _co_victim_tones(pts, group, column, amp)
+        for i, (v, e) in enumerate(zip(group, gp.entries, strict=True)):
+            stderr = sig.stderr[:, i]
+            signal, remainder_err = _leak_taken_out(i, gp, pts, sig.signal[:, i], stderr,
+                                                    couplings, tone_of)
+            out = _analyse_pair(pts[:, i], signal, stderr, remainder_err, gp.z_stored[i], amp,
+                                settings.tolerance_db, gp.priors[i])
+            entry = _recheck_entry(rig, aggressor, v, e, out, amp, gp.amplification,
+                                   int(sig.shots[:, i].sum()), now, settings.tolerance_db)
             checks.append(PairCheck(aggressor, v, out, entry))
     return checks
 
@@ -343,6 +335,153 @@ def schedule_after_calibration(schedule: Schedule, result, now_s: float) -> None
             schedule.calibrated((p.aggressor, p.victim), now_s)
 
 
+@dataclass
+class _DueRun:
+    """One :func:`run_due` call: what it works with, the report it fills and the columns it
+    will recalibrate."""
+
+    rig: Rig
+    protocol: Protocol
+    ledger: Ledger
+    schedule: Schedule
+    runner: BatchRunner
+    say: Callable[[str], None]
+    report: DueReport
+    snapshot: MatrixSnapshot  # the ledger's current matrix when the run began
+    recalibrate: set[str] = field(default_factory=set)
+
+    def in_use(self, pair: Pair) -> bool:
+        """Compensated now: its current entry is a null or a re-check, not a survey."""
+        return pair in self.snapshot and self.snapshot[pair].kind != "survey"
+
+    def aside(self, a: str) -> list[str]:
+        """Victims of ``a`` set aside in the schedule."""
+        return [v for aa, v in self.schedule.set_aside_pairs() if aa == a]
+
+    def put_aside(self, pair: Pair, reason: str) -> None:
+        """Set ``pair`` aside in the schedule and report it."""
+        self.schedule.set_aside(pair, reason, self.snapshot[pair].measured_at_s)
+        self.report.set_aside.append((pair, reason))
+        self.say(f"{pair[0]} → {pair[1]}: set aside: {reason}")
+
+    def take_stock(self) -> None:
+        """Drop pairs no longer compensated; schedule again the set-aside pairs calibrated anew
+        since, and name those still set aside."""
+        schedule, report = self.schedule, self.report
+        for pair in schedule.pairs():
+            if not self.in_use(pair):
+                # A later calibration judged it below threshold: no tone, nothing to check.
+                schedule.remove(pair)
+        for pair in schedule.set_aside_pairs():
+            if self.snapshot[pair].measured_at_s != schedule.slot(pair).set_aside_entry_s:
+                schedule.calibrated(pair, self.snapshot[pair].measured_at_s)
+                report.reinstated.append(pair)
+                self.say(f"{pair[0]} → {pair[1]}: calibrated anew since it was set aside; "
+                         "scheduled again")
+            else:
+                report.still_aside.append(pair)
+        if report.still_aside:
+            self.say("set aside (not re-checked): "
+                     f"{', '.join(f'{a} → {v}' for a, v in report.still_aside)}"
+                     "; see the schedule file for why")
+
+    def set_aside_unplayable(self, now: float) -> None:
+        """Set aside the due pairs whose stored compensation cannot be played."""
+        for pair in self.schedule.due(now):
+            why = unplayable_reason(self.rig.chip, self.protocol, self.snapshot[pair])
+            if why is not None:  # every re-check of it would be refused: not this run, not later
+                self.put_aside(pair, why)
+
+    def due_columns(self, due: list[Pair]) -> dict[str, list[str]]:
+        """Victims to re-check now, by aggressor: every scheduled pair of a batch with a pair
+        due."""
+        # A re-check batch costs the same whatever the number of victims on its rings (shots
+        # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
+        # of the same batch (the aggressor's Stark victims; a resonant victim has a batch of
+        # its own) is re-checked with it; the other batches wait for their own due times.
+        def batch(pair: Pair) -> str:
+            return "stark" if self.snapshot[pair].method == "stark" else pair[1]
+
+        due_batches = {(a, batch((a, v))) for a, v in due if self.in_use((a, v))}
+        by_agg: dict[str, list[str]] = {}
+        for a in sorted({a for a, _ in due_batches}):
+            victims = [v for aa, v in self.schedule.pairs()
+                       if aa == a and (a, batch((a, v))) in due_batches]
+            if victims:
+                by_agg[a] = victims
+        return by_agg
+
+    def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
+        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones."""
+        try:
+            checks = recheck_column(self.rig, self.protocol, self.snapshot, a, victims,
+                                    runner=self.runner, ledger=self.ledger, key=key,
+                                    silent=self.aside(a))
+        except SafetyLimitError as exc:  # refused before anything was played
+            for v in victims:
+                self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
+            return []
+        self.ledger.append([c.entry for c in checks])
+        broken = []
+        for c in checks:
+            if c.outcome.decision is RecheckDecision.BROKEN and not confirming:
+                # Not yet held against the pair's schedule: the repeat decides.
+                self.report.checked.append(c)
+                self.say(f"{a} → {c.victim}: broken ({c.outcome.reason}); repeating")
+                broken.append(c.victim)
+                continue
+            self.act_on(c)
+        return broken
+
+    def act_on(self, c: PairCheck) -> None:
+        """Record a re-check in the schedule; re-centre the pair or mark its column for
+        recalibration as the outcome says."""
+        rig, schedule = self.rig, self.schedule
+        pair = (c.aggressor, c.victim)
+        trend = pair_trend(self.ledger.history(*pair),
+                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
+        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
+        self.report.checked.append(c)
+        self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
+                 f"residual {c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
+        decision = c.outcome.decision
+        if decision is RecheckDecision.BROKEN:
+            self.recalibrate.add(c.aggressor)
+        elif decision is RecheckDecision.DRIFTED or nxt.follow_up is not FollowUp.NONE:
+            if c.entry.verdict == "accepted":
+                # The re-check located the moved null precisely: its entry is now the
+                # current one (re-centred) at a fraction of a recalibration's cost.
+                schedule.calibrated(pair, rig.now(), interval_h=nxt.interval_h)
+                self.report.recentred.append(pair)
+            elif c.outcome.confident:
+                self.recalibrate.add(c.aggressor)
+            # Otherwise the drift is not established beyond the re-check's noise: the
+            # schedule has shortened the interval, and the next re-check decides.
+
+    def recalibrate_column(self, a: str) -> None:
+        """Calibrate the column of ``a`` anew (pairs set aside left out), record it and
+        reschedule its fresh nulls."""
+        rig, protocol, schedule, ledger = self.rig, self.protocol, self.schedule, self.ledger
+        self.say(f"{a}: recalibrating the column")
+        tag = f"recal-{a}-{int(rig.now())}"
+        aside = self.aside(a)
+        in_use = [v for aa, v in schedule.pairs() if aa == a and v not in aside]
+        res = calibrate_chip(rig, protocol, runner=self.runner, aggressors=[a], key_prefix=tag,
+                             null_victims={a: in_use})
+        entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)
+        if entries or sweeps:  # a column with nothing left to measure stores nothing
+            ledger.append(entries, sweeps=sweeps)
+        for p in res.pairs:
+            if p.accepted and p.nulled:
+                # A fresh null restarts at the protocol's first interval at least (as after
+                # the first calibration); pairs already on longer intervals keep theirs.
+                pair = (p.aggressor, p.victim)
+                old = schedule.slot(pair).interval_h if pair in schedule else 0.0
+                schedule.calibrated(pair, rig.now(),
+                                    interval_h=max(old, protocol.recheck.interval_hours))
+        self.report.recalibrated.append(a)
+
+
 def run_due(
     rig: Rig,
     protocol: Protocol,
@@ -361,126 +500,22 @@ def run_due(
     runner = runner or BatchRunner(rig)
     start_shots = runner.shots_executed
     now = rig.now()
-    report = DueReport(now)
-    snapshot = ledger.current()
-    by_agg: dict[str, list[str]] = {}
-
-    def in_use(pair: Pair) -> bool:
-        # Compensated now: its current entry is a null or a re-check, not a survey.
-        return pair in snapshot and snapshot[pair].kind != "survey"
-
-    for pair in schedule.pairs():
-        if not in_use(pair):
-            # A later calibration judged it below threshold: no tone, nothing to check.
-            schedule.remove(pair)
-    for pair in schedule.set_aside_pairs():
-        if snapshot[pair].measured_at_s != schedule.slot(pair).set_aside_entry_s:
-            schedule.calibrated(pair, snapshot[pair].measured_at_s)
-            report.reinstated.append(pair)
-            say(f"{pair[0]} → {pair[1]}: calibrated anew since it was set aside; scheduled again")
-        else:
-            report.still_aside.append(pair)
-    if report.still_aside:
-        say(f"set aside (not re-checked): {', '.join(f'{a} → {v}' for a, v in report.still_aside)}"
-            "; see the schedule file for why")
-
-    def put_aside(pair: Pair, reason: str) -> None:
-        schedule.set_aside(pair, reason, snapshot[pair].measured_at_s)
-        report.set_aside.append((pair, reason))
-        say(f"{pair[0]} → {pair[1]}: set aside: {reason}")
-
-    for pair in schedule.due(now):
-        why = unplayable_reason(rig.chip, protocol, snapshot[pair])
-        if why is not None:  # every re-check of it would be refused: not this run, not later
-            put_aside(pair, why)
+    run = _DueRun(rig, protocol, ledger, schedule, runner, say, DueReport(now),
+                  ledger.current())
+    run.take_stock()
+    run.set_aside_unplayable(now)
     due = schedule.due(now)
-    if not due:
-        report.shots = runner.shots_executed - start_shots
-        return report
-    # A re-check batch costs the same whatever the number of victims on its rings (shots
-    # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
-    # of the same batch (the aggressor's Stark victims; a resonant victim has a batch of
-    # its own) is re-checked with it; the other batches wait for their own due times.
-    def batch(pair: Pair) -> str:
-        return "stark" if snapshot[pair].method == "stark" else pair[1]
-
-    due_batches = {(a, batch((a, v))) for a, v in due if in_use((a, v))}
-    for a in sorted({a for a, _ in due_batches}):
-        victims = [v for aa, v in schedule.pairs()
-                   if aa == a and (a, batch((a, v))) in due_batches]
-        if victims:
-            by_agg[a] = victims
-    recalibrate: set[str] = set()
-
-    def aside(a: str) -> list[str]:
-        return [v for aa, v in schedule.set_aside_pairs() if aa == a]
-
-    def check(a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
-        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones."""
-        try:
-            checks = recheck_column(rig, protocol, snapshot, a, victims, runner=runner,
-                                    ledger=ledger, key=key, silent=aside(a))
-        except SafetyLimitError as exc:  # refused before anything was played
-            for v in victims:
-                put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
-            return []
-        ledger.append([c.entry for c in checks])
-        broken = []
-        for c in checks:
-            pair = (c.aggressor, c.victim)
-            if c.outcome.decision is RecheckDecision.BROKEN and not confirming:
-                # Not yet held against the pair's schedule: the repeat decides.
-                report.checked.append(c)
-                say(f"{a} → {c.victim}: broken ({c.outcome.reason}); repeating")
-                broken.append(c.victim)
-                continue
-            trend = pair_trend(ledger.history(*pair), tolerance_db=protocol.recheck.tolerance_db,
-                               now_s=rig.now())
-            nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
-            report.checked.append(c)
-            say(f"{a} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), residual "
-                f"{c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
-            decision = c.outcome.decision
-            if decision is RecheckDecision.BROKEN:
-                recalibrate.add(a)
-            elif decision is RecheckDecision.DRIFTED or nxt.follow_up is not FollowUp.NONE:
-                if c.entry.verdict == "accepted":
-                    # The re-check located the moved null precisely: its entry is now the
-                    # current one (re-centred) at a fraction of a recalibration's cost.
-                    schedule.calibrated(pair, rig.now(), interval_h=nxt.interval_h)
-                    report.recentred.append(pair)
-                elif c.outcome.confident:
-                    recalibrate.add(a)
-                # Otherwise the drift is not established beyond the re-check's noise: the
-                # schedule has shortened the interval, and the next re-check decides.
-        return broken
-
-    for a, victims in by_agg.items():
-        tag = f"recheck-{int(rig.now())}"
-        broken = check(a, victims, f"{tag}-{a}", confirming=False)
-        if broken:
-            # A re-check judged broken (its landscape is not this pair's paraboloid) is
-            # repeated once before the whole column is recalibrated, and only the repeat
-            # counts for the schedule: a chance misfit, or a transient during the batch,
-            # costs one more re-check, not a calibration and a reset interval.
-            check(a, broken, f"{tag}-{a}-repeat", confirming=True)
-    for a in sorted(recalibrate):
-        say(f"{a}: recalibrating the column")
-        tag = f"recal-{a}-{int(rig.now())}"
-        in_use = [v for aa, v in schedule.pairs() if aa == a and v not in aside(a)]
-        res = calibrate_chip(rig, protocol, runner=runner, aggressors=[a], key_prefix=tag,
-                             null_victims={a: in_use})
-        entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)
-        if entries or sweeps:  # a column with nothing left to measure stores nothing
-            ledger.append(entries, sweeps=sweeps)
-        for p in res.pairs:
-            if p.accepted and p.nulled:
-                # A fresh null restarts at the protocol's first interval at least (as after
-                # the first calibration); pairs already on longer intervals keep theirs.
-                pair = (p.aggressor, p.victim)
-                old = schedule.slot(pair).interval_h if pair in schedule else 0.0
-                schedule.calibrated(pair, rig.now(),
-                                    interval_h=max(old, protocol.recheck.interval_hours))
-        report.recalibrated.append(a)
-    report.shots = runner.shots_executed - start_shots
-    return report
+    if due:
+        for a, victims in run.due_columns(due).items():
+            tag = f"recheck-{int(rig.now())}"
+            broken = run.check(a, victims, f"{tag}-{a}", confirming=False)
+            if broken:
+                # A re-check judged broken (its landscape is not this pair's paraboloid) is
+                # repeated once before the whole column is recalibrated, and only the repeat
+                # counts for the schedule: a chance misfit, or a transient during the batch,
+                # costs one more re-check, not a calibration and a reset interval.
+                run.check(a, broken, f"{tag}-{a}-repeat", confirming=True)
+        for a in sorted(run.recalibrate):
+            run.recalibrate_column(a)
+    run.report.shots = runner.shots_executed - start_shots
+    return run.report

@@ -27,14 +27,8 @@ from xtalkcal.exceptions import ConfigError
 if TYPE_CHECKING:
     from xtalkcal.hardware import Chip
     from xtalkcal.measure import RecheckSettings
-from xtalkcal.drift.analysis import (
-    _SECONDS_PER_HOUR,
-    DriftInputError,
-    FollowUp,
-    RecheckDecision,
-    RecheckOutcome,
-    _finite_real,
-)
+from xtalkcal.drift.inputs import _SECONDS_PER_HOUR, DriftInputError, _finite_real
+from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
 from xtalkcal.drift.policy import NextCheck, _interval_limits, next_check
 from xtalkcal.drift.trends import PairTrend
 

@@ -21,7 +21,7 @@ from xtalkcal.common import (
 
 if TYPE_CHECKING:
     from xtalkcal.store import LedgerEntry
-from xtalkcal.drift.analysis import (
+from xtalkcal.drift.inputs import (
     _DB_PER_NEPER,
     _SECONDS_PER_HOUR,
     DriftInputError,
