@@ -8,7 +8,7 @@ a lab would write (nominal frequencies, line gains, limits) is derived from it b
 Device file, field by field::
 
     format = "xtalkcal-simdevice"
-    version = 1
+    version = 2                # 1 or 2; the fields marked "version 2" need version = 2
     name = "grid9-demo"
     seed = 20261201            # seeds readout sampling, jitter and drift
     levels = 3                 # transmon levels kept per qubit (≥ 2)
@@ -55,8 +55,22 @@ Device file, field by field::
     phase_deg = 35.0           # arg X at the victim's f01
     delay_ns = 1.5             # extra delay of the leak path: arg X(f) = phase − 2π(f − f01)·delay
     phase_rate_rad_per_hour = 0.0   # optional, overrides the drift default for this pair
+    phase_diffusion_rad2_per_hour = 1e-4      # optional (version 2), overrides the default
+    log_magnitude_diffusion_per_hour = 1e-5   # optional (version 2), overrides the default
 
-Unlisted (line, qubit) pairs do not couple.
+    [[steps]]                  # version 2: a sudden change of one listed coupling
+    at_hours = 30.0            # simulated time it happens (h); it holds from then on
+    line = "d1"
+    qubit = "q0"
+    crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
+    phase_deg_change = 20.0    # optional (default 0), added to arg X (−360 … 360)
+
+Unlisted (line, qubit) pairs do not couple. The drift of a coupling is its phase random
+walk (``phase_diffusion_rad2_per_hour``, its own or the ``[drift]`` default), its linear
+phase rate, its log-magnitude random walk, and the sum of the steps at or before the time.
+Steps are drift: a rig made with drift off (``SimRig(..., drift=False)``) has none.
+Drift runs only if at least one ``[drift]`` rate, a coupling's own diffusion or a step is
+non-zero (a version 1 file with only per-coupling phase rates has no drift, as before).
 """
 
 from __future__ import annotations
@@ -87,17 +101,22 @@ __all__ = [
     "LineTruth",
     "CouplingTruth",
     "DriftParams",
+    "StepChange",
     "DeviceSpec",
     "load_device",
     "device_from_dict",
 ]
 
 DEVICE_FORMAT = "xtalkcal-simdevice"
-DEVICE_VERSION = 1
+DEVICE_VERSION = 2
+# [[couplings]] fields a version 1 file may not hold.
+_VERSION_2_FIELDS = ("phase_diffusion_rad2_per_hour", "log_magnitude_diffusion_per_hour")
 HOUR_S = 3600.0
 # Drift beyond these would scramble a coupling within seconds: no chip worth simulating.
 DIFFUSION_MAX_PER_HOUR = 100.0  # rad²/h for phases, 1/h for log-magnitudes
 RATE_MAX = 100.0  # rad/h
+STEP_MAX_DB = 40.0  # a larger jump of one coupling is a broken chip, not drift
+STEP_LATEST_HOURS = 1e6  # about a century of simulated time
 
 
 @dataclass(frozen=True)
@@ -145,6 +164,23 @@ class CouplingTruth:
     phase_rad: float
     delay_ns: float
     phase_rate_rad_per_hour: float | None = None
+    phase_diffusion_rad2_per_hour: float | None = None  # None: the [drift] default
+    log_magnitude_diffusion_per_hour: float | None = None
+
+
+@dataclass(frozen=True)
+class StepChange:
+    """A sudden change of the coupling ``line`` → ``qubit`` from ``at_hours`` on."""
+
+    at_hours: float
+    line: str
+    qubit: str
+    crosstalk_db_change: float  # dB added to |X|
+    phase_rad_change: float = 0.0  # added to arg X
+
+    @property
+    def at_s(self) -> float:
+        return self.at_hours * HOUR_S
 
 
 @dataclass(frozen=True)
@@ -187,6 +223,17 @@ class DeviceSpec:
     jitter_groups: int = 1
     drift: DriftParams = field(default_factory=DriftParams)
     source: str = "<memory>"
+    steps: tuple[StepChange, ...] = ()
+
+    @property
+    def drifts(self) -> bool:
+        """Whether anything drifts: a ``[drift]`` rate, a coupling's own diffusion or a step."""
+        own = (
+            v
+            for c in self.couplings
+            for v in (c.phase_diffusion_rad2_per_hour, c.log_magnitude_diffusion_per_hour)
+        )
+        return self.drift.enabled or any(v for v in own) or bool(self.steps)
 
     # ------------------------------------------------------------------ lookups
     def qubit(self, name: str) -> QubitTruth:
@@ -291,29 +338,9 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         lt.reject_unknown()
     own_qubit = {ln.name: ln.qubit for ln in lines}
 
-    couplings: list[CouplingTruth] = []
-    for ct in top.tables("couplings", None):
-        line = ct.reference("line", list(own_qubit), "line")
-        qubit = ct.reference("qubit", qnames, "qubit")
-        if valid(line, qubit, own_qubit.get(line)) and own_qubit.get(line) == qubit:
-            qubit = ct.reject("qubit", "a line's coupling to its own qubit is set by its "
-                                       "rabi_mhz; accepted: another qubit")
-        elif valid(line, qubit) and any(c.line == line and c.qubit == qubit for c in couplings):
-            qubit = ct.reject("qubit", f"coupling {line} → {qubit} is listed twice; "
-                                       "accepted: one [[couplings]] block per pair")
-        phase_deg = ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")
-        couplings.append(
-            CouplingTruth(
-                line,
-                qubit,
-                ct.number("crosstalk_db", lo=-150.0, hi=0.0, unit="dB"),
-                math.radians(phase_deg) if valid(phase_deg) else phase_deg,
-                ct.number("delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
-                ct.number("phase_rate_rad_per_hour", None, lo=-RATE_MAX, hi=RATE_MAX,
-                          unit="rad/h"),
-            )
-        )
-        ct.reject_unknown()
+    version_1 = data.get("version", DEVICE_VERSION) == 1
+    couplings = _read_couplings(top, own_qubit, qnames, version_1)
+    steps = _read_steps(top, couplings, list(own_qubit), qnames, version_1)
     top.reject_unknown()
     top.finish()
     return DeviceSpec(
@@ -330,7 +357,74 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         jitter_groups=groups,
         drift=drift,
         source=source,
+        steps=tuple(steps),
     )
+
+
+def _read_couplings(top: Fields, own_qubit: Mapping[Any, Any], qnames: list[Any],
+                    version_1: bool) -> list[CouplingTruth]:
+    """The ``[[couplings]]`` blocks (the version 2 fields refused in a version 1 file)."""
+    couplings: list[CouplingTruth] = []
+    for ct in top.tables("couplings", None):
+        line = ct.reference("line", list(own_qubit), "line")
+        qubit = ct.reference("qubit", qnames, "qubit")
+        if valid(line, qubit, own_qubit.get(line)) and own_qubit.get(line) == qubit:
+            qubit = ct.reject("qubit", "a line's coupling to its own qubit is set by its "
+                                       "rabi_mhz; accepted: another qubit")
+        elif valid(line, qubit) and any(c.line == line and c.qubit == qubit for c in couplings):
+            qubit = ct.reject("qubit", f"coupling {line} → {qubit} is listed twice; "
+                                       "accepted: one [[couplings]] block per pair")
+        phase_deg = ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")
+        if version_1:
+            for key in (k for k in _VERSION_2_FIELDS if k in ct.data):
+                ct.report(key, "needs version = 2 (a version 1 file has one diffusion for "
+                               "every coupling, in [drift])")
+        couplings.append(
+            CouplingTruth(
+                line,
+                qubit,
+                ct.number("crosstalk_db", lo=-150.0, hi=0.0, unit="dB"),
+                math.radians(phase_deg) if valid(phase_deg) else phase_deg,
+                ct.number("delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
+                ct.number("phase_rate_rad_per_hour", None, lo=-RATE_MAX, hi=RATE_MAX,
+                          unit="rad/h"),
+                ct.number("phase_diffusion_rad2_per_hour", None, lo=0.0,
+                          hi=DIFFUSION_MAX_PER_HOUR, unit="rad²/h"),
+                ct.number("log_magnitude_diffusion_per_hour", None, lo=0.0,
+                          hi=DIFFUSION_MAX_PER_HOUR, unit="1/h"),
+            )
+        )
+        ct.reject_unknown()
+    return couplings
+
+
+def _read_steps(top: Fields, couplings: list[CouplingTruth], lnames: list[Any],
+                qnames: list[Any], version_1: bool) -> list[StepChange]:
+    """The ``[[steps]]`` blocks: each changes a coupling listed in ``[[couplings]]``."""
+    if version_1 and "steps" in top.data:
+        top.report("steps", "needs version = 2 (a version 1 file has no step changes)")
+        top.tables("steps", None)  # marked as read: one message, not two
+        return []
+    listed = {(c.line, c.qubit) for c in couplings}
+    steps: list[StepChange] = []
+    for st in top.tables("steps", None):
+        at = st.number("at_hours", lo=0.0, hi=STEP_LATEST_HOURS, unit="h")
+        line = st.reference("line", lnames, "line")
+        qubit = st.reference("qubit", qnames, "qubit")
+        # A coupling with a wrong name was reported already: no second message for it.
+        if valid(line, qubit, *(v for pair in listed for v in pair)) and (
+                (line, qubit) not in listed):
+            qubit = st.reject("qubit", f"{line} → {qubit} is not a listed coupling; "
+                                       "accepted: the qubit of a [[couplings]] block of "
+                                       f"line {line}")
+        phase_deg = st.number("phase_deg_change", 0.0, lo=-360.0, hi=360.0, unit="deg")
+        steps.append(StepChange(
+            at, line, qubit,
+            st.number("crosstalk_db_change", lo=-STEP_MAX_DB, hi=STEP_MAX_DB, unit="dB"),
+            math.radians(phase_deg) if valid(phase_deg) else phase_deg,
+        ))
+        st.reject_unknown()
+    return steps
 
 
 def _read_qubit(qname: Any, qt: Fields, n_levels: Any) -> QubitTruth:

@@ -1,11 +1,14 @@
 """Drift of a whole device versus simulated time, and the crosstalk it implies.
 
 Channels: for every listed coupling a phase offset (random walk + linear rate) and
-a log-magnitude offset (random walk); for every qubit an f01 offset
-(Ornstein–Uhlenbeck). The processes are :class:`simulated_device.drift.DriftTrack`
-channels, read lazily on a fixed 60 s simulated-time grid and interpolated linearly in
-between, so a value depends only on the seed and the time asked for — not on how or
-in which order the questions come (past times included, for the ground truth).
+a log-magnitude offset (random walk), each walk with the coupling's own diffusion or the
+``[drift]`` default; for every qubit an f01 offset (Ornstein–Uhlenbeck). The device's
+scheduled steps are added on top, each from its time on (not interpolated: a step is in
+the state at ``t ≥ at`` and not before; a batch of shots sees the state at its start).
+The processes are :class:`simulated_device.drift.DriftTrack` channels, read lazily on a
+fixed 60 s simulated-time grid and interpolated linearly in between, so a value depends
+only on the seed and the time asked for — not on how or in which order the questions come
+(past times included, for the ground truth).
 """
 
 from __future__ import annotations
@@ -38,7 +41,7 @@ class DeviceDrift:
 
     def __init__(self, device: DeviceSpec, *, enabled: bool = True, rng=None) -> None:
         self.device = device
-        self.enabled = bool(enabled) and device.drift.enabled
+        self.enabled = bool(enabled) and device.drifts
         self._rng = np.random.default_rng(rng)
         d = device.drift
         self._pairs = [(c.qubit, c.line) for c in device.couplings]
@@ -51,8 +54,12 @@ class DeviceDrift:
             ]
         )
         self._rate_per_s = rates / HOUR_S
-        self._phase_diff = d.phase_diffusion_rad2_per_hour / HOUR_S
-        self._mag_diff = d.log_magnitude_diffusion_per_hour / HOUR_S
+        self._phase_diff = np.array([
+            d.phase_diffusion_rad2_per_hour if c.phase_diffusion_rad2_per_hour is None
+            else c.phase_diffusion_rad2_per_hour for c in device.couplings]) / HOUR_S
+        self._mag_diff = np.array([
+            d.log_magnitude_diffusion_per_hour if c.log_magnitude_diffusion_per_hour is None
+            else c.log_magnitude_diffusion_per_hour for c in device.couplings]) / HOUR_S
         self._wander_std = d.qubit_wander_mhz * 1e-3
         self._wander_tau = d.qubit_wander_hours * HOUR_S
         n_p, n_q = len(self._pairs), len(self._qubits)
@@ -63,7 +70,7 @@ class DeviceDrift:
         tau = self._wander_tau
         self._track = DriftTrack(
             2 * n_p + n_q,
-            diffusion=np.concatenate([np.full(n_p, self._phase_diff), np.full(n_p, self._mag_diff),
+            diffusion=np.concatenate([self._phase_diff, self._mag_diff,
                                       np.full(n_q, 2 * self._wander_std**2 / tau)]),
             rate=np.concatenate([self._rate_per_s, np.zeros(n_p + n_q)]),
             correlation_time_s=np.concatenate([np.full(2 * n_p, inf), np.full(n_q, tau)]),
@@ -74,6 +81,13 @@ class DeviceDrift:
         self._grid = [self._track.value(0.0)]
         self._n_p = n_p
         self._coupling = {(c.qubit, c.line): c for c in device.couplings}
+        index = {pair: k for k, pair in enumerate(self._pairs)}
+        # Steps in time order: (time s, pair index, log-magnitude change, phase change).
+        self._steps = sorted(
+            (s.at_s, index[(s.qubit, s.line)], s.crosstalk_db_change * math.log(10) / 20,
+             s.phase_rad_change)
+            for s in device.steps
+        )
 
     def _extend(self, k: int) -> None:
         while len(self._grid) <= k:
@@ -91,6 +105,11 @@ class DeviceDrift:
         self._extend(k + 1)
         w = (t_s - k * GRID_S) / GRID_S
         v = (1 - w) * self._grid[k] + w * self._grid[k + 1]
+        for at_s, i, dlog, dphase in self._steps:
+            if at_s > t_s:
+                break
+            v[n_p + i] += dlog
+            v[i] += dphase
         phase = v[:n_p]
         return DriftState(
             t_s,
