@@ -1,6 +1,6 @@
 """Driven, damped dynamics of one transmon under many tones — the fast path and a reference path.
 
-Model (DESIGN.md section 4). In the frame rotating at a frequency ``f`` the victim's
+Model. In the frame rotating at a frequency ``f`` the victim's
 Hamiltonian is ::
 
     H/h = Σ_n (ε_n − n·f)|n⟩⟨n| + Σ_k ½[Ω_k(t)·e^{−i2π(f_k − f)t}·Σ_n λ_n|n+1⟩⟨n| + h.c.]

@@ -259,7 +259,7 @@ class SimRig:
 
     def true_ratio(self, victim: str, line: str, freq_ghz: float, t_s: float | None = None
                    ) -> complex:
-        """True compensation ratio r = −X (DESIGN.md section 3)."""
+        """True compensation ratio r = −X (README: the crosstalk element and the ratio)."""
         return -self.true_crosstalk(victim, line, freq_ghz, t_s)
 
     def true_matrix(self, t_s: float | None = None) -> np.ndarray:

@@ -11,7 +11,7 @@ The compiled integrator :func:`simulated_device.dynamics.evolve_populations` is 
   Ramsey decay e^{−t/T2}, and the perturbative AC Stark shift of a transmon
   (Krantz et al., Appl. Phys. Rev. 6, 021318 (2019)).
 
-Model (DESIGN.md section 4), in the frame rotating at the victim's 0–1 frequency f::
+Model of simulated_device/dynamics.py, in the frame rotating at the victim's 0–1 frequency f::
 
     H/h = Σ_n (ε_n − n f)|n⟩⟨n| + Σ_k ½[Ω_k(t)·e^{−i2π(f_k − f)t}·Σ_n λ_n|n+1⟩⟨n| + h.c.]
 

@@ -1,6 +1,6 @@
 """SimRig as an instrument: readout statistics, clock, seeds, drift growth and refusals.
 
-The readout model (DESIGN.md section 4): the final level populations p of a victim pass
+The readout model (device field `readout`): the final level populations p of a victim pass
 through its assignment matrix A (rows P(assigned | level)), q = p·A, and the counts of a
 timeline are one multinomial draw of ``shots`` trials with probabilities q. A multinomial
 has mean n·q_i, variance n·q_i(1 − q_i) and covariance −n·q_i·q_j (standard properties of
@@ -79,7 +79,7 @@ def probe_timeline() -> Timeline:
 
 
 def expected_assigned(dev_data: dict[str, Any], timeline: Timeline) -> dict[str, np.ndarray]:
-    """q = p·A per qubit, from the device file's numbers (DESIGN.md section 4 field model).
+    """q = p·A per qubit, from the device file's numbers.
 
     Ω = (own line Rabi rate)·a·e^{iφ}·X(f) with X = 1 on the own line and, for a listed
     coupling, X(f) = 10^(dB/20)·exp(i(θ − 2π(f − f01)τ)).
@@ -219,7 +219,7 @@ def test_drift_random_walk_variance_grows_linearly(channel: str) -> None:
     """Var of a coupling's phase (and log-magnitude) walk = D·t over many seeds.
 
     D·t is the variance of a Wiener process of diffusion constant D (its definition), which
-    is what DESIGN.md section 4 asks for ("phase random walk plus linear rate").
+    is the drift model of simulated_device/drift_state.py (phase random walk plus linear rate).
 
     Each increment is independent with variance D·Δt, and the phase's mean follows the
     linear rate. 1200 seeds: the standard error of a variance is √(2/1200) ≈ 4 %; the

@@ -325,7 +325,7 @@ def test_simultaneous_rb_shows_the_leakage_pair(demo_device):
     """
     rig = SimRig(demo_device, seed=3, drift=False)
     seqs = draw_sequences(["q4", "q5"], [1, 25, 50, 100], 16, rng=8)
-    # best-case cancellation from the simulator's truth, r = −X (DESIGN.md §3)
+    # best-case cancellation from the simulator's truth, r = −X
     r54 = rig.true_ratio("q5", "d4", rig.chip.qubit("q4").f01_ghz)
     r45 = rig.true_ratio("q4", "d5", rig.chip.qubit("q5").f01_ghz)
 

@@ -33,7 +33,7 @@ RING_MARGIN = 4.0
 # planned null: inside the unwrapped range [−π/2, 3π/2) of the probe's readings, with room
 # for the other tones' leak.
 STARK_PHASE_MAX = 1.5
-# Prior used before the survey: the strongest crosstalk we plan for (DESIGN.md: −20 dB).
+# Prior used before the survey: the strongest crosstalk we plan for (−20 dB; a design choice).
 STRONGEST_DB = -20.0
 #: A victim joins a joint resonant null pass only if its null lies within this many
 #: final ring radii (RING_MARGIN target errors) of zero (see passes.hand_over).
