@@ -6,7 +6,10 @@ line, nearest-neighbour crosstalk −30 … −18 dB falling 8–14 dB per site,
 default protocol, :func:`xtalkcal.calibrate.calibrate_chip` on a ``SimRig`` of the
 generated device with drift off. Truth is ``SimRig.true_crosstalk`` at the aggressor's f01.
 
-Per chip it prints: qubits, layout, couplings and hazards of the plan; pairs truly above
+Per chip it prints: qubits, layout, couplings and the hazards of the plan (ordered pairs of
+|X| ≥ −40 dB whose frequencies fall in a hazard window, recounted from the device's
+frequencies: a near-resonant pair counts both ways, and hazards the generator leaves
+unconstrained beyond its clear radius count too); pairs truly above
 −40 dB, those of them not nulled, and how many of those the run names as unsettled (so
 exits non-zero for; :func:`xtalkcal.outputs.unsettled_pairs`); the worst true residual
 |X_true − X_est| (dB) over nulled pairs; the RMS of the pulls |X_est − X_true|/σ over

@@ -55,11 +55,11 @@ Device file, field by field::
     phase_deg = 35.0           # arg X at the victim's f01
     delay_ns = 1.5             # extra delay of the leak path: arg X(f) = phase − 2π(f − f01)·delay
     phase_rate_rad_per_hour = 0.0   # optional, overrides the drift default for this pair
-    phase_diffusion_rad2_per_hour = 1e-4      # optional (version 2), overrides the default
-    log_magnitude_diffusion_per_hour = 1e-5   # optional (version 2), overrides the default
+    phase_diffusion_rad2_per_hour = 1e-4      # optional, version 2 (0 … 100 rad²/h): own walk
+    log_magnitude_diffusion_per_hour = 1e-5   # optional, version 2 (0 … 100 1/h): own walk
 
     [[steps]]                  # version 2: a sudden change of one listed coupling
-    at_hours = 30.0            # simulated time it happens (h); it holds from then on
+    at_hours = 30.0            # simulated time it happens (0 … 1e6 h); it holds from then on
     line = "d1"
     qubit = "q0"
     crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
