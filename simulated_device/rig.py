@@ -24,11 +24,24 @@ import numpy as np
 
 from simulated_device.device import DeviceSpec, load_device
 from simulated_device.drift_state import DeviceDrift
-from simulated_device.dynamics import StepControl, ToneBatch, evolve_populations
+from simulated_device.dynamics import StepControl, ToneBatch, evolve_held, evolve_populations
 from xtalkcal.exceptions import TimelineError
-from xtalkcal.hardware import Chip, Counts, Timeline, check_timelines, common_readout
+from xtalkcal.hardware import (
+    Chip,
+    Counts,
+    SampledRig,
+    SampledWaveforms,
+    Timeline,
+    check_timelines,
+    common_readout,
+)
 
-__all__ = ["SimRig"]
+__all__ = ["SimRig", "SimulatedSampledRig", "sampled_demo_rig"]
+
+#: Half-width (GHz) around a line's LO within which the waveform path applies the device's
+#: line responses; beyond it a response is held at its band-edge value (the device model
+#: is linear in frequency, in dB and phase, only over a few GHz; signals there are ~0).
+RESPONSE_BAND_GHZ = 2.0
 
 
 class SimRig:
@@ -166,16 +179,30 @@ class SimRig:
 
     def _simulate(self, timelines, shots, readout, state, rng) -> np.ndarray:
         dev = self.device
-        G = dev.jitter_groups
         R = len(timelines)
-        line_names = self._chip.line_names
-        n_lines = len(line_names)
-        line_index = {n: k for k, n in enumerate(line_names)}
         # Jitter per (timeline, group, line).
-        eps = rng.normal(0.0, dev.amplitude_jitter, size=(R, G, n_lines))
-        eta = rng.normal(0.0, dev.phase_jitter_rad, size=(R, G, n_lines))
-        jit = (1.0 + eps) * np.exp(1j * eta)
+        jit = _jitter(dev, rng, R, len(self._chip.line_names))
+        n_assign = max(q.readout.shape[0] for q in dev.qubits)
+        out = np.zeros((R, len(readout), n_assign), dtype=np.int64)
+        group_shots = _group_shots(shots, dev.jitter_groups)
+        for iq, victim in enumerate(readout):
+            q = dev.qubit(victim)
+            pops = self._tone_populations(timelines, victim, state, jit)
+            out[:, iq, : q.readout.shape[0]] = _assigned_counts(pops, q.readout, group_shots, rng)
+        return out
 
+    def populations(self, timelines: Sequence[Timeline], victim: str) -> np.ndarray:
+        """Level populations of ``victim`` after each timeline, shape (R, L): no jitter, no
+        shots, drift state at the rig's clock; nothing is checked or counted (for tests)."""
+        jit = np.ones((len(timelines), 1, len(self._chip.line_names)), dtype=complex)
+        return self._tone_populations(list(timelines), victim, self._drift.at(self._t_s), jit)
+
+    def _tone_populations(self, timelines, victim, state, jit) -> np.ndarray:
+        """Populations (R·G, L) of ``victim`` under the tones, jitter ``jit`` (R, G, lines)."""
+        dev = self.device
+        R, G = jit.shape[:2]
+        line_names = self._chip.line_names
+        line_index = {n: k for k, n in enumerate(line_names)}
         M = max((len(tl.tones) for tl in timelines), default=0)
         M = max(M, 1)
         start = np.zeros((R, M))
@@ -202,50 +229,29 @@ class SimRig:
                 ramp[r, k] = t.envelope.ramp_ns
                 lidx[r, k] = line_index[t.line]
         valid = np.arange(M)[None, :] < ntones[:, None]
-
-        n_assign = max(q.readout.shape[0] for q in dev.qubits)
-        out = np.zeros((R, len(readout), n_assign), dtype=np.int64)
-        group_shots = np.full(G, shots // G)
-        group_shots[: shots % G] += 1
-        for iq, victim in enumerate(readout):
-            q = dev.qubit(victim)
-            # Field factor of every tone at this victim.
-            fac = np.zeros((R, M), dtype=complex)
-            for ln in line_names:
-                mask = valid & (lidx == line_index[ln])
-                if np.any(mask):
-                    fac[mask] = self.field_factor(victim, ln, freq[mask], state)
-            omega = (amp * fac)[:, None, :] * np.take_along_axis(
-                jit, np.broadcast_to(lidx[:, None, :], (R, G, M)), axis=2
-            )
-            omega = omega.reshape(R * G, M)
-            rep = lambda a: np.repeat(a, G, axis=0)  # noqa: E731
-            batch = ToneBatch(
-                rep(start), rep(dur), rep(freq), omega, rep(code), rep(sigma), rep(drag),
-                rep(ramp), rep(ntones), rep(end),
-            )
-            levels = q.levels.energies_ghz + state.qubit_shift_ghz[victim] * np.arange(
-                q.levels.n_levels
-            )
-            pops = evolve_populations(
-                levels, q.levels.ladder, np.array([q.t1_us * 1e3]), np.array([q.t2_us * 1e3]),
-                batch, control=self._control,
-            )
-            # Levels above the assignment matrix are read like its last row.
-            A = q.readout
-            na = A.shape[0]
-            p_levels = np.concatenate(
-                [pops[:, : na - 1], pops[:, na - 1 :].sum(axis=1, keepdims=True)], axis=1
-            )
-            p_assigned = np.clip(p_levels @ A, 0.0, None)
-            p_assigned /= p_assigned.sum(axis=1, keepdims=True)
-            p_assigned = p_assigned.reshape(R, G, na)
-            c = np.zeros((R, na), dtype=np.int64)
-            for g in range(G):
-                if group_shots[g]:
-                    c += rng.multinomial(group_shots[g], p_assigned[:, g, :])
-            out[:, iq, :na] = c
-        return out
+        q = dev.qubit(victim)
+        # Field factor of every tone at this victim.
+        fac = np.zeros((R, M), dtype=complex)
+        for ln in line_names:
+            mask = valid & (lidx == line_index[ln])
+            if np.any(mask):
+                fac[mask] = self.field_factor(victim, ln, freq[mask], state)
+        omega = (amp * fac)[:, None, :] * np.take_along_axis(
+            jit, np.broadcast_to(lidx[:, None, :], (R, G, M)), axis=2
+        )
+        omega = omega.reshape(R * G, M)
+        rep = lambda a: np.repeat(a, G, axis=0)  # noqa: E731
+        batch = ToneBatch(
+            rep(start), rep(dur), rep(freq), omega, rep(code), rep(sigma), rep(drag),
+            rep(ramp), rep(ntones), rep(end),
+        )
+        levels = q.levels.energies_ghz + state.qubit_shift_ghz[victim] * np.arange(
+            q.levels.n_levels
+        )
+        return evolve_populations(
+            levels, q.levels.ladder, np.array([q.t1_us * 1e3]), np.array([q.t2_us * 1e3]),
+            batch, control=self._control,
+        )
 
     # ------------------------------------------------------------------ ground truth
     def true_crosstalk(self, victim: str, line: str, freq_ghz: float, t_s: float | None = None
@@ -272,3 +278,200 @@ class SimRig:
                 f = self._chip.qubit(ln.qubit).f01_ghz
                 out[i, j] = self.true_crosstalk(v, ln.name, f, t_s)
         return out
+
+
+class SimulatedSampledRig(SampledRig):
+    """The simulated device behind :class:`~xtalkcal.hardware.SampledRig`: sampled waveforms in.
+
+    ``run`` is the base class's (limits checked, then compiled to per-line I/Q samples);
+    :meth:`play` feeds those samples, and nothing else, to the simulator's waveform-level
+    path (:func:`simulated_device.dynamics.evolve_held`). Same device, drift, clock,
+    jitter model and readout as :class:`SimRig`.
+
+    How a line's samples reach a qubit: the line's held samples ``s[k]`` (baseband
+    relative to its LO, ``f_LO``) are passed through the device's response from that line
+    to the qubit, ``H(f)`` (what :meth:`SimRig.field_factor` gives a tone at ``f``: gain,
+    crosstalk magnitude, phase, delays and slopes), as a discrete-time filter with
+    response ``H(f_LO + ν)`` at each frequency ν of the sample sequence (ν within
+    ±``RESPONSE_BAND_GHZ``, held beyond), then held again like the DAC output and mixed
+    with the continuous LO. Where ``H`` is flat across a line's content this is exactly
+    the tone path's per-tone factor ``H(f_tone)``; where it is not (a delay, a slope) the
+    filter also moves and reshapes envelopes, which the tone path neglects, so the two
+    agree only to O(τ·bandwidth) there.
+
+    Parameters
+    ----------
+    device : DeviceSpec or path
+    samples_per_ns : float
+        DAC rate (GS/s); default 8.
+    lo_ghz : mapping of str → float, optional
+        LO per line (GHz); default each line's qubit's nominal f01.
+    seed, drift, control, start_s
+        As for :class:`SimRig`.
+    """
+
+    def __init__(
+        self,
+        device: DeviceSpec | str | Path,
+        *,
+        samples_per_ns: float = 8.0,
+        lo_ghz: dict[str, float] | None = None,
+        seed: int | None = None,
+        drift: bool = True,
+        control: StepControl | None = None,
+        start_s: float = 0.0,
+    ) -> None:
+        super().__init__(samples_per_ns=samples_per_ns, lo_ghz=lo_ghz)
+        self.sim = SimRig(device, seed=seed, drift=drift, control=control, start_s=start_s)
+        self._lo_plan = self.lo_ghz  # refuses an LO plan naming unknown lines now
+
+    @property
+    def chip(self) -> Chip:
+        return self.sim.chip
+
+    @property
+    def repetition_ns(self) -> float:
+        return self.sim.repetition_ns
+
+    def describe(self) -> str:
+        return (f"simulated_device.SimulatedSampledRig({self.samples_per_ns:g} samples/ns, "
+                f"over {self.sim.describe()})")
+
+    def now(self) -> float:
+        return self.sim.now()
+
+    def advance_clock_to(self, t_s: float) -> None:
+        """As :meth:`SimRig.advance_clock_to`."""
+        self.sim.advance_clock_to(t_s)
+
+    def play(self, waveforms, shots: int) -> Counts:
+        """Simulate each compiled timeline ``shots`` times from its samples alone."""
+        waveforms = list(waveforms)
+        for wf in waveforms:
+            if wf.readout_ns > self.repetition_ns:
+                raise TimelineError(
+                    f"{wf.label or 'timeline'}: readout at {wf.readout_ns:g} ns is later than "
+                    f"the repetition time {self.repetition_ns:g} ns")
+        readout = waveforms[0].readout
+        sim = self.sim
+        started = sim.now()
+        state = sim._drift.at(started)
+        rng = self._batch_rng(waveforms, shots)
+        dev = sim.device
+        R, G = len(waveforms), dev.jitter_groups
+        lines = self.chip.line_names
+        jit = _jitter(dev, rng, R, len(lines))
+        n_assign = max(q.readout.shape[0] for q in dev.qubits)
+        out = np.zeros((R, len(readout), n_assign), dtype=np.int64)
+        group_shots = _group_shots(int(shots), G)
+        for iq, victim in enumerate(readout):
+            pops = self.populations(waveforms, victim, state, jit)
+            q = dev.qubit(victim)
+            out[:, iq, : q.readout.shape[0]] = _assigned_counts(pops, q.readout, group_shots, rng)
+        sim._t_s += R * int(shots) * self.repetition_ns * 1e-9
+        sim._shots_total += R * int(shots)
+        return Counts(readout, out, int(shots), started, sim.now())
+
+    def populations(self, waveforms: list[SampledWaveforms], victim: str, state=None,
+                    jit: np.ndarray | None = None) -> np.ndarray:
+        """Level populations of ``victim`` after each compiled timeline, shape (R·G, L).
+
+        ``state`` is the drift state (default: at the rig's clock) and ``jit`` the jitter
+        factors per (timeline, group, line) (default: none, one group).
+        """
+        sim = self.sim
+        dev = sim.device
+        state = sim._drift.at(sim.now()) if state is None else state
+        lines = self.chip.line_names
+        if jit is None:
+            jit = np.ones((len(waveforms), 1, len(lines)), dtype=complex)
+        R, G = jit.shape[:2]
+        dt = waveforms[0].dt_ns
+        n = max(wf.n_samples for wf in waveforms)
+        carriers = sorted({wf.lo_ghz[ln] for wf in waveforms for ln in lines})
+        omega = np.zeros((R, G, len(carriers), n), dtype=complex)
+        for r, wf in enumerate(waveforms):
+            if wf.dt_ns != dt:
+                raise TimelineError("all waveforms of one batch must share one sample rate")
+            for il, ln in enumerate(lines):
+                s = wf.samples[ln]
+                if not np.any(s):
+                    continue
+                seen = self._line_response(victim, ln, wf.lo_ghz[ln], s, dt, state)
+                p = carriers.index(wf.lo_ghz[ln])
+                omega[r, :, p, : len(s)] += jit[r, :, il, None] * seen[None, :]
+        q = dev.qubit(victim)
+        levels = q.levels.energies_ghz + state.qubit_shift_ghz[victim] * np.arange(
+            q.levels.n_levels)
+        return evolve_held(levels, q.levels.ladder, np.array([q.t1_us * 1e3]),
+                           np.array([q.t2_us * 1e3]), omega.reshape(R * G, len(carriers), n),
+                           np.broadcast_to(np.array(carriers), (R * G, len(carriers))), dt,
+                           control=sim._control)
+
+    def _line_response(self, victim: str, line: str, lo: float, s: np.ndarray, dt: float,
+                       state) -> np.ndarray:
+        """Held Rabi-rate samples (GHz) at ``victim`` from one line's samples ``s``."""
+        n = len(s)
+        pad = n  # zeros on both sides: a delay must not wrap the record round
+        nu = np.fft.fftfreq(3 * n, dt)
+        f = lo + np.clip(nu, -RESPONSE_BAND_GHZ, RESPONSE_BAND_GHZ)
+        h = self.sim.field_factor(victim, line, f, state)
+        if np.all(h == h[0]):
+            return h[0] * s  # a flat response is a plain factor: no filtering round-off
+        spec = np.fft.fft(np.concatenate([np.zeros(pad), s, np.zeros(pad)]))
+        return np.fft.ifft(spec * h)[pad: pad + n]
+
+    def _batch_rng(self, waveforms: list[SampledWaveforms], shots: int) -> np.random.Generator:
+        """As :meth:`SimRig._batch_rng`, keyed by the samples themselves."""
+        h = hashlib.blake2b(repr((int(shots), waveforms[0].dt_ns)).encode(), digest_size=8)
+        for wf in waveforms:
+            h.update(repr((wf.readout, wf.readout_ns, sorted(wf.lo_ghz.items()))).encode())
+            for ln in sorted(wf.samples):
+                h.update(ln.encode())
+                h.update(np.ascontiguousarray(wf.samples[ln]).tobytes())
+        key = int.from_bytes(h.digest(), "little")
+        n = self.sim._repeat_count.get(key, 0)
+        self.sim._repeat_count[key] = n + 1
+        return np.random.default_rng(np.random.SeedSequence([self.sim._seed, key, n]))
+
+
+def sampled_demo_rig() -> SimulatedSampledRig:
+    """The bundled demo device over the waveform-level path (``--rig`` factory)."""
+    from simulated_device import demo_device_path
+
+    return SimulatedSampledRig(demo_device_path(), seed=1234)
+
+
+def _jitter(dev: DeviceSpec, rng: np.random.Generator, runs: int, n_lines: int) -> np.ndarray:
+    """Electronics jitter factors (1 + ε)·e^{iη} per (run, group, line)."""
+    G = dev.jitter_groups
+    eps = rng.normal(0.0, dev.amplitude_jitter, size=(runs, G, n_lines))
+    eta = rng.normal(0.0, dev.phase_jitter_rad, size=(runs, G, n_lines))
+    return (1.0 + eps) * np.exp(1j * eta)
+
+
+def _group_shots(shots: int, groups: int) -> np.ndarray:
+    """Shots of each jitter group (as equal as whole numbers allow)."""
+    group_shots = np.full(groups, shots // groups)
+    group_shots[: shots % groups] += 1
+    return group_shots
+
+
+def _assigned_counts(pops: np.ndarray, assign: np.ndarray, group_shots: np.ndarray,
+                     rng: np.random.Generator) -> np.ndarray:
+    """Counts (R, n_assigned) from level populations (R·G, L) through the readout matrix."""
+    G = len(group_shots)
+    R = pops.shape[0] // G
+    # Levels above the assignment matrix are read like its last row.
+    na = assign.shape[0]
+    p_levels = np.concatenate(
+        [pops[:, : na - 1], pops[:, na - 1 :].sum(axis=1, keepdims=True)], axis=1
+    )
+    p_assigned = np.clip(p_levels @ assign, 0.0, None)
+    p_assigned /= p_assigned.sum(axis=1, keepdims=True)
+    p_assigned = p_assigned.reshape(R, G, na)
+    c = np.zeros((R, na), dtype=np.int64)
+    for g in range(G):
+        if group_shots[g]:
+            c += rng.multinomial(group_shots[g], p_assigned[:, g, :])
+    return c

@@ -43,6 +43,13 @@ from xtalkcal.hardware.safety import (
     limits_summary,
     line_loads,
 )
+from xtalkcal.hardware.sampled import (
+    SampledRig,
+    SampledWaveforms,
+    check_samples,
+    compile_timeline,
+    default_lo_ghz,
+)
 from xtalkcal.hardware.timeline import (
     ENVELOPE_KINDS,
     MIN_SHAPE_NS,
@@ -95,4 +102,9 @@ __all__ = [
     "envelope_peak",
     "limits_summary",
     "line_loads",
+    "SampledRig",
+    "SampledWaveforms",
+    "check_samples",
+    "compile_timeline",
+    "default_lo_ghz",
 ]
