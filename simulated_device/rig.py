@@ -413,7 +413,9 @@ class SimulatedSampledRig(SampledRig):
         """Held Rabi-rate samples (GHz) at ``victim`` from one line's samples ``s``."""
         n = len(s)
         pad = n  # zeros on both sides: a delay must not wrap the record round
-        nu = np.fft.fftfreq(3 * n, dt)
+        # A component e^{−i2πνt} of the samples (our sign, as for the carriers) sits at
+        # numpy's frequency −ν, so the bin at numpy frequency ν holds the RF frequency f_LO − ν.
+        nu = -np.fft.fftfreq(3 * n, dt)
         f = lo + np.clip(nu, -RESPONSE_BAND_GHZ, RESPONSE_BAND_GHZ)
         h = self.sim.field_factor(victim, line, f, state)
         if np.all(h == h[0]):
