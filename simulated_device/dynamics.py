@@ -678,21 +678,13 @@ def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsu
     P, n_cells = omega.shape
     rho = np.zeros((L, L), dtype=np.complex128)
     rho[0, 0] = 1.0
-    om = np.zeros((L, L), dtype=np.complex128)
-    U = np.empty((L, L), dtype=np.complex128)
-    X2 = np.empty((L, L), dtype=np.complex128)
-    X3 = np.empty((L, L), dtype=np.complex128)
-    tmp = np.empty((L, L), dtype=np.complex128)
-    T = np.empty((L, L), dtype=np.complex128)
+    om = np.zeros((L, L), dtype=np.complex128)  # entries off the tridiagonal stay zero
+    small = np.empty((5, L, L), dtype=np.complex128)  # work arrays, allocated once per run
+    U, X2, X3, tmp, T = small[0], small[1], small[2], small[3], small[4]
     dvec = np.empty(L)
     lam2 = np.empty(L)
-    N = L * L
-    sarg = np.empty((N, N), dtype=np.complex128)
-    sX2 = np.empty((N, N), dtype=np.complex128)
-    sX3 = np.empty((N, N), dtype=np.complex128)
-    stmp = np.empty((N, N), dtype=np.complex128)
-    d_half = np.empty((N, N), dtype=np.complex128)
-    d_full = np.empty((N, N), dtype=np.complex128)
+    big = np.empty((6, L * L, L * L), dtype=np.complex128)
+    sarg, sX2, sX3, stmp, d_half, d_full = big[0], big[1], big[2], big[3], big[4], big[5]
     _frame_diagonal(levels_ghz, ladder, f_frame, dvec, lam2)
     h = dt / nsub
     c1 = 0.5 - SQRT3 / 6.0

@@ -129,13 +129,17 @@ def default_lo_ghz(chip: Chip) -> dict[str, float]:
     return {ln.name: chip.qubit(ln.qubit).f01_ghz for ln in chip.lines}
 
 
+def _is_number(value: object) -> bool:
+    # A string or bool is a configuration mistake, not a rate or a frequency.
+    return (isinstance(value, numbers.Real) and not isinstance(value, bool)
+            and math.isfinite(value))
+
+
 def _checked_rate(samples_per_ns: object) -> float:
-    ok = isinstance(samples_per_ns, numbers.Real) and not isinstance(samples_per_ns, bool)
-    rate = float(samples_per_ns) if ok else math.nan  # type: ignore[arg-type]
-    if not (math.isfinite(rate) and rate > 0):
-        raise RigError(f"samples_per_ns = {samples_per_ns!r}: the DAC rate must be a finite "
-                       "number > 0 (samples per ns, i.e. GS/s)")
-    return rate
+    if _is_number(samples_per_ns) and samples_per_ns > 0:  # type: ignore[operator]
+        return float(samples_per_ns)  # type: ignore[arg-type]
+    raise RigError(f"samples_per_ns = {samples_per_ns!r}: the DAC rate must be a finite "
+                   "number > 0 (samples per ns, i.e. GS/s)")
 
 
 def _checked_lo(chip: Chip, lo_ghz: Mapping[str, float] | None) -> dict[str, float]:
@@ -144,8 +148,7 @@ def _checked_lo(chip: Chip, lo_ghz: Mapping[str, float] | None) -> dict[str, flo
         if line not in plan:
             raise RigError(f"lo_ghz names line {line!r}, not a line of chip {chip.source}; "
                            f"known: {', '.join(chip.line_names)}")
-        ok = isinstance(f, numbers.Real) and not isinstance(f, bool) and math.isfinite(f)
-        if not (ok and f >= 0):
+        if not (_is_number(f) and f >= 0):
             raise RigError(f"lo_ghz[{line!r}] = {f!r}: an LO frequency must be a finite "
                            "number ≥ 0 (GHz)")
         plan[line] = float(f)
