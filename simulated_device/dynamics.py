@@ -669,13 +669,15 @@ def _evolve_batch(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega
 
 
 @nb.njit(cache=True)
-def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame):
+def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame,
+                     n_cells):
     """One run under a sample-held drive: carrier p holds Rabi rate ``omega[p, k]`` over
-    cell k = [k·dt, (k + 1)·dt) and turns at ``freq[p]``; ``nsub`` Magnus-4 steps per cell
+    cell k = [k·dt, (k + 1)·dt), k < ``n_cells``, and turns at ``freq[p]``; ``nsub``
+    Magnus-4 steps per cell
     (one cell never straddles a step), with the same Strang-split dissipation as
     :func:`_magnus_interval`."""
     L = levels_ghz.shape[0]
-    P, n_cells = omega.shape
+    P = omega.shape[0]
     rho = np.zeros((L, L), dtype=np.complex128)
     rho[0, 0] = 1.0
     om = np.zeros((L, L), dtype=np.complex128)  # entries off the tridiagonal stay zero
@@ -721,13 +723,14 @@ def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsu
 
 
 @nb.njit(cache=True, parallel=True)
-def _evolve_held_batch(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame):
+def _evolve_held_batch(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame,
+                       n_cells):
     R = omega.shape[0]
     L = levels_ghz.shape[1]
     out = np.empty((R, L))
     for r in nb.prange(R):
         out[r] = _evolve_held_one(levels_ghz[r], ladder[r], gamma1[r], gamma_phi[r], omega[r],
-                                  freq[r], dt, nsub[r], f_frame[r])
+                                  freq[r], dt, nsub[r], f_frame[r], n_cells[r])
     return out
 
 
@@ -802,6 +805,7 @@ def evolve_held(
     carrier_ghz: np.ndarray,
     dt_ns: float,
     *,
+    n_cells: np.ndarray | None = None,
     control: StepControl | None = None,
 ) -> np.ndarray:
     """Final level populations of R runs under sample-held drives, each starting in |0⟩.
@@ -828,7 +832,9 @@ def evolve_held(
     carrier_ghz : (R, P) array
         Frequency of each carrier (GHz).
     dt_ns : float
-        Cell length (ns); the runs end at N·dt.
+        Cell length (ns).
+    n_cells : (R,) int array, optional
+        Cells of each run (≤ N; default N): run r ends, and is read, at ``n_cells[r]·dt``.
     control : StepControl, optional
 
     Returns
@@ -855,7 +861,10 @@ def evolve_held(
     step = np.minimum(c.max_step_ns, np.where(fastest > 0, c.phase_per_step /
                                               (TWO_PI * np.maximum(fastest, 1e-300)), np.inf))
     nsub = np.maximum(1, np.ceil(float(dt_ns) / step - 1e-12)).astype(np.int64)
-    pops = _evolve_held_batch(levels, lad, g1, gphi, omega, freq, float(dt_ns), nsub, f_frame)
+    cells = np.full(R, omega.shape[2], dtype=np.int64) if n_cells is None else np.minimum(
+        np.asarray(n_cells, dtype=np.int64), omega.shape[2])
+    pops = _evolve_held_batch(levels, lad, g1, gphi, omega, freq, float(dt_ns), nsub, f_frame,
+                              np.ascontiguousarray(np.broadcast_to(cells, (R,))))
     pops = np.clip(pops, 0.0, 1.0)
     return pops / pops.sum(axis=1, keepdims=True)
 

@@ -406,6 +406,7 @@ class SimulatedSampledRig(SampledRig):
         return evolve_held(levels, q.levels.ladder, np.array([q.t1_us * 1e3]),
                            np.array([q.t2_us * 1e3]), omega.reshape(R * G, len(carriers), n),
                            np.broadcast_to(np.array(carriers), (R * G, len(carriers))), dt,
+                           n_cells=np.repeat([wf.n_samples for wf in waveforms], G),
                            control=sim._control)
 
     def _line_response(self, victim: str, line: str, lo: float, s: np.ndarray, dt: float,

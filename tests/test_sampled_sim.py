@@ -197,3 +197,13 @@ def test_same_batch_same_counts_on_a_fresh_rig() -> None:
     first = SimulatedSampledRig(dev, samples_per_ns=8.0, seed=3, drift=False).run([tl], 500)
     again = SimulatedSampledRig(dev, samples_per_ns=8.0, seed=3, drift=False).run([tl], 500)
     np.testing.assert_array_equal(first.counts, again.counts)
+
+
+def test_a_batch_of_different_lengths_reads_each_at_its_own_time(flat) -> None:
+    """The shorter record is read at its end, not after idling to the longer one's."""
+    sim, srig = flat
+    short, long_ = CASES["single pulse"], CASES["train"]
+    together = srig.populations([srig.compile(short), srig.compile(long_)], "a")
+    alone = srig.populations([srig.compile(short)], "a")[0]
+    np.testing.assert_allclose(together[0], alone, atol=1e-14)
+    assert np.max(np.abs(together[0] - sim.populations([short], "a")[0])) <= TOL
