@@ -245,3 +245,15 @@ def test_compiled_samples_never_exceed_the_line_limit(demo_chip, tl, rate, fill)
     wf = compile_timeline(tl, demo_chip, rate, lo)
     for ln, s in wf.samples.items():
         assert np.max(np.abs(s)) <= demo_chip.amplitude_limit(ln) * (1 + 1e-12)
+
+
+def test_a_wrong_answer_from_play_is_a_rig_error(demo_chip) -> None:
+    class Liar(RecordingRig):
+        def play(self, waveforms, shots):
+            good = super().play(waveforms, shots)
+            return Counts(good.qubits, good.counts - 1, shots, 0.0, 1.0)
+
+    rig = Liar(demo_chip, samples_per_ns=4.0)
+    tl = Timeline((Tone("d0", 0.0, 20.0, 4.92, 0.5),), ("q0",))
+    with pytest.raises(RigError, match="sampled timelines: the rig returned a negative count"):
+        rig.run([tl], 10)

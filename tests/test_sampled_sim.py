@@ -207,3 +207,19 @@ def test_a_batch_of_different_lengths_reads_each_at_its_own_time(flat) -> None:
     alone = srig.populations([srig.compile(short)], "a")[0]
     np.testing.assert_allclose(together[0], alone, atol=1e-14)
     assert np.max(np.abs(together[0] - sim.populations([short], "a")[0])) <= TOL
+
+
+def test_jitter_and_groups_reach_both_paths_alike(flat) -> None:
+    """The electronics jitter multiplies a line's output: per tone on one path, per line's
+    samples on the other; three groups of draws, fixed seed."""
+    sim, srig = flat
+    tl = CASES["several lines"]
+    rng = np.random.default_rng(11)
+    jit = (1 + rng.normal(0, 0.05, (1, 3, 3))) * np.exp(1j * rng.normal(0, 0.2, (1, 3, 3)))
+    state = sim._drift.at(0.0)
+    for victim in tl.readout:
+        tone = sim._tone_populations([tl], victim, state, jit)
+        wave = srig.populations([srig.compile(tl)], victim, state, jit)
+        assert tone.shape == wave.shape == (3, 3)
+        assert np.max(np.abs(tone - wave)) <= TOL
+        assert np.ptp(tone[:, 1]) > 1e-4  # the draws differ enough to matter
