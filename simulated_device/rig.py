@@ -297,7 +297,9 @@ class SimulatedSampledRig(SampledRig):
     with the continuous LO. Where ``H`` is flat across a line's content this is exactly
     the tone path's per-tone factor ``H(f_tone)``; where it is not (a delay, a slope) the
     filter also moves and reshapes envelopes, which the tone path neglects, so the two
-    agree only to O(τ·bandwidth) there.
+    agree only to O(τ·bandwidth) there; and a qubit driven off its transition by Δf then
+    sees a line's response at its transition, not at the tone (a null differs by about
+    2π·Δf·τ in phase from the tone path's).
 
     Parameters
     ----------
