@@ -45,6 +45,8 @@ from xtalkcal.store import schema as schema_mod
 
 REPO = Path(__file__).resolve().parents[1]
 FIXTURE_V1 = Path(__file__).resolve().parent / "data" / "ledger_v1"
+# Written by the version-1 writer once commit digests existed (``--write-fixture-sealed``).
+FIXTURE_V1_SEALED = Path(__file__).resolve().parent / "data" / "ledger_v1_sealed"
 T0_UTC = datetime(2031, 3, 14, 9, 0, 0, tzinfo=timezone.utc)
 
 
@@ -331,8 +333,9 @@ def test_sweep_round_trip(ds: xr.Dataset, sweep_id: str) -> None:
         assert_same_dataset(Ledger(Path(tmp) / "l").sweep(sweep_id), ds)
 
 
-def test_sweep_special_content(tmp_path: Path) -> None:
-    ds = xr.Dataset(
+def special_sweep() -> xr.Dataset:
+    """A sweep with the awkward content the codec must keep exactly."""
+    return xr.Dataset(
         {
             "a/b.c": (("x",), np.array(["α", "", "long string ✓"], dtype=object)),
             "scalar": ((), np.complex64(1 - 2j), {"units/of": "1", "": "empty key"}),
@@ -352,6 +355,10 @@ def test_sweep_special_content(tmp_path: Path) -> None:
             "arr_str": np.array(["x", "yy"]),
         },
     )
+
+
+def test_sweep_special_content(tmp_path: Path) -> None:
+    ds = special_sweep()
     led = Ledger.create(tmp_path / "l", chip="c")
     led.append(sweeps={"s/1": ds, "s.2": small_sweep(1)})
     reread = Ledger(tmp_path / "l")
@@ -854,6 +861,23 @@ def write_fixture(path: Path) -> None:
     (path / "ledger.lock").unlink(missing_ok=True)
 
 
+def sealed_fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
+    """The content of tests/data/ledger_v1_sealed: the version-1 batches, then one commit
+    whose sweep holds the awkward content of `special_sweep` (never edit either)."""
+    third = make_entry(victim="q3", measured_at_s=5000.0, tag="sealed", sweep_id="odd/1",
+                       measured_at_utc="2031-03-14T11:00:00.000000+00:00")
+    return [*_fixture_batches(), ([third], {"odd/1": special_sweep()})]
+
+
+def write_sealed_fixture(path: Path) -> None:
+    if path.exists():
+        raise SystemExit(f"{path} exists; remove it first (only for a deliberate regeneration)")
+    led = Ledger.create(path, chip="fixture-chip")
+    for entries, sweeps in sealed_fixture_batches():
+        led.append(entries, sweeps=sweeps)
+    (path / "ledger.lock").unlink(missing_ok=True)
+
+
 @pytest.fixture
 def fixture_copy(tmp_path: Path) -> Path:
     dest = tmp_path / "v1"
@@ -1168,5 +1192,7 @@ if __name__ == "__main__":
         child_main(sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5]))
     elif sys.argv[1:2] == ["--write-fixture"]:
         write_fixture(FIXTURE_V1)
+    elif sys.argv[1:2] == ["--write-fixture-sealed"]:
+        write_sealed_fixture(FIXTURE_V1_SEALED)
     else:
         raise SystemExit(__doc__)
