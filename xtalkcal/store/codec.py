@@ -224,19 +224,26 @@ def _encode_array(arr: np.ndarray, where: str, field_name: str) -> _Blob:
     raise LedgerValidationError(where, field_name, f"dtype {arr.dtype} is not storable")
 
 
+def _decode_raw(raw: Any, codec: str, dtype: np.dtype, where: str) -> np.ndarray:
+    """An array as stored (``raw``: what h5py read) turned back into its numpy ``dtype``."""
+    if codec == "plain":
+        return np.asarray(raw).astype(dtype, copy=False)
+    if codec == "text":
+        arr = np.asarray(raw, dtype=object)
+        out = np.empty(arr.shape, dtype=object)
+        if out.size:
+            out[...] = arr
+        return out if dtype.kind == "O" else out.astype(dtype)
+    if codec == "int64-view":
+        return np.asarray(raw, dtype=np.int64).view(dtype)
+    raise LedgerError(f"{where}: unknown array codec {codec!r}")
+
+
 def _decode_array(ds: h5py.Dataset) -> np.ndarray:
     codec = ds.attrs["codec"]
     dtype = np.dtype(ds.attrs["dtype"])
-    if codec == "plain":
-        return np.asarray(ds[()]).astype(dtype, copy=False)
-    if codec == "text":
-        raw = np.empty(ds.shape, dtype=object)
-        if raw.size:
-            raw[...] = ds.asstr()[()]
-        return raw if dtype.kind == "O" else raw.astype(dtype)
-    if codec == "int64-view":
-        return np.asarray(ds[()], dtype=np.int64).view(dtype)
-    raise LedgerError(f"{ds.file.filename}:{ds.name}: unknown array codec {codec!r}")
+    raw = ds.asstr()[()] if codec == "text" and ds.size else ds[()]
+    return _decode_raw(raw, codec, dtype, f"{ds.file.filename}:{ds.name}")
 
 
 def _encode_attr(value: Any, where: str, name: str) -> _Blob:
@@ -286,9 +293,8 @@ def _encode_attr(value: Any, where: str, name: str) -> _Blob:
     return _Blob(blob.data, blob.h5dtype, {**blob.meta, "pytype": pytype, "name": json.dumps(name)})
 
 
-def _decode_attr(ds: h5py.Dataset) -> Any:
-    arr = _decode_array(ds)
-    pytype = ds.attrs["pytype"]
+def _restore_attr(arr: np.ndarray, pytype: str, where: str) -> Any:
+    """The Python value of a decoded attribute array, by the type it was given as."""
     if pytype == "none":
         return None
     if pytype == "ndarray":
@@ -307,8 +313,12 @@ def _decode_attr(ds: h5py.Dataset) -> Any:
         "numpy-scalar": lambda x: x,
     }
     if pytype not in convert:
-        raise LedgerError(f"{ds.file.filename}:{ds.name}: unknown attribute type {pytype!r}")
+        raise LedgerError(f"{where}: unknown attribute type {pytype!r}")
     return convert[pytype](scalar)
+
+
+def _decode_attr(ds: h5py.Dataset) -> Any:
+    return _restore_attr(_decode_array(ds), ds.attrs["pytype"], f"{ds.file.filename}:{ds.name}")
 
 
 @dataclass(frozen=True)
