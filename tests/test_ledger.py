@@ -40,7 +40,6 @@ from xtalkcal.store import (
     LedgerValidationError,
     utc_timestamp,
 )
-from xtalkcal.store import codec as codec_mod
 from xtalkcal.store import schema as schema_mod
 
 REPO = Path(__file__).resolve().parents[1]
@@ -923,26 +922,78 @@ def test_newer_marker_refused(fixture_copy: Path) -> None:
 def test_migration_hook_runs_on_old_files(
     fixture_copy: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    def v1_to_v2(cols: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """A pretended next version whose only change is an entry-table migration: files of
+    versions 1 and 2 are upgraded on reading, and compaction rewrites them in it."""
+    led = Ledger(fixture_copy)
+    led.append([make_entry(victim="q3", measured_at_s=4000.0, tag="fixture")])
+    nxt = SCHEMA_VERSION + 1
+
+    def to_next(cols: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         out = dict(cols)
-        out["tag"] = np.array(["v2:" + t for t in cols["tag"]], dtype=object)
+        out["tag"] = np.array([f"v{nxt}:" + t for t in cols["tag"]], dtype=object)
         return out
 
-    monkeypatch.setattr(schema_mod, "SCHEMA_VERSION", 2)  # the one place the store reads it
-    monkeypatch.setattr(schema_mod, "MIGRATIONS", {})
-    with pytest.raises(LedgerError, match="has no migration to 2"):
+    monkeypatch.setattr(schema_mod, "SCHEMA_VERSION", nxt)  # the one place the store reads it
+    with pytest.raises(LedgerError, match=f"has no migration to {nxt}"):
         Ledger(fixture_copy)
-    monkeypatch.setattr(schema_mod, "MIGRATIONS", {1: v1_to_v2})
-    monkeypatch.setattr(
-        schema_mod, "SWEEP_READERS", {**schema_mod.SWEEP_READERS, 2: codec_mod._read_sweep_v1}
-    )
+    migrations = {**schema_mod.MIGRATIONS, SCHEMA_VERSION: to_next}
+    monkeypatch.setattr(schema_mod, "MIGRATIONS", migrations)
     led = Ledger(fixture_copy)
-    assert {e.tag for e in led.entries()} == {"v2:fixture"}
+    assert {e.tag for e in led.entries()} == {f"v{nxt}:fixture"}
     assert_same_dataset(led.sweep("null-L1-q2"), _fixture_sweep())
-    led.compact()  # rewrites everything as version 2
+    led.compact()  # rewrites everything as the next version
     (merged,) = fixture_copy.glob("*.h5")
     with h5py.File(merged, "r") as fh:
-        assert fh.attrs["schema_version"] == 2
+        assert int(np.asarray(fh.attrs["schema_version"]).item()) == nxt
+    assert_same_dataset(Ledger(fixture_copy).sweep("null-L1-q2"), _fixture_sweep())
+
+
+@pytest.fixture
+def sealed_copy(tmp_path: Path) -> Path:
+    dest = tmp_path / "v1-sealed"
+    shutil.copytree(FIXTURE_V1_SEALED, dest)
+    return dest
+
+
+def _file_versions(path: Path) -> dict[str, int]:
+    out = {}
+    for p in sorted(path.glob("*.h5")):
+        with h5py.File(p, "r") as fh:
+            out[p.name] = int(np.asarray(fh.attrs["schema_version"]).item())
+    return out
+
+
+@pytest.mark.parametrize("fixture", ["ledger_v1", "ledger_v1_sealed"])
+def test_old_ledgers_are_read_in_place_and_take_new_commits(tmp_path: Path, fixture: str) -> None:
+    """Both version-1 fixtures (from before digests and with them) open unchanged; a new
+    commit is written as version 2 beside them, the mixed ledger reads whole, and the marker
+    then says version 2 (so an older xtalkcal refuses it as newer instead of failing on a
+    file); compaction converts everything to version 2 with nothing lost."""
+    path = tmp_path / fixture
+    shutil.copytree(FIXTURE_V1.parent / fixture, path)
+    batches = sealed_fixture_batches() if fixture.endswith("sealed") else _fixture_batches()
+    assert set(_file_versions(path).values()) == {1}
+    led = Ledger(path)
+    want = [e for entries, _ in batches for e in entries]
+    assert [canon(e.bare()) for e in led.entries()] == [canon(e) for e in want]
+    for _, sweeps in batches:
+        for sid, ds in sweeps.items():
+            assert_same_dataset(led.sweep(sid), ds)
+    new = make_entry(victim="q4", measured_at_s=9000.0, sweep_id="new/1")
+    led.append([new], sweeps={"new/1": special_sweep()})
+    versions = _file_versions(path)
+    assert sorted(versions.values()) == [1] * len(batches) + [2]
+    assert json.loads((path / "xtalkcal-ledger.json").read_text())["schema_version"] == 2
+    mixed = Ledger(path)
+    assert [canon(e.bare()) for e in mixed.entries()] == [canon(e) for e in [*want, new]]
+    assert mixed.sweep_ids() == (*(s for _, sw in batches for s in sw), "new/1")
+    assert mixed.compact() == len(batches) + 1
+    assert list(_file_versions(path).values()) == [2]
+    merged = Ledger(path)
+    assert [canon(e.bare()) for e in merged.entries()] == [canon(e) for e in [*want, new]]
+    for _, sweeps in [*batches, ([], {"new/1": special_sweep()})]:
+        for sid, ds in sweeps.items():
+            assert_same_dataset(merged.sweep(sid), ds)
 
 
 # --------------------------------------------------------------------------------------------
