@@ -44,7 +44,8 @@ from xtalkcal.store import schema as schema_mod
 
 REPO = Path(__file__).resolve().parents[1]
 FIXTURE_V1 = Path(__file__).resolve().parent / "data" / "ledger_v1"
-# Written by the version-1 writer once commit digests existed (``--write-fixture-sealed``).
+# Written by the version-1 writer once commit digests existed (``--write-fixture-sealed``,
+# while version 1 was current: now it writes the current version, so keep the fixture).
 FIXTURE_V1_SEALED = Path(__file__).resolve().parent / "data" / "ledger_v1_sealed"
 T0_UTC = datetime(2031, 3, 14, 9, 0, 0, tzinfo=timezone.utc)
 
@@ -782,7 +783,9 @@ def _fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
     """The content of tests/data/ledger_v1 (invented demo data), every field spelled out.
 
     Never edit: the fixture is the real output of the version-1 writer for exactly these
-    batches (written by ``python tests/test_ledger.py --write-fixture``)."""
+    batches (written by ``python tests/test_ledger.py --write-fixture`` while version 1 was
+    current; the same command now writes the current version, so the fixture cannot be
+    made again: keep it)."""
 
     def entry(**kw: object) -> LedgerEntry:
         base: dict[str, object] = {

@@ -185,3 +185,20 @@ def test_matrix_view_follows_x_ij_victim_first(tmp_path: Path) -> None:
     np.testing.assert_array_equal(view["x_real"].values, [[1e-3, 2e-3], [3e-3, np.nan]])
     assert view["shots"].attrs["units"] == "shots"
     assert "victim i first" in view.attrs["axes"]
+
+
+def test_readme_example_runs_on_a_ledger(calibration_ledger: Path) -> None:
+    """The notebook example of the README's "Reading the data", run as written (with the
+    demo's folder replaced by this ledger's) in a Python that imports no xtalkcal."""
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    section = readme.split("## Reading the data", 1)[1]
+    code = section.split("```python\n", 1)[1].split("```", 1)[0]
+    assert len(code.strip().splitlines()) <= 8
+    code = code.replace("DIR/ledger", str(calibration_ledger))
+    check = ("\nimport sys\nassert not any(m.split('.')[0] == 'xtalkcal' for m in sys.modules)"
+             "\nprint(sweep.sizes['point'], x.size)\n")
+    done = subprocess.run([sys.executable, "-c", code + check], capture_output=True, text=True,
+                          timeout=300, check=False)
+    assert done.returncode == 0, done.stderr
+    points, n = map(int, done.stdout.split())
+    assert points > 0 and n == len(Ledger(calibration_ledger).entries())
