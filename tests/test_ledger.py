@@ -1153,10 +1153,26 @@ def run_and_kill(
     return child, bool(set(path.glob(".tmp-*")) - temps_before)
 
 
+def commit_seconds(tmp_path: Path, mode: str) -> float:
+    """How long one commit of the kill tests' writer takes on this machine, s (the kills
+    are timed in these units, so that each lands among a few commits however busy the
+    machine is)."""
+    led = Ledger.create(tmp_path / f"timing-{mode}", chip=KILL_CHIP)
+    t0 = time.perf_counter()
+    for i in range(3):
+        if mode == "big":
+            led.append([make_entry(tag=f"t{i}", sweep_id=f"t{i}")],
+                       sweeps={f"t{i}": big_sweep(0, i)})
+        else:
+            led.append([kill_entry(0, i, k) for k in range(KILL_BATCH)],
+                       sweeps={f"r0-i{i}": small_sweep(i)} if i % 4 == 0 else None)
+    return (time.perf_counter() - t0) / 3
+
+
 def test_kill_during_appends_and_compactions(tmp_path: Path) -> None:
     path = tmp_path / "killed"
     rng = np.random.default_rng(20310314)
-    delays = rng.uniform(0.05, 0.5, size=8)
+    delays = rng.uniform(1.0, 16.0, size=8) * commit_seconds(tmp_path, "entries")
     reported_total, interrupted, compactions = 0, 0, 0
     all_reported: list[tuple[int, int, int]] = []
     for run, delay in enumerate(delays):
@@ -1187,7 +1203,7 @@ def test_kill_during_appends_and_compactions(tmp_path: Path) -> None:
 def test_kill_during_large_sweep_writes(tmp_path: Path) -> None:
     path = tmp_path / "big"
     rng = np.random.default_rng(7)
-    delays = rng.uniform(0.05, 0.4, size=4)
+    delays = rng.uniform(1.0, 8.0, size=4) * commit_seconds(tmp_path, "big")
     checked: set[str] = set()
     interrupted = 0
     for run, delay in enumerate(delays):
