@@ -202,3 +202,21 @@ def test_readme_example_runs_on_a_ledger(calibration_ledger: Path) -> None:
     assert done.returncode == 0, done.stderr
     points, n = map(int, done.stdout.split())
     assert points > 0 and n == len(Ledger(calibration_ledger).entries())
+
+
+@pytest.mark.parametrize("ds", [
+    xr.Dataset({"x": ("y", [1, 2]), "v": ("x", [1.0, 2.0, 3.0])}),
+    xr.Dataset(coords={"x": ("y", [1, 2]), "z": ("x", [1.0, 2.0, 3.0])}),
+    xr.Dataset({"x": (("y", "w"), np.zeros((2, 1))), "v": ("x", [1.0, 2.0])}),
+])
+def test_a_variable_named_like_a_dimension_it_does_not_index(tmp_path: Path,
+                                                             ds: xr.Dataset) -> None:
+    """netCDF takes a variable named like a dimension for its coordinate; such a variable is
+    stored under another name and comes back exactly."""
+    from test_ledger import assert_same_dataset
+
+    led = Ledger.create(tmp_path / "l", chip="c")
+    receipt = led.append(sweeps={"a": ds})
+    assert_same_dataset(Ledger(led.path).sweep("a"), ds)
+    with xr.open_dataset(receipt.file, group="sweeps/a", engine="h5netcdf") as opened:
+        assert opened.sizes == ds.sizes

@@ -141,7 +141,7 @@ def _read_columns(f: h5py.File) -> Columns:
 
 
 # --------------------------------------------------------------------------------------------
-# Sweep codec: xarray.Dataset <-> HDF5 group, with h5py only
+# Sweep codec: the checks and exact encodings of a Dataset's values, and the version-1 reader
 # --------------------------------------------------------------------------------------------
 
 _PLAIN_KINDS = frozenset("biufcS")

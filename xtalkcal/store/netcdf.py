@@ -37,7 +37,9 @@ where ``key`` is the variable's name in the file and every attribute is
 (``null`` for ``None``, which has no netCDF value). Names that netCDF or the conventions above
 would misread (empty, containing ``/`` or white space, starting with ``_`` or ``xtalkcal_``,
 or taken by an encoding attribute) are stored under ``xtalkcal_n<k>`` (variables and
-dimensions) or ``xtalkcal_a<k>`` (attributes), their real names kept in the layout. The
+dimensions) or ``xtalkcal_a<k>`` (attributes), their real names kept in the layout; so is a
+variable named like a dimension it does not index (``xtalkcal_v<k>``), which netCDF would
+take for that dimension's coordinate. The
 ledger's own marks are ``xtalkcal_sweep_id`` and ``xtalkcal_seq`` on each sweep group and
 ``xtalkcal_order`` (JSON list of the group names in commit order) on ``/sweeps``.
 """
@@ -208,7 +210,12 @@ def plan_sweep(sweep_id: str, ds: Any) -> SweepPlanV2:
         var = ds.variables[plan.name]
         data, h5dtype, fill, enc = _encoded_data(var, plan.data)
         tags, native = _encode_attrs_v2(plan.attrs, enc)
-        key = disk(plan.name)
+        if plan.name in ds.sizes and plan.dims != (plan.name,):
+            # Named as a dimension it does not index: netCDF would take it for that
+            # dimension's coordinate, so it stands under a name of its own.
+            key = f"{_PREFIX}v{len(variables)}"
+        else:
+            key = disk(plan.name)
         disk_dims = tuple(disk(d) for d in plan.dims)
         if plan.role == "coord" and disk_dims != (key,):
             coords.append(key)
