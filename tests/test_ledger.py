@@ -854,11 +854,12 @@ def _fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
     return [(first, {"null-L1-q2": _fixture_sweep()}), (second, {})]
 
 
-def write_fixture(path: Path) -> None:
+def write_fixture(path: Path, batches: list | None = None) -> None:
+    """Write a fixture ledger of ``batches`` (default `_fixture_batches`) into ``path``."""
     if path.exists():
         raise SystemExit(f"{path} exists; remove it first (only for a deliberate regeneration)")
     led = Ledger.create(path, chip="fixture-chip")
-    for entries, sweeps in _fixture_batches():
+    for entries, sweeps in batches or _fixture_batches():
         led.append(entries, sweeps=sweeps)
     (path / "ledger.lock").unlink(missing_ok=True)
 
@@ -869,15 +870,6 @@ def sealed_fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Datas
     third = make_entry(victim="q3", measured_at_s=5000.0, tag="sealed", sweep_id="odd/1",
                        measured_at_utc="2031-03-14T11:00:00.000000+00:00")
     return [*_fixture_batches(), ([third], {"odd/1": special_sweep()})]
-
-
-def write_sealed_fixture(path: Path) -> None:
-    if path.exists():
-        raise SystemExit(f"{path} exists; remove it first (only for a deliberate regeneration)")
-    led = Ledger.create(path, chip="fixture-chip")
-    for entries, sweeps in sealed_fixture_batches():
-        led.append(entries, sweeps=sweeps)
-    (path / "ledger.lock").unlink(missing_ok=True)
 
 
 @pytest.fixture
@@ -1263,6 +1255,6 @@ if __name__ == "__main__":
     elif sys.argv[1:2] == ["--write-fixture"]:
         write_fixture(FIXTURE_V1)
     elif sys.argv[1:2] == ["--write-fixture-sealed"]:
-        write_sealed_fixture(FIXTURE_V1_SEALED)
+        write_fixture(FIXTURE_V1_SEALED, sealed_fixture_batches())
     else:
         raise SystemExit(__doc__)

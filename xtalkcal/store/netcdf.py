@@ -70,6 +70,7 @@ from xtalkcal.store.codec import (
     _restore_attr,
 )
 from xtalkcal.store.entries import _TEXT_FIELDS, _attr, _Malformed
+from xtalkcal.store.snapshots import _VIEW_ATTRS
 
 _LAYOUT = "xtalkcal_layout"
 _SWEEP_ID = "xtalkcal_sweep_id"
@@ -278,8 +279,6 @@ _ENTRY_ATTRS: dict[str, dict[str, str]] = {
     "position": {"units": "1", "long_name": "index of the entry inside its commit"},
     "aggressor": {"long_name": "aggressor drive line (whose tone leaks)"},
     "victim": {"long_name": "victim qubit (that receives the leaked field)"},
-    "amplification": {"units": "1", "long_name": "aggressor pulse repetitions K"},
-    "frequency_ghz": {"units": "GHz", "long_name": "aggressor tone frequency"},
     "value_re": {"units": "1", "long_name": "crosstalk X = C_victim,aggressor / "
                  "C_victim,victim, real part (X = value_re + 1j*value_im)"},
     "value_im": {"units": "1", "long_name": "crosstalk X, imaginary part"},
@@ -287,19 +286,11 @@ _ENTRY_ATTRS: dict[str, dict[str, str]] = {
     "cov_re_im": {"units": "1", "long_name": "covariance of (Re X, Im X)"},
     "cov_im_re": {"units": "1", "long_name": "covariance of (Im X, Re X)"},
     "cov_im_im": {"units": "1", "long_name": "covariance of (Im X, Im X)"},
-    "quality": {"units": "1", "long_name": "fit quality figure (NaN for a failed fit)"},
-    "measured_at_s": {"units": "s", "long_name": "rig clock at the end of the measurement "
-                      "(monotonic over the chip's life, not a wall clock)"},
-    "shots": {"units": "shots", "long_name": "shots spent on the estimate"},
-    "measured_at_utc": {"long_name": "wall clock at the end of the measurement "
-                        "(ISO-8601, UTC)"},
-    "method": {"long_name": "measurement method"},
-    "verdict": {"long_name": "fit verdict (rejected entries are history only)"},
-    "reason": {"long_name": "reason for the verdict"},
-    "rig": {"long_name": "rig that took the data"},
-    "software_version": {"long_name": "software that produced the estimate"},
-    "kind": {"long_name": "measurement kind"},
-    "tag": {"long_name": "run tag"},
+    # The same as in the matrix view.
+    **{name: _VIEW_ATTRS[name] for name in (
+        "amplification", "frequency_ghz", "quality", "measured_at_s", "shots",
+        "measured_at_utc", "method",
+        "verdict", "reason", "rig", "software_version", "kind", "tag")},
     "sweep_id": {"long_name": "id of the stored raw sweep (group sweeps/<percent-encoded "
                  "id> of the commit that stored it), or empty"},
 }
