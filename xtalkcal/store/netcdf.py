@@ -242,10 +242,10 @@ def _filters(data: np.ndarray, h5dtype: Any) -> dict[str, Any]:
 
 
 def _write_variable(group: Any, var: _NcVariable) -> None:
+    # Data given at creation: writing it afterwards costs h5netcdf a resize check.
     v = group.create_variable(var.key, var.dims, var.h5dtype, fillvalue=var.fillvalue,
+                              data=var.data if var.data.size else None,
                               **_filters(var.data, var.h5dtype))
-    if var.data.size:
-        v[...] = var.data
     for key, value in var.attrs.items():
         v.attrs[key] = value
 
