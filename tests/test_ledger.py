@@ -1164,7 +1164,7 @@ def commit_seconds(tmp_path: Path, mode: str) -> float:
 def test_kill_during_appends_and_compactions(tmp_path: Path) -> None:
     path = tmp_path / "killed"
     rng = np.random.default_rng(20310314)
-    delays = rng.uniform(1.0, 16.0, size=8) * commit_seconds(tmp_path, "entries")
+    delays = rng.uniform(2.0, 24.0, size=8) * commit_seconds(tmp_path, "entries")
     reported_total, interrupted, compactions = 0, 0, 0
     all_reported: list[tuple[int, int, int]] = []
     for run, delay in enumerate(delays):
