@@ -40,11 +40,13 @@ from xtalkcal.store import (
     LedgerValidationError,
     utc_timestamp,
 )
-from xtalkcal.store import codec as codec_mod
 from xtalkcal.store import schema as schema_mod
 
 REPO = Path(__file__).resolve().parents[1]
 FIXTURE_V1 = Path(__file__).resolve().parent / "data" / "ledger_v1"
+# Written by the version-1 writer once commit digests existed (``--write-fixture-sealed``,
+# while version 1 was current: now it writes the current version, so keep the fixture).
+FIXTURE_V1_SEALED = Path(__file__).resolve().parent / "data" / "ledger_v1_sealed"
 T0_UTC = datetime(2031, 3, 14, 9, 0, 0, tzinfo=timezone.utc)
 
 
@@ -331,8 +333,9 @@ def test_sweep_round_trip(ds: xr.Dataset, sweep_id: str) -> None:
         assert_same_dataset(Ledger(Path(tmp) / "l").sweep(sweep_id), ds)
 
 
-def test_sweep_special_content(tmp_path: Path) -> None:
-    ds = xr.Dataset(
+def special_sweep() -> xr.Dataset:
+    """A sweep with the awkward content the codec must keep exactly."""
+    return xr.Dataset(
         {
             "a/b.c": (("x",), np.array(["α", "", "long string ✓"], dtype=object)),
             "scalar": ((), np.complex64(1 - 2j), {"units/of": "1", "": "empty key"}),
@@ -352,6 +355,10 @@ def test_sweep_special_content(tmp_path: Path) -> None:
             "arr_str": np.array(["x", "yy"]),
         },
     )
+
+
+def test_sweep_special_content(tmp_path: Path) -> None:
+    ds = special_sweep()
     led = Ledger.create(tmp_path / "l", chip="c")
     led.append(sweeps={"s/1": ds, "s.2": small_sweep(1)})
     reread = Ledger(tmp_path / "l")
@@ -776,7 +783,9 @@ def _fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
     """The content of tests/data/ledger_v1 (invented demo data), every field spelled out.
 
     Never edit: the fixture is the real output of the version-1 writer for exactly these
-    batches (written by ``python tests/test_ledger.py --write-fixture``)."""
+    batches (written by ``python tests/test_ledger.py --write-fixture`` while version 1 was
+    current; the same command now writes the current version, so the fixture cannot be
+    made again: keep it)."""
 
     def entry(**kw: object) -> LedgerEntry:
         base: dict[str, object] = {
@@ -845,13 +854,22 @@ def _fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
     return [(first, {"null-L1-q2": _fixture_sweep()}), (second, {})]
 
 
-def write_fixture(path: Path) -> None:
+def write_fixture(path: Path, batches: list | None = None) -> None:
+    """Write a fixture ledger of ``batches`` (default `_fixture_batches`) into ``path``."""
     if path.exists():
         raise SystemExit(f"{path} exists; remove it first (only for a deliberate regeneration)")
     led = Ledger.create(path, chip="fixture-chip")
-    for entries, sweeps in _fixture_batches():
+    for entries, sweeps in batches or _fixture_batches():
         led.append(entries, sweeps=sweeps)
     (path / "ledger.lock").unlink(missing_ok=True)
+
+
+def sealed_fixture_batches() -> list[tuple[list[LedgerEntry], dict[str, xr.Dataset]]]:
+    """The content of tests/data/ledger_v1_sealed: the version-1 batches, then one commit
+    whose sweep holds the awkward content of `special_sweep` (never edit either)."""
+    third = make_entry(victim="q3", measured_at_s=5000.0, tag="sealed", sweep_id="odd/1",
+                       measured_at_utc="2031-03-14T11:00:00.000000+00:00")
+    return [*_fixture_batches(), ([third], {"odd/1": special_sweep()})]
 
 
 @pytest.fixture
@@ -899,26 +917,78 @@ def test_newer_marker_refused(fixture_copy: Path) -> None:
 def test_migration_hook_runs_on_old_files(
     fixture_copy: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    def v1_to_v2(cols: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """A pretended next version whose only change is an entry-table migration: files of
+    versions 1 and 2 are upgraded on reading, and compaction rewrites them in it."""
+    led = Ledger(fixture_copy)
+    led.append([make_entry(victim="q3", measured_at_s=4000.0, tag="fixture")])
+    nxt = SCHEMA_VERSION + 1
+
+    def to_next(cols: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         out = dict(cols)
-        out["tag"] = np.array(["v2:" + t for t in cols["tag"]], dtype=object)
+        out["tag"] = np.array([f"v{nxt}:" + t for t in cols["tag"]], dtype=object)
         return out
 
-    monkeypatch.setattr(schema_mod, "SCHEMA_VERSION", 2)  # the one place the store reads it
-    monkeypatch.setattr(schema_mod, "MIGRATIONS", {})
-    with pytest.raises(LedgerError, match="has no migration to 2"):
+    monkeypatch.setattr(schema_mod, "SCHEMA_VERSION", nxt)  # the one place the store reads it
+    with pytest.raises(LedgerError, match=f"has no migration to {nxt}"):
         Ledger(fixture_copy)
-    monkeypatch.setattr(schema_mod, "MIGRATIONS", {1: v1_to_v2})
-    monkeypatch.setattr(
-        schema_mod, "SWEEP_READERS", {**schema_mod.SWEEP_READERS, 2: codec_mod._read_sweep_v1}
-    )
+    migrations = {**schema_mod.MIGRATIONS, SCHEMA_VERSION: to_next}
+    monkeypatch.setattr(schema_mod, "MIGRATIONS", migrations)
     led = Ledger(fixture_copy)
-    assert {e.tag for e in led.entries()} == {"v2:fixture"}
+    assert {e.tag for e in led.entries()} == {f"v{nxt}:fixture"}
     assert_same_dataset(led.sweep("null-L1-q2"), _fixture_sweep())
-    led.compact()  # rewrites everything as version 2
+    led.compact()  # rewrites everything as the next version
     (merged,) = fixture_copy.glob("*.h5")
     with h5py.File(merged, "r") as fh:
-        assert fh.attrs["schema_version"] == 2
+        assert int(np.asarray(fh.attrs["schema_version"]).item()) == nxt
+    assert_same_dataset(Ledger(fixture_copy).sweep("null-L1-q2"), _fixture_sweep())
+
+
+@pytest.fixture
+def sealed_copy(tmp_path: Path) -> Path:
+    dest = tmp_path / "v1-sealed"
+    shutil.copytree(FIXTURE_V1_SEALED, dest)
+    return dest
+
+
+def _file_versions(path: Path) -> dict[str, int]:
+    out = {}
+    for p in sorted(path.glob("*.h5")):
+        with h5py.File(p, "r") as fh:
+            out[p.name] = int(np.asarray(fh.attrs["schema_version"]).item())
+    return out
+
+
+@pytest.mark.parametrize("fixture", ["ledger_v1", "ledger_v1_sealed"])
+def test_old_ledgers_are_read_in_place_and_take_new_commits(tmp_path: Path, fixture: str) -> None:
+    """Both version-1 fixtures (from before digests and with them) open unchanged; a new
+    commit is written as version 2 beside them, the mixed ledger reads whole, and the marker
+    then says version 2 (so an older xtalkcal refuses it as newer instead of failing on a
+    file); compaction converts everything to version 2 with nothing lost."""
+    path = tmp_path / fixture
+    shutil.copytree(FIXTURE_V1.parent / fixture, path)
+    batches = sealed_fixture_batches() if fixture.endswith("sealed") else _fixture_batches()
+    assert set(_file_versions(path).values()) == {1}
+    led = Ledger(path)
+    want = [e for entries, _ in batches for e in entries]
+    assert [canon(e.bare()) for e in led.entries()] == [canon(e) for e in want]
+    for _, sweeps in batches:
+        for sid, ds in sweeps.items():
+            assert_same_dataset(led.sweep(sid), ds)
+    new = make_entry(victim="q4", measured_at_s=9000.0, sweep_id="new/1")
+    led.append([new], sweeps={"new/1": special_sweep()})
+    versions = _file_versions(path)
+    assert sorted(versions.values()) == [1] * len(batches) + [2]
+    assert json.loads((path / "xtalkcal-ledger.json").read_text())["schema_version"] == 2
+    mixed = Ledger(path)
+    assert [canon(e.bare()) for e in mixed.entries()] == [canon(e) for e in [*want, new]]
+    assert mixed.sweep_ids() == (*(s for _, sw in batches for s in sw), "new/1")
+    assert mixed.compact() == len(batches) + 1
+    assert list(_file_versions(path).values()) == [2]
+    merged = Ledger(path)
+    assert [canon(e.bare()) for e in merged.entries()] == [canon(e) for e in [*want, new]]
+    for _, sweeps in [*batches, ([], {"new/1": special_sweep()})]:
+        for sid, ds in sweeps.items():
+            assert_same_dataset(merged.sweep(sid), ds)
 
 
 # --------------------------------------------------------------------------------------------
@@ -1075,10 +1145,26 @@ def run_and_kill(
     return child, bool(set(path.glob(".tmp-*")) - temps_before)
 
 
+def commit_seconds(tmp_path: Path, mode: str) -> float:
+    """How long one commit of the kill tests' writer takes on this machine, s (the kills
+    are timed in these units, so that each lands among a few commits however busy the
+    machine is)."""
+    led = Ledger.create(tmp_path / f"timing-{mode}", chip=KILL_CHIP)
+    t0 = time.perf_counter()
+    for i in range(3):
+        if mode == "big":
+            led.append([make_entry(tag=f"t{i}", sweep_id=f"t{i}")],
+                       sweeps={f"t{i}": big_sweep(0, i)})
+        else:
+            led.append([kill_entry(0, i, k) for k in range(KILL_BATCH)],
+                       sweeps={f"r0-i{i}": small_sweep(i)} if i % 4 == 0 else None)
+    return (time.perf_counter() - t0) / 3
+
+
 def test_kill_during_appends_and_compactions(tmp_path: Path) -> None:
     path = tmp_path / "killed"
     rng = np.random.default_rng(20310314)
-    delays = rng.uniform(0.05, 0.5, size=8)
+    delays = rng.uniform(2.0, 24.0, size=8) * commit_seconds(tmp_path, "entries")
     reported_total, interrupted, compactions = 0, 0, 0
     all_reported: list[tuple[int, int, int]] = []
     for run, delay in enumerate(delays):
@@ -1109,7 +1195,7 @@ def test_kill_during_appends_and_compactions(tmp_path: Path) -> None:
 def test_kill_during_large_sweep_writes(tmp_path: Path) -> None:
     path = tmp_path / "big"
     rng = np.random.default_rng(7)
-    delays = rng.uniform(0.05, 0.4, size=4)
+    delays = rng.uniform(1.0, 8.0, size=4) * commit_seconds(tmp_path, "big")
     checked: set[str] = set()
     interrupted = 0
     for run, delay in enumerate(delays):
@@ -1168,5 +1254,7 @@ if __name__ == "__main__":
         child_main(sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5]))
     elif sys.argv[1:2] == ["--write-fixture"]:
         write_fixture(FIXTURE_V1)
+    elif sys.argv[1:2] == ["--write-fixture-sealed"]:
+        write_fixture(FIXTURE_V1_SEALED, sealed_fixture_batches())
     else:
         raise SystemExit(__doc__)

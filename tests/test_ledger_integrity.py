@@ -128,10 +128,9 @@ def test_fletcher32_catches_rot_in_sweep_data_read_after_open(tmp_path: Path) ->
     led = Ledger(path)  # digests checked now
     target = path / _name(1)
     with h5py.File(target, "r") as fh:
-        (g,) = [g for g in fh["sweeps/0/variables"].values()
-                if g["data"].dtype == np.float64 and g["data"].ndim == 2]
-        assert g["data"].fletcher32
-        offset = g["data"].id.get_chunk_info(0).byte_offset
+        data = fh["sweeps/s1/p2"]
+        assert data.dtype == np.float64 and data.ndim == 2 and data.fletcher32
+        offset = data.id.get_chunk_info(0).byte_offset
     before = target.stat()
     data = bytearray(target.read_bytes())
     data[offset + 3] ^= 0x10
@@ -227,12 +226,29 @@ def _delete(member: str):
     return fn
 
 
-def _replace_table(table: str, convert: Callable[[np.ndarray], np.ndarray]):
+def _replace_column(name: str, convert: Callable[[np.ndarray], np.ndarray]):
     def fn(fh: h5py.File) -> None:
-        old = fh["entries"][table]
-        data, columns = convert(old[()]), old.attrs["columns"]
-        del fh["entries"][table]
-        fh["entries"].create_dataset(table, data=data).attrs["columns"] = columns
+        old = fh["entries"][name]
+        data = old.asstr()[()] if h5py.check_string_dtype(old.dtype) else old[()]
+        del fh["entries"][name]
+        fh["entries"].create_dataset(name, data=convert(data))
+
+    return fn
+
+
+def _del_attr(member: str, key: str):
+    def fn(fh: h5py.File) -> None:
+        del fh[member].attrs[key]
+
+    return fn
+
+
+def _edit_layout(change: Callable[[dict], object]):
+    def fn(fh: h5py.File) -> None:
+        g = fh["sweeps/s1"]
+        layout = json.loads(g.attrs["xtalkcal_layout"])
+        change(layout)
+        g.attrs["xtalkcal_layout"] = json.dumps(layout)
 
     return fn
 
@@ -283,16 +299,27 @@ ATTACKS: dict[str, Callable[[Path], str]] = {
     "chip attribute of another chip": _edit(2, _set_attr("chip", "other-chip")),
     "entries group missing": _edit(2, _delete("entries")),
     "sweeps group missing": _edit(1, _delete("sweeps")),
-    "a sweep lost its variables": _edit(1, _delete("sweeps/0/variables")),
-    "float table stored as text": _edit(
-        2, _replace_table("float64", lambda a: a.astype(str).astype(object))),
-    "int table stored as float": _edit(2, _replace_table("int64", lambda a: a + 0.5)),
-    "text table stored as numbers": _edit(
-        2, _replace_table("text", lambda a: np.zeros(a.shape))),
-    "columns attribute not JSON": _edit(2, lambda fh: fh["entries/int64"].attrs.__setitem__(
-        "columns", "[\"seq\", ")),
-    "columns attribute short": _edit(2, lambda fh: fh["entries/int64"].attrs.__setitem__(
-        "columns", '["seq"]')),
+    "a sweep lost a variable": _edit(1, _delete("sweeps/s1/p2")),
+    "float column stored as text": _edit(
+        2, _replace_column("value_re", lambda a: a.astype(str).astype(object))),
+    "int column stored as float": _edit(2, _replace_column("seq", lambda a: a + 0.5)),
+    "text column stored as numbers": _edit(
+        2, _replace_column("aggressor", lambda a: np.zeros(a.shape))),
+    "a column shorter than the others": _edit(2, _replace_column("shots", lambda a: a[:0])),
+    "entries group renamed": _edit(2, lambda fh: fh.move("entries", "entries_old")),
+    "a sweep group renamed": _edit(1, lambda fh: fh.move("sweeps/s1", "sweeps/s9")),
+    "sweeps group replaced by a dataset": _edit(
+        2, lambda fh: (fh.__delitem__("sweeps"), fh.create_dataset("sweeps", data=[1]))),
+    "sweep layout attribute missing": _edit(1, _del_attr("sweeps/s1", "xtalkcal_layout")),
+    "sweep layout not JSON": _edit(1, lambda fh: fh["sweeps/s1"].attrs.__setitem__(
+        "xtalkcal_layout", '{"variables": [')),
+    "sweep layout names a missing variable": _edit(1, _edit_layout(
+        lambda lay: lay["variables"][0].__setitem__("key", "gone"))),
+    "sweep layout with wrong dimensions": _edit(1, _edit_layout(
+        lambda lay: lay["variables"][0].__setitem__("dims", []))),
+    "sweep id attribute missing": _edit(1, _del_attr("sweeps/s1", "xtalkcal_sweep_id")),
+    "sweep order attribute missing": _edit(1, _del_attr("sweeps", "xtalkcal_order")),
+    "root chip attribute missing": _edit(3, _del_attr("/", "chip")),
     "truncated file": _write(2, lambda b: b[: len(b) // 2]),
     "truncated file, digest updated": _write(2, lambda b: b[: len(b) // 2], sealed=True),
     "zero-length file": _write(2, lambda b: b""),

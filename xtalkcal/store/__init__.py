@@ -1,5 +1,5 @@
-"""The matrix store: ledger entries, their HDF5 commit files with digests, and snapshot views of
-the matrix at any time.
+"""The matrix store: ledger entries, their commit files with digests (netCDF-4, which xarray
+opens directly; see `xtalkcal.store.netcdf`), and snapshot views of the matrix at any time.
 
 May import: :mod:`xtalkcal.calibrate` and below. Nothing here imports a later stage of the flow.
 """

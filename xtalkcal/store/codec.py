@@ -1,5 +1,8 @@
-"""The HDF5 layout of a commit: entry tables as columns, sweep datasets as plain arrays with their
-attributes (the schema version and the upgrades of older layouts are in `schema`).
+"""The entry columns and the checks and exact encodings of sweep datasets, and the reader of the
+version-1 HDF5 layout (entry tables as columns, sweeps as plain arrays with their attributes).
+
+Files are written in the netCDF-4 layout of `netcdf` since schema version 2; version-1 files
+are read in place by the readers here (the schema version and upgrades are in `schema`).
 """
 
 from __future__ import annotations
@@ -25,11 +28,6 @@ from xtalkcal.store.entries import (
     _Malformed,
 )
 
-# HDF5 1.10 object headers keep small groups compact (about a third of the default size) and
-# every h5py >= 3 ships a library that reads them.
-_LIBVER = ("v110", "v110")
-
-
 # --------------------------------------------------------------------------------------------
 # Entry columns (the on-disk table)
 # --------------------------------------------------------------------------------------------
@@ -46,7 +44,6 @@ _FLOAT_COLUMNS = (
     "measured_at_s",
 )
 _INT_COLUMNS = ("seq", "position", "shots", "amplification")
-_TABLES = (("float64", _FLOAT_COLUMNS), ("int64", _INT_COLUMNS), ("text", _TEXT_FIELDS))
 
 Columns = dict[str, np.ndarray]
 """One 1-D array per column name; text columns are object arrays of str."""
@@ -99,36 +96,6 @@ def _columns_to_entries(cols: Columns) -> list[LedgerEntry]:
     ]
 
 
-def _checksum_args(data: np.ndarray, h5dtype: Any) -> dict[str, Any]:
-    """Dataset options adding HDF5's Fletcher-32 checksum per chunk where HDF5 allows it.
-
-    Filters need chunked storage, which scalar and empty datasets cannot have, and HDF5
-    refuses them on variable-length strings; those (and attributes) rely on the commit
-    file's SHA-256 alone.
-    """
-    if data.ndim == 0 or data.size == 0 or h5py.check_vlen_dtype(np.dtype(h5dtype)):
-        return {}
-    return {"chunks": True, "fletcher32": True}
-
-
-def _write_columns(f: h5py.File, cols: Columns) -> None:
-    g = f.create_group("entries")
-    n = len(cols["seq"])
-    for table, names in _TABLES:
-        if table == "text":
-            dtype: Any = h5py.string_dtype("utf-8")
-            data = np.empty((n, len(names)), dtype=object)
-        else:
-            dtype = np.dtype(table)
-            data = np.empty((n, len(names)), dtype=dtype)
-        for k, name in enumerate(names):
-            data[:, k] = cols[name]
-        ds = g.create_dataset(table, shape=data.shape, dtype=dtype, **_checksum_args(data, dtype))
-        if n:
-            ds[...] = data
-        ds.attrs["columns"] = json.dumps(list(names))
-
-
 _TABLE_KINDS = {"float64": "f", "int64": "i", "text": "O"}
 
 
@@ -174,7 +141,7 @@ def _read_columns(f: h5py.File) -> Columns:
 
 
 # --------------------------------------------------------------------------------------------
-# Sweep codec: xarray.Dataset <-> HDF5 group, with h5py only
+# Sweep codec: the checks and exact encodings of a Dataset's values, and the version-1 reader
 # --------------------------------------------------------------------------------------------
 
 _PLAIN_KINDS = frozenset("biufcS")
@@ -224,19 +191,26 @@ def _encode_array(arr: np.ndarray, where: str, field_name: str) -> _Blob:
     raise LedgerValidationError(where, field_name, f"dtype {arr.dtype} is not storable")
 
 
+def _decode_raw(raw: Any, codec: str, dtype: np.dtype, where: str) -> np.ndarray:
+    """An array as stored (``raw``: what h5py read) turned back into its numpy ``dtype``."""
+    if codec == "plain":
+        return np.asarray(raw).astype(dtype, copy=False)
+    if codec == "text":
+        arr = np.asarray(raw, dtype=object)
+        out = np.empty(arr.shape, dtype=object)
+        if out.size:
+            out[...] = arr
+        return out if dtype.kind == "O" else out.astype(dtype)
+    if codec == "int64-view":
+        return np.asarray(raw, dtype=np.int64).view(dtype)
+    raise LedgerError(f"{where}: unknown array codec {codec!r}")
+
+
 def _decode_array(ds: h5py.Dataset) -> np.ndarray:
     codec = ds.attrs["codec"]
     dtype = np.dtype(ds.attrs["dtype"])
-    if codec == "plain":
-        return np.asarray(ds[()]).astype(dtype, copy=False)
-    if codec == "text":
-        raw = np.empty(ds.shape, dtype=object)
-        if raw.size:
-            raw[...] = ds.asstr()[()]
-        return raw if dtype.kind == "O" else raw.astype(dtype)
-    if codec == "int64-view":
-        return np.asarray(ds[()], dtype=np.int64).view(dtype)
-    raise LedgerError(f"{ds.file.filename}:{ds.name}: unknown array codec {codec!r}")
+    raw = ds.asstr()[()] if codec == "text" and ds.size else ds[()]
+    return _decode_raw(raw, codec, dtype, f"{ds.file.filename}:{ds.name}")
 
 
 def _encode_attr(value: Any, where: str, name: str) -> _Blob:
@@ -286,9 +260,8 @@ def _encode_attr(value: Any, where: str, name: str) -> _Blob:
     return _Blob(blob.data, blob.h5dtype, {**blob.meta, "pytype": pytype, "name": json.dumps(name)})
 
 
-def _decode_attr(ds: h5py.Dataset) -> Any:
-    arr = _decode_array(ds)
-    pytype = ds.attrs["pytype"]
+def _restore_attr(arr: np.ndarray, pytype: str, where: str) -> Any:
+    """The Python value of a decoded attribute array, by the type it was given as."""
     if pytype == "none":
         return None
     if pytype == "ndarray":
@@ -307,8 +280,12 @@ def _decode_attr(ds: h5py.Dataset) -> Any:
         "numpy-scalar": lambda x: x,
     }
     if pytype not in convert:
-        raise LedgerError(f"{ds.file.filename}:{ds.name}: unknown attribute type {pytype!r}")
+        raise LedgerError(f"{where}: unknown attribute type {pytype!r}")
     return convert[pytype](scalar)
+
+
+def _decode_attr(ds: h5py.Dataset) -> Any:
+    return _restore_attr(_decode_array(ds), ds.attrs["pytype"], f"{ds.file.filename}:{ds.name}")
 
 
 @dataclass(frozen=True)
@@ -365,36 +342,6 @@ def _encode_sweep(sweep_id: str, ds: Any) -> _SweepPlan:
             )
         )
     return _SweepPlan(sweep_id, tuple(variables), _encode_attrs(ds.attrs, where))
-
-
-def _write_blob(group: h5py.Group, name: str, blob: _Blob) -> None:
-    ds = group.create_dataset(
-        name, shape=blob.data.shape, dtype=blob.h5dtype, **_checksum_args(blob.data, blob.h5dtype)
-    )
-    if blob.data.size:
-        ds[...] = blob.data
-    for key, val in blob.meta.items():
-        ds.attrs[key] = val
-
-
-def _write_attr_blobs(group: h5py.Group, blobs: Iterable[_Blob]) -> None:
-    g = group.create_group("attrs")
-    for k, blob in enumerate(blobs):
-        _write_blob(g, str(k), blob)
-
-
-def _write_sweep(group: h5py.Group, plan: _SweepPlan, seq: int) -> None:
-    group.attrs["sweep_id"] = plan.sweep_id
-    group.attrs["seq"] = seq
-    _write_attr_blobs(group, plan.attrs)
-    vg = group.create_group("variables")
-    for k, var in enumerate(plan.variables):
-        g = vg.create_group(str(k))
-        g.attrs["name"] = json.dumps(var.name)
-        g.attrs["role"] = var.role
-        g.attrs["dims"] = json.dumps(list(var.dims))
-        _write_blob(g, "data", var.data)
-        _write_attr_blobs(g, var.attrs)
 
 
 def _positional(group: h5py.Group) -> list[Any]:

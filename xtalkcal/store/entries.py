@@ -43,6 +43,8 @@ def _attr(obj: h5py.HLObject, key: str, kind: type, where: str) -> Any:
     if key not in obj.attrs:
         raise _Malformed(f"{where}: attribute {key!r} is missing")
     value = obj.attrs[key]
+    if isinstance(value, np.ndarray) and value.shape == (1,):
+        value = value[0]  # netCDF-4 (h5netcdf) writes a number as a one-element array
     if kind is int:
         if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)):
             raise _Malformed(f"{where}: attribute {key!r} must be an integer, got {value!r}")

@@ -43,6 +43,7 @@ from xtalkcal.store.writing import (
     _merged_sweeps,
     _new_sweeps,
     _next_seq,
+    _raise_marker_version,
     _remove_redundant,
     _remove_temporaries,
     _start_digests,
@@ -396,7 +397,7 @@ class Ledger:
         """Under the lock, before a commit file is written: clear leftovers of killed writers
         and make sure this ledger keeps digests."""
         _remove_temporaries(self._path)
-        self._marker = _start_digests(self._path, self._marker)
+        self._marker = _raise_marker_version(self._path, _start_digests(self._path, self._marker))
 
 
 def verify_ledger(path: str | os.PathLike[str]) -> LedgerReport:

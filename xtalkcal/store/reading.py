@@ -14,7 +14,7 @@ import xarray as xr
 
 import xtalkcal.store.schema as schema
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.codec import _columns_to_entries, _member, _positional, _read_columns
+from xtalkcal.store.codec import _columns_to_entries, _member, _positional
 from xtalkcal.store.entries import LedgerEntry, _attr, _Malformed
 from xtalkcal.store.files import (
     _FORMAT,
@@ -26,6 +26,7 @@ from xtalkcal.store.files import (
     _read_digest,
     _stamp,
 )
+from xtalkcal.store.netcdf import check_sweep, sweep_groups
 
 
 @dataclass(frozen=True)
@@ -132,7 +133,7 @@ def _decode(
         )
     if (_attr(fh, "seq_first", int, "/"), _attr(fh, "seq_last", int, "/")) != (first, last):
         raise _Malformed("the sequence range in the file disagrees with its name")
-    entries = _columns_to_entries(schema._migrate(_read_columns(fh), version, "entries"))
+    entries = _columns_to_entries(schema._read_entries(fh, version))
     for e in entries:
         if not first <= e.seq <= last:
             raise _Malformed(f"entry seq {e.seq} outside {first}..{last}")
@@ -140,14 +141,18 @@ def _decode(
         raise _Malformed("two entries share a (seq, position)")
     entries.sort(key=lambda e: (e.seq, e.position))
     sweeps = []
-    for g in _positional(_member(fh, "sweeps", h5py.Group, "/")):
+    container = _member(fh, "sweeps", h5py.Group, "/")
+    for g in (_positional(container) if version == 1 else sweep_groups(container)):
         if not isinstance(g, h5py.Group):
             raise _Malformed(f"{g.name}: a sweep must be an HDF5 group")
-        sid = _attr(g, "sweep_id", str, g.name)
-        if not first <= _attr(g, "seq", int, g.name) <= last:
+        if version == 1:
+            sid, seq = _attr(g, "sweep_id", str, g.name), _attr(g, "seq", int, g.name)
+            for member in ("variables", "attrs"):
+                _member(g, member, h5py.Group, g.name + "/")
+        else:
+            sid, seq = check_sweep(g)
+        if not first <= seq <= last:
             raise _Malformed(f"{g.name}: sweep seq outside {first}..{last}")
-        for member in ("variables", "attrs"):
-            _member(g, member, h5py.Group, g.name + "/")
         sweeps.append((sid, g.name))
     if len({sid for sid, _ in sweeps}) != len(sweeps):
         raise _Malformed("a sweep id is stored twice")
@@ -195,7 +200,7 @@ def _read_stored_sweep(
     try:
         with fh:
             return schema._read_sweep(fh[gpath], version)
-    except _DECODE_ERRORS as exc:
+    except (*_DECODE_ERRORS, _Malformed) as exc:
         # HDF5 reports a Fletcher-32 mismatch as a failed filter (the only filter this code
         # writes).
         why = ("a data checksum (Fletcher-32) failed: the file changed after it was "

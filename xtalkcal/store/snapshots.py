@@ -72,14 +72,16 @@ _VIEW_ATTRS: dict[str, dict[str, str]] = {
     "phase_rad": {"units": "rad", "long_name": "crosstalk phase arg X"},
     "phase_rad_stderr": {"units": "rad", "long_name": "standard error of phase"},
     "frequency_ghz": {"units": "GHz", "long_name": "aggressor tone frequency"},
-    "measured_at_s": {"units": "s", "long_name": "rig time of measurement"},
-    "shots": {"units": "1", "long_name": "shots spent"},
+    "measured_at_s": {"units": "s", "long_name": "rig clock at the end of the measurement "
+                      "(monotonic over the chip's life, not a wall clock)"},
+    "shots": {"units": "shots", "long_name": "shots spent"},
     "amplification": {"units": "1", "long_name": "aggressor pulse repetitions K"},
     "quality": {"units": "1", "long_name": "fit quality figure"},
-    "measured_at_utc": {"long_name": "wall-clock time of measurement (ISO-8601 UTC)"},
+    "measured_at_utc": {"long_name": "wall clock at the end of the measurement "
+                        "(ISO-8601, UTC)"},
     "method": {"long_name": "measurement method"},
     "kind": {"long_name": "measurement kind"},
-    "verdict": {"long_name": "fit verdict"},
+    "verdict": {"long_name": "fit verdict (rejected entries are history only)"},
     "reason": {"long_name": "reason for the verdict"},
     "tag": {"long_name": "run tag"},
     "sweep_id": {"long_name": "id of the stored raw sweep"},
@@ -151,12 +153,15 @@ class MatrixSnapshot:
     def to_dataset(
         self, *, aggressors: Iterable[str] | None = None, victims: Iterable[str] | None = None
     ) -> xr.Dataset:
-        """Return the matrix as an ``xarray.Dataset`` with dims ``aggressor`` x ``victim``.
+        """Return the matrix as an ``xarray.Dataset`` with dims ``victim`` x ``aggressor``.
+
+        The dimensions follow ``X_ij``: the victim qubit ``i`` first (rows), the aggressor
+        line ``j`` second (columns), as in the heat maps.
 
         Parameters
         ----------
         aggressors, victims : iterable of str, optional
-            Names (and order) of the rows and columns; default: every name in the snapshot,
+            Names (and order) of the columns and rows; default: every name in the snapshot,
             sorted. Pairs without an accepted entry hold NaN (numbers) or ``""`` (text).
 
         Returns
@@ -169,15 +174,16 @@ class MatrixSnapshot:
             each with ``units``/``long_name`` attrs.
         """
         pairs = list(self.entries)
-        rows = list(aggressors) if aggressors is not None else sorted({a for a, _ in pairs})
-        cols = list(victims) if victims is not None else sorted({v for _, v in pairs})
-        r_index = {a: k for k, a in enumerate(rows)}
-        c_index = {v: k for k, v in enumerate(cols)}
-        chosen = [(p, e) for p, e in self.entries.items() if p[0] in r_index and p[1] in c_index]
+        cols = list(aggressors) if aggressors is not None else sorted({a for a, _ in pairs})
+        rows = list(victims) if victims is not None else sorted({v for _, v in pairs})
+        r_index = {v: k for k, v in enumerate(rows)}
+        c_index = {a: k for k, a in enumerate(cols)}
+        chosen = [(p, e) for p, e in self.entries.items() if p[1] in r_index and p[0] in c_index]
         table = _entry_table([e for _, e in chosen])
-        ri = np.array([r_index[p[0]] for p, _ in chosen], dtype=int)
-        ci = np.array([c_index[p[1]] for p, _ in chosen], dtype=int)
+        ri = np.array([r_index[p[1]] for p, _ in chosen], dtype=int)
+        ci = np.array([c_index[p[0]] for p, _ in chosen], dtype=int)
         shape = (len(rows), len(cols))
+        dims = ("victim", "aggressor")
         data_vars: dict[str, Any] = {}
         for name in _MATRIX_VARS:
             col = table[name]
@@ -189,23 +195,19 @@ class MatrixSnapshot:
             grid[ri, ci] = col
             if col.dtype.kind == "U":
                 grid = grid.astype(str)
-            data_vars[name] = (("aggressor", "victim"), grid, _VIEW_ATTRS[name])
+            data_vars[name] = (dims, grid, _VIEW_ATTRS[name])
         present = np.zeros(shape, dtype=bool)
         present[ri, ci] = True
-        data_vars["present"] = (
-            ("aggressor", "victim"),
-            present,
-            {"long_name": "pair has an accepted entry"},
-        )
+        data_vars["present"] = (dims, present, {"long_name": "pair has an accepted entry"})
         return xr.Dataset(
             data_vars,
             coords={
+                "victim": ("victim", np.array(rows, dtype=str), {"long_name": "victim qubit"}),
                 "aggressor": (
                     "aggressor",
-                    np.array(rows, dtype=str),
+                    np.array(cols, dtype=str),
                     {"long_name": "aggressor drive line"},
                 ),
-                "victim": ("victim", np.array(cols, dtype=str), {"long_name": "victim qubit"}),
             },
             attrs={
                 "chip": self.chip,
@@ -213,5 +215,6 @@ class MatrixSnapshot:
                 "last_seq": self.last_seq,
                 "definition": "X = C_victim,aggressor / C_victim,victim at the aggressor tone",
                 "db_convention": "20*log10 of the amplitude ratio",
+                "axes": "X_ij: victim i first (rows), aggressor line j second (columns)",
             },
         )

@@ -13,21 +13,16 @@ from pathlib import Path
 from typing import Any
 
 import h5py
+import numpy as np
 import xarray as xr
 
 import xtalkcal.store.schema as schema
 from xtalkcal.exceptions import LedgerError
-from xtalkcal.store.codec import (
-    _LIBVER,
-    _encode_sweep,
-    _entries_to_columns,
-    _SweepPlan,
-    _write_columns,
-    _write_sweep,
-)
+from xtalkcal.store.codec import _entries_to_columns
 from xtalkcal.store.entries import (
     LedgerEntry,
     LedgerValidationError,
+    _attr,
     _check_entry,
     _check_text,
     utc_timestamp,
@@ -58,10 +53,18 @@ from xtalkcal.store.files import (
     _write_marker,
     _writer_lock,
 )
+from xtalkcal.store.netcdf import (
+    _SEQ,
+    SweepPlanV2,
+    open_file,
+    plan_sweep,
+    write_entries,
+    write_sweep,
+)
 from xtalkcal.store.reading import _CommitFile
 
-# A function that fills the ``sweeps`` group of a commit file being written.
-_SweepFiller = Callable[[h5py.Group], None]
+# A function that fills the ``sweeps`` group (h5netcdf) of a commit file being written.
+_SweepFiller = Callable[[Any], None]
 
 
 @dataclass(frozen=True)
@@ -128,7 +131,7 @@ def _make_ledger_dir(
 
 def _check_batch(
     entries: Iterable[LedgerEntry], sweeps: Mapping[str, xr.Dataset] | None
-) -> tuple[list[LedgerEntry], dict[str, xr.Dataset], list[_SweepPlan]]:
+) -> tuple[list[LedgerEntry], dict[str, xr.Dataset], list[SweepPlanV2]]:
     """Validate a batch before the lock is taken: (entries, sweeps by id, encoded sweeps)."""
     batch = list(entries)
     sweep_map = dict(sweeps or {})
@@ -138,7 +141,7 @@ def _check_batch(
         )
     for k, e in enumerate(batch):
         _check_entry(e, f"entry[{k}]")
-    plans = [_encode_sweep(sid, ds) for sid, ds in sweep_map.items()]
+    plans = [plan_sweep(sid, ds) for sid, ds in sweep_map.items()]
     return batch, sweep_map, plans
 
 
@@ -204,6 +207,16 @@ def _remove_temporaries(root: Path) -> None:
             os.unlink(p)
 
 
+def _raise_marker_version(root: Path, marker: _Marker) -> _Marker:
+    """Before the first commit of the current schema version into an older ledger (under the
+    lock): say so in the marker, so that an older xtalkcal refuses the ledger as newer than
+    it reads instead of meeting a file it cannot decode. Returns the marker in force."""
+    if marker.info.get("schema_version") == schema.SCHEMA_VERSION:
+        return marker
+    _write_marker(root, {**marker.info, "schema_version": schema.SCHEMA_VERSION})
+    return _read_marker(root)
+
+
 def _start_digests(root: Path, marker: _Marker) -> _Marker:
     """On a ledger from before digests (under the lock): record its files as legacy, so that
     from now on a commit file without a digest is an error. Returns the marker in force."""
@@ -234,14 +247,14 @@ def _write_commit(
     digest = root / _digest_name(first, last)
     renamed = False
     try:
-        with h5py.File(tmp, "w", libver=_LIBVER) as fh:
+        with open_file(tmp) as fh:
             fh.attrs["format"] = _FORMAT
-            fh.attrs["schema_version"] = schema.SCHEMA_VERSION
+            fh.attrs["schema_version"] = np.int64(schema.SCHEMA_VERSION)
             fh.attrs["chip"] = chip
-            fh.attrs["seq_first"] = first
-            fh.attrs["seq_last"] = last
+            fh.attrs["seq_first"] = np.int64(first)
+            fh.attrs["seq_last"] = np.int64(last)
             fh.attrs["written_utc"] = utc_timestamp()
-            _write_columns(fh, _entries_to_columns(entries))
+            write_entries(fh, _entries_to_columns(entries))
             fill_sweeps(fh.create_group("sweeps"))
         _fsync_file(tmp)
         size, sha = _hash_file(tmp)
@@ -260,32 +273,30 @@ def _write_commit(
     return final
 
 
-def _new_sweeps(plans: Sequence[_SweepPlan], seq: int) -> _SweepFiller:
+def _new_sweeps(plans: Sequence[SweepPlanV2], seq: int) -> _SweepFiller:
     """Fill a commit's sweeps group with the encoded sweeps of a new commit ``seq``."""
 
-    def fill(group: h5py.Group) -> None:
-        for k, plan in enumerate(plans):
-            _write_sweep(group.create_group(str(k)), plan, seq)
+    def fill(group: Any) -> None:
+        for plan in plans:
+            write_sweep(group, plan, seq)
 
     return fill
 
 
 def _merged_sweeps(root: Path, files: Sequence[_CommitFile]) -> _SweepFiller:
-    """Fill a merged commit's sweeps group with the sweeps of ``files``, in commit order;
-    those of older schema versions are decoded and written again in the current one."""
+    """Fill a merged commit's sweeps group with the sweeps of ``files``, in commit order,
+    each decoded and written again in the current version (one at a time, so that memory
+    holds one sweep)."""
 
-    def fill(group: h5py.Group) -> None:
-        k = 0
+    def fill(group: Any) -> None:
         for cf in files:
             with h5py.File(root / cf.name, "r", locking=False) as src:
                 for sid, gpath in cf.sweeps:
-                    if cf.schema_version == schema.SCHEMA_VERSION:
-                        src.copy(src[gpath], group, name=str(k))
-                    else:
-                        seq = int(src[gpath].attrs["seq"])
-                        ds = schema._read_sweep(src[gpath], cf.schema_version)
-                        _write_sweep(group.create_group(str(k)), _encode_sweep(sid, ds), seq)
-                    k += 1
+                    g = src[gpath]
+                    key = "seq" if cf.schema_version == 1 else _SEQ
+                    seq = _attr(g, key, int, gpath)
+                    ds = schema._read_sweep(g, cf.schema_version)
+                    write_sweep(group, plan_sweep(sid, ds), seq)
 
     return fill
 
