@@ -166,7 +166,7 @@ def _dry_run_refine(rig, protocol, cal, settings, rounds) -> int:
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
-    from xtalkcal.outputs import calibration_from_ledger, verify_settings
+    from xtalkcal.outputs import calibration_from_ledger, played_to_dict, verify_settings
 
     protocol = load_protocol(args.protocol)
     led = existing_ledger(args.ledger)
@@ -201,18 +201,8 @@ def cmd_verify(args: argparse.Namespace) -> int:
     print(f"{n_in} of {len(res)} pairs within {protocol.recheck.tolerance_db:g} dB beyond "
           f"doubt, {len(above)} above or not measured; {runner.shots_executed:,} shots")
     if args.output:
-        doc = {"format": "xtalkcal-verification", "version": 1, "chip": rig.chip.name,
-               "settings": str(args.settings), "rig": rig.describe(),
-               "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
-               "tolerance_db": protocol.recheck.tolerance_db,
-               "pairs": [{"aggressor_line": r.aggressor, "victim": r.victim,
-                          "method": r.method, "shots": r.shots,
-                          "residual_re": None if r.residual is None else r.residual.real,
-                          "residual_im": None if r.residual is None else r.residual.imag,
-                          "stderr": None if r.residual is None else r.stderr,
-                          "residual_db": None if r.residual is None else r.residual_db,
-                          "upper_db": None if r.residual is None else r.upper_db,
-                          "within": r.within, "reason": r.reason} for r in res]}
+        doc = played_to_dict(res, chip=rig.chip.name, settings=str(args.settings),
+                             rig=rig.describe())
         atomic_write(Path(args.output), json.dumps(doc, indent=2) + "\n")
         print(f"wrote {args.output}")
     return EXIT_FAILED if above else EXIT_OK

@@ -4,6 +4,7 @@ of the whole ledger, as a table or CSV)."""
 from __future__ import annotations
 
 import argparse
+from dataclasses import replace
 from pathlib import Path
 
 from xtalkcal.cli.calibrating import existing_ledger
@@ -30,13 +31,22 @@ def _empty_out(path: str, force: bool) -> Path:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from xtalkcal.outputs import calibration_from_ledger, format_table, rig_time_at, write_report
+    from xtalkcal.outputs import (
+        calibration_from_ledger,
+        format_table,
+        plot_ledger_drift,
+        read_played,
+        rig_time_at,
+        write_report,
+    )
 
     led = existing_ledger(args.ledger)
     chip = chip_for_ledger(led.chip, args.chip)
     protocol = load_protocol(args.protocol)
     moment = parse_moment(args.as_of) if args.as_of else None
     t = rig_time_at(led, moment)
+    if not args.protocol:  # the ledger does not record the protocol of its entries
+        protocol = replace(protocol, name="not recorded in the ledger")
     cal = calibration_from_ledger(led, chip, protocol, as_of_s=t)
     if not cal.pairs:
         raise usage_error("--ledger", f"{args.ledger} holds no entry to report")
@@ -44,7 +54,13 @@ def cmd_report(args: argparse.Namespace) -> int:
     when = f"as of {utc_text(moment)}" if moment else "as it stands now"
     about = [f"from the ledger `{args.ledger}` alone ({when}; {led.last_seq} commits): "
              "measured values and their standard errors only"]
-    md = write_report(cal, out, about=about)
+    played = None
+    if args.verification:
+        played = read_played(args.verification, led.chip)
+        about.append(f"verification: `{args.verification}` (written by `xtalkcal verify`)")
+    drift = plot_ledger_drift(led, until=moment, tolerance_db=protocol.recheck.tolerance_db)
+    md = write_report(cal, out, about=about, played=played,
+                      figures=[("Moves of the stored nulls", "ledger_drift.png", drift)])
     print(format_table(cal))
     print(f"\nreport: {md} and {out / 'report.html'}")
     return EXIT_OK
@@ -91,6 +107,8 @@ def add_commands(add) -> None:
     r.add_argument("--chip", default=None, metavar="FILE",
                    help="the chip file (default: the bundled simulated chip, if the ledger "
                         "is for it)")
+    r.add_argument("--verification", default=None, metavar="FILE",
+                   help="add the residuals `xtalkcal verify -o FILE` wrote")
     r.add_argument("--force", action="store_true", help="write into a non-empty folder")
     add_protocol(r)
 

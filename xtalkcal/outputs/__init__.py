@@ -20,10 +20,14 @@ from xtalkcal.outputs.history import (
     history_csv,
     history_rows,
     history_table,
+    plot_ledger_drift,
 )
 from xtalkcal.outputs.played import (
+    PLAYED_FORMAT,
     CompensatedRig,
     PlayedResidual,
+    played_to_dict,
+    read_played,
     verify_settings,
 )
 from xtalkcal.outputs.plot import (
@@ -55,8 +59,12 @@ __all__ = [
     "history_csv",
     "history_rows",
     "history_table",
+    "plot_ledger_drift",
+    "PLAYED_FORMAT",
     "CompensatedRig",
     "PlayedResidual",
+    "played_to_dict",
+    "read_played",
     "verify_settings",
     "SettingsChoice",
     "choose_settings",

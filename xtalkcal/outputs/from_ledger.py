@@ -76,8 +76,9 @@ def calibration_from_ledger(ledger, chip, protocol, *, as_of_s: float = math.inf
     Returns
     -------
     CalibrationResult
-        ``shots`` adds up the shots of the entries used; ``rig_seconds`` is NaN (the ledger
-        does not keep it).
+        ``shots`` adds up the shots behind the entries used (once per stored sweep: the
+        pairs of a column pass share its shots); ``rig_seconds`` is NaN (the ledger does
+        not keep it).
     """
     if ledger.chip != chip.name:
         raise ConfigError(chip.source, "name", f"{chip.name!r}: the ledger {ledger.path} is "
@@ -94,10 +95,13 @@ def calibration_from_ledger(ledger, chip, protocol, *, as_of_s: float = math.inf
     latest = max((chosen[k] for k in keys), key=lambda e: e.measured_at_s, default=None)
     result = CalibrationResult(chip, protocol, latest.rig if latest else "",
                                rig_seconds=math.nan)
+    per_sweep: dict[str, int] = {}
     for k in keys:
         e = chosen[k]
         result.pairs.append(_pair(e))
-        result.shots += e.shots
+        # the pairs of one column pass share its shots: counted once per sweep
+        sid = e.sweep_id or f"{e.entry_id}"
+        per_sweep[sid] = max(per_sweep.get(sid, 0), e.shots)
         if e.sweep_id and e.sweep_id not in result.sweeps:
             try:
                 ds = ledger.sweep(e.sweep_id)
@@ -112,4 +116,5 @@ def calibration_from_ledger(ledger, chip, protocol, *, as_of_s: float = math.inf
                     tuple(str(v) for v in ds["from_victim"].values),
                     ds["coupling_re"].values + 1j * ds["coupling_im"].values,
                     np.where(np.isfinite(err), err, 0.0))
+    result.shots = sum(per_sweep.values())
     return result

@@ -34,7 +34,8 @@ from xtalkcal.compensation import CompensationSettings, apply_to_timeline
 from xtalkcal.hardware import check_timelines
 from xtalkcal.measure import BatchRunner, Protocol, PulseShape
 
-__all__ = ["PlayedResidual", "CompensatedRig", "verify_settings"]
+__all__ = ["PLAYED_FORMAT", "PlayedResidual", "CompensatedRig", "played_to_dict", "read_played",
+           "verify_settings"]
 
 
 @dataclass(frozen=True)
@@ -194,3 +195,60 @@ def verify_settings(rig, protocol: Protocol, calibration: CalibrationResult,
                                   m.stderr if m.accepted else math.nan,
                                   "" if m.accepted else m.reason, m.shots, tol))
     return out, measured, inner
+
+
+PLAYED_FORMAT = "xtalkcal-verification"
+
+
+def played_to_dict(played: list[PlayedResidual], *, chip: str, settings: str, rig: str
+                   ) -> dict:
+    """The residuals as a JSON-shaped document of format ``xtalkcal-verification``."""
+    import datetime as dt
+
+    def pair(r: PlayedResidual) -> dict:
+        ok = r.residual is not None
+        return {"aggressor_line": r.aggressor, "victim": r.victim, "method": r.method,
+                "shots": r.shots, "residual_re": r.residual.real if ok else None,
+                "residual_im": r.residual.imag if ok else None,
+                "stderr": r.stderr if ok else None, "residual_db": r.residual_db if ok else None,
+                "upper_db": r.upper_db if ok else None, "within": r.within,
+                "reason": r.reason}
+
+    tol = played[0].tolerance_db if played else math.nan
+    return {"format": PLAYED_FORMAT, "version": 1, "chip": chip, "settings": settings,
+            "rig": rig, "tolerance_db": tol,
+            "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+            "pairs": [pair(r) for r in played]}
+
+
+def read_played(path, chip: str) -> list[PlayedResidual]:
+    """Residuals written by ``xtalkcal verify -o FILE``, checked to be for ``chip``."""
+    from xtalkcal.common import load_json
+    from xtalkcal.exceptions import ConfigError
+
+    doc, source = load_json(path)
+    if not isinstance(doc, dict) or doc.get("format") != PLAYED_FORMAT:
+        raise ConfigError(source, "format", f"accepted: {PLAYED_FORMAT!r} (written by "
+                                            "`xtalkcal verify -o FILE`)")
+    if doc.get("chip") != chip:
+        raise ConfigError(source, "chip", f"{str(doc.get('chip'))[:40]!r}: the ledger is for "
+                                          f"chip {chip!r}")
+    out = []
+    try:
+        tol = float(doc["tolerance_db"])
+        for i, p in enumerate(doc["pairs"]):
+            where = f"pairs[{i}]"
+            ok = p.get("residual_re") is not None
+            try:
+                w = complex(float(p["residual_re"]), float(p["residual_im"])) if ok else None
+                out.append(PlayedResidual(str(p["aggressor_line"]), str(p["victim"]),
+                                          str(p["method"]), w,
+                                          float(p["stderr"]) if ok else math.nan,
+                                          str(p.get("reason", "")), int(p["shots"]), tol))
+            except (KeyError, TypeError, ValueError) as exc:
+                raise ConfigError(source, where, f"{exc}; accepted: the fields `xtalkcal "
+                                                 "verify -o` writes") from None
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ConfigError(source, "pairs", f"{exc}; accepted: the fields `xtalkcal verify -o` "
+                                           "writes") from None
+    return out

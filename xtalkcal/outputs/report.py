@@ -28,14 +28,16 @@ def _save(ax, path: Path) -> str:
 
 def write_report(result: CalibrationResult, out: str | Path, *,
                  truth: dict[tuple[str, str], complex] | None = None,
-                 campaign=None, about: list[str] | None = None, played=None) -> Path:
+                 campaign=None, about: list[str] | None = None, played=None,
+                 figures: list[tuple[str, str, object]] | None = None) -> Path:
     """Write the report folder; returns the path of ``report.md``.
 
     ``truth`` (simulated devices only) adds the true residual |X + r| per pair;
     ``campaign`` (a :class:`xtalkcal.campaign.CampaignResult`) adds verification,
     gate errors and the drift watch; ``about`` adds lines to the summary (where the
     numbers come from); ``played`` (residuals of :func:`xtalkcal.outputs.verify_settings`)
-    adds the verification of the written settings as the control stack plays them.
+    adds the verification of the written settings as the control stack plays them;
+    ``figures`` adds (title, file name, Axes) figures made by the caller.
     """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -59,6 +61,9 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         figs.append(("Residuals", _save(ax, out / "residuals.png")))
         res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
         worst = max(res) if res else None
+    for title, name, ax in figures or ():
+        if ax is not None:
+            figs.append((title, _save(ax, out / name)))
     extra: list[str] = []
     if campaign is not None:
         extra += _campaign_sections(campaign, out, figs, truth)
