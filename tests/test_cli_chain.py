@@ -68,9 +68,9 @@ def _chain(tmp_path, capsys, rig_args: list[str]):
                                    "--schedule", sched, "--protocol", QUICK)
     assert code == 0, err
     assert not Path(sched).exists() and len(Ledger(led).entries()) == n_entries
-    code, said["due"], said["due_err"] = _run(capsys, "due", *rig_args, "--ledger", led, "--schedule",
-                                  sched, "--protocol", QUICK,
-                                  "--settings-out", str(tmp_path / "settings-now.json"))
+    code, said["due"], said["due_err"] = _run(
+        capsys, "due", *rig_args, "--ledger", led, "--schedule", sched, "--protocol", QUICK,
+        "--settings-out", str(tmp_path / "settings-now.json"))
     assert code == 0, said["due_err"]
     data = json.loads(Path(sched).read_text())
     for p in data["pairs"]:  # as if the checks had fallen due

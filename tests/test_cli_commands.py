@@ -4,10 +4,9 @@
 from __future__ import annotations
 
 import json
-import re
 import os
+import re
 import time
-from pathlib import Path
 
 import pytest
 from plugin_rigs import SimPlugin
