@@ -14,6 +14,7 @@ import importlib
 
 from xtalkcal.cli.shared import usage_error
 from xtalkcal.exceptions import ConfigError, RigError, XtalkcalError
+from xtalkcal.outputs import RigView
 
 __all__ = ["add_rig", "make_rig", "is_simulator", "DryRig", "LabChipRig", "chip_for_ledger",
            "rig_start_s", "dry_run_report"]
@@ -65,7 +66,7 @@ def _add_rig_timeout(cmd: argparse.ArgumentParser) -> None:
                           "considered unusable; default: wait for ever)")
 
 
-class LabChipRig:
+class LabChipRig(RigView):
     """A rig seen through the lab's chip file: the chip (names, nominal values, limits,
     interlock) is the lab's, everything else the rig's own.
 
@@ -86,21 +87,12 @@ class LabChipRig:
                 raise ConfigError(chip.source, f"lines.{ln.name}.qubit",
                                   f"{ln.qubit!r}: on the rig line {ln.name} drives "
                                   f"{theirs.line(ln.name).qubit!r}")
-        self._rig, self._chip = rig, chip
+        super().__init__(rig)
+        self._chip = chip
 
     @property
     def chip(self):
         return self._chip
-
-    @property
-    def repetition_ns(self) -> float:
-        return self._rig.repetition_ns
-
-    def describe(self) -> str:
-        return self._rig.describe()
-
-    def now(self) -> float:
-        return self._rig.now()
 
     def run(self, timelines, shots):
         from xtalkcal.hardware import check_timelines
@@ -108,10 +100,6 @@ class LabChipRig:
         # the lab's limits, before the rig's own check
         check_timelines(self._chip, list(timelines), self._rig.repetition_ns)
         return self._rig.run(timelines, shots)
-
-    def __getattr__(self, name: str):
-        # advance_clock_to, wait, true_crosstalk ... of the rig underneath
-        return getattr(self._rig, name)
 
 
 def _factory(spec: str):

@@ -34,8 +34,8 @@ from xtalkcal.compensation import CompensationSettings, apply_to_timeline
 from xtalkcal.hardware import check_timelines
 from xtalkcal.measure import BatchRunner, Protocol, PulseShape
 
-__all__ = ["PLAYED_FORMAT", "PlayedResidual", "CompensatedRig", "played_to_dict", "read_played",
-           "verify_settings"]
+__all__ = ["PLAYED_FORMAT", "PlayedResidual", "RigView", "CompensatedRig", "played_to_dict",
+           "read_played", "verify_settings"]
 
 
 @dataclass(frozen=True)
@@ -92,12 +92,12 @@ class PlayedResidual:
                 f" dB (σ), 99 % bound {self.upper_db:6.1f} dB  {verdict}")
 
 
-class CompensatedRig:
-    """A rig whose every timeline gets the settings' cancellation tones, as the control
-    stack adds them; the result is checked against the chip's limits before it is sent."""
+class RigView:
+    """A rig seen through another object: every member of the rig contract (and any other,
+    such as ``advance_clock_to``) forwarded to it; subclasses change what they must."""
 
-    def __init__(self, rig, settings: CompensationSettings) -> None:
-        self._rig, self._settings = rig, settings
+    def __init__(self, rig) -> None:
+        self._rig = rig
 
     @property
     def chip(self):
@@ -114,16 +114,28 @@ class CompensatedRig:
         return self._rig.now()
 
     def run(self, timelines, shots):
+        return self._rig.run(timelines, shots)
+
+    def __getattr__(self, name: str):
+        if name == "_rig":  # not set yet (copying): no recursion
+            raise AttributeError(name)
+        return getattr(self._rig, name)
+
+
+class CompensatedRig(RigView):
+    """A rig whose every timeline gets the settings' cancellation tones, as the control
+    stack adds them; the result is checked against the chip's limits before it is sent."""
+
+    def __init__(self, rig, settings: CompensationSettings) -> None:
+        super().__init__(rig)
+        self._settings = settings
+
+    def run(self, timelines, shots):
         rep = self._rig.repetition_ns
         played = [apply_to_timeline(tl, self._settings, self.chip, repetition_ns=rep)
                   for tl in timelines]
         check_timelines(self.chip, played, rep)
         return self._rig.run(played, shots)
-
-    def advance_clock_to(self, t_s: float) -> None:
-        fn = getattr(self._rig, "advance_clock_to", None)
-        if fn is not None:
-            fn(t_s)
 
 
 def _radius(calibration: CalibrationResult, pair, repeats: int) -> float:
