@@ -234,3 +234,50 @@ def test_run_on_a_plug_in_rig_does_the_whole_job_without_truth(tmp_path, capsys)
     code, _t, err = _run(capsys, "run", "--rig", f"{__name__}:plain_rig", "--chip",
                          str(chip), "--out", str(out), "-q")
     assert code == 2 and "--out" in err
+
+
+class UntouchableRig(SimPlugin):
+    """A plug-in that must never be asked to play anything."""
+
+    def run(self, timelines, shots):
+        raise AssertionError("a dry run sent a batch to the rig")
+
+
+def untouchable_rig():
+    return UntouchableRig()
+
+
+def test_dry_runs_of_verify_closed_loop_and_due_send_nothing(calibrated, tmp_path, capsys):
+    proto, led = calibrated
+    chip = tmp_path / "lab.toml"
+    assert main(["export-chip", demo_device_path(), "-o", str(chip)]) == 0
+    s = tmp_path / "s.json"
+    assert main(["settings", "--ledger", str(led), "-o", str(s)]) == 0
+    n0 = len(Ledger(led).entries())
+    rig = ["--rig", f"{__name__}:untouchable_rig", "--chip", str(chip)]
+    capsys.readouterr()
+    for argv in (["verify", "--settings", str(s), "--ledger", str(led)],
+                 ["settings", "--solve", "closed-loop", "--ledger", str(led),
+                  "-o", str(tmp_path / "s2.json")],
+                 ["due", "--ledger", str(led), "--schedule", str(tmp_path / "sch.json")]):
+        code, out, err = _run(capsys, *argv, *rig, "--protocol", str(proto), "--dry-run")
+        assert code == 0, (argv[0], err)
+        assert str(chip) in out.splitlines()[0]  # the limits in force and their file
+        assert "nothing was sent" in out
+    assert len(Ledger(led).entries()) == n0
+    assert not (tmp_path / "s2.json").exists() and not (tmp_path / "sch.json").exists()
+
+
+@pytest.mark.parametrize("command, shown", [
+    ("settings", ["(default: multi-victim)", "(default: settings.json)"]),
+    ("verify", ["(default: sim)"]),
+    ("report", ["(default: xtalkcal-report)"]),
+    ("run", ["(default: xtalkcal-run)", "(default: sim)"]),
+    ("due", ["(default: multi-victim)"]),
+])
+def test_help_of_the_new_commands_shows_defaults(capsys, command, shown):
+    with pytest.raises(SystemExit) as exc:
+        main([command, "--help"])
+    assert exc.value.code == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "(default: None)" not in out and all(s in out for s in shown)
