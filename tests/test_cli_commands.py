@@ -281,3 +281,22 @@ def test_help_of_the_new_commands_shows_defaults(capsys, command, shown):
     assert exc.value.code == 0
     out = " ".join(capsys.readouterr().out.split())
     assert "(default: None)" not in out and all(s in out for s in shown)
+
+
+def test_history_warns_of_a_rig_clock_that_went_back(calibrated, tmp_path, capsys):
+    import dataclasses
+    import shutil
+
+    from xtalkcal.store import utc_timestamp
+
+    _proto, led = calibrated
+    copy = tmp_path / "ledger"
+    shutil.copytree(led, copy)
+    ledger = Ledger(copy)
+    code, _out, err = _run(capsys, "history", "--ledger", str(copy))
+    assert code == 0 and "warning" not in err
+    e = next(x for x in ledger.entries() if x.kind == "null")
+    ledger.append([dataclasses.replace(e.bare(), measured_at_s=0.0,
+                                       measured_at_utc=utc_timestamp(), tag="reset")])
+    code, _out, err = _run(capsys, "history", "--ledger", str(copy))
+    assert code == 0 and "warning: the rig clock went back" in err

@@ -4,6 +4,7 @@ of the whole ledger, as a table or CSV)."""
 from __future__ import annotations
 
 import argparse
+import sys
 from dataclasses import replace
 from pathlib import Path
 
@@ -86,6 +87,7 @@ def cmd_history(args: argparse.Namespace) -> int:
                                         f"for it; accepted: a pair it holds ({held}"
                                         + (", ..." if len(led.pairs()) > 12 else "") + ")")
     moment = parse_moment(args.as_of) if args.as_of else None
+    _clock_went_back(led)
     rows = history_rows(led, pair=pair, until=moment)
     if args.csv:
         print(history_csv(rows), end="")
@@ -95,6 +97,25 @@ def cmd_history(args: argparse.Namespace) -> int:
           + (f" stored by {utc_text(moment)}" if moment else "")
           + "; times are when each entry was stored (UTC)")
     return EXIT_OK
+
+
+def _clock_went_back(led) -> None:
+    """Warn where a commit's entries all carry rig times behind an earlier commit's latest:
+    the rig's clock was reset, and the schedule (which counts in rig time) would wait."""
+    commits: dict[int, list] = {}
+    for e in led.entries():
+        commits.setdefault(e.seq, []).append(e)
+    latest = None
+    for seq in sorted(commits):
+        last = max(commits[seq], key=lambda e: e.measured_at_s)
+        if latest is not None and last.measured_at_s < latest.measured_at_s:
+            print(f"warning: the rig clock went back: commit {seq} (stored "
+                  f"{last.measured_at_utc}) ends at rig time {last.measured_at_s / 3600:.2f} h, "
+                  f"behind the {latest.measured_at_s / 3600:.2f} h of commit {latest.seq} "
+                  f"(stored {latest.measured_at_utc}); check the rig's clock", file=sys.stderr)
+            return
+        if latest is None or last.measured_at_s >= latest.measured_at_s:
+            latest = last
 
 
 def add_commands(add) -> None:
