@@ -12,6 +12,7 @@ from pathlib import Path
 
 import pytest
 from plugin_rigs import SimPlugin
+from test_cli_commands import _run
 
 from simulated_device import demo_device_path
 from xtalkcal.cli import main
@@ -25,12 +26,6 @@ QUICK = str(ROOT / "protocols" / "quick-survey.toml")
 def lab_rig():
     """A lab-style plug-in: the simulator behind the rig contract, no truth exposed."""
     return SimPlugin(seed=4)
-
-
-def _run(capsys, *argv):
-    code = main(list(argv))
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 @pytest.fixture(scope="module")

@@ -20,16 +20,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from xtalkcal.calibrate import (
-    NULL_CONFIDENCE,
-    RISE_PROBABILITY,
-    RISE_STARK_RAD,
-    CalibrationResult,
-    PassRequest,
-    PassStart,
-    calibrate_pass,
-    nulled_pass_groups,
-)
+import xtalkcal.calibrate as calibrate
+from xtalkcal.calibrate import CalibrationResult
 from xtalkcal.compensation import CompensationSettings, apply_to_timeline
 from xtalkcal.hardware import check_timelines
 from xtalkcal.measure import BatchRunner, Protocol, PulseShape
@@ -71,10 +63,11 @@ class PlayedResidual:
 
     @property
     def upper_db(self) -> float:
-        """20·log10(|w| + k·σ) with k the calibration's 99 % factor (NULL_CONFIDENCE)."""
+        """20·log10(|w| + k·σ), k the calibration's 99 % factor (``NULL_CONFIDENCE``)."""
         if self.residual is None:
             return math.nan
-        return 20 * math.log10(max(abs(self.residual) + NULL_CONFIDENCE * self.stderr, 1e-15))
+        bound = abs(self.residual) + calibrate.NULL_CONFIDENCE * self.stderr
+        return 20 * math.log10(max(bound, 1e-15))
 
     @property
     def within(self) -> bool:
@@ -142,7 +135,7 @@ def _radius(calibration: CalibrationResult, pair, repeats: int) -> float:
     """Ring radius at which the pair's signal rises by the calibration's amount (inf:
     the pass caps it at its survey radius)."""
     ds = calibration.sweeps.get(pair.sweep_id)
-    rise = RISE_STARK_RAD if pair.method == "stark" else RISE_PROBABILITY
+    rise = calibrate.RISE_STARK_RAD if pair.method == "stark" else calibrate.RISE_PROBABILITY
     kappa = math.nan
     if ds is not None and "curvature" in ds and pair.victim in list(ds["victim"].values):
         kappa = float(ds["curvature"].sel(victim=pair.victim))
@@ -185,12 +178,12 @@ def verify_settings(rig, protocol: Protocol, calibration: CalibrationResult,
     for line in sorted({p.aggressor_line for p in settings}):
         victims = [p.victim for p in settings.for_aggressor(line)]
         cal = {v: calibration.pair(line, v) for v in victims}
-        for group in nulled_pass_groups({v: cal[v].method for v in victims}):
+        for group in calibrate.nulled_pass_groups({v: cal[v].method for v in victims}):
             K = max(cal[v].repeats for v in group)
-            start = PassStart(centres=tuple(0j for _ in group),
-                              radii=tuple(_radius(calibration, cal[v], K) for v in group),
-                              repeats=K)
-            calibrate_pass(played, inner, protocol, measured, PassRequest(
+            start = calibrate.PassStart(
+                centres=tuple(0j for _ in group),
+                radii=tuple(_radius(calibration, cal[v], K) for v in group), repeats=K)
+            calibrate.calibrate_pass(played, inner, protocol, measured, calibrate.PassRequest(
                 line, tuple(group), tuple(cal[v].method for v in group), shape,
                 stark=cal[group[0]].method == "stark", key_prefix=f"{key_prefix}-",
                 force=tuple(group), start=start), say=say)
