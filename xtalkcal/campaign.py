@@ -6,11 +6,15 @@ takes any rig. Steps:
 1. calibrate every column (column-parallel survey and null search), record it in the
    chip's ledger;
 2. compensation settings: the multi-victim solve with the line-to-line couplings
-   measured at each aggressor's frequency; exported as JSON and CSV;
+   measured at each aggressor's frequency, then closed-loop refinement; a column keeps
+   the pairwise settings where the other solve is expected worse
+   (:func:`xtalkcal.outputs.choose_settings`); exported as JSON and CSV;
 3. verification: every compensated pair re-measured with all of its aggressor's
-   cancellation tones on (the residual, measured, not computed), and simultaneous
-   randomized benchmarking of chosen qubits before and after compensation, against
-   their isolated errors;
+   cancellation tones on — by the re-check's analysis, and with the written settings
+   played by the applicator as the control stack plays them
+   (:func:`xtalkcal.outputs.verify_settings`) — and simultaneous randomized
+   benchmarking of chosen qubits before and after compensation, against their isolated
+   errors;
 4. a drift watch (only where the rig can let time pass, e.g. the simulator's
    ``wait``): the schedule's re-checks for a number of days, re-centring and
    recalibrating as they decide.
@@ -40,6 +44,13 @@ from xtalkcal.compensation import (
 from xtalkcal.drift import PairCheck, Schedule, recheck_column, run_due, schedule_after_calibration
 from xtalkcal.hardware import Rig
 from xtalkcal.measure import BatchRunner, Protocol
+from xtalkcal.outputs import (
+    PlayedResidual,
+    SettingsChoice,
+    choose_settings,
+    closed_loop_choice,
+    verify_settings,
+)
 from xtalkcal.store import Ledger, ledger_entries, ledger_sweeps
 from xtalkcal.verification import (
     DriveTrim,
@@ -92,6 +103,10 @@ class CampaignResult:
     all_on_db: dict[str, float] = field(default_factory=dict)
     # Simulator only: per pair, the true field (dB) with every tone of ``settings`` on.
     all_on_pair_db: dict[tuple[str, str], float] = field(default_factory=dict)
+    # The written settings played by the applicator: each pair's residual as measured.
+    played: list[PlayedResidual] = field(default_factory=list)
+    # Columns that kept the pairwise settings, and why.
+    settings_notes: list[str] = field(default_factory=list)
 
 
 def _db(x: complex) -> float:
@@ -172,12 +187,13 @@ def _calibrate(job: _Job, aggressors: Sequence[str] | None
 
 
 def _compensation(job: _Job, cal: CalibrationResult, led: Ledger, refine_rounds: int
-                  ) -> tuple[CompensationSettings, Refinement, CompensationSettings]:
+                  ) -> tuple[CompensationSettings, Refinement, SettingsChoice]:
     """Step 2: the multi-victim solve, then closed-loop refinement, recorded in the ledger;
-    the settings written as JSON and CSV. Returns (first solve, refinement, settings)."""
-    rig, runner, chip = job.rig, job.runner, job.rig.chip
+    the settings written as JSON and CSV. Returns (first solve, refinement, choice)."""
+    rig, runner = job.rig, job.runner
     job.say("2/4 compensation settings: multi-victim solve, then closed-loop refinement")
-    first = multi_victim_settings(cal, chip, couplings=measured_couplings(cal))
+    first_choice = choose_settings(cal, "multi-victim")
+    first = first_choice.settings
     before = runner.shots_executed
     ref = refine_settings(rig, job.protocol, cal, first, runner=runner, rounds=refine_rounds)
     job.shots["refinement"] = runner.shots_executed - before
@@ -185,13 +201,16 @@ def _compensation(job: _Job, cal: CalibrationResult, led: Ledger, refine_rounds:
         # measured near the operating point, every other tone ringing: the current matrix
         led.append(ledger_entries(r, run_tag=f"refine{k}"),
                    sweeps=ledger_sweeps(r, run_tag=f"refine{k}"))
-    settings = ref.settings if ref.results else first
+    choice = closed_loop_choice(first_choice, ref, cal)
+    settings = choice.settings
     job.say(f"    {len(ref.results)} refinement round(s), largest moves "
             + ", ".join(f"{m:.1f}σ" for m in ref.moves)
             + (" (converged)" if ref.converged else ""))
+    for note in choice.notes:
+        job.say(f"    {note}")
     settings.write_json(job.out / "settings.json")
     settings.write_csv(job.out / "settings.csv")
-    return first, ref, settings
+    return first, ref, choice
 
 
 def _all_on_truth(result: CampaignResult, truth: Truth, rig: Rig, cal: CalibrationResult,
@@ -224,6 +243,17 @@ def _verify(job: _Job, led: Ledger, result: CampaignResult) -> None:
         result.verification += recheck_column(job.rig, verify_protocol, snap, a, victims,
                                               runner=runner, ledger=led, key=f"verify-{a}")
     job.shots["verification"] = runner.shots_executed - before
+
+
+def _verify_played(job: _Job, cal: CalibrationResult, result: CampaignResult) -> None:
+    """Step 3a, continued: the written settings played by the applicator, each pair
+    re-nulled around zero (its residual measured, nothing taken out by calculation)."""
+    job.say("    verification of the written settings as the control stack plays them")
+    played, _measured, runner = verify_settings(
+        job.rig, job.protocol, cal, result.settings, record=job.out / "record",
+        progress=job.runner.progress, timeout_s=job.runner.timeout_s, key_prefix="played")
+    result.played = played
+    job.shots["played verification"] = runner.shots_executed
 
 
 def _benchmark(job: _Job, result: CampaignResult, rb_qubits: Sequence[str],
@@ -334,6 +364,7 @@ def run_campaign(
     step_h: float = 0.5,
     watch: Sequence[str] | None = None,
     refine_rounds: int = 2,
+    verify_played: bool = True,
     progress: Callable[[int], None] | None = None,
     say: Callable[[str], None] = print,
 ) -> CampaignResult:
@@ -362,17 +393,22 @@ def run_campaign(
     refine_rounds : int
         Largest number of closed-loop refinement rounds
         (:func:`xtalkcal.compensation.refine_settings`).
+    verify_played : bool
+        Also verify the written settings as the control stack plays them
+        (:func:`xtalkcal.outputs.verify_settings`).
     """
     out = Path(out)
     job = _Job(rig, protocol, out, BatchRunner(rig, out / "record", progress=progress), say)
     cal, led = _calibrate(job, aggressors)
-    first, ref, settings = _compensation(job, cal, led, refine_rounds)
-    result = CampaignResult(cal, settings, tolerance_db=protocol.recheck.tolerance_db,
-                            refinement=ref)
+    first, ref, choice = _compensation(job, cal, led, refine_rounds)
+    result = CampaignResult(cal, choice.settings, tolerance_db=protocol.recheck.tolerance_db,
+                            refinement=ref, settings_notes=list(choice.notes))
     if truth is not None:
         _all_on_truth(result, truth, rig, cal, first)
 
     _verify(job, led, result)
+    if verify_played:
+        _verify_played(job, cal, result)
     if rb_qubits:
         _benchmark(job, result, rb_qubits, rb_lengths, rb_draws, rb_shots)
 

@@ -15,6 +15,9 @@ are those of ``protocols/full.toml``. Field by field::
     [methods]                    # which error signal per pair (xtalkcal.measure.probes)
     leakage_window_mhz = 35.0    # |f_aggressor − f12_victim| within this → leakage
     rotation_window_mhz = 35.0   # |f_aggressor − f01_victim| within this → rotation
+    # only = ["leakage"]         # measure only the pairs whose chosen method is listed
+    #                            # ("leakage", "rotation", "stark"); the others are left
+    #                            # out of the calibration (default []: every pair)
     # overrides = [{ aggressor = "d4", victim = "q5", method = "leakage" }]
 
     [survey]                     # one pass per aggressor, all victims together

@@ -10,6 +10,27 @@ from xtalkcal.outputs.export import (
     result_to_json,
     unsettled_pairs,
 )
+from xtalkcal.outputs.from_ledger import (
+    calibration_from_ledger,
+    entry_moment,
+    rig_time_at,
+)
+from xtalkcal.outputs.history import (
+    HISTORY_COLUMNS,
+    history_csv,
+    history_rows,
+    history_table,
+    plot_ledger_drift,
+)
+from xtalkcal.outputs.played import (
+    PLAYED_FORMAT,
+    CompensatedRig,
+    PlayedResidual,
+    RigView,
+    played_to_dict,
+    read_played,
+    verify_settings,
+)
 from xtalkcal.outputs.plot import (
     matrix_axes,
     plot_drift,
@@ -23,8 +44,35 @@ from xtalkcal.outputs.plot import (
 from xtalkcal.outputs.report import (
     write_report,
 )
+from xtalkcal.outputs.solve_choice import (
+    SettingsChoice,
+    choose_settings,
+    closed_loop_choice,
+    expected_residual_db,
+    settings_pairs,
+)
 
 __all__ = [
+    "calibration_from_ledger",
+    "entry_moment",
+    "rig_time_at",
+    "HISTORY_COLUMNS",
+    "history_csv",
+    "history_rows",
+    "history_table",
+    "plot_ledger_drift",
+    "PLAYED_FORMAT",
+    "CompensatedRig",
+    "PlayedResidual",
+    "RigView",
+    "played_to_dict",
+    "read_played",
+    "verify_settings",
+    "SettingsChoice",
+    "choose_settings",
+    "closed_loop_choice",
+    "expected_residual_db",
+    "settings_pairs",
     "matrix_axes",
     "plot_drift",
     "plot_gate_errors",

@@ -28,12 +28,16 @@ def _save(ax, path: Path) -> str:
 
 def write_report(result: CalibrationResult, out: str | Path, *,
                  truth: dict[tuple[str, str], complex] | None = None,
-                 campaign=None) -> Path:
+                 campaign=None, about: list[str] | None = None, played=None,
+                 figures: list[tuple[str, str, object]] | None = None) -> Path:
     """Write the report folder; returns the path of ``report.md``.
 
     ``truth`` (simulated devices only) adds the true residual |X + r| per pair;
     ``campaign`` (a :class:`xtalkcal.campaign.CampaignResult`) adds verification,
-    gate errors and the drift watch.
+    gate errors and the drift watch; ``about`` adds lines to the summary (where the
+    numbers come from); ``played`` (residuals of :func:`xtalkcal.outputs.verify_settings`)
+    adds the verification of the written settings as the control stack plays them;
+    ``figures`` adds (title, file name, Axes) figures made by the caller.
     """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -57,6 +61,9 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         figs.append(("Residuals", _save(ax, out / "residuals.png")))
         res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
         worst = max(res) if res else None
+    for title, name, ax in figures or ():
+        if ax is not None:
+            figs.append((title, _save(ax, out / name)))
     extra: list[str] = []
     if campaign is not None:
         extra += _campaign_sections(campaign, out, figs, truth)
@@ -69,11 +76,19 @@ def write_report(result: CalibrationResult, out: str | Path, *,
         f"- protocol: `{result.protocol.name}`; "
         f"threshold {result.protocol.survey.threshold_db:g} dB",
         f"- pairs: {len(result.pairs)} ({n_acc} measured, {len(nulled)} nulled)",
-        f"- calibration: {result.shots:,} shots, {result.rig_seconds:.1f} s of rig time",
+        f"- calibration: {result.shots:,} shots"
+        + (f", {result.rig_seconds:.1f} s of rig time" if math.isfinite(result.rig_seconds)
+           else ""),
     ]
+    lines += [f"- {a}" for a in about or ()]
     if worst is not None:
         lines.append(f"- worst true residual of a nulled pair: {worst:.1f} dB")
     lines += extra
+    played = played or (getattr(campaign, "played", None) if campaign is not None else None)
+    for note in getattr(campaign, "settings_notes", None) or ():
+        lines.append(f"- settings: {note}")
+    if played:
+        lines += _played_section(played)
     lines += ["", "## Drive limits in force", "", "- " + limits_summary(result.chip)]
     lines += [f"- line {ln.name} ({ln.qubit}): peak ≤ {result.chip.amplitude_limit(ln.name):g}"
               + (f", full scale {ln.full_scale_dbm:g} dBm" if ln.full_scale_dbm is not None
@@ -172,3 +187,14 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
         lines.insert(0, "- shots by step: " + ", ".join(f"{k} {v:,}"
                                                        for k, v in campaign.shots.items()))
     return lines
+
+
+def _played_section(played) -> list[str]:
+    """The written settings played as the control stack plays them: each pair's residual."""
+    n_in = sum(r.within for r in played)
+    tol = played[0].tolerance_db
+    return ["", "## Verification of the written settings", "",
+            f"Each pair re-nulled with the settings played by the applicator: the residual "
+            f"w = X + r + Σ X_ik·r_k as measured, ± its standard error. {n_in} of "
+            f"{len(played)} pairs within {tol:g} dB beyond doubt (99 % bound).", "", "```"]\
+        + [r.line() for r in played] + ["```"]

@@ -1,0 +1,7 @@
+"""``python -m xtalkcal.cli``."""
+
+import sys
+
+from xtalkcal.cli.main import main
+
+sys.exit(main())
