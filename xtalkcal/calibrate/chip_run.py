@@ -18,7 +18,14 @@ from xtalkcal.calibrate.plan import (
 )
 from xtalkcal.calibrate.result import CalibrationResult
 from xtalkcal.hardware import Rig
-from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape, choose_method
+from xtalkcal.measure import (
+    BatchRunner,
+    ColumnProbe,
+    Protocol,
+    PulseShape,
+    choose_method,
+    near_two_photon,
+)
 
 
 def calibrate_chip(
@@ -66,9 +73,12 @@ def calibrate_chip(
                    or choose_method(chip, line, v, protocol.windows) for v in victims}
         if protocol.only_methods:
             victims = [v for v in victims if methods[v] in protocol.only_methods]
+        # Stark victims near their two-photon 0–2 line need a short train
+        # (plan.two_photon_stark_repeats): each gets a Stark pass of its own.
+        two = [v for v in victims if methods[v] == "stark" and near_two_photon(chip, line, v)]
         groups = [[v for v in victims if methods[v] != "stark"],
-                  [v for v in victims if methods[v] == "stark"]]
-        for gi, group in enumerate(groups):
+                  [v for v in victims if methods[v] == "stark" and v not in two]]
+        for gi, group in enumerate(groups + [[v] for v in two]):
             passes = [group] if column_parallel else [[v] for v in group]
             for victims_of_pass in passes:
                 if victims_of_pass:
@@ -81,7 +91,7 @@ def calibrate_chip(
                     force = tuple((null_victims or {}).get(line, ()))
                     handoff = calibrate_pass(rig, runner, protocol, result, PassRequest(
                         line, victims_of_pass, [methods[v] for v in victims_of_pass], shape,
-                        stark=(gi == 1), companions=companions, key_prefix=key_prefix,
+                        stark=(gi >= 1), companions=companions, key_prefix=key_prefix,
                         force=force, split=column_parallel), say=say)
                     _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
                                      methods, shape, say=say, key_prefix=key_prefix)

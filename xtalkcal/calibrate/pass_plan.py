@@ -21,10 +21,11 @@ from xtalkcal.calibrate.plan import (
     ring_radius_caps,
     stark_windows,
     survey_radii,
+    two_photon_stark_repeats,
 )
 from xtalkcal.calibrate.result import CalibrationResult
 from xtalkcal.hardware import Chip
-from xtalkcal.measure import ColumnProbe, Protocol, PulseShape
+from xtalkcal.measure import ColumnProbe, Protocol, PulseShape, near_two_photon
 
 #: Receives one line of progress text.
 Say = Callable[[str], None]
@@ -176,6 +177,10 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
     spacing = base.spacing_ns
     if stark:
         k_survey = max(1, int(protocol.survey.max_train_ns // request.shape.duration_ns))
+        for v in victims:  # victims near their two-photon line: a short train
+            if near_two_photon(chip, line, v):
+                k_survey = min(k_survey, two_photon_stark_repeats(
+                    chip, line, v, amp, k_survey, request.shape))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
