@@ -16,7 +16,7 @@ import pytest
 from xtalkcal.calibrate import JOINT_NULL_SPAN, RING_MARGIN, RISE_PROBABILITY, CalibrationResult
 from xtalkcal.calibrate.pass_plan import PassRequest, plan_pass
 from xtalkcal.calibrate.passes import hand_over, survey_selection
-from xtalkcal.calibrate.stages import null_found, raised_repeats
+from xtalkcal.calibrate.stages import null_found, raised_repeats, ring_radius
 from xtalkcal.measure import PulseShape, load_protocol
 
 
@@ -71,21 +71,33 @@ def test_stop_rule_resonant_ring_must_not_rise_too_far():
     assert not null_found(est(c, sigma=2e-4, kappa=ok), "leakage", 1e-4, ring(c, r))
 
 
+def test_stop_rule_measures_a_survey_ring_with_a_repeated_centre():
+    # A survey ring repeats its centre: the radius is not the second point's distance (0)
+    c, r = 0.01, 1e-3
+    kappa = RISE_PROBABILITY / r**2
+    survey = np.concatenate([[c, c, c], ring(c, r)[1:]])
+    assert null_found(est(c, kappa=kappa), "leakage", 1e-4, survey)
+    assert ring_radius(survey) == pytest.approx(r)
+
+
 # --- the survey's selection ----------------------------------------------------------
 
 
-def test_survey_selects_on_the_upper_two_sigma_bound():
+def test_survey_selects_on_the_upper_three_sigma_bound():
     amp, thr = 0.1, 10 ** (-40 / 20)  # |X| threshold 0.01 → |z*| threshold 1e-3
     victims = ["a", "b", "c", "d", "e"]
     estimates = [
         est(-2e-3, sigma=1e-5),  # |X| = 0.02: above
-        est(5e-4, sigma=3e-4),  # |X| + 2σ = 0.005 + 0.006 ≥ 0.01: may be above
-        est(5e-4, sigma=1e-4),  # 0.005 + 0.002 < 0.01: below
+        est(5e-4, sigma=3e-4),  # |X| + 3σ = 0.005 + 0.009 ≥ 0.01: may be above
+        est(5e-4, sigma=1e-4),  # 0.005 + 0.003 < 0.01: below
         est(1e-5, sigma=1e-6),  # far below, but forced
         est(accepted=False),  # no signal: |X| small against the ring, even if forced
     ]
     sel = survey_selection(estimates, amp, thr, victims, force=("d", "e"))
     assert sel.tolist() == [True, True, False, True, False]
+    # at 2σ it would be left out, at 3σ it may be above: selected
+    at_edge = [est(-7.5e-4, sigma=1e-4)]  # |X| = 0.0075; + 2σ 0.0095, + 3σ 0.0105
+    assert survey_selection(at_edge, amp, thr, ["a"], force=()).tolist() == [True]
 
 
 # --- the hand-over -------------------------------------------------------------------

@@ -17,6 +17,7 @@ from xtalkcal.calibrate.plan import (
     RING_MARGIN,
     RISE_PROBABILITY,
     RISE_STARK_RAD,
+    SELECT_SIGMAS,
     STRONGEST_DB,
     companion_radius,
     stark_phase_scale,
@@ -84,13 +85,14 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
     est = record.fit(probe.repeats, state.searched, plan.stark_rows).estimates
     selected, cleared = state.selected.copy(), dict(state.cleared)
     if req.start is None and rounds >= 2:
-        # Victims selected only because their survey was imprecise (|X| + 2σ at the
+        # Victims selected only because their survey was imprecise (|X| + kσ at the
         # threshold), which the rings at a raised K have since shown to lie below it:
         # no longer searched; their measurement at that K is kept (estimate, K, time).
         for i in np.flatnonzero(selected):
             e = est[i]
             if (e.accepted and req.victims[i] not in req.force
-                    and (abs(e.z_star) + 2 * null_sigma(e)) / plan.amp < plan.thr):
+                    and (abs(e.z_star) + SELECT_SIGMAS * null_sigma(e)) / plan.amp
+                    < plan.thr):
                 selected[i] = False
                 cleared[int(i)] = (e, probe.repeats, record.data_time())
                 say(f"{req.line}: {req.victims[i]} below "
