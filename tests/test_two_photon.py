@@ -35,6 +35,7 @@ from xtalkcal.calibrate.plan import (
     TWO_PHOTON_STARK_SCALE,
     pass_amplitude,
     stark_phase_scale,
+    two_photon_hazard,
     two_photon_stark_repeats,
 )
 from xtalkcal.hardware import Envelope
@@ -99,14 +100,26 @@ def two_photon_rig():
     return SimRig(device_from_dict(doc, source=doc["name"]), drift=False, seed=3)
 
 
+def test_far_two_photon_pairs_are_no_hazard():
+    # Rabi's bound Ω2²/(Ω2² + δ2²) at the planned field: on the demo chip d4 → q7 sits
+    # 8 MHz from q7's two-photon line (δ2 = 16 MHz), far beyond Ω2 (≈ 0.5 MHz)
+    from simulated_device import demo_device_path
+
+    chip = SimRig(demo_device_path(), drift=False).chip
+    amp = pass_amplitude(default_protocol(), chip, "d4")
+    assert near_two_photon(chip, "d4", "q7")
+    assert not two_photon_hazard(chip, "d4", "q7", amp)
+
+
 def test_plan_gives_a_two_photon_victim_a_short_train(two_photon_rig):
     chip = two_photon_rig.chip
     proto = default_protocol()
     assert near_two_photon(chip, "d0", "q3")
     assert abs(two_photon_detuning_ghz(chip, "d0", "q3")) < 1e-3
-    assert stark_phase_scale(chip, "d0", "q3") == TWO_PHOTON_STARK_SCALE
-    assert stark_phase_scale(chip, "d0", "q1") == 1.0
     amp = pass_amplitude(proto, chip, "d0")
+    assert two_photon_hazard(chip, "d0", "q3", amp)
+    assert stark_phase_scale(chip, "d0", "q3", amp) == TWO_PHOTON_STARK_SCALE
+    assert stark_phase_scale(chip, "d0", "q1", amp) == 1.0
     k_max = int(proto.survey.max_train_ns // proto.pulse.duration_ns)
     shape = PulseShape(proto.pulse.duration_ns, proto.pulse.sigma_ns)
     k = two_photon_stark_repeats(chip, "d0", "q3", amp, k_max, shape)

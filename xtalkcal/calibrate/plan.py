@@ -19,6 +19,7 @@ from xtalkcal.measure import (
     PulseShape,
     choose_method,
     near_two_photon,
+    two_photon_detuning_ghz,
 )
 
 # Rise of the signal above the floor at which rings are placed. Probabilities stay in
@@ -46,7 +47,7 @@ RING_MARGIN = 4.0
 STARK_PHASE_MAX = 1.5
 # Prior used before the survey: the strongest crosstalk we plan for (−20 dB; a design choice).
 STRONGEST_DB = -20.0
-#: Stark phases of a victim near its two-photon 0–2 line (``near_two_photon``) are held to
+#: Stark phases of a victim near its two-photon 0–2 line (``two_photon_hazard``) are held to
 #: this fraction of the rises above (survey, rings, window). Two photons of the aggressor's
 #: tone pump |0⟩ → |2⟩ at √2·Ω²/|α| while the Stark phase turns at 2Ω²/|α| (Δ = α/2 in
 #: δ = Ω²α/(2Δ(Δ−α))), so the |2⟩ population of the Ramsey's |0⟩ half is about φ²/16 at a
@@ -91,10 +92,37 @@ def risk_map(chip: Chip, protocol: Protocol) -> list[dict[str, Any]]:
     return out
 
 
-def stark_phase_scale(chip: Chip, line: str, victim: str) -> float:
-    """Fraction of the Stark phase rises a victim's rings and window may use (1 or
-    ``TWO_PHOTON_STARK_SCALE`` near its two-photon 0–2 line)."""
-    return TWO_PHOTON_STARK_SCALE if near_two_photon(chip, line, victim) else 1.0
+#: Largest |2⟩ population (from |0⟩) the two-photon 0–2 process may reach in a Stark train
+#: before the victim is treated as a two-photon victim (:func:`two_photon_hazard`).
+TWO_PHOTON_PUMP_MAX = 0.01
+
+
+def two_photon_hazard(chip: Chip, line: str, victim: str, amplitude: float) -> bool:
+    """Whether a long train of ``line`` at ``amplitude`` may pump ``victim`` |0⟩ → |2⟩.
+
+    Two photons of the tone drive |0⟩ ↔ |2⟩ at Ω2 = √2·Ω²/|α| (adiabatic elimination of
+    |1⟩, e.g. Brion, Pedersen and Mølmer, J. Phys. A 40, 1033 (2007)), detuned by δ2 =
+    2·f_j − f02; a two-level drive reaches at most Ω2²/(Ω2² + δ2²) (Rabi's formula). Ω is
+    taken at 2.5× the strongest null planned for (the null plus a survey ring, the
+    victim's nominal line gain), and the pair is a hazard if that bound passes
+    ``TWO_PHOTON_PUMP_MAX``. Only pairs within ``TWO_PHOTON_WINDOW_GHZ`` are considered;
+    most of those are far enough off (on the demo chip 8–20 MHz: bound ≤ 1e-3) that a
+    long train does not pump them.
+    """
+    if not near_two_photon(chip, line, victim):
+        return False
+    q = chip.qubit(victim)
+    omega = chip.line_of(victim).rabi_mhz * 1e-3 * 2.5 * amplitude * 10 ** (STRONGEST_DB / 20)
+    omega2 = math.sqrt(2.0) * omega**2 / abs(q.anharmonicity_ghz)
+    delta2 = 2.0 * two_photon_detuning_ghz(chip, line, victim)
+    return omega2**2 / (omega2**2 + delta2**2) > TWO_PHOTON_PUMP_MAX
+
+
+def stark_phase_scale(chip: Chip, line: str, victim: str, amplitude: float) -> float:
+    """Fraction of the Stark phase rises a victim's rings and window may use (1, or
+    ``TWO_PHOTON_STARK_SCALE`` for a :func:`two_photon_hazard`)."""
+    return (TWO_PHOTON_STARK_SCALE if two_photon_hazard(chip, line, victim, amplitude)
+            else 1.0)
 
 
 def _is_prime(n: int) -> bool:
@@ -182,7 +210,7 @@ def stark_windows(chip: Chip, line: str, victims: Sequence[str], methods: Sequen
                        methods=methods, shape=shape, merged=True)
     out = []
     for v, m in zip(victims, methods, strict=True):
-        g_max = stark_phase_scale(chip, line, v) * STARK_PHASE_MAX / (
+        g_max = stark_phase_scale(chip, line, v, amplitude) * STARK_PHASE_MAX / (
             1.5 * amplitude * 10 ** (STRONGEST_DB / 20)) ** 2
         g = full.stark_gain(v) if m == "stark" else 0.0
         if g <= g_max:
@@ -203,7 +231,7 @@ def two_photon_stark_repeats(chip: Chip, line: str, victim: str, amplitude: floa
     strongest null planned for, is ``TWO_PHOTON_STARK_SCALE`` × ``STARK_PHASE_MAX``; the
     |2⟩ population it pumps is then a few per cent at most (``TWO_PHOTON_STARK_SCALE``).
     """
-    g_max = stark_phase_scale(chip, line, victim) * STARK_PHASE_MAX / (
+    g_max = stark_phase_scale(chip, line, victim, amplitude) * STARK_PHASE_MAX / (
         1.5 * amplitude * 10 ** (STRONGEST_DB / 20)) ** 2
     k = int(k_max)
     while k > 1:
@@ -228,7 +256,7 @@ def survey_radii(probe: ColumnProbe) -> np.ndarray:
     out = np.empty(len(probe.victims))
     for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
         if m == "stark":
-            rise = SURVEY_STARK_RAD * stark_phase_scale(chip, probe.aggressor, v)
+            rise = SURVEY_STARK_RAD * stark_phase_scale(chip, probe.aggressor, v, probe.amplitude)
             out[i] = math.sqrt(rise / probe.stark_gain(v))
         else:
             out[i] = probe.amplitude * 10 ** (STRONGEST_DB / 20) * 1.5
@@ -248,7 +276,8 @@ def ring_radius_caps(probe: ColumnProbe) -> np.ndarray:
     for i, (v, m) in enumerate(zip(probe.victims, probe.methods, strict=True)):
         if m == "stark":
             lim = 0.45 * chip.amplitude_limit(chip.line_of(v).name)
-            rise = 1.5 * RISE_STARK_RAD * stark_phase_scale(chip, probe.aggressor, v)
+            rise = 1.5 * RISE_STARK_RAD * stark_phase_scale(chip, probe.aggressor, v,
+                                                            probe.amplitude)
             cap[i] = min(math.sqrt(rise / probe.stark_gain(v)), lim)
     return cap
 

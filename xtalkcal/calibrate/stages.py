@@ -110,7 +110,8 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
         e = est[i]
         if selected[i] and e.accepted:
             centre[i] = e.z_star
-            rise = (RISE_STARK_RAD * stark_phase_scale(plan.chip, req.line, req.victims[i])
+            rise = (RISE_STARK_RAD * stark_phase_scale(plan.chip, req.line, req.victims[i],
+                                                     plan.amp)
                     if req.methods[i] == "stark" else RISE_PROBABILITY)
             rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), plan.cap[i])
             done[i] = null_found(e, req.methods[i], plan.target, last[:, i])
