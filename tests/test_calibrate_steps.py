@@ -80,6 +80,18 @@ def test_stop_rule_measures_a_survey_ring_with_a_repeated_centre():
     assert ring_radius(survey) == pytest.approx(r)
 
 
+def test_chip_confidence_is_a_union_bound_never_looser_than_per_pair():
+    from xtalkcal.calibrate.plan import NULL_CONFIDENCE, chip_null_confidence
+
+    for n in (1, 5, 30, 72, 240):
+        k = chip_null_confidence(n)
+        # n pairs, each beyond the target with e^{−k²/2}: at most 5 % over the chip
+        assert n * math.exp(-k * k / 2) <= 0.05 * (1 + 1e-12) or k == NULL_CONFIDENCE
+        assert k >= NULL_CONFIDENCE
+    assert chip_null_confidence(1) == NULL_CONFIDENCE  # 99 % per pair at least
+    assert chip_null_confidence(240) == pytest.approx(4.12, abs=0.01)
+
+
 # --- the survey's selection ----------------------------------------------------------
 
 
@@ -197,10 +209,10 @@ def test_plan_rings_over_determine_the_column_model(demo_chip):
     # 3 + an offset + 4 per other varying tone, plus 2 to spare
     assert plan.n_ring >= 4 * tones + 2 and plan.n_null >= 4 * tones + 2
     assert plan.n_null >= proto.null.points_per_ring
-    # stop at target/k with e^{−k²/2} = 1 %
+    # stop at target/k with e^{−k²/2} = 5 % over the chip's 72 ordered pairs (9 qubits)
     amp = plan.amp
     assert plan.target == pytest.approx(
-        10 ** (proto.null.target_residual_db / 20) * amp / math.sqrt(2 * math.log(100)))
+        10 ** (proto.null.target_residual_db / 20) * amp / math.sqrt(2 * math.log(72 / 0.05)))
     assert plan.thr == pytest.approx(10 ** (proto.survey.threshold_db / 20))
     assert plan.tag == "d1-stark" and plan.stark_rows.all() and not plan.coherent.any()
     # the ring's shots per point keep the protocol's shots per ring

@@ -12,8 +12,8 @@ import numpy as np
 
 from xtalkcal.calibrate.pass_data import shots_per_point
 from xtalkcal.calibrate.plan import (
-    NULL_CONFIDENCE,
     STRONGEST_DB,
+    chip_null_confidence,
     companion_radius,
     pass_amplitude,
     ring_around,
@@ -237,10 +237,11 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
         n_null=n_null,
         null_shots=shots_per_point(protocol.null.shots_per_point,
                                    protocol.null.points_per_ring, n_null),
-        # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error|
-        # then stays below the target residual with ≥ 99 % probability (Rayleigh tail
-        # e^{−k²/2}).
-        target=10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE,
+        # Stop once the null's 1σ semi-major axis is target/k: |error| then stays below
+        # the target residual with probability 1 − e^{−k²/2} per pair, k set so that
+        # every pair of the chip does with ≥ 95 % (chip_null_confidence; ≥ 99 % each).
+        target=10 ** (protocol.null.target_residual_db / 20) * amp / chip_null_confidence(
+            len(chip.lines) * (len(chip.qubits) - 1)),
         thr=10 ** (protocol.survey.threshold_db / 20),
         coherent=np.array([not stark and probe.coherent(v) for v in victims]),
         stark_rows=np.array([m == "stark" for m in methods]),

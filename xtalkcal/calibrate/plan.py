@@ -35,6 +35,21 @@ SURVEY_STARK_RAD = 1.2
 # Margin of the null search's stopping rule: k with e^{−k²/2} = 1 % (a circular Gaussian
 # error exceeds k·σ with probability e^{−k²/2}).
 NULL_CONFIDENCE = math.sqrt(2 * math.log(100.0))
+# The stop rule holds the whole chip to its target: the chance that any of its pairs ends
+# beyond the target residual is at most this (a union bound over the chip's ordered pairs),
+# and never less strict than NULL_CONFIDENCE per pair. Per pair alone, one chip in four
+# had a nulled pair past the target (about 30 pairs at 1 % each).
+CHIP_MISS = 0.05
+
+
+def chip_null_confidence(n_pairs: int) -> float:
+    """k of the stop rule for a chip of ``n_pairs`` ordered pairs: e^{−k²/2} = CHIP_MISS/n.
+
+    With k·σ ≤ target per pair, |error| > target has probability e^{−k²/2} per pair (a
+    circular Gaussian error), so at most CHIP_MISS over the chip; at least NULL_CONFIDENCE.
+    A 9-qubit chip (72 pairs) gets 3.81, a 16-qubit one (240 pairs) 4.12.
+    """
+    return max(NULL_CONFIDENCE, math.sqrt(2 * math.log(max(n_pairs, 1) / CHIP_MISS)))
 # A victim is nulled unless its upper bound |X| + k·σ (this k) lies below the threshold.
 # With 2σ a pair truly at the threshold was left at its survey about one time in 40 (one
 # generated chip: truly −39.9 dB, read −42.5 dB at 2.1σ); 3σ leaves about one in 700.
