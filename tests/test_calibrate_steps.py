@@ -12,6 +12,8 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from xtalkcal.calibrate import JOINT_NULL_SPAN, RING_MARGIN, RISE_PROBABILITY, CalibrationResult
 from xtalkcal.calibrate.pass_plan import PassRequest, plan_pass
@@ -222,3 +224,27 @@ def test_plan_rings_over_determine_the_column_model(demo_chip):
     res = CalibrationResult(demo_chip, proto, "test")
     res.sweeps["d1-stark"] = None
     assert plan_pass(demo_chip, proto, res, req).tag == "d1-stark-q0"
+
+
+# --- properties ----------------------------------------------------------------------
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(re=st.floats(-0.5, 0.5), im=st.floats(-0.5, 0.5), r=st.floats(1e-6, 0.3),
+       copies=st.integers(0, 4), n=st.sampled_from([7, 11, 13, 17]))
+def test_ring_radius_of_any_ring_with_repeated_centres(re, im, r, copies, n):
+    from xtalkcal.calibrate.plan import ring_around
+
+    pts = ring_around(np.array([complex(re, im)]), np.array([r]), n)[:, 0]
+    pts = np.concatenate([[pts[0]] * copies, pts])
+    assert ring_radius(pts) == pytest.approx(r, rel=1e-9)
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(n=st.integers(1, 5000))
+def test_chip_confidence_grows_with_the_pairs(n):
+    from xtalkcal.calibrate.plan import NULL_CONFIDENCE, chip_null_confidence
+
+    k, k2 = chip_null_confidence(n), chip_null_confidence(n + 1)
+    assert NULL_CONFIDENCE <= k <= k2
+    assert n * math.exp(-k2 * k2 / 2) <= 0.05 + 1e-12
