@@ -12,11 +12,13 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from xtalkcal.calibrate import JOINT_NULL_SPAN, RING_MARGIN, RISE_PROBABILITY, CalibrationResult
 from xtalkcal.calibrate.pass_plan import PassRequest, plan_pass
 from xtalkcal.calibrate.passes import hand_over, survey_selection
-from xtalkcal.calibrate.stages import null_found, raised_repeats
+from xtalkcal.calibrate.stages import null_found, raised_repeats, ring_radius
 from xtalkcal.measure import PulseShape, load_protocol
 
 
@@ -71,21 +73,45 @@ def test_stop_rule_resonant_ring_must_not_rise_too_far():
     assert not null_found(est(c, sigma=2e-4, kappa=ok), "leakage", 1e-4, ring(c, r))
 
 
+def test_stop_rule_measures_a_survey_ring_with_a_repeated_centre():
+    # A survey ring repeats its centre: the radius is not the second point's distance (0)
+    c, r = 0.01, 1e-3
+    kappa = RISE_PROBABILITY / r**2
+    survey = np.concatenate([[c, c, c], ring(c, r)[1:]])
+    assert null_found(est(c, kappa=kappa), "leakage", 1e-4, survey)
+    assert ring_radius(survey) == pytest.approx(r)
+
+
+def test_chip_confidence_is_a_union_bound_never_looser_than_per_pair():
+    from xtalkcal.calibrate.plan import NULL_CONFIDENCE, chip_null_confidence
+
+    for n in (1, 5, 30, 72, 240):
+        k = chip_null_confidence(n)
+        # n pairs, each beyond the target with e^{−k²/2}: at most 5 % over the chip
+        assert n * math.exp(-k * k / 2) <= 0.05 * (1 + 1e-12) or k == NULL_CONFIDENCE
+        assert k >= NULL_CONFIDENCE
+    assert chip_null_confidence(1) == NULL_CONFIDENCE  # 99 % per pair at least
+    assert chip_null_confidence(240) == pytest.approx(4.12, abs=0.01)
+
+
 # --- the survey's selection ----------------------------------------------------------
 
 
-def test_survey_selects_on_the_upper_two_sigma_bound():
+def test_survey_selects_on_the_upper_three_sigma_bound():
     amp, thr = 0.1, 10 ** (-40 / 20)  # |X| threshold 0.01 → |z*| threshold 1e-3
     victims = ["a", "b", "c", "d", "e"]
     estimates = [
         est(-2e-3, sigma=1e-5),  # |X| = 0.02: above
-        est(5e-4, sigma=3e-4),  # |X| + 2σ = 0.005 + 0.006 ≥ 0.01: may be above
-        est(5e-4, sigma=1e-4),  # 0.005 + 0.002 < 0.01: below
+        est(5e-4, sigma=3e-4),  # |X| + 3σ = 0.005 + 0.009 ≥ 0.01: may be above
+        est(5e-4, sigma=1e-4),  # 0.005 + 0.003 < 0.01: below
         est(1e-5, sigma=1e-6),  # far below, but forced
         est(accepted=False),  # no signal: |X| small against the ring, even if forced
     ]
     sel = survey_selection(estimates, amp, thr, victims, force=("d", "e"))
     assert sel.tolist() == [True, True, False, True, False]
+    # at 2σ it would be left out, at 3σ it may be above: selected
+    at_edge = [est(-7.5e-4, sigma=1e-4)]  # |X| = 0.0075; + 2σ 0.0095, + 3σ 0.0105
+    assert survey_selection(at_edge, amp, thr, ["a"], force=()).tolist() == [True]
 
 
 # --- the hand-over -------------------------------------------------------------------
@@ -185,10 +211,10 @@ def test_plan_rings_over_determine_the_column_model(demo_chip):
     # 3 + an offset + 4 per other varying tone, plus 2 to spare
     assert plan.n_ring >= 4 * tones + 2 and plan.n_null >= 4 * tones + 2
     assert plan.n_null >= proto.null.points_per_ring
-    # stop at target/k with e^{−k²/2} = 1 %
+    # stop at target/k with e^{−k²/2} = 5 % over the chip's 72 ordered pairs (9 qubits)
     amp = plan.amp
     assert plan.target == pytest.approx(
-        10 ** (proto.null.target_residual_db / 20) * amp / math.sqrt(2 * math.log(100)))
+        10 ** (proto.null.target_residual_db / 20) * amp / math.sqrt(2 * math.log(72 / 0.05)))
     assert plan.thr == pytest.approx(10 ** (proto.survey.threshold_db / 20))
     assert plan.tag == "d1-stark" and plan.stark_rows.all() and not plan.coherent.any()
     # the ring's shots per point keep the protocol's shots per ring
@@ -198,3 +224,27 @@ def test_plan_rings_over_determine_the_column_model(demo_chip):
     res = CalibrationResult(demo_chip, proto, "test")
     res.sweeps["d1-stark"] = None
     assert plan_pass(demo_chip, proto, res, req).tag == "d1-stark-q0"
+
+
+# --- properties ----------------------------------------------------------------------
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(re=st.floats(-0.5, 0.5), im=st.floats(-0.5, 0.5), r=st.floats(1e-6, 0.3),
+       copies=st.integers(0, 4), n=st.sampled_from([7, 11, 13, 17]))
+def test_ring_radius_of_any_ring_with_repeated_centres(re, im, r, copies, n):
+    from xtalkcal.calibrate.plan import ring_around
+
+    pts = ring_around(np.array([complex(re, im)]), np.array([r]), n)[:, 0]
+    pts = np.concatenate([[pts[0]] * copies, pts])
+    assert ring_radius(pts) == pytest.approx(r, rel=1e-9)
+
+
+@settings(max_examples=60, deadline=None, derandomize=True)
+@given(n=st.integers(1, 5000))
+def test_chip_confidence_grows_with_the_pairs(n):
+    from xtalkcal.calibrate.plan import NULL_CONFIDENCE, chip_null_confidence
+
+    k, k2 = chip_null_confidence(n), chip_null_confidence(n + 1)
+    assert NULL_CONFIDENCE <= k <= k2
+    assert n * math.exp(-k2 * k2 / 2) <= 0.05 + 1e-12

@@ -15,10 +15,17 @@ from xtalkcal.calibrate.plan import (
     pass_amplitude,
     risk_map,
     survey_radii,
+    two_photon_hazard,
 )
 from xtalkcal.calibrate.result import CalibrationResult
 from xtalkcal.hardware import Rig
-from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape, choose_method
+from xtalkcal.measure import (
+    BatchRunner,
+    ColumnProbe,
+    Protocol,
+    PulseShape,
+    choose_method,
+)
 
 
 def calibrate_chip(
@@ -66,9 +73,14 @@ def calibrate_chip(
                    or choose_method(chip, line, v, protocol.windows) for v in victims}
         if protocol.only_methods:
             victims = [v for v in victims if methods[v] in protocol.only_methods]
+        # Stark victims near their two-photon 0–2 line need a short train
+        # (plan.two_photon_stark_repeats): each gets a Stark pass of its own.
+        amp = pass_amplitude(protocol, chip, line)
+        two = [v for v in victims
+               if methods[v] == "stark" and two_photon_hazard(chip, line, v, amp)]
         groups = [[v for v in victims if methods[v] != "stark"],
-                  [v for v in victims if methods[v] == "stark"]]
-        for gi, group in enumerate(groups):
+                  [v for v in victims if methods[v] == "stark" and v not in two]]
+        for gi, group in enumerate(groups + [[v] for v in two]):
             passes = [group] if column_parallel else [[v] for v in group]
             for victims_of_pass in passes:
                 if victims_of_pass:
@@ -81,7 +93,7 @@ def calibrate_chip(
                     force = tuple((null_victims or {}).get(line, ()))
                     handoff = calibrate_pass(rig, runner, protocol, result, PassRequest(
                         line, victims_of_pass, [methods[v] for v in victims_of_pass], shape,
-                        stark=(gi == 1), companions=companions, key_prefix=key_prefix,
+                        stark=(gi >= 1), companions=companions, key_prefix=key_prefix,
                         force=force, split=column_parallel), say=say)
                     _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
                                      methods, shape, say=say, key_prefix=key_prefix)
@@ -92,9 +104,42 @@ def calibrate_chip(
                             line, [v], [methods[v]], shape, stark=False,
                             companions=_nulled_tones(result, protocol, line),
                             key_prefix=key_prefix, force=force, split=True), say=say)
+                    _widen_rejected(rig, runner, protocol, result, line, victims_of_pass,
+                                    methods, shape, say=say, key_prefix=key_prefix)
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result
+
+
+#: Survey scales tried, in order, for a victim whose null fell outside its survey ring.
+WIDER_SURVEYS = (2.0, 4.0)
+#: Verdicts a wider survey can cure: the null lay beyond the ring, or the ring rose past
+#: the fringe's top (a strong pair at a K set for weaker ones).
+_WIDEN_REASONS = ("outside_region", "saturated")
+
+
+def _widen_rejected(rig, runner, protocol, result, line, victims, methods, shape, *, say,
+                    key_prefix):
+    """Survey again, wider, each victim of a pass whose fit put its null out of reach.
+
+    A pair stronger than the crosstalk the survey was planned for (``STRONGEST_DB``) has
+    its null outside the survey ring, and is rejected (``outside_region``) or rises past
+    the fringe (``saturated``) — a strong pair left uncompensated. It is surveyed again
+    alone, its ring ``WIDER_SURVEYS`` times wider at a K as many times lower (a Stark train
+    that factor squared shorter), and nulled whatever that survey says, until a fit is
+    accepted; a pair still rejected after the widest stays rejected (and is reported).
+    """
+    for v in victims:
+        for scale in WIDER_SURVEYS:
+            old = [p for p in result.pairs if p.aggressor == line and p.victim == v]
+            if not old or old[-1].accepted or old[-1].reason not in _WIDEN_REASONS:
+                break
+            say(f"{line}: {v} {old[-1].reason} at its survey; surveyed again {scale:g}× wider")
+            result.pairs = [p for p in result.pairs if not any(p is o for o in old)]
+            calibrate_pass(rig, runner, protocol, result, PassRequest(
+                line, [v], [methods[v]], shape, stark=methods[v] == "stark",
+                companions=_nulled_tones(result, protocol, line), key_prefix=key_prefix,
+                force=(v,), split=True, survey_scale=scale), say=say)
 
 
 def _null_one_by_one(rig, runner, protocol, result, line, handoff, methods, shape, *, say,

@@ -12,8 +12,8 @@ import numpy as np
 
 from xtalkcal.calibrate.pass_data import shots_per_point
 from xtalkcal.calibrate.plan import (
-    NULL_CONFIDENCE,
     STRONGEST_DB,
+    chip_null_confidence,
     companion_radius,
     pass_amplitude,
     ring_around,
@@ -21,6 +21,8 @@ from xtalkcal.calibrate.plan import (
     ring_radius_caps,
     stark_windows,
     survey_radii,
+    two_photon_hazard,
+    two_photon_stark_repeats,
 )
 from xtalkcal.calibrate.result import CalibrationResult
 from xtalkcal.hardware import Chip
@@ -70,6 +72,11 @@ class PassRequest:
     split : bool
         A resonant survey hands over the victims it cannot null jointly
         (:func:`hand_over`).
+    survey_scale : float
+        ≥ 1: the survey reaches this many times the strongest crosstalk planned for
+        (``STRONGEST_DB``): a resonant survey ring this much wider at K this much lower,
+        a Stark train this factor squared shorter (its ring widens by the factor at the
+        same phase). For a victim whose first survey put its null outside the ring.
     """
 
     line: str
@@ -82,8 +89,11 @@ class PassRequest:
     force: tuple[str, ...] = ()
     start: PassStart | None = None
     split: bool = False
+    survey_scale: float = 1.0
 
     def __post_init__(self) -> None:
+        if not self.survey_scale >= 1.0:
+            raise ValueError("survey_scale must be ≥ 1")
         for name in ("victims", "methods", "companions", "force"):
             object.__setattr__(self, name, tuple(getattr(self, name)))
 
@@ -174,13 +184,19 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
     base = ColumnProbe(chip, line, victims, amplitude=amp, repeats=1, methods=methods,
                        shape=request.shape)
     spacing = base.spacing_ns
+    scale = float(request.survey_scale)
     if stark:
-        k_survey = max(1, int(protocol.survey.max_train_ns // request.shape.duration_ns))
+        k_survey = max(1, int(protocol.survey.max_train_ns // request.shape.duration_ns
+                              / scale**2))
+        for v in victims:  # victims near their two-photon line: a short train
+            if two_photon_hazard(chip, line, v, amp):
+                k_survey = min(k_survey, two_photon_stark_repeats(
+                    chip, line, v, amp, k_survey, request.shape))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
         theta = max(base.expected_rotation_per_pulse(v, STRONGEST_DB) for v in victims)
-        k_survey = max(1, min(int((math.pi / 4) / theta),
+        k_survey = max(1, min(int((math.pi / 4) / (theta * scale)),
                               int(protocol.survey.max_train_ns // spacing)))
     K = int(request.start.repeats) if request.start is not None else k_survey
     comp_names = tuple(q for q, _ in request.companions)
@@ -192,6 +208,11 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
     tag = f"{line}-{'stark' if stark else 'res'}"
     if tag in result.sweeps:  # pair-by-pair passes: one record per victim
         tag = f"{tag}-{victims[0]}"
+    if scale > 1:  # a wider survey of a victim already measured
+        tag = f"{tag}-wide{scale:g}"
+    # Resonant rings widen with the survey; a Stark ring widens through its shorter train.
+    widen = 1.0 if stark else scale
+    lim = np.array([0.45 * chip.amplitude_limit(chip.line_of(v).name) for v in victims])
     # Rings longer than the protocol asks for (to keep victims apart) share the same
     # shots per ring: every victim gets the information the protocol intends per round,
     # and a column's cost does not grow with its number of victims.
@@ -203,7 +224,8 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
     return PassPlan(
         request=request, protocol=protocol, chip=chip, amp=amp, probe=probe,
         k_max=max(K, int(protocol.survey.max_train_ns // spacing)),
-        radius=survey_radii(probe), cap=ring_radius_caps(probe),
+        radius=np.minimum(survey_radii(probe) * widen, lim),
+        cap=np.minimum(ring_radius_caps(probe) * widen, lim),
         # Companion tones: a ring around their nulls as wide as a resonant victim's
         # survey ring (their own signal does not matter here; the ring only has to
         # reach the victims through the couplings).
@@ -215,10 +237,11 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
         n_null=n_null,
         null_shots=shots_per_point(protocol.null.shots_per_point,
                                    protocol.null.points_per_ring, n_null),
-        # Stop once the null's 1σ semi-major axis is target/NULL_CONFIDENCE: |error|
-        # then stays below the target residual with ≥ 99 % probability (Rayleigh tail
-        # e^{−k²/2}).
-        target=10 ** (protocol.null.target_residual_db / 20) * amp / NULL_CONFIDENCE,
+        # Stop once the null's 1σ semi-major axis is target/k: |error| then stays below
+        # the target residual with probability 1 − e^{−k²/2} per pair, k set so that
+        # every pair of the chip does with ≥ 95 % (chip_null_confidence; ≥ 99 % each).
+        target=10 ** (protocol.null.target_residual_db / 20) * amp / chip_null_confidence(
+            len(chip.lines) * (len(chip.qubits) - 1)),
         thr=10 ** (protocol.survey.threshold_db / 20),
         coherent=np.array([not stark and probe.coherent(v) for v in victims]),
         stark_rows=np.array([m == "stark" for m in methods]),

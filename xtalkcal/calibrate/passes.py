@@ -24,7 +24,7 @@ import numpy as np
 
 from xtalkcal.calibrate.pass_data import PassRecord, birge_ratio, null_sigma, shots_per_point
 from xtalkcal.calibrate.pass_plan import PassPlan, PassRequest, Say, plan_pass
-from xtalkcal.calibrate.plan import JOINT_NULL_SPAN, RING_MARGIN
+from xtalkcal.calibrate.plan import JOINT_NULL_SPAN, RING_MARGIN, SELECT_SIGMAS
 from xtalkcal.calibrate.result import CalibrationResult, PairResult
 from xtalkcal.calibrate.stages import StageState, null_stages
 from xtalkcal.hardware import Rig
@@ -150,7 +150,8 @@ def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
                      victims: Sequence[str], force: Sequence[str]) -> np.ndarray:
     """Which victims a survey selects for nulling.
 
-    A victim is selected if its fit is accepted and |X| + 2σ reaches the threshold, or
+    A victim is selected if its fit is accepted and its upper bound |X| + kσ (k =
+    ``SELECT_SIGMAS``) reaches the threshold, or
     if it is forced; a fit without signal means |X| is small against the ring.
 
     Parameters
@@ -173,7 +174,7 @@ def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
         if e.accepted:
             x = -e.z_star / amp
             sx = null_sigma(e) / amp
-            selected[i] = abs(x) + 2 * sx >= thr or victims[i] in force
+            selected[i] = abs(x) + SELECT_SIGMAS * sx >= thr or victims[i] in force
     return selected
 
 

@@ -17,8 +17,10 @@ from xtalkcal.calibrate.plan import (
     RING_MARGIN,
     RISE_PROBABILITY,
     RISE_STARK_RAD,
+    SELECT_SIGMAS,
     STRONGEST_DB,
     companion_radius,
+    stark_phase_scale,
 )
 from xtalkcal.measure import ColumnProbe
 
@@ -83,13 +85,14 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
     est = record.fit(probe.repeats, state.searched, plan.stark_rows).estimates
     selected, cleared = state.selected.copy(), dict(state.cleared)
     if req.start is None and rounds >= 2:
-        # Victims selected only because their survey was imprecise (|X| + 2σ at the
+        # Victims selected only because their survey was imprecise (|X| + kσ at the
         # threshold), which the rings at a raised K have since shown to lie below it:
         # no longer searched; their measurement at that K is kept (estimate, K, time).
         for i in np.flatnonzero(selected):
             e = est[i]
             if (e.accepted and req.victims[i] not in req.force
-                    and (abs(e.z_star) + 2 * null_sigma(e)) / plan.amp < plan.thr):
+                    and (abs(e.z_star) + SELECT_SIGMAS * null_sigma(e)) / plan.amp
+                    < plan.thr):
                 selected[i] = False
                 cleared[int(i)] = (e, probe.repeats, record.data_time())
                 say(f"{req.line}: {req.victims[i]} below "
@@ -107,7 +110,9 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
         e = est[i]
         if selected[i] and e.accepted:
             centre[i] = e.z_star
-            rise = RISE_STARK_RAD if req.methods[i] == "stark" else RISE_PROBABILITY
+            rise = (RISE_STARK_RAD * stark_phase_scale(plan.chip, req.line, req.victims[i],
+                                                     plan.amp)
+                    if req.methods[i] == "stark" else RISE_PROBABILITY)
             rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), plan.cap[i])
             done[i] = null_found(e, req.methods[i], plan.target, last[:, i])
         elif selected[i]:
@@ -144,15 +149,22 @@ def null_found(e, method: str, target: float, last_ring: np.ndarray) -> bool:
         1σ target (fraction of full scale).
     last_ring : ndarray of complex (n,)
         The victim's tones in the latest batch: its centre first, then the ring (as
-        :func:`ring_around` lays them out); the radius is ``|last_ring[1] −
-        last_ring[0]|``.
+        :func:`ring_around` lays them out, a survey ring with its centre repeated); the
+        radius is the largest distance of a point from the centre, since a repeated
+        centre would make the second point's distance 0.
     """
     done = null_sigma(e) <= target
     if method != "stark":
-        r_last = abs(last_ring[1] - last_ring[0])
+        r_last = ring_radius(last_ring)
         done &= (abs(e.z_star - last_ring[0]) <= r_last / RING_MARGIN
                  and e.curvature * r_last**2 <= 2 * RISE_PROBABILITY)
     return bool(done)
+
+
+def ring_radius(ring: np.ndarray) -> float:
+    """Radius of one victim's ring (its centre first): the farthest point from the centre."""
+    ring = np.asarray(ring, dtype=complex)
+    return float(np.max(np.abs(ring - ring[0]))) if ring.size else 0.0
 
 
 def raise_k(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any], selected: np.ndarray,

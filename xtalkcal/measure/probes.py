@@ -57,6 +57,9 @@ __all__ = [
     "ProbeSignals",
     "pi_pulse_amplitude",
     "spectral_weight",
+    "TWO_PHOTON_WINDOW_GHZ",
+    "two_photon_detuning_ghz",
+    "near_two_photon",
 ]
 
 Method = Literal["leakage", "rotation", "stark"]
@@ -83,6 +86,30 @@ def choose_method(chip: Chip, aggressor_line: str, victim: str,
     if d01 <= windows.rotation_window_ghz + eps:
         return "rotation"
     return "stark"
+
+
+#: Window (GHz) on |f_j − (f01 + f12)/2| within which an aggressor tone counts as near
+#: the victim's two-photon 0–2 resonance (20 MHz: common practice, a design choice).
+TWO_PHOTON_WINDOW_GHZ = 0.02
+
+
+def two_photon_detuning_ghz(chip: Chip, aggressor_line: str, victim: str) -> float:
+    """f_j − (f01 + f12)/2: the aggressor's offset from the victim's 0–2 two-photon line.
+
+    Two photons at f_j drive |0⟩ → |2⟩ through |1⟩ (detuned by about α/2) when 2·f_j =
+    f02; the effective Rabi rate is Ω01·Ω12/(2Δ) = √2·Ω²/|α| (adiabatic elimination of
+    |1⟩; e.g. Brion, Pedersen and Mølmer, J. Phys. A 40, 1033 (2007)), so the |2⟩
+    population it pumps grows as |w|⁴ with the field w, and its phase turns twice as
+    fast as the drive's.
+    """
+    f = chip.qubit(chip.line(aggressor_line).qubit).f01_ghz
+    return f - chip.qubit(victim).f02_half_ghz
+
+
+def near_two_photon(chip: Chip, aggressor_line: str, victim: str,
+                    window_ghz: float = TWO_PHOTON_WINDOW_GHZ) -> bool:
+    """Whether the pair sits within ``window_ghz`` of the victim's two-photon 0–2 line."""
+    return abs(two_photon_detuning_ghz(chip, aggressor_line, victim)) <= window_ghz + 1e-9
 
 
 @dataclass(frozen=True)

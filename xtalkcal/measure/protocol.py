@@ -29,7 +29,7 @@ are those of ``protocols/full.toml``. Field by field::
     [null]                       # column-parallel null search
     shots_per_point = 1000
     points_per_ring = 8
-    target_residual_db = -50.0   # stop when |error of X| < this with 99 % probability
+    target_residual_db = -50.0   # stop when every pair's |error of X| < this (95 %)
     max_rounds = 8
     shot_budget = 2000000        # per aggressor column
 
