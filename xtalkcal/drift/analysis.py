@@ -276,7 +276,9 @@ def _estimate(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules) -> _Estima
     assert fit.coef is not None and fit.cov is not None
     rho, cov_c = inp.rho, fit.cov
     data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
-    c0, c1, c2, c3 = (float(c) for c in fit.coef)
+    # numpy scalars: a curvature of exactly 0 gives inf/NaN (judged broken below), where
+    # Python floats would raise ZeroDivisionError.
+    c0, c1, c2, c3 = (np.float64(c) for c in fit.coef)
     dof = inp.dof
     redchi = fit.chi2 / dof if dof > 0 else math.nan
     pvalue = float(stats.chi2.sf(fit.chi2, dof)) if dof > 0 else math.nan
@@ -343,11 +345,16 @@ def _broken_by(inp: _RecheckInput, fit: _RingFit, est: _Estimate, rules: Recheck
     """Rules 2-5 of :func:`analyse_recheck` (and non-finite numbers): why the re-check is
     broken, or None."""
     if not est.finite:
-        return "the fit returned non-finite values (zero curvature)", RejectionReason.FIT_FAILED
+        if est.curvature == 0:
+            return ("the fitted curvature is exactly zero: the ring sees no paraboloid",
+                    RejectionReason.NO_SIGNAL)
+        return "the fit returned non-finite values", RejectionReason.FIT_FAILED
     prior, rho, dof = inp.prior, inp.rho, inp.dof
     data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
     if prior is not None and math.isfinite(data_k):
-        zk = abs(data_k - prior[0]) / math.sqrt(data_k_se**2 + prior[1] ** 2)
+        spread = math.sqrt(data_k_se**2 + prior[1] ** 2)
+        gap = abs(data_k - prior[0])
+        zk = gap / spread if spread > 0 else (math.inf if gap > 0 else 0.0)
         if zk > rules.prior_consistency_sigma:
             return (
                 f"the re-check's curvature {data_k:.4g} +/- {data_k_se:.2g} disagrees with the "

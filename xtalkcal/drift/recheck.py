@@ -13,8 +13,9 @@ from refitting the pair's calibration sweep stored in the ledger.
 record the outcomes in the ledger (kind ``"recheck"``; a precise one becomes the
 current null, which re-centres the pair), recalibrate the columns of pairs that broke
 (in a repeat too: one broken re-check is repeated at once, and only the repeat counts)
-or drifted beyond doubt without a precise new null, and reschedule (a recalibrated pair
-restarts at the protocol's first interval at least). A drift that the
+or drifted beyond doubt without a precise new null, and reschedule (a re-centred or
+recalibrated pair gets its interval from its measured drift, which the new null does not
+reset; a pair new to the schedule is first checked early). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 
 A pair whose stored compensation cannot be played within its victim line's amplitude
@@ -47,7 +48,9 @@ from xtalkcal.calibrate import (
 )
 from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
+from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
+from xtalkcal.drift.policy import first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -329,10 +332,18 @@ def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str
 
 
 def schedule_after_calibration(schedule: Schedule, result, now_s: float) -> None:
-    """Register every nulled pair of a calibration result as freshly calibrated."""
+    """Register every nulled pair of a calibration result as freshly calibrated.
+
+    A pair new to the schedule has no measured drift yet: its first re-check comes at
+    :func:`first_interval`, so that its rate is known within the protocol's interval. A pair
+    already scheduled keeps its interval.
+    """
     for p in result.pairs:
         if p.accepted and p.nulled:
-            schedule.calibrated((p.aggressor, p.victim), now_s)
+            pair = (p.aggressor, p.victim)
+            iv = (schedule.slot(pair).interval_h if pair in schedule
+                  else first_interval(schedule.settings))
+            schedule.calibrated(pair, now_s, interval_h=iv)
 
 
 @dataclass
@@ -438,6 +449,7 @@ class _DueRun:
         recalibration as the outcome says."""
         rig, schedule = self.rig, self.schedule
         pair = (c.aggressor, c.victim)
+        previous_h = schedule.slot(pair).interval_h if pair in schedule else None
         trend = pair_trend(self.ledger.history(*pair),
                            tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
         nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
@@ -450,8 +462,10 @@ class _DueRun:
         elif decision is RecheckDecision.DRIFTED or nxt.follow_up is not FollowUp.NONE:
             if c.entry.verdict == "accepted":
                 # The re-check located the moved null precisely: its entry is now the
-                # current one (re-centred) at a fraction of a recalibration's cost.
-                schedule.calibrated(pair, rig.now(), interval_h=nxt.interval_h)
+                # current one (re-centred) at a fraction of a recalibration's cost. The
+                # trend now describes the new null, so it sets the next interval.
+                schedule.calibrated(pair, rig.now(),
+                                    interval_h=self.fresh_interval(pair, previous_h))
                 self.report.recentred.append(pair)
             elif c.outcome.confident:
                 self.recalibrate.add(c.aggressor)
@@ -473,13 +487,26 @@ class _DueRun:
             ledger.append(entries, sweeps=sweeps)
         for p in res.pairs:
             if p.accepted and p.nulled:
-                # A fresh null restarts at the protocol's first interval at least (as after
-                # the first calibration); pairs already on longer intervals keep theirs.
+                # A fresh null does not reset the interval: the pair's measured drift rate
+                # survives the recalibration, so a fast pair stays on a short interval.
                 pair = (p.aggressor, p.victim)
-                old = schedule.slot(pair).interval_h if pair in schedule else 0.0
-                schedule.calibrated(pair, rig.now(),
-                                    interval_h=max(old, protocol.recheck.interval_hours))
+                old = schedule.slot(pair).interval_h if pair in schedule else None
+                schedule.calibrated(pair, rig.now(), interval_h=self.fresh_interval(pair, old))
         self.report.recalibrated.append(a)
+
+    def fresh_interval(self, pair: Pair, previous_h: float | None) -> float:
+        """Interval of a pair whose compensation was just set anew (re-centred or
+        recalibrated): from its trend, the new null as the reference (:func:`next_check`
+        with the trend alone); :func:`first_interval` for a pair without history."""
+        settings = self.protocol.recheck
+        try:
+            trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
+                               now_s=self.rig.now())
+        except DriftInputError:  # no usable entry (cannot happen after an accepted one)
+            return first_interval(settings)
+        if previous_h is None and trend.hours_left is None:
+            return first_interval(settings)
+        return next_check(trend, previous_h, settings).interval_h
 
 
 def run_due(
