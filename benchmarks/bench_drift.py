@@ -93,7 +93,8 @@ class PolicyRun:
     nulled: list[Pair] = field(default_factory=list)
     calibrations: int = 0  # full column-set calibrations (policy B), initial included
     # Policy A: one row per re-checked pair: (t_s, pair, decision, residual_db, accepted,
-    # next interval h, the outcome's reason, the entry's reason).
+    # next interval h, the outcome's reason, the entry's reason, reduced chi-square, null
+    # shift in ring radii).
     checks: list[tuple] = field(default_factory=list)
     recentred: list[tuple[float, Pair]] = field(default_factory=list)
     recalibrated: list[tuple[float, str]] = field(default_factory=list)
@@ -160,6 +161,8 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
                     c.entry.measured_at_s, pair, c.outcome.decision.value,
                     float(c.outcome.residual_db), c.entry.verdict == "accepted",
                     slot.interval_h if slot else math.nan, c.outcome.reason, c.entry.reason,
+                    float(c.outcome.reduced_chi2),
+                    float(abs(c.outcome.null_shift) / c.outcome.probe_radius),
                 ))
             run.recentred += [(rep.now_s, p) for p in rep.recentred]
             run.recalibrated += [(rep.now_s, a) for a in rep.recalibrated]
@@ -392,6 +395,11 @@ def print_case(case: Case, detail: bool) -> None:
               f"{np.max(case.resA[p]):>9.1f} {per_checks[p]:>7d}{iv:>13.1f} h"
               f"{100 * np.mean(case.resB[p] <= tol):>9.2f}%{np.max(case.resB[p]):>9.1f} "
               f"{np.median(fl):>10.1f}/{np.max(fl):.1f}")
+    for p in pairs:
+        bad = [c for c in runA.checks if c[1] == p and c[2] == "broken"]
+        if bad:
+            print(f"  {p[0]}→{p[1]} broken re-checks (time h, χ²/dof, shift/ring radius): "
+                  + ", ".join(f"{c[0] / 3600:.1f} {c[8]:.1f} {c[9]:.2f}" for c in bad[:12]))
     for p in pairs:
         ex = _excursions(case.t_h, case.resA[p], tol)
         if not ex:

@@ -58,9 +58,14 @@ def _wls(
     if extra_info is not None and extra_rhs is not None:
         m = m + extra_info
         rhs = rhs + extra_rhs
+    if not (np.all(np.isfinite(m)) and np.all(np.isfinite(rhs))):
+        return None
     d = np.sqrt(np.clip(np.diag(m), 1e-300, None))
     mn = m / np.outer(d, d)
-    ev = np.linalg.eigvalsh(mn)
+    try:
+        ev = np.linalg.eigvalsh(mn)
+    except np.linalg.LinAlgError:
+        return None
     if not ev[0] > 1e-10 * ev[-1]:
         return None
     inv = np.linalg.inv(mn) / np.outer(d, d)
@@ -122,6 +127,9 @@ def _checked_input(
         )
     if np.any(sg <= 0):
         raise DriftInputError("stderr must be positive at every point")
+    with np.errstate(over="ignore", divide="ignore"):
+        if not np.all(np.isfinite(1.0 / (sg * sg))):  # the weights 1/stderr**2 overflow
+            raise DriftInputError("stderr must be at least 1e-150 at every point")
     zs = complex(z_stored)
     amp = complex(amplitude)
     if not (math.isfinite(zs.real) and math.isfinite(zs.imag)):

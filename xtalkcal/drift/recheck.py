@@ -12,8 +12,9 @@ from refitting the pair's calibration sweep stored in the ledger.
 :func:`run_due` is what a cron job runs: re-check whatever the schedule says is due,
 record the outcomes in the ledger (kind ``"recheck"``; a precise one becomes the
 current null, which re-centres the pair), recalibrate the columns of pairs that broke
-(in a repeat too: one broken re-check is repeated at once, and only the repeat counts)
-or drifted beyond doubt without a precise new null, and reschedule (a re-centred or
+(in a repeat too: one broken re-check is repeated at once, each victim on a ring of its
+own, free of its co-victims' drifting leak, and only the repeat counts) or drifted beyond
+doubt without a precise new null, and reschedule (a re-centred or
 recalibrated pair gets its interval from its measured drift, which the new null does not
 reset; a pair new to the schedule is first checked early). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
@@ -262,6 +263,7 @@ def recheck_column(
     ledger: Ledger | None = None,
     key: str = "recheck",
     silent: Iterable[str] = (),
+    solo: bool = False,
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -282,6 +284,9 @@ def recheck_column(
         Prefix of the batch keys in the runner's record.
     silent : iterable of str
         Victims whose stored tones are not played (pairs set aside, see :func:`run_due`).
+    solo : bool
+        Put each victim on a ring of its own (the column's other tones held at their stored
+        nulls), instead of ringing the calibration pass's co-victims together.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -290,7 +295,9 @@ def recheck_column(
     wanted = list(victims)
     column = _column_in_use(snapshot, aggressor, wanted, silent)
     checks: list[PairCheck] = []
-    for group in nulled_pass_groups({v: column[v].method for v in wanted}):
+    groups = ([[v] for v in wanted] if solo
+              else nulled_pass_groups({v: column[v].method for v in wanted}))
+    for group in groups:
         gp = _group_probe(chip, aggressor, group, column, amp, shape, ledger)
         radius = _ring_radii(gp)
         n = ring_points_for(len(group), settings.points)
@@ -423,11 +430,17 @@ class _DueRun:
         return by_agg
 
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
-        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones."""
+        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones.
+
+        The confirming repeat rings each victim alone: ringing co-victims leak onto a
+        victim through couplings measured at calibration, and as those couplings drift the
+        leak left after taking them out grows into a misfit that has nothing to do with the
+        pair's own null. Alone, the other tones sit at their stored nulls and leave none.
+        """
         try:
             checks = recheck_column(self.rig, self.protocol, self.snapshot, a, victims,
                                     runner=self.runner, ledger=self.ledger, key=key,
-                                    silent=self.aside(a))
+                                    silent=self.aside(a), solo=confirming)
         except SafetyLimitError as exc:  # refused before anything was played
             for v in victims:
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
