@@ -436,11 +436,18 @@ class _DueRun:
         victim through couplings measured at calibration, and as those couplings drift the
         leak left after taking them out grows into a misfit that has nothing to do with the
         pair's own null. Alone, the other tones sit at their stored nulls and leave none.
+        A victim whose re-check broke since its last calibration rings alone from then on
+        (:meth:`rings_alone`): the couplings only drift further until the column is
+        calibrated anew.
         """
+        alone = [v for v in victims if confirming or self.rings_alone((a, v))]
+        together = [v for v in victims if v not in alone]
         try:
-            checks = recheck_column(self.rig, self.protocol, self.snapshot, a, victims,
-                                    runner=self.runner, ledger=self.ledger, key=key,
-                                    silent=self.aside(a), solo=confirming)
+            checks = [c for vs, solo in ((together, False), (alone, True)) if vs
+                      for c in recheck_column(self.rig, self.protocol, self.snapshot, a, vs,
+                                              runner=self.runner, ledger=self.ledger,
+                                              key=f"{key}-solo" if solo else key,
+                                              silent=self.aside(a), solo=solo)]
         except SafetyLimitError as exc:  # refused before anything was played
             for v in victims:
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
@@ -456,6 +463,15 @@ class _DueRun:
                 continue
             self.act_on(c)
         return broken
+
+    def rings_alone(self, pair: Pair) -> bool:
+        """True when a re-check of ``pair`` was judged broken since its last calibration."""
+        hist = sorted(self.ledger.history(*pair),
+                      key=lambda e: (e.measured_at_s, e.seq, e.position))
+        since = [e for e in hist if e.kind != "recheck"][-1:]
+        start = since[0].measured_at_s if since else -math.inf
+        return any(e.kind == "recheck" and e.tag == RecheckDecision.BROKEN.value
+                   and e.measured_at_s >= start for e in hist)
 
     def act_on(self, c: PairCheck) -> None:
         """Record a re-check in the schedule; re-centre the pair or mark its column for
