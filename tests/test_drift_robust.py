@@ -163,3 +163,59 @@ def test_a_step_is_caught_at_the_first_recheck_after_it_and_handled_at_once(tmp_
     fresh = led.current()[pair]
     truth = rig.true_crosstalk("q5", "d4", fresh.frequency_ghz)
     assert 20 * math.log10(abs(fresh.value - truth)) < proto.recheck.tolerance_db
+
+
+def _entry(t_h: float, x: complex, *, kind: str = "recheck", tag: str = "within",
+           verdict: str = "accepted", sigma: float = 2e-4):
+    from xtalkcal.store import LedgerEntry
+
+    return LedgerEntry(
+        aggressor="d1", victim="q2", frequency_ghz=5.1, value=complex(x),
+        covariance=((sigma**2, 0.0), (0.0, sigma**2)), method="stark", shots=8000,
+        amplification=4, quality=1.0, verdict=verdict, measured_at_s=3600.0 * t_h,
+        measured_at_utc="2031-01-01T00:00:00.000000+00:00", rig="invented",
+        software_version="test", kind=kind, tag=tag)
+
+
+class _Ledger:
+    def __init__(self, entries):
+        self.entries = entries
+
+    def history(self, aggressor, victim):
+        return tuple(self.entries)
+
+
+def _due_run(entries, now_h: float):
+    from types import SimpleNamespace
+
+    from xtalkcal.drift.recheck import _DueRun
+
+    rig = SimpleNamespace(now=lambda: 3600.0 * now_h)
+    protocol = SimpleNamespace(recheck=_settings(12.0))
+    return _DueRun(rig, protocol, _Ledger(entries), None, None, print, None, None)
+
+
+def test_a_measured_fast_drift_survives_recalibration() -> None:
+    # |X| = -20 dB turning at 0.05 rad/h: the residual reaches -45 dB (5.6e-3) about 1.1 h
+    # after a fresh null. A recalibration at 6 h must not put it back on a long interval.
+    x0, w = 0.1, 0.05
+    hist = [_entry(t, x0 * np.exp(1j * w * t), kind="null" if t == 0 else "recheck")
+            for t in (0.0, 1.5, 3.0, 4.5)]
+    hist.append(_entry(6.0, x0 * np.exp(1j * w * 6.0), kind="null", tag="calibrated"))
+    run = _due_run(hist, 6.0)
+    iv = run.fresh_interval(("d1", "q2"), 48.0)
+    assert iv <= 0.5 * 1.2  # at most the policy's safety (0.5) times the hours left
+    assert iv < 12.0
+    # without history the pair is first checked early
+    assert _due_run([hist[0]], 0.0).fresh_interval(("d1", "q2"), None) == first_interval(
+        _settings(12.0))
+
+
+def test_a_victim_whose_recheck_broke_rings_alone_until_recalibrated() -> None:
+    pair = ("d1", "q2")
+    base = [_entry(0.0, 0.1, kind="null"), _entry(2.0, 0.1)]
+    assert not _due_run(base, 3.0).rings_alone(pair)
+    broke = base + [_entry(3.0, complex(math.nan, math.nan), tag="broken", verdict="rejected"),
+                    _entry(3.0, 0.1)]
+    assert _due_run(broke, 4.0).rings_alone(pair)
+    assert not _due_run(broke + [_entry(5.0, 0.1, kind="null")], 6.0).rings_alone(pair)
