@@ -21,7 +21,9 @@ from xtalkcal.drift.outcome import (
     RecheckRules,
 )
 from xtalkcal.drift.policy import (
+    FIRST_INTERVAL_FRACTION,
     NextCheck,
+    first_interval,
     next_check,
 )
 from xtalkcal.drift.recheck import (
@@ -52,7 +54,9 @@ __all__ = [
     "PairTrend",
     "RandomWalkRate",
     "pair_trend",
+    "FIRST_INTERVAL_FRACTION",
     "NextCheck",
+    "first_interval",
     "next_check",
     "Pair",
     "PairSlot",

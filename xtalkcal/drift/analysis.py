@@ -58,9 +58,14 @@ def _wls(
     if extra_info is not None and extra_rhs is not None:
         m = m + extra_info
         rhs = rhs + extra_rhs
+    if not (np.all(np.isfinite(m)) and np.all(np.isfinite(rhs))):
+        return None
     d = np.sqrt(np.clip(np.diag(m), 1e-300, None))
     mn = m / np.outer(d, d)
-    ev = np.linalg.eigvalsh(mn)
+    try:
+        ev = np.linalg.eigvalsh(mn)
+    except np.linalg.LinAlgError:
+        return None
     if not ev[0] > 1e-10 * ev[-1]:
         return None
     inv = np.linalg.inv(mn) / np.outer(d, d)
@@ -122,6 +127,9 @@ def _checked_input(
         )
     if np.any(sg <= 0):
         raise DriftInputError("stderr must be positive at every point")
+    with np.errstate(over="ignore", divide="ignore"):
+        if not np.all(np.isfinite(1.0 / (sg * sg))):  # the weights 1/stderr**2 overflow
+            raise DriftInputError("stderr must be at least 1e-150 at every point")
     zs = complex(z_stored)
     amp = complex(amplitude)
     if not (math.isfinite(zs.real) and math.isfinite(zs.imag)):
@@ -276,7 +284,9 @@ def _estimate(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules) -> _Estima
     assert fit.coef is not None and fit.cov is not None
     rho, cov_c = inp.rho, fit.cov
     data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
-    c0, c1, c2, c3 = (float(c) for c in fit.coef)
+    # numpy scalars: a curvature of exactly 0 gives inf/NaN (judged broken below), where
+    # Python floats would raise ZeroDivisionError.
+    c0, c1, c2, c3 = (np.float64(c) for c in fit.coef)
     dof = inp.dof
     redchi = fit.chi2 / dof if dof > 0 else math.nan
     pvalue = float(stats.chi2.sf(fit.chi2, dof)) if dof > 0 else math.nan
@@ -343,11 +353,16 @@ def _broken_by(inp: _RecheckInput, fit: _RingFit, est: _Estimate, rules: Recheck
     """Rules 2-5 of :func:`analyse_recheck` (and non-finite numbers): why the re-check is
     broken, or None."""
     if not est.finite:
-        return "the fit returned non-finite values (zero curvature)", RejectionReason.FIT_FAILED
+        if est.curvature == 0:
+            return ("the fitted curvature is exactly zero: the ring sees no paraboloid",
+                    RejectionReason.NO_SIGNAL)
+        return "the fit returned non-finite values", RejectionReason.FIT_FAILED
     prior, rho, dof = inp.prior, inp.rho, inp.dof
     data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
     if prior is not None and math.isfinite(data_k):
-        zk = abs(data_k - prior[0]) / math.sqrt(data_k_se**2 + prior[1] ** 2)
+        spread = math.sqrt(data_k_se**2 + prior[1] ** 2)
+        gap = abs(data_k - prior[0])
+        zk = gap / spread if spread > 0 else (math.inf if gap > 0 else 0.0)
         if zk > rules.prior_consistency_sigma:
             return (
                 f"the re-check's curvature {data_k:.4g} +/- {data_k_se:.2g} disagrees with the "

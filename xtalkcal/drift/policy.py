@@ -63,6 +63,23 @@ def _interval_limits(settings: RecheckSettings) -> tuple[float, float, float]:
     return lo, hi, start
 
 
+# A pair without a measured drift rate is first checked after this fraction of the
+# protocol's interval: with doubling after each comfortable check, its first three entries
+# (hence a rate) are in by ~3/8 of the protocol's interval (common practice for back-off:
+# start short, grow geometrically).
+FIRST_INTERVAL_FRACTION = 0.125
+
+
+def first_interval(settings: RecheckSettings) -> float:
+    """First re-check interval of a pair without history (h), within the protocol's limits.
+
+    ``FIRST_INTERVAL_FRACTION`` of ``settings.interval_hours``, clamped to
+    ``[min_interval_hours, max_interval_hours]``.
+    """
+    lo, hi, start = _interval_limits(settings)
+    return float(min(max(FIRST_INTERVAL_FRACTION * start, lo), hi))
+
+
 @dataclass(frozen=True)
 class _Factors:
     """The interval factors of :func:`next_check`, checked."""

@@ -12,9 +12,11 @@ from refitting the pair's calibration sweep stored in the ledger.
 :func:`run_due` is what a cron job runs: re-check whatever the schedule says is due,
 record the outcomes in the ledger (kind ``"recheck"``; a precise one becomes the
 current null, which re-centres the pair), recalibrate the columns of pairs that broke
-(in a repeat too: one broken re-check is repeated at once, and only the repeat counts)
-or drifted beyond doubt without a precise new null, and reschedule (a recalibrated pair
-restarts at the protocol's first interval at least). A drift that the
+(in a repeat too: one broken re-check is repeated at once, each victim on a ring of its
+own, free of its co-victims' drifting leak, and only the repeat counts) or drifted beyond
+doubt without a precise new null, and reschedule (a re-centred or
+recalibrated pair gets its interval from its measured drift, which the new null does not
+reset; a pair new to the schedule is first checked early). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 
 A pair whose stored compensation cannot be played within its victim line's amplitude
@@ -47,7 +49,9 @@ from xtalkcal.calibrate import (
 )
 from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
+from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
+from xtalkcal.drift.policy import first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -259,6 +263,7 @@ def recheck_column(
     ledger: Ledger | None = None,
     key: str = "recheck",
     silent: Iterable[str] = (),
+    solo: bool = False,
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -279,6 +284,9 @@ def recheck_column(
         Prefix of the batch keys in the runner's record.
     silent : iterable of str
         Victims whose stored tones are not played (pairs set aside, see :func:`run_due`).
+    solo : bool
+        Put each victim on a ring of its own (the column's other tones held at their stored
+        nulls), instead of ringing the calibration pass's co-victims together.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -287,7 +295,9 @@ def recheck_column(
     wanted = list(victims)
     column = _column_in_use(snapshot, aggressor, wanted, silent)
     checks: list[PairCheck] = []
-    for group in nulled_pass_groups({v: column[v].method for v in wanted}):
+    groups = ([[v] for v in wanted] if solo
+              else nulled_pass_groups({v: column[v].method for v in wanted}))
+    for group in groups:
         gp = _group_probe(chip, aggressor, group, column, amp, shape, ledger)
         radius = _ring_radii(gp)
         n = ring_points_for(len(group), settings.points)
@@ -329,10 +339,18 @@ def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str
 
 
 def schedule_after_calibration(schedule: Schedule, result, now_s: float) -> None:
-    """Register every nulled pair of a calibration result as freshly calibrated."""
+    """Register every nulled pair of a calibration result as freshly calibrated.
+
+    A pair new to the schedule has no measured drift yet: its first re-check comes at
+    :func:`first_interval`, so that its rate is known within the protocol's interval. A pair
+    already scheduled keeps its interval.
+    """
     for p in result.pairs:
         if p.accepted and p.nulled:
-            schedule.calibrated((p.aggressor, p.victim), now_s)
+            pair = (p.aggressor, p.victim)
+            iv = (schedule.slot(pair).interval_h if pair in schedule
+                  else first_interval(schedule.settings))
+            schedule.calibrated(pair, now_s, interval_h=iv)
 
 
 @dataclass
@@ -412,11 +430,24 @@ class _DueRun:
         return by_agg
 
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
-        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones."""
+        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones.
+
+        The confirming repeat rings each victim alone: ringing co-victims leak onto a
+        victim through couplings measured at calibration, and as those couplings drift the
+        leak left after taking them out grows into a misfit that has nothing to do with the
+        pair's own null. Alone, the other tones sit at their stored nulls and leave none.
+        A victim whose re-check broke since its last calibration rings alone from then on
+        (:meth:`rings_alone`): the couplings only drift further until the column is
+        calibrated anew.
+        """
+        alone = [v for v in victims if confirming or self.rings_alone((a, v))]
+        together = [v for v in victims if v not in alone]
         try:
-            checks = recheck_column(self.rig, self.protocol, self.snapshot, a, victims,
-                                    runner=self.runner, ledger=self.ledger, key=key,
-                                    silent=self.aside(a))
+            checks = [c for vs, solo in ((together, False), (alone, True)) if vs
+                      for c in recheck_column(self.rig, self.protocol, self.snapshot, a, vs,
+                                              runner=self.runner, ledger=self.ledger,
+                                              key=f"{key}-solo" if solo else key,
+                                              silent=self.aside(a), solo=solo)]
         except SafetyLimitError as exc:  # refused before anything was played
             for v in victims:
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
@@ -433,11 +464,21 @@ class _DueRun:
             self.act_on(c)
         return broken
 
+    def rings_alone(self, pair: Pair) -> bool:
+        """True when a re-check of ``pair`` was judged broken since its last calibration."""
+        hist = sorted(self.ledger.history(*pair),
+                      key=lambda e: (e.measured_at_s, e.seq, e.position))
+        since = [e for e in hist if e.kind != "recheck"][-1:]
+        start = since[0].measured_at_s if since else -math.inf
+        return any(e.kind == "recheck" and e.tag == RecheckDecision.BROKEN.value
+                   and e.measured_at_s >= start for e in hist)
+
     def act_on(self, c: PairCheck) -> None:
         """Record a re-check in the schedule; re-centre the pair or mark its column for
         recalibration as the outcome says."""
         rig, schedule = self.rig, self.schedule
         pair = (c.aggressor, c.victim)
+        previous_h = schedule.slot(pair).interval_h if pair in schedule else None
         trend = pair_trend(self.ledger.history(*pair),
                            tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
         nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
@@ -450,8 +491,10 @@ class _DueRun:
         elif decision is RecheckDecision.DRIFTED or nxt.follow_up is not FollowUp.NONE:
             if c.entry.verdict == "accepted":
                 # The re-check located the moved null precisely: its entry is now the
-                # current one (re-centred) at a fraction of a recalibration's cost.
-                schedule.calibrated(pair, rig.now(), interval_h=nxt.interval_h)
+                # current one (re-centred) at a fraction of a recalibration's cost. The
+                # trend now describes the new null, so it sets the next interval.
+                schedule.calibrated(pair, rig.now(),
+                                    interval_h=self.fresh_interval(pair, previous_h))
                 self.report.recentred.append(pair)
             elif c.outcome.confident:
                 self.recalibrate.add(c.aggressor)
@@ -473,13 +516,26 @@ class _DueRun:
             ledger.append(entries, sweeps=sweeps)
         for p in res.pairs:
             if p.accepted and p.nulled:
-                # A fresh null restarts at the protocol's first interval at least (as after
-                # the first calibration); pairs already on longer intervals keep theirs.
+                # A fresh null does not reset the interval: the pair's measured drift rate
+                # survives the recalibration, so a fast pair stays on a short interval.
                 pair = (p.aggressor, p.victim)
-                old = schedule.slot(pair).interval_h if pair in schedule else 0.0
-                schedule.calibrated(pair, rig.now(),
-                                    interval_h=max(old, protocol.recheck.interval_hours))
+                old = schedule.slot(pair).interval_h if pair in schedule else None
+                schedule.calibrated(pair, rig.now(), interval_h=self.fresh_interval(pair, old))
         self.report.recalibrated.append(a)
+
+    def fresh_interval(self, pair: Pair, previous_h: float | None) -> float:
+        """Interval of a pair whose compensation was just set anew (re-centred or
+        recalibrated): from its trend, the new null as the reference (:func:`next_check`
+        with the trend alone); :func:`first_interval` for a pair without history."""
+        settings = self.protocol.recheck
+        try:
+            trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
+                               now_s=self.rig.now())
+        except DriftInputError:  # no usable entry (cannot happen after an accepted one)
+            return first_interval(settings)
+        if previous_h is None and trend.hours_left is None:
+            return first_interval(settings)
+        return next_check(trend, previous_h, settings).interval_h
 
 
 def run_due(
