@@ -180,6 +180,6 @@ def test_cli_a_refusal_mid_run_stops_cleanly_and_the_run_resumes(tmp_path, guard
     assert main(args) == 0
     out = capsys.readouterr().out
     assert "resumed from" in out
-    assert "limits in force, from derived from" in out and "interlock: " + PY in out
+    assert "limits in force, derived from" in out and "interlock: " + PY in out
     assert (tmp_path / "m.json").exists()
     assert any(e.accepted for e in Ledger(tmp_path / "ledger").entries())

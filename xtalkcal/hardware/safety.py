@@ -360,4 +360,6 @@ def limits_summary(chip: Chip) -> str:
     lock = ("interlock: none" if getattr(chip, "interlock", None) is None
             else f"interlock: {chip.interlock.command[0]}")
     stated = "" if lim.stated else " (no [limits] table: defaults)"
-    return f"limits in force, from {chip.source}{stated}: {peak}; {avg}; {total}; {lock}"
+    # A derived chip's source already says where it came from ("derived from …").
+    where = chip.source if chip.source.startswith("derived from") else f"from {chip.source}"
+    return f"limits in force, {where}{stated}: {peak}; {avg}; {total}; {lock}"
