@@ -148,3 +148,30 @@ def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, 
     assert decisions[0] is RecheckDecision.BROKEN and decisions[1] is RecheckDecision.WITHIN
     assert rep.recalibrated == []
     assert [e.kind for e in led.history("d4", "q5")].count("recheck") == 2
+
+
+def test_pairs_the_schedule_lacked_start_at_the_first_interval():
+    """A compensated pair new to the schedule is first checked early (a fraction of the
+    protocol's interval, clamped), not one full interval later: its drift rate is unknown."""
+    from types import SimpleNamespace
+
+    from xtalkcal.cli.due import cover_every_column
+    from xtalkcal.drift import Schedule, first_interval
+    from xtalkcal.measure import RecheckSettings
+
+    settings = RecheckSettings(interval_hours=12.0, min_interval_hours=0.5, max_interval_hours=48.0)
+    schedule = Schedule(settings)
+    snap = SimpleNamespace(entries={
+        ("d0", "q1"): SimpleNamespace(kind="null", measured_at_s=3600.0),
+        ("d0", "q2"): SimpleNamespace(kind="survey", measured_at_s=3600.0),
+        ("d1", "q0"): SimpleNamespace(kind="recheck", measured_at_s=7200.0),
+    })
+    added = cover_every_column(schedule, snap)
+    assert added == [("d0", "q1"), ("d1", "q0")]
+    first_h = first_interval(settings)
+    assert 0.5 <= first_h < 12.0
+    slot = schedule.slot(("d0", "q1"))
+    assert slot.interval_h == first_h
+    assert slot.due_s == 3600.0 + first_h * 3600.0
+    assert schedule.slot(("d1", "q0")).due_s == 7200.0 + first_h * 3600.0
+    assert cover_every_column(schedule, snap) == []  # already there: left alone

@@ -28,11 +28,18 @@ __all__ = ["add_commands", "cover_every_column", "settings_changes"]
 
 def cover_every_column(schedule, snapshot) -> list[tuple[str, str]]:
     """Put every compensated pair of the matrix (a null or a re-check, not a survey) that
-    the schedule lacks on it, as calibrated when its entry was measured; the pairs added."""
+    the schedule lacks on it, as calibrated when its entry was measured; the pairs added.
+
+    A pair without history is first checked at the drift policy's first interval (a
+    fraction of the protocol's), as after a calibration, so its drift rate is known early.
+    """
+    from xtalkcal.drift import first_interval
+
     added = []
+    first_h = first_interval(schedule.settings)
     for (a, v), e in sorted(snapshot.entries.items()):
         if e.kind != "survey" and (a, v) not in schedule:
-            schedule.calibrated((a, v), e.measured_at_s)
+            schedule.calibrated((a, v), e.measured_at_s, interval_h=first_h)
             added.append((a, v))
     return added
 
