@@ -22,6 +22,7 @@ from xtalkcal.outputs.history import (
     history_table,
     plot_ledger_drift,
 )
+from xtalkcal.outputs.palette import COLOURS
 from xtalkcal.outputs.played import (
     PLAYED_FORMAT,
     CompensatedRig,
@@ -32,12 +33,15 @@ from xtalkcal.outputs.played import (
     verify_settings,
 )
 from xtalkcal.outputs.plot import (
+    aggressor_frequencies,
     matrix_axes,
-    plot_drift,
-    plot_gate_errors,
     plot_matrix_db,
     plot_matrix_phase,
     plot_null_landscape,
+)
+from xtalkcal.outputs.plot_results import (
+    plot_drift,
+    plot_gate_errors,
     plot_residuals,
     plot_verification,
 )
@@ -73,6 +77,8 @@ __all__ = [
     "closed_loop_choice",
     "expected_residual_db",
     "settings_pairs",
+    "COLOURS",
+    "aggressor_frequencies",
     "matrix_axes",
     "plot_drift",
     "plot_gate_errors",

@@ -9,6 +9,7 @@ import io
 import math
 
 from xtalkcal.outputs.from_ledger import entry_moment
+from xtalkcal.outputs.palette import COLOURS, SERIES
 
 __all__ = ["HISTORY_COLUMNS", "history_rows", "history_table", "history_csv", "plot_ledger_drift"]
 
@@ -90,7 +91,7 @@ def plot_ledger_drift(ledger, *, until: dt.datetime | None = None, tolerance_db:
     if not series:
         return None
     ax = ax or plt.subplots(figsize=(7.5, 4.2))[1]
-    for (a, v), es in series:
+    for n, ((a, v), es) in enumerate(series):
         x0 = es[0].value
         t = [entry_moment(e) for e in es[1:]]
         d = [abs(e.value - x0) for e in es[1:]]
@@ -100,8 +101,8 @@ def plot_ledger_drift(ledger, *, until: dt.datetime | None = None, tolerance_db:
               for db_i, x, si in zip(db, d, s, strict=True)]
         hi = [20 * math.log10(x + si) - db_i for db_i, x, si in zip(db, d, s, strict=True)]
         ax.errorbar(t, db, yerr=[lo, hi], marker="o", ms=3, lw=1, capsize=2,
-                    label=f"{a} → {v}")
-    ax.axhline(tolerance_db, color="0.3", ls="--", lw=1,
+                    color=SERIES[n % len(SERIES)], label=f"{a} → {v}")
+    ax.axhline(tolerance_db, color=COLOURS["tolerance"], ls="--", lw=1,
                label=f"re-check tolerance {tolerance_db:g} dB")
     ax.set_xlabel("stored (UTC)")
     ax.set_ylabel("|X − X at first null| (dB)")

@@ -1,21 +1,23 @@
-"""Figures. Every function takes ``ax=None`` and returns the Axes; nothing calls show()."""
+"""Figures of the matrix and of a null search. Each takes ``ax=None`` and returns the Axes;
+nothing calls show(). The figures of results (residuals, gates, drift) are in
+:mod:`xtalkcal.outputs.plot_results`."""
 
 from __future__ import annotations
 
+import cmath
 import math
-from typing import Any
 
 import matplotlib.colors as mcolors
 import matplotlib.pyplot as plt
-import matplotlib.ticker as mticker
 import numpy as np
 import xarray as xr
 from matplotlib.patches import Ellipse, Patch, Rectangle
 
 from xtalkcal.calibrate import CalibrationResult
+from xtalkcal.outputs.palette import COLOURS
 
-__all__ = ["matrix_axes", "plot_matrix_db", "plot_matrix_phase", "plot_null_landscape",
-           "plot_residuals"]
+__all__ = ["aggressor_frequencies", "matrix_axes", "plot_matrix_db", "plot_matrix_phase",
+           "plot_null_landscape"]
 
 
 def matrix_axes(result: CalibrationResult) -> tuple[list[str], list[str], np.ndarray]:
@@ -28,6 +30,13 @@ def matrix_axes(result: CalibrationResult) -> tuple[list[str], list[str], np.nda
         if p.accepted and p.x is not None:
             X[victims.index(p.victim), lines.index(p.aggressor)] = p.x
     return victims, lines, X
+
+
+def aggressor_frequencies(result: CalibrationResult, lines: list[str]) -> list[float]:
+    """Per line, the tone frequency (GHz) its pairs were measured at, else its qubit's f01."""
+    measured = {p.aggressor: p.freq_ghz for p in result.pairs}
+    chip = result.chip
+    return [measured.get(ln, chip.qubit(chip.line(ln).qubit).f01_ghz) for ln in lines]
 
 
 # Kinds of heat-map cell besides a plain coloured value (a nulled pair), each drawn so
@@ -74,18 +83,25 @@ def _label_color(rgba) -> str:
     return "black" if (lum + 0.05) / 0.05 >= 1.05 / (lum + 0.05) else "white"
 
 
-def _grid(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, fmt):
+def _grid(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, fmt, *, freqs=None,
+          marks=()):
     cmap = plt.get_cmap(cmap)
     norm = mcolors.Normalize(vmin, vmax)
     im = ax.imshow(data, cmap=cmap, norm=norm, origin="upper")
-    ax.set_xticks(range(len(lines)), lines)
+    if freqs is None:
+        ax.set_xticks(range(len(lines)), lines)
+        ax.set_xlabel("aggressor line")
+    else:
+        # each aggressor's tone frequency under its name: X depends on it
+        ax.set_xticks(range(len(lines)), [f"{ln}\n{f:.3f}" for ln, f in
+                                          zip(lines, freqs, strict=True)], fontsize=7)
+        ax.set_xlabel("aggressor line, and its tone frequency (GHz)")
     ax.set_yticks(range(len(victims)), victims)
     # thin cell borders, so that empty (not measured) cells still read as cells
     ax.set_xticks(np.arange(len(lines) + 1) - 0.5, minor=True)
     ax.set_yticks(np.arange(len(victims) + 1) - 0.5, minor=True)
     ax.tick_params(which="minor", length=0)
     ax.grid(which="minor", color=_EMPTY_EDGE, lw=0.5)
-    ax.set_xlabel("aggressor line")
     ax.set_ylabel("victim qubit")
     for i in range(len(victims)):
         for j in range(len(lines)):
@@ -106,7 +122,13 @@ def _grid(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, fmt):
     low, high = bool((finite < vmin).any()), bool((finite > vmax).any())
     extend = {(True, True): "both", (True, False): "min", (False, True): "max"}.get(
         (low, high), "neither")
-    ax.figure.colorbar(im, ax=ax, label=label, shrink=0.85, extend=extend)
+    if marks:
+        label += "\n" + "; ".join(f"line across the bar: {text}" for _, text in marks)
+    bar = ax.figure.colorbar(im, ax=ax, label=label, shrink=0.85, extend=extend)
+    for value, _ in marks:
+        # a level worth reading off the scale (the survey threshold): a line across the bar
+        bar.ax.axhline(value, color="black", lw=2.0)
+        bar.ax.axhline(value, color="white", lw=0.8)
     present = set(kinds.ravel())
     handles = []
     if _SURVEY in present:
@@ -142,9 +164,13 @@ def plot_matrix_db(result: CalibrationResult, ax=None):
     victims, lines, X = matrix_axes(result)
     with np.errstate(divide="ignore"):
         db = 20 * np.log10(np.abs(X))
+    threshold = result.protocol.survey.threshold_db
     _grid(ax, victims, lines, db, _cell_kinds(result, victims, lines), "magma", -55, -20,
-          "|X| (dB)", lambda v: f"{v:.0f}")
-    ax.set_title(f"{result.chip.name}: crosstalk magnitude at each aggressor's frequency")
+          "|X| (dB re the victim's own line)", lambda v: f"{v:.0f}",
+          freqs=aggressor_frequencies(result, lines),
+          marks=[(threshold, f"survey threshold {threshold:g} dB")]
+          if -55 < threshold < -20 else [])
+    ax.set_title(f"{result.chip.name}: crosstalk magnitude |X|", fontsize=10)
     return ax
 
 
@@ -154,17 +180,45 @@ def plot_matrix_phase(result: CalibrationResult, ax=None):
     victims, lines, X = matrix_axes(result)
     ph = np.degrees(np.angle(X))
     _grid(ax, victims, lines, ph, _cell_kinds(result, victims, lines), "twilight", -180, 180,
-          "arg X (deg)", lambda v: f"{v:.0f}")
-    ax.set_title("crosstalk phase")
+          "arg X (deg)", lambda v: f"{v:.0f}", freqs=aggressor_frequencies(result, lines))
+    ax.set_title(f"{result.chip.name}: crosstalk phase arg X", fontsize=10)
     return ax
 
 
+# What each method's error signal is, and its unit.
+_SIGNAL = {"leakage": ("P(|2⟩)", "probability"), "rotation": ("P(|1⟩)", "probability"),
+           "stark": ("Stark phase", "rad")}
+_STARK_NOTE = ("Stark: the phase grows as |X + z|², so every point near the null reads low; "
+               "the null is where the fitted bowl is lowest.")
+
+
+def _last_ring(sweep: xr.Dataset, same: np.ndarray) -> np.ndarray:
+    """Indices of the points of the last search round taken at the final K."""
+    rounds = sweep["round"].values if "round" in sweep else np.zeros(same.shape, int)
+    if not same.any():
+        return np.zeros(0, int)
+    last = rounds[same].max()
+    return np.flatnonzero(same & (rounds == last))
+
+
 def plot_null_landscape(sweep: xr.Dataset, victim: str, *, z_star: complex | None = None,
-                        cov: np.ndarray | None = None, ax=None):
-    """Measured points of one victim's null search, coloured by signal, with the fitted null
-    and its 1σ and 3σ error ellipses (ellipses drawn ×10 larger when too small to see)."""
-    ax = ax or plt.subplots(figsize=(5.6, 5.0))[1]
+                        cov: np.ndarray | None = None, chip: str | None = None, ax=None):
+    """One victim's null search: the measured points coloured by error signal, the fitted null
+    with its 1σ and 3σ ellipses (drawn ×10 when too small to see), and, in a panel below,
+    the last ring's signal against its angle, where the minimum shows.
+
+    Returns the Axes of the landscape; the ring panel is drawn only when ``ax`` is None.
+    """
+    ring_ax = None
+    if ax is None:
+        fig, (ax, ring_ax) = plt.subplots(2, 1, figsize=(5.8, 7.4),
+                                          gridspec_kw={"height_ratios": [3.2, 1.0]})
     s = sweep.sel(victim=victim)
+    victims = [str(v) for v in sweep["victim"].values]
+    methods = str(sweep.attrs.get("methods", "")).split(",")
+    method = methods[victims.index(victim)] if len(methods) == len(victims) else ""
+    name, unit = _SIGNAL.get(method, ("error signal", ""))
+    unit = s.signal.attrs.get("units") or unit
     x, y, sig = s.z_re.values, s.z_im.values, s.signal.values
     k_final = sweep.attrs.get("repeats")
     # Points taken at another amplification K (a raised-K null search) have signals on
@@ -172,170 +226,75 @@ def plot_null_landscape(sweep: xr.Dataset, victim: str, *, z_star: complex | Non
     same = (sweep["repeats"].values == k_final if "repeats" in sweep
             else np.ones(x.shape, bool))
     if (~same).any():
-        ax.scatter(x[~same], y[~same], s=18, facecolor="none", edgecolor="0.5", linewidth=0.6,
-                   label="points at a lower K")
-    sc = ax.scatter(x[same], y[same], c=sig[same], cmap="viridis", s=22, edgecolor="k",
-                    linewidth=0.3)
-    ax.figure.colorbar(sc, ax=ax, label=s.signal.attrs.get("long_name", "signal")
-                       + f" at K = {k_final}")
+        ax.scatter(x[~same], y[~same], s=18, facecolor="none",
+                   edgecolor=COLOURS["neutral"], linewidth=0.8, label="points at a lower K",
+                   zorder=2)
+    # The null marks go under the points, thin and open, so that no measured point hides.
     if z_star is not None:
-        ax.plot(z_star.real, z_star.imag, marker="+", color="red", ms=14, mew=2,
-                label="fitted null")
+        ax.plot(z_star.real, z_star.imag, marker="x", color=COLOURS["null"], ms=9, mew=1.2,
+                ls="none", label="fitted null", zorder=1)
         if cov is not None:
             w, v = np.linalg.eigh(cov)
             span = max(np.ptp(x), np.ptp(y))
-            mag = 10.0 if 3 * math.sqrt(w.max()) < 0.02 * span else 1.0
+            mag = 10.0 if 3 * math.sqrt(max(w.max(), 0.0)) < 0.02 * span else 1.0
+            times = " (×10)" if mag != 1.0 else ""
             for k, ls in ((1, "-"), (3, "--")):
                 ax.add_patch(Ellipse((z_star.real, z_star.imag),
-                                     2 * k * mag * math.sqrt(w[1]), 2 * k * mag * math.sqrt(w[0]),
+                                     2 * k * mag * math.sqrt(max(w[1], 0.0)),
+                                     2 * k * mag * math.sqrt(max(w[0], 0.0)),
                                      angle=math.degrees(math.atan2(v[1, 1], v[0, 1])),
-                                     fill=False, color="red", ls=ls, lw=1))
-            if mag != 1.0:
-                ax.text(0.02, 0.02, "ellipses ×10", transform=ax.transAxes, fontsize=8)
-        ax.legend(loc="upper right", fontsize=8)
+                                     fill=False, color=COLOURS["null"], ls=ls, lw=1, zorder=1,
+                                     label=f"{k}σ error ellipse{times}"))
+    sc = ax.scatter(x[same], y[same], c=sig[same], cmap="viridis", s=22, edgecolor="black",
+                    linewidth=0.3, zorder=3)
+    if same.any():
+        low = int(np.flatnonzero(same)[np.argmin(sig[same])])
+        ax.plot(x[low], y[low], marker="o", ms=9, mfc="none", mec=COLOURS["before"], mew=1.2,
+                ls="none", label="lowest measured point", zorder=4)
+    ax.figure.colorbar(sc, ax=ax, label=f"{name} at K = {k_final}"
+                       + (f" ({unit})" if unit else ""))
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=3, fontsize=7,
+              frameon=False)
     ax.set_aspect("equal", adjustable="datalim")
-    ax.set_xlabel("cancellation tone Re z (full scale)")
-    ax.set_ylabel("Im z (full scale)")
-    ax.set_title(f"null search: {sweep.attrs.get('aggressor')} → {victim} "
-                 f"(K = {k_final} aggressor pulses)")
+    ax.set_xlabel("cancellation tone Re z (fraction of full scale)")
+    ax.set_ylabel("Im z (fraction of full scale)")
+    where = f"{chip}: " if chip else ""
+    ax.set_title(f"{where}null search {sweep.attrs.get('aggressor')} → {victim}, {method} "
+                 f"(K = {k_final})", fontsize=10)
+    if ring_ax is not None:
+        _ring_panel(ring_ax, sweep, s, same, z_star, name, unit)
+        if method == "stark":
+            ring_ax.set_title(_STARK_NOTE, fontsize=6.5, loc="left", wrap=True)
     return ax
 
 
-def plot_residuals(result: CalibrationResult, truth: dict[tuple[str, str], complex], ax=None):
-    """Crosstalk before (|X|) and after compensation (|X + r|, against the truth) per pair."""
-    ax = ax or plt.subplots(figsize=(8.0, 4.2))[1]
-    rows = [(p, truth[(p.aggressor, p.victim)]) for p in result.pairs
-            if p.accepted and p.nulled and (p.aggressor, p.victim) in truth]
-    rows.sort(key=lambda r: -abs(r[1]))
-    before = [20 * math.log10(abs(t)) for _, t in rows]
-    after = [20 * math.log10(max(abs(t - p.x), 1e-12)) for p, t in rows]
-    k = np.arange(len(rows))
-    floor = -80.0  # bars grow up from this level so that dB values read as heights
-    ax.bar(k - 0.2, np.array(before) - floor, 0.4, bottom=floor, label="before: |X|",
-           color="#c44e52")
-    ax.bar(k + 0.2, np.array(after) - floor, 0.4, bottom=floor, label="after: |X + r| (true)",
-           color="#4c72b0")
-    ax.set_xticks(k, [f"{p.aggressor}→{p.victim}" for p, _ in rows], rotation=90, fontsize=7)
-    ax.set_ylim(-80, -15)
-    ax.axhline(-50, color="k", lw=0.8, ls=":", label="−50 dB")
-    ax.set_ylabel("crosstalk (dB)")
-    ax.set_title("nulled pairs: crosstalk before and residual after compensation")
-    ax.legend(fontsize=8, loc="upper right")
-    return ax
+def _ring_panel(ax, sweep, s, same, z_star, name, unit) -> None:
+    """The last ring's signal against the angle around the ring's centre (±1σ).
 
-
-def plot_verification(checks, calibration: CalibrationResult, *, truth=None, ax=None):
-    """Measured crosstalk before (|X|) and measured residual after, all compensation on.
-
-    ``checks`` are :class:`xtalkcal.drift.PairCheck` made right after the calibration;
-    ``truth`` maps (aggressor, victim) → true residual in dB (simulator only, markers).
+    A ring centred on the null reads flat; one off the null dips towards it.
     """
-    ax = ax or plt.subplots(figsize=(9.0, 4.2))[1]
-    rows = []
-    for c in checks:
-        p = calibration.pair(c.aggressor, c.victim)
-        if p.x is None:
-            continue
-        rows.append((p, c))
-    rows.sort(key=lambda r: -abs(r[0].x))
-    k = np.arange(len(rows))
-    floor = -80.0
-    before = np.array([20 * math.log10(abs(p.x)) for p, _ in rows])
-    after = np.array([max(c.outcome.residual_db, floor) for _, c in rows])
-    up = np.array([max(c.outcome.residual_upper_db, floor) for _, c in rows])
-    ax.bar(k - 0.2, before - floor, 0.4, bottom=floor, color="#c44e52",
-           label="before: |X| measured")
-    ax.bar(k + 0.2, after - floor, 0.4, bottom=floor, color="#4c72b0",
-           label="after: residual measured (all tones on)")
-    ax.errorbar(k + 0.2, after, yerr=[np.zeros_like(after), up - after], fmt="none",
-                ecolor="#223355", lw=0.8, capsize=1.5, label="2σ upper bound")
-    if truth:
-        tv = [truth.get((p.aggressor, p.victim)) for p, _ in rows]
-        ax.plot([kk + 0.2 for kk, t in zip(k, tv, strict=True) if t is not None],
-                [t for t in tv if t is not None], "k_", ms=7, label="true field, all tones on")
-    tol = checks[0].outcome.tolerance_db if checks else None
-    if tol is not None:
-        ax.axhline(tol, color="k", lw=0.8, ls=":", label=f"tolerance {tol:g} dB")
-    ax.set_xticks(k, [f"{p.aggressor}→{p.victim}" for p, _ in rows], rotation=90, fontsize=6)
-    ax.set_ylim(floor, -15)
-    ax.set_ylabel("crosstalk (dB)")
-    ax.set_title("verification: measured before and after compensation")
-    ax.legend(fontsize=7, loc="upper right", ncol=2)
-    return ax
-
-
-def plot_gate_errors(rb, ax=None):
-    """Error per gate per qubit: isolated, simultaneous without and with compensation."""
-    ax = ax or plt.subplots(figsize=(7.0, 4.0))[1]
-    ds = rb.to_dataset()
-    conds = list(ds.condition.values)
-    qubits = list(ds.qubit.values)
-    width = 0.8 / len(conds)
-    colors = {"isolated": "#55a868", "uncompensated": "#c44e52", "compensated": "#4c72b0"}
-    for j, c in enumerate(conds):
-        v = 1e4 * ds.error_per_gate.sel(condition=c).values
-        e = 1e4 * ds.error_per_gate_stderr.sel(condition=c).values
-        ax.bar(np.arange(len(qubits)) + (j - (len(conds) - 1) / 2) * width, v, width, yerr=e,
-               capsize=2, label=c if c == "isolated" else f"simultaneous, {c}",
-               color=colors.get(c))
-    ax.set_xticks(range(len(qubits)), qubits)
-    ax.set_ylabel("error per gate (10⁻⁴)")
-    ax.set_yscale("log")
-    ax.yaxis.set_minor_locator(mticker.LogLocator(subs=(2.0, 5.0)))
-    ax.yaxis.set_major_formatter(mticker.FormatStrFormatter("%g"))
-    ax.yaxis.set_minor_formatter(mticker.FormatStrFormatter("%g"))
-    ax.tick_params(axis="y", which="both", labelsize=8)
-    ax.set_title("simultaneous RB: error per gate, before and after compensation", fontsize=10)
-    ax.legend(fontsize=8)
-    return ax
-
-
-def plot_drift(samples, tolerance_db: float, *, pairs=None, axes=None):
-    """Residual of the compensation in use versus time, with re-checks and tolerance.
-
-    One panel per pair (default: the six pairs whose true residual came closest to the
-    tolerance, or with most re-checks when no truth is known).
-    """
-    by_pair: dict[tuple[str, str], list] = {}
-    for s in samples:
-        by_pair.setdefault((s.aggressor, s.victim), []).append(s)
-
-    def score(p):
-        ss = by_pair[p]
-        tr = [s.true_residual_db for s in ss if s.true_residual_db is not None]
-        return max(tr) if tr else sum(s.checked_residual_db is not None for s in ss)
-
-    chosen = list(pairs) if pairs else sorted(by_pair, key=score, reverse=True)[:6]
-    if axes is None:
-        fig, axes = plt.subplots(len(chosen), 1, figsize=(8.0, 1.6 * len(chosen) + 0.6),
-                                 sharex=True, squeeze=False)
-        axes = axes[:, 0]
-    marks = {"within": ("o", "#55a868"), "drifted": ("s", "#dd8452"), "broken": ("x", "#c44e52")}
-    for ax, p in zip(axes, chosen, strict=True):
-        ss = by_pair[p]
-        t = np.array([s.t_s for s in ss]) / 3600.0
-        tr = [s.true_residual_db for s in ss]
-        if any(v is not None for v in tr):
-            ax.plot(t, [np.nan if v is None else v for v in tr], color="0.3", lw=1,
-                    label="true residual")
-        for dec, (m, col) in marks.items():
-            pts = [(s.t_s / 3600.0, s.checked_residual_db) for s in ss if s.decision == dec]
-            if pts:
-                ax.plot(*zip(*pts, strict=True), m, color=col, ms=4, ls="none",
-                        label=f"re-check: {dec}")
-        ax.axhspan(tolerance_db, 0, color="#c44e52", alpha=0.08)
-        ax.axhline(tolerance_db, color="#c44e52", lw=0.8, ls="--")
-        ax.set_ylim(-90, -25)
-        ax.set_ylabel("dB", fontsize=8)
-        ax.text(0.01, 0.85, f"{p[0]} → {p[1]}", transform=ax.transAxes, fontsize=8)
-    # one legend for every kind of mark drawn in any panel
-    handles: dict[str, Any] = {}
-    for ax in axes:
-        for h, lab in zip(*ax.get_legend_handles_labels(), strict=True):
-            handles.setdefault(lab, h)
-    axes[0].legend(list(handles.values()), list(handles), fontsize=7, loc="upper right",
-                   ncol=4)
-    axes[-1].set_xlabel("time since calibration (h)")
-    axes[0].set_title(f"drift watch: residual of the compensation in use "
-                      f"(tolerance {tolerance_db:g} dB shaded above)")
-    return axes
+    idx = _last_ring(sweep, same)
+    z = s.z_re.values[idx] + 1j * s.z_im.values[idx]
+    if len(z):
+        # the ring's own points: not a point repeated at its centre
+        r = np.abs(z - z.mean())
+        keep = r > 0.5 * r.max()
+        idx, z = idx[keep], z[keep]
+    if len(idx) < 3:
+        ax.set_axis_off()
+        return
+    centre = z.mean()
+    radius = float(np.abs(z - centre).mean())
+    ang = np.degrees(np.angle(z - centre))
+    order = np.argsort(ang)
+    ax.errorbar(ang[order], s.signal.values[idx][order], yerr=s.stderr.values[idx][order],
+                fmt="o-", ms=3, lw=0.8, capsize=1.5, color=COLOURS["after"],
+                label=f"last ring, radius {radius:.3g} (flat when centred on the null)")
+    if z_star is not None and abs(z_star - centre) > 0.1 * radius:
+        ax.axvline(math.degrees(cmath.phase(z_star - centre)), color=COLOURS["null"], lw=1,
+                   ls="--", label="direction of the fitted null")
+    ax.set_xlim(-180, 180)
+    ax.set_xticks([-180, -90, 0, 90, 180])
+    ax.set_xlabel("angle around the last ring's centre (deg)")
+    ax.set_ylabel(name + (f" ({unit})" if unit else ""), fontsize=8)
+    ax.legend(fontsize=7, loc="best")

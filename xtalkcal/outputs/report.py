@@ -1,21 +1,37 @@
-"""A report folder: PNG figures, the matrix JSON, Markdown and a self-contained HTML page."""
+"""A report folder: PNG figures, the matrix JSON, Markdown and a self-contained HTML page.
+
+The Markdown is the report; the HTML page is that Markdown rendered by Python-Markdown (with
+its ``tables`` and ``fenced_code`` extensions) and the figures embedded as data URIs, so the
+page opens anywhere with no folder beside it. Sections follow the job: calibration,
+settings, verification, gates, drift; then where the numbers come from and the drive limits.
+"""
 
 from __future__ import annotations
 
 import base64
+import datetime as dt
 import html
 import math
+import os
+import tempfile
 from pathlib import Path
 
+import markdown
 import matplotlib.pyplot as plt
 import numpy as np
 
 import xtalkcal.outputs.plot as plots
+import xtalkcal.outputs.plot_results as result_plots
 from xtalkcal.calibrate import CalibrationResult
 from xtalkcal.hardware import limits_summary
 from xtalkcal.outputs.export import dumps, format_table
 
-__all__ = ["write_report"]
+__all__ = ["write_report", "render_html"]
+
+_STYLE = ("body{font-family:sans-serif;max-width:960px;margin:auto;padding:0 1em;"
+          "line-height:1.4}pre{background:#f6f6f6;padding:.6em;overflow-x:auto;"
+          "font-size:12px}table{border-collapse:collapse}td,th{border:1px solid #ccc;"
+          "padding:2px 6px;text-align:left}img{max-width:100%}")
 
 
 def _save(ax, path: Path) -> str:
@@ -26,106 +42,148 @@ def _save(ax, path: Path) -> str:
     return path.name
 
 
+def _figure(title: str, name: str) -> list[str]:
+    return [f"### {title}", "", f"![{title}]({name})", ""]
+
+
+def _code(text: str) -> list[str]:
+    return ["```text", text, "```", ""]
+
+
+def _write_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` through a temporary file and a rename: never half-written."""
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def render_html(md_text: str, folder: Path, title: str) -> str:
+    """The HTML page of a report's Markdown, its figures (files in ``folder``) embedded."""
+    body = markdown.markdown(md_text, extensions=["tables", "fenced_code"],
+                             output_format="html")
+    for name in sorted({p.name for p in folder.glob("*.png")}):
+        data = base64.b64encode((folder / name).read_bytes()).decode()
+        body = body.replace(f'src="{name}"', f'src="data:image/png;base64,{data}"')
+    return ("<!doctype html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head>\n"
+            f"<body>\n{body}\n</body></html>\n")
+
+
 def write_report(result: CalibrationResult, out: str | Path, *,
                  truth: dict[tuple[str, str], complex] | None = None,
                  campaign=None, about: list[str] | None = None, played=None,
                  figures: list[tuple[str, str, object]] | None = None) -> Path:
     """Write the report folder; returns the path of ``report.md``.
 
-    ``truth`` (simulated devices only) adds the true residual |X + r| per pair;
-    ``campaign`` (a :class:`xtalkcal.campaign.CampaignResult`) adds verification,
-    gate errors and the drift watch; ``about`` adds lines to the summary (where the
-    numbers come from); ``played`` (residuals of :func:`xtalkcal.outputs.verify_settings`)
-    adds the verification of the written settings as the control stack plays them;
-    ``figures`` adds (title, file name, Axes) figures made by the caller.
+    ``truth`` (simulated devices only) adds the true residual per pair; ``campaign`` (a
+    :class:`xtalkcal.campaign.CampaignResult`) adds settings, verification, gate errors and
+    the drift watch; ``about`` adds lines on where the numbers come from; ``played``
+    (residuals of :func:`xtalkcal.outputs.verify_settings`) adds the verification of the
+    written settings as the control stack plays them; ``figures`` adds (title, file name,
+    Axes) figures made by the caller, at the end of the calibration section.
     """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    figs: list[tuple[str, str]] = []
-    figs.append(("Crosstalk magnitude", _save(plots.plot_matrix_db(result), out / "matrix_db.png")))
-    figs.append(("Crosstalk phase",
-                 _save(plots.plot_matrix_phase(result), out / "matrix_phase.png")))
-    nulled = [p for p in result.pairs if p.accepted and p.nulled]
-    leak = [p for p in nulled if p.method == "leakage"]
-    for p in (leak or nulled)[:1] + sorted(nulled, key=lambda p: -abs(p.x))[:1]:
-        sweep = result.sweeps[p.sweep_id]
-        amp = sweep.attrs["aggressor_amplitude"]
-        name = f"null_{p.aggressor}_{p.victim}.png"
-        if any(f[1] == name for f in figs):
-            continue
-        ax = plots.plot_null_landscape(sweep, p.victim, z_star=-p.x * amp, cov=p.x_cov * amp**2)
-        figs.append((f"Null search {p.aggressor} → {p.victim} ({p.method})", _save(ax, out / name)))
-    worst = None
-    if truth:
-        ax = plots.plot_residuals(result, truth)
-        figs.append(("Residuals", _save(ax, out / "residuals.png")))
-        res = [20 * math.log10(abs(truth[(p.aggressor, p.victim)] - p.x)) for p in nulled]
-        worst = max(res) if res else None
-    for title, name, ax in figures or ():
-        if ax is not None:
-            figs.append((title, _save(ax, out / name)))
-    extra: list[str] = []
+    chip = result.chip
+    lines = [f"# Crosstalk calibration of {chip.name}", ""]
+    lines += _calibration_section(result, out, truth, campaign, about, figures)
+    played = played or (getattr(campaign, "played", None) if campaign is not None else None)
     if campaign is not None:
-        extra += _campaign_sections(campaign, out, figs, truth)
-    (out / "matrix.json").write_text(dumps(result) + "\n")
+        lines += _settings_section(campaign)
+    if (campaign is not None and campaign.verification) or played:
+        lines += _verification_section(campaign, out, truth, played)
+    if campaign is not None and campaign.rb is not None:
+        lines += _gates_section(campaign, out)
+    if campaign is not None and campaign.drift:
+        lines += _drift_section(campaign, out)
+    lines += _provenance_section(result)
+    _write_text(out / "matrix.json", dumps(result) + "\n")
+    md_text = "\n".join(lines)
+    md = out / "report.md"
+    _write_text(md, md_text)
+    _write_text(out / "report.html",
+                render_html(md_text, out, f"xtalkcal report: {chip.name}"))
+    return md
+
+
+def _calibration_section(result, out, truth, campaign, about, figures) -> list[str]:
+    nulled = [p for p in result.pairs if p.accepted and p.nulled]
     n_acc = sum(p.accepted for p in result.pairs)
     lines = [
-        f"# Crosstalk calibration of {result.chip.name}",
-        "",
+        "## Calibration", "",
         f"- rig: `{result.rig_description}`",
-        f"- protocol: `{result.protocol.name}`; "
-        f"threshold {result.protocol.survey.threshold_db:g} dB",
+        f"- protocol: `{result.protocol.name}`; survey threshold "
+        f"{result.protocol.survey.threshold_db:g} dB, target residual "
+        f"{result.protocol.null.target_residual_db:g} dB",
         f"- pairs: {len(result.pairs)} ({n_acc} measured, {len(nulled)} nulled)",
         f"- calibration: {result.shots:,} shots"
         + (f", {result.rig_seconds:.1f} s of rig time" if math.isfinite(result.rig_seconds)
            else ""),
     ]
     lines += [f"- {a}" for a in about or ()]
-    if worst is not None:
-        lines.append(f"- worst true residual of a nulled pair: {worst:.1f} dB")
-    lines += extra
-    played = played or (getattr(campaign, "played", None) if campaign is not None else None)
-    for note in getattr(campaign, "settings_notes", None) or ():
-        lines.append(f"- settings: {note}")
-    if played:
-        lines += _played_section(played)
-    lines += ["", "## Drive limits in force", "", "- " + limits_summary(result.chip)]
-    lines += [f"- line {ln.name} ({ln.qubit}): peak ≤ {result.chip.amplitude_limit(ln.name):g}"
-              + (f", full scale {ln.full_scale_dbm:g} dBm" if ln.full_scale_dbm is not None
-                 else "") for ln in result.chip.lines]
-    lines += ["", "## Matrix", "", "```", format_table(result), "```", ""]
-    for title, name in figs:
-        lines += [f"## {title}", "", f"![{title}]({name})", ""]
-    md = out / "report.md"
-    md.write_text("\n".join(lines))
-    body = []
-    for ln in lines:
-        if ln.startswith("!["):
-            name = ln[ln.index("](") + 2 : -1]
-            data = base64.b64encode((out / name).read_bytes()).decode()
-            body.append(f'<img src="data:image/png;base64,{data}" style="max-width:100%">')
-        elif ln.startswith("# "):
-            body.append(f"<h1>{html.escape(ln[2:])}</h1>")
-        elif ln.startswith("## "):
-            body.append(f"<h2>{html.escape(ln[3:])}</h2>")
-        elif ln.startswith("- "):
-            body.append(f"<li>{html.escape(ln[2:])}</li>")
-        elif ln != "```":
-            body.append(html.escape(ln) + "<br>" if ln else "")
-    table = html.escape(format_table(result))
-    page = "\n".join(body).replace(html.escape(format_table(result).split("\n")[0]) + "<br>",
-                                   "", 1)
-    page = page.replace("<h2>Matrix</h2>", f"<h2>Matrix</h2><pre>{table}</pre>", 1)
-    (out / "report.html").write_text(
-        "<!doctype html><meta charset='utf-8'><title>xtalkcal report</title>"
-        "<body style='font-family:sans-serif;max-width:900px;margin:auto'>" + page + "</body>")
-    return md
+    if campaign is not None and campaign.shots:
+        lines.append("- shots by step: " + ", ".join(f"{k} {v:,}"
+                                                     for k, v in campaign.shots.items()))
+    if truth and nulled:
+        res = [20 * math.log10(max(abs(truth[(p.aggressor, p.victim)] - p.x), 1e-15))
+               for p in nulled]
+        lines.append(f"- worst true residual of a nulled pair (simulator's truth): "
+                     f"{max(res):.1f} dB")
+    lines += ["", "### Matrix", ""] + _code(format_table(result))
+    lines += _figure("Crosstalk magnitude",
+                     _save(plots.plot_matrix_db(result), out / "matrix_db.png"))
+    lines += _figure("Crosstalk phase",
+                     _save(plots.plot_matrix_phase(result), out / "matrix_phase.png"))
+    leak = [p for p in nulled if p.method == "leakage"]
+    shown: set[str] = set()
+    for p in (leak or nulled)[:1] + sorted(nulled, key=lambda p: -abs(p.x))[:1]:
+        name = f"null_{p.aggressor}_{p.victim}.png"
+        if name in shown:
+            continue
+        shown.add(name)
+        sweep = result.sweeps[p.sweep_id]
+        amp = sweep.attrs["aggressor_amplitude"]
+        ax = plots.plot_null_landscape(sweep, p.victim, z_star=-p.x * amp,
+                                       cov=p.x_cov * amp**2, chip=result.chip.name)
+        lines += _figure(f"Null search {p.aggressor} → {p.victim} ({p.method})",
+                         _save(ax, out / name))
+    if truth:
+        after = getattr(campaign, "all_on_pair_db", None) or None
+        label = ("after: true field, every tone of the written settings on" if after
+                 else "after: |X + r| (true), r = −X measured")
+        ax = result_plots.plot_residuals(result, truth, after_db=after, after_label=label)
+        lines += _figure("Residuals", _save(ax, out / "residuals.png"))
+    for title, name, ax in figures or ():
+        if ax is not None:
+            lines += _figure(title, _save(ax, out / name))
+    return lines
 
 
-def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) -> list[str]:
-    """Summary lines for the verification, benchmarking and drift parts (adds figures)."""
-    lines: list[str] = []
-    if campaign.verification:
+def _settings_section(campaign) -> list[str]:
+    lines = ["## Settings", ""]
+    ref = getattr(campaign, "refinement", None)
+    if ref is not None and ref.results:
+        lines.append(f"- closed-loop refinement: {len(ref.results)} round(s), largest setting "
+                     "move " + ", ".join(f"{m:.1f} σ" for m in ref.moves)
+                     + ("; converged" if ref.converged else "; stopped at the round limit"))
+    if campaign.all_on_db:
+        lines.append("- worst true field at a victim with all of its aggressor's tones on "
+                     "(simulator's truth): " + ", ".join(f"{k} {v:.1f} dB"
+                                                         for k, v in campaign.all_on_db.items()))
+    lines += [f"- {note}" for note in getattr(campaign, "settings_notes", None) or ()]
+    n = len(campaign.settings.pairs) if getattr(campaign, "settings", None) else 0
+    lines += [f"- {n} cancellation settings written (settings.json, settings.csv)", ""]
+    return lines
+
+
+def _verification_section(campaign, out, truth, played) -> list[str]:
+    lines = ["## Verification", ""]
+    if campaign is not None and campaign.verification:
         true_after = None
         if getattr(campaign, "all_on_pair_db", None):
             # the true field with every tone of the settings on (what they are for)
@@ -138,63 +196,68 @@ def _campaign_sections(campaign, out: Path, figs: list[tuple[str, str]], truth) 
                 if r is not None:
                     true_after[(c.aggressor, c.victim)] = 20 * math.log10(
                         max(abs(truth[(c.aggressor, c.victim)] + r), 1e-12))
-        ax = plots.plot_verification(campaign.verification, campaign.calibration,
-                                     truth=true_after)
-        figs.append(("Verification", _save(ax, out / "verification.png")))
         n_in = sum(c.outcome.decision.value == "within" for c in campaign.verification)
         n_sure = sum(c.outcome.decision.value == "within" and c.outcome.confident
                      for c in campaign.verification)
         worst = max(campaign.verification, key=lambda c: c.outcome.residual_upper_db)
-        lines.append(
+        lines += [
             f"- verification (each pair's residual |X − X_stored| re-measured with all tones "
             f"on, the known leaks of the other tones taken out): {n_in} of "
             f"{len(campaign.verification)} compensated pairs within {campaign.tolerance_db:g} dB"
             f" ({n_sure} beyond doubt); the least certain is {worst.aggressor} → "
             f"{worst.victim}, {worst.outcome.residual_db:.1f} dB with an upper bound of "
-            f"{worst.outcome.residual_upper_db:.1f} dB")
-    if campaign.rb is not None:
-        ax = plots.plot_gate_errors(campaign.rb)
-        figs.append(("Gate errors", _save(ax, out / "gate_errors.png")))
-        lines += ["", "## Simultaneous randomized benchmarking", ""]
-        if campaign.trims:
-            lines += ["Own drive of each qubit with compensation on (the cancellation tones "
-                      "at its frequency reach it too), measured by amplitude amplification "
-                      "and divided out before benchmarking: "
-                      + ", ".join(f"{q} {100 * t.change:+.2f} % ± {100 * t.stderr:.2f} %"
-                                  for q, t in campaign.trims.items()) + ".", ""]
-        lines += ["```", campaign.rb.table(), "```"]
-    if campaign.drift:
-        axes = plots.plot_drift(campaign.drift, campaign.tolerance_db)
-        figs.append(("Drift watch", _save(axes[0], out / "drift.png")))
-        tr = [s.true_residual_db for s in campaign.drift if s.true_residual_db is not None]
-        acts = ", ".join(f"{v} {k}" for k, v in campaign.drift_actions.items())
-        line = f"- drift watch: {acts}"
-        if tr:
-            within = np.mean(np.array(tr) <= campaign.tolerance_db)
-            line += (f"; true residual within tolerance {100 * within:.1f} % of "
-                     f"(pair, time) samples")
-        lines.insert(0, line)
-    ref = getattr(campaign, "refinement", None)
-    if ref is not None and ref.results:
-        line = (f"- closed-loop refinement: {len(ref.results)} round(s), largest setting move "
-                + ", ".join(f"{m:.1f} σ" for m in ref.moves)
-                + ("; converged" if ref.converged else "; stopped at the round limit"))
-        if campaign.all_on_db:
-            line += ("; worst true field at a victim with all of its aggressor's tones on: "
-                     + ", ".join(f"{k} {v:.1f} dB" for k, v in campaign.all_on_db.items()))
-        lines.insert(0, line)
-    if campaign.shots:
-        lines.insert(0, "- shots by step: " + ", ".join(f"{k} {v:,}"
-                                                       for k, v in campaign.shots.items()))
+            f"{worst.outcome.residual_upper_db:.1f} dB", ""]
+        ax = result_plots.plot_verification(campaign.verification, campaign.calibration,
+                                            truth=true_after)
+        lines += _figure("Verification", _save(ax, out / "verification.png"))
+    if played:
+        n_in = sum(r.within for r in played)
+        lines += ["### Verification of the written settings, played as the control stack "
+                  "plays them", "",
+                  f"Each pair re-nulled with the settings played by the applicator: the "
+                  f"residual w = X + r + Σ X_ik·r_k as measured, ± its standard error. "
+                  f"{n_in} of {len(played)} pairs within {played[0].tolerance_db:g} dB "
+                  f"beyond doubt (99 % bound).", ""]
+        lines += _code("\n".join(r.line() for r in played))
     return lines
 
 
-def _played_section(played) -> list[str]:
-    """The written settings played as the control stack plays them: each pair's residual."""
-    n_in = sum(r.within for r in played)
-    tol = played[0].tolerance_db
-    return ["", "## Verification of the written settings", "",
-            f"Each pair re-nulled with the settings played by the applicator: the residual "
-            f"w = X + r + Σ X_ik·r_k as measured, ± its standard error. {n_in} of "
-            f"{len(played)} pairs within {tol:g} dB beyond doubt (99 % bound).", "", "```"]\
-        + [r.line() for r in played] + ["```"]
+def _gates_section(campaign, out) -> list[str]:
+    lines = ["## Simultaneous randomized benchmarking", ""]
+    if campaign.trims:
+        lines += ["Own drive of each qubit with compensation on (the cancellation tones at "
+                  "its frequency reach it too), measured by amplitude amplification and "
+                  "divided out before benchmarking: "
+                  + ", ".join(f"{q} {100 * t.change:+.2f} % ± {100 * t.stderr:.2f} %"
+                              for q, t in campaign.trims.items()) + ".", ""]
+    lines += _code(campaign.rb.table())
+    ax = result_plots.plot_gate_errors(campaign.rb, chip=campaign.calibration.chip.name)
+    return lines + _figure("Gate errors", _save(ax, out / "gate_errors.png"))
+
+
+def _drift_section(campaign, out) -> list[str]:
+    acts = ", ".join(f"{v} {k}" for k, v in campaign.drift_actions.items())
+    line = f"- drift watch: {acts}"
+    tr = [s.true_residual_db for s in campaign.drift if s.true_residual_db is not None]
+    if tr:
+        within = np.mean(np.array(tr) <= campaign.tolerance_db)
+        line += (f"; true residual within tolerance {100 * within:.1f} % of (pair, time) "
+                 f"samples (simulator's truth)")
+    axes = result_plots.plot_drift(campaign.drift, campaign.tolerance_db,
+                                   chip=campaign.calibration.chip.name)
+    return ["## Drift watch", "", line, ""] + _figure("Drift watch",
+                                                      _save(axes[0], out / "drift.png"))
+
+
+def _provenance_section(result: CalibrationResult) -> list[str]:
+    chip = result.chip
+    now = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    lines = ["## About this report", "",
+             f"- written: {now}",
+             f"- protocol file: `{result.protocol.source}`",
+             f"- chip file: `{chip.source}`", "",
+             "## Drive limits in force", "", "- " + limits_summary(chip)]
+    lines += [f"- line {ln.name} ({ln.qubit}): peak ≤ {chip.amplitude_limit(ln.name):g}"
+              + (f", full scale {ln.full_scale_dbm:g} dBm" if ln.full_scale_dbm is not None
+                 else "") for ln in chip.lines]
+    return lines + [""]

@@ -92,7 +92,7 @@ class SimultaneousRBReport:
         conds = list(self.comparisons[0].simultaneous)
         head = f"{'qubit':6s} {'isolated':>16s}" + "".join(f" {c:>16s} {'ratio':>11s}"
                                                           for c in conds)
-        lines = ["error per gate (1e-4), ± stderr; ratio = simultaneous/isolated, ± a paired "
+        lines = ["error per gate (×10⁻⁴), ± stderr; ratio = simultaneous/isolated, ± a paired "
                  "bootstrap over the shared sequences (their variance largely cancels)", head]
         for c in self.comparisons:
             iso = c.isolated
