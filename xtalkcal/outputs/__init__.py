@@ -35,6 +35,7 @@ from xtalkcal.outputs.played import (
 from xtalkcal.outputs.plot import (
     aggressor_frequencies,
     matrix_axes,
+    neighbourhood_order,
     plot_matrix_db,
     plot_matrix_phase,
     plot_null_landscape,
@@ -80,6 +81,7 @@ __all__ = [
     "COLOURS",
     "aggressor_frequencies",
     "matrix_axes",
+    "neighbourhood_order",
     "plot_drift",
     "plot_gate_errors",
     "plot_matrix_db",

@@ -146,11 +146,16 @@ def unsettled_pairs(result: CalibrationResult) -> tuple[list[str], list[str]]:
     return failures, warnings
 
 
-def format_table(result: CalibrationResult) -> str:
+def format_table(result: CalibrationResult, *, limit: int | None = None,
+                 rest: str = "matrix.txt") -> str:
     """A compact text table: one line per pair, strongest first.
 
-    A nulled pair whose error bound exceeds the target is marked ``nulled*``.
+    A nulled pair whose error bound exceeds the target is marked ``nulled*``. With
+    ``limit``, only the ``limit`` strongest rows are given, and a last line says how many
+    more there are and where they are (``rest``).
     """
+    wl = max([4] + [len(p.aggressor) for p in result.pairs])
+    wv = max([6] + [len(p.victim) for p in result.pairs])
     rows = []
     for p in result.pairs:
         if p.accepted:
@@ -158,13 +163,16 @@ def format_table(result: CalibrationResult) -> str:
             stage = "nulled" if p.nulled else "survey"
             if _nulled_above_target(result, p) is not None:
                 stage = "nulled* (error above target)"
-            rows.append((p.magnitude_db, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
-                         f"{p.magnitude_db:7.1f} dB {phase:7.1f}° "
+            rows.append((p.magnitude_db, f"{p.aggressor:>{wl}} → {p.victim:<{wv}} "
+                         f"{p.method:<9} {p.magnitude_db:7.1f} dB {phase:7.1f}° "
                          f"{20 * math.log10(p.stderr):7.1f} dB  {stage}"))
         else:
-            rows.append((-999, f"{p.aggressor:>6} → {p.victim:<6} {p.method:<9} "
+            rows.append((-999, f"{p.aggressor:>{wl}} → {p.victim:<{wv}} {p.method:<9} "
                          f"{'rejected: ' + p.reason:>28}"))
     rows.sort(key=lambda r: -r[0])
-    head = (f"{'line':>6}   {'victim':<6} {'method':<9} {'|X|':>10} {'arg X':>8} "
+    head = (f"{'line':>{wl}}   {'victim':<{wv}} {'method':<9} {'|X|':>10} {'arg X':>8} "
             f"{'σ of X':>10}  stage")
-    return "\n".join([head] + [r[1] for r in rows])
+    body = [r[1] for r in rows]
+    if limit is not None and len(body) > limit:
+        body = body[:limit] + [f"… and {len(rows) - limit} more pairs in {rest}"]
+    return "\n".join([head] + body)

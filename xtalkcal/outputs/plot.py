@@ -16,19 +16,58 @@ from matplotlib.patches import Ellipse, Patch, Rectangle
 from xtalkcal.calibrate import CalibrationResult
 from xtalkcal.outputs.palette import COLOURS
 
-__all__ = ["aggressor_frequencies", "matrix_axes", "plot_matrix_db", "plot_matrix_phase",
-           "plot_null_landscape"]
+__all__ = ["SMALL_MATRIX", "aggressor_frequencies", "matrix_axes", "neighbourhood_order",
+           "plot_matrix_db", "plot_matrix_phase", "plot_null_landscape"]
+
+
+# Up to this many qubits a heat map labels every cell and gives every aggressor's frequency;
+# beyond it the qubits are ordered by neighbourhood and the cells carry colour only.
+SMALL_MATRIX = 16
+
+
+def neighbourhood_order(result: CalibrationResult) -> list[str]:
+    """The chip's qubits ordered so that strongly coupled ones sit near each other.
+
+    Reverse Cuthill–McKee (SciPy's ``reverse_cuthill_mckee``) on the graph whose edges are
+    the measured pairs above the survey threshold, taken both ways: the heat map of a large
+    chip then gathers its crosstalk near the diagonal, neighbourhood by neighbourhood.
+    """
+    from scipy.sparse import csr_matrix
+    from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+    chip = result.chip
+    names = list(chip.qubit_names)
+    index = {q: i for i, q in enumerate(names)}
+    threshold = result.protocol.survey.threshold_db
+    rows, cols = [], []
+    for p in result.pairs:
+        own = chip.line(p.aggressor).qubit
+        if p.accepted and p.x is not None and p.magnitude_db >= threshold and own in index:
+            rows += [index[p.victim], index[own]]
+            cols += [index[own], index[p.victim]]
+    graph = csr_matrix((np.ones(len(rows)), (rows, cols)), shape=(len(names), len(names)))
+    return [names[i] for i in reverse_cuthill_mckee(graph, symmetric_mode=True)]
 
 
 def matrix_axes(result: CalibrationResult) -> tuple[list[str], list[str], np.ndarray]:
-    """(victims, lines, X) with X[victim, line] complex, NaN where unknown."""
+    """(victims, lines, X) with X[victim, line] complex, NaN where unknown.
+
+    On a chip of more than :data:`SMALL_MATRIX` qubits the victims are in
+    :func:`neighbourhood_order` and each line sits where its own qubit does.
+    """
     chip = result.chip
     victims = list(chip.qubit_names)
     lines = list(chip.line_names)
+    if len(victims) > SMALL_MATRIX:
+        victims = neighbourhood_order(result)
+        rank = {q: i for i, q in enumerate(victims)}
+        lines.sort(key=lambda ln: rank.get(chip.line(ln).qubit, len(rank)))
+    vi = {q: i for i, q in enumerate(victims)}
+    li = {ln: j for j, ln in enumerate(lines)}
     X = np.full((len(victims), len(lines)), np.nan + 0j)
     for p in result.pairs:
         if p.accepted and p.x is not None:
-            X[victims.index(p.victim), lines.index(p.aggressor)] = p.x
+            X[vi[p.victim], li[p.aggressor]] = p.x
     return victims, lines, X
 
 
@@ -57,12 +96,14 @@ _EMPTY_EDGE = "0.8"
 def _cell_kinds(result: CalibrationResult, victims: list[str], lines: list[str]) -> np.ndarray:
     """Per (victim, line) cell: "value" (nulled), _SURVEY, _REJECTED, _OWN or _UNMEASURED."""
     kinds = np.full((len(victims), len(lines)), _UNMEASURED, dtype=object)
+    vi = {q: i for i, q in enumerate(victims)}
+    li = {ln: j for j, ln in enumerate(lines)}
     for j, ln in enumerate(lines):
         own = result.chip.line(ln).qubit
-        if own in victims:
-            kinds[victims.index(own), j] = _OWN
+        if own in vi:
+            kinds[vi[own], j] = _OWN
     for p in result.pairs:
-        i, j = victims.index(p.victim), lines.index(p.aggressor)
+        i, j = vi[p.victim], li[p.aggressor]
         if p.accepted and p.x is not None:
             kinds[i, j] = "value" if p.nulled else _SURVEY
         else:
@@ -154,33 +195,90 @@ def _grid(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, fmt, *, freq
     return ax
 
 
+def _grid_large(ax, victims, lines, data, kinds, cmap, vmin, vmax, label, *, marks=()):
+    """A heat map of a large chip: colour only, kinds as overlays, thinned tick labels."""
+    cmap = plt.get_cmap(cmap)
+    norm = mcolors.Normalize(vmin, vmax)
+    im = ax.imshow(data, cmap=cmap, norm=norm, origin="upper", interpolation="nearest")
+    # own-line and rejected cells as one overlay image each, not one patch per cell
+    overlay = np.zeros(data.shape + (4,))
+    overlay[kinds == _OWN] = mcolors.to_rgba(_OWN_FILL)
+    overlay[kinds == _REJECTED] = mcolors.to_rgba(COLOURS["broken"])
+    ax.imshow(overlay, origin="upper", interpolation="nearest")
+    si, sj = np.nonzero(kinds == _SURVEY)
+    if len(si):
+        ax.scatter(sj, si, s=2, color="white", marker=".", linewidths=0)
+    step = max(1, math.ceil(max(len(victims), len(lines)) / 40))
+    ax.set_xticks(range(0, len(lines), step), lines[::step], rotation=90, fontsize=6)
+    ax.set_yticks(range(0, len(victims), step), victims[::step], fontsize=6)
+    ax.set_xlabel("aggressor line (placed with its own qubit)"
+                  + (f"; one name in {step}" if step > 1 else ""))
+    ax.set_ylabel("victim qubit (ordered by neighbourhood)")
+    if marks:
+        label += "\n" + "; ".join(f"line across the bar: {text}" for _, text in marks)
+    bar = ax.figure.colorbar(im, ax=ax, label=label, shrink=0.8)
+    for value, _ in marks:
+        bar.ax.axhline(value, color="black", lw=2.0)
+        bar.ax.axhline(value, color="white", lw=0.8)
+    present = set(kinds.ravel())
+    handles = [Patch(facecolor=f, label=_KEY_LABELS[k]) for k, f in
+               ((_OWN, _OWN_FILL), (_REJECTED, COLOURS["broken"])) if k in present]
+    if _SURVEY in present:
+        handles.append(Patch(facecolor="black", edgecolor="white", hatch="..",
+                             label="white dot: " + _KEY_LABELS[_SURVEY]))
+    if _UNMEASURED in present:
+        handles.append(Patch(facecolor="white", edgecolor=_EMPTY_EDGE,
+                             label=_KEY_LABELS[_UNMEASURED]))
+    if handles:
+        ax.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, -0.12), ncol=2,
+                  fontsize=7, frameon=False)
+    return ax
+
+
+def _matrix_figure(result: CalibrationResult, ax):
+    n = len(result.chip.qubit_names)
+    if ax is not None:
+        return ax
+    if n <= SMALL_MATRIX:
+        return plt.subplots(figsize=(6.4, 5.8))[1]
+    side = min(4.0 + 0.09 * n, 20.0)  # cells stay visible; labels keep their size
+    return plt.subplots(figsize=(side + 1.6, side + 1.0))[1]
+
+
 def plot_matrix_db(result: CalibrationResult, ax=None):
     """Heat map of |X_ij| in dB, with a key for the cells that carry no plain value.
 
     Own-line cells are hatched grey, rejected pairs cross-hatched, pairs known only from
     the survey (not nulled) framed with a dotted line, unmeasured cells left white.
     """
-    ax = ax or plt.subplots(figsize=(6.4, 5.8))[1]
+    ax = _matrix_figure(result, ax)
     victims, lines, X = matrix_axes(result)
     with np.errstate(divide="ignore"):
         db = 20 * np.log10(np.abs(X))
     threshold = result.protocol.survey.threshold_db
-    _grid(ax, victims, lines, db, _cell_kinds(result, victims, lines), "magma", -55, -20,
-          "|X| (dB re the victim's own line)", lambda v: f"{v:.0f}",
-          freqs=aggressor_frequencies(result, lines),
-          marks=[(threshold, f"survey threshold {threshold:g} dB")]
-          if -55 < threshold < -20 else [])
+    marks = [(threshold, f"survey threshold {threshold:g} dB")] if -55 < threshold < -20 else []
+    kinds = _cell_kinds(result, victims, lines)
+    label = "|X| (dB re the victim's own line)"
+    if len(victims) > SMALL_MATRIX:
+        _grid_large(ax, victims, lines, db, kinds, "magma", -55, -20, label, marks=marks)
+    else:
+        _grid(ax, victims, lines, db, kinds, "magma", -55, -20, label, lambda v: f"{v:.0f}",
+              freqs=aggressor_frequencies(result, lines), marks=marks)
     ax.set_title(f"{result.chip.name}: crosstalk magnitude |X|", fontsize=10)
     return ax
 
 
 def plot_matrix_phase(result: CalibrationResult, ax=None):
     """Heat map of arg X_ij in degrees, cells marked as in :func:`plot_matrix_db`."""
-    ax = ax or plt.subplots(figsize=(6.4, 5.8))[1]
+    ax = _matrix_figure(result, ax)
     victims, lines, X = matrix_axes(result)
     ph = np.degrees(np.angle(X))
-    _grid(ax, victims, lines, ph, _cell_kinds(result, victims, lines), "twilight", -180, 180,
-          "arg X (deg)", lambda v: f"{v:.0f}", freqs=aggressor_frequencies(result, lines))
+    kinds = _cell_kinds(result, victims, lines)
+    if len(victims) > SMALL_MATRIX:
+        _grid_large(ax, victims, lines, ph, kinds, "twilight", -180, 180, "arg X (deg)")
+    else:
+        _grid(ax, victims, lines, ph, kinds, "twilight", -180, 180, "arg X (deg)",
+              lambda v: f"{v:.0f}", freqs=aggressor_frequencies(result, lines))
     ax.set_title(f"{result.chip.name}: crosstalk phase arg X", fontsize=10)
     return ax
 

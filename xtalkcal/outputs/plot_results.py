@@ -18,7 +18,7 @@ import numpy as np
 from xtalkcal.calibrate import CalibrationResult
 from xtalkcal.outputs.palette import COLOURS
 
-__all__ = ["plot_residuals", "plot_verification", "plot_gate_errors", "plot_drift"]
+__all__ = ["MANY_PAIRS", "plot_residuals", "plot_verification", "plot_gate_errors", "plot_drift"]
 
 _DB_FLOOR = -120.0  # residuals below this are drawn at it (|X + r| = 0 has no dB value)
 
@@ -27,9 +27,31 @@ def _db(value: float) -> float:
     return max(20 * math.log10(max(value, 1e-300)), _DB_FLOOR)
 
 
+# Beyond this many pairs a figure plots "after" against "before", one point per pair, and
+# names only the worst few: a label per pair would shrink to nothing.
+MANY_PAIRS = 60
+
+
+def _scatter(ax, before: np.ndarray, after: np.ndarray, labels: list[str], *,
+             before_label: str, after_label: str) -> np.ndarray:
+    """Many pairs: "after" against "before", the five worst "after" named."""
+    ax.plot(before, after, "s", ms=3, color=COLOURS["after"], alpha=0.8,
+            label=f"{len(labels)} pairs")
+    for i in np.argsort(-np.nan_to_num(after, nan=-np.inf))[:5]:
+        ax.annotate(labels[i], (before[i], after[i]), fontsize=6, xytext=(3, 3),
+                    textcoords="offset points")
+    ax.set_xlabel(before_label.replace("before: ", "before compensation: ") + " (dB)")
+    ax.set_ylabel(after_label.replace("after: ", "after: ") + " (dB)", fontsize=8)
+    ax.grid(color="0.9", lw=0.6)
+    return np.arange(len(labels))
+
+
 def _stems(ax, before: np.ndarray, after: np.ndarray, labels: list[str], *,
            before_label: str, after_label: str) -> np.ndarray:
     """Per pair, a stem from its "before" mark down (or up) to its "after" mark."""
+    if len(labels) > MANY_PAIRS:
+        return _scatter(ax, before, after, labels, before_label=before_label,
+                        after_label=after_label)
     k = np.arange(len(labels))
     ax.vlines(k, np.minimum(before, after), np.maximum(before, after),
               color=COLOURS["neutral"], lw=1.0, zorder=1)
@@ -104,9 +126,10 @@ def plot_verification(checks, calibration: CalibrationResult, *, truth=None, ax=
     k = _stems(ax, before, after, [f"{p.aggressor}→{p.victim}" for p, _ in rows],
                before_label="before: |X| measured",
                after_label="after: residual measured (all tones on)")
-    ax.errorbar(k, after, yerr=[np.zeros_like(after), np.maximum(up - after, 0.0)], fmt="none",
+    x = before if len(rows) > MANY_PAIRS else k
+    ax.errorbar(x, after, yerr=[np.zeros_like(after), np.maximum(up - after, 0.0)], fmt="none",
                 ecolor=COLOURS["bound"], lw=0.8, capsize=1.5, label="upper bound (2σ)")
-    if truth:
+    if truth and len(rows) <= MANY_PAIRS:
         tv = [truth.get((p.aggressor, p.victim)) for p, _ in rows]
         ax.plot([kk for kk, t in zip(k, tv, strict=True) if t is not None],
                 [t for t in tv if t is not None], "_", ms=8, color=COLOURS["truth"],

@@ -28,6 +28,10 @@ from xtalkcal.outputs.export import dumps, format_table
 
 __all__ = ["write_report", "render_html"]
 
+# The report's matrix table lists at most this many pairs (the strongest); matrix.txt and
+# matrix.json hold them all.
+_TABLE_ROWS = 60
+
 _STYLE = ("body{font-family:sans-serif;max-width:960px;margin:auto;padding:0 1em;"
           "line-height:1.4}pre{background:#f6f6f6;padding:.6em;overflow-x:auto;"
           "font-size:12px}table{border-collapse:collapse}td,th{border:1px solid #ccc;"
@@ -134,7 +138,10 @@ def _calibration_section(result, out, truth, campaign, about, figures) -> list[s
                for p in nulled]
         lines.append(f"- worst true residual of a nulled pair (simulator's truth): "
                      f"{max(res):.1f} dB")
-    lines += ["", "### Matrix", ""] + _code(format_table(result))
+    _write_text(out / "matrix.txt", format_table(result) + "\n")
+    many = len(result.pairs) > _TABLE_ROWS
+    lines += ["", "### Matrix" + (f" (the {_TABLE_ROWS} strongest pairs)" if many else ""), ""]
+    lines += _code(format_table(result, limit=_TABLE_ROWS if many else None))
     lines += _figure("Crosstalk magnitude",
                      _save(plots.plot_matrix_db(result), out / "matrix_db.png"))
     lines += _figure("Crosstalk phase",
@@ -146,7 +153,9 @@ def _calibration_section(result, out, truth, campaign, about, figures) -> list[s
         if name in shown:
             continue
         shown.add(name)
-        sweep = result.sweeps[p.sweep_id]
+        sweep = result.sweeps.get(p.sweep_id)
+        if sweep is None:
+            continue  # a result rebuilt without its sweeps: no landscape to draw
         amp = sweep.attrs["aggressor_amplitude"]
         ax = plots.plot_null_landscape(sweep, p.victim, z_star=-p.x * amp,
                                        cov=p.x_cov * amp**2, chip=result.chip.name)
