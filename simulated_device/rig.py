@@ -341,6 +341,74 @@ class SimRig:
         """True compensation ratio r = −X (README: the crosstalk element and the ratio)."""
         return -self.true_crosstalk(victim, line, freq_ghz, t_s)
 
+    def true_envelope_delay(self, victim: str, line: str) -> float:
+        """How late (ns) the leak of ``line`` reaches ``victim`` against the victim's own line,
+        in envelope (0 where the envelope is not delayed, or the pair does not couple).
+
+        In the simulator's sign convention the path's ``delay_ns`` moves the leak's envelope
+        *earlier* by ``delay_ns`` (see :mod:`simulated_device.paths`); the value returned is
+        that shift as a delay, ``−delay_ns``. A copy aligned to the aggressor leaves the
+        Stark-effect floor :func:`simulated_device.paths.envelope_floor_db` at it.
+        """
+        own = self.device.line_of(victim)
+        if line == own.name:
+            return 0.0
+        return self._path_shift_ns(victim, line) - self._path_shift_ns(victim, own.name)
+
+    def true_crosstalk_at_amplitude(self, victim: str, line: str, freq_ghz: float,
+                                    amplitudes, t_s: float | None = None) -> np.ndarray:
+        """X of the pair as a weak cancellation tone sees it when ``line`` plays at each of
+        ``amplitudes`` (peak): the aggressor line's compression makes X fall near full scale
+        (X·g(a)/a with g the line's Rapp curve; the weak tone on the victim's line is linear)."""
+        a = np.asarray(amplitudes, dtype=float)
+        x = self.true_crosstalk(victim, line, freq_ghz, t_s)
+        el = self.device.line(line).electronics
+        if el is None or el.saturation is None:
+            return np.full(a.shape, x, dtype=complex)
+        return x * np.abs(el.compress(a.astype(complex))) / a
+
+    def spurious_collisions(self, window_mhz: float = 20.0) -> list[dict]:
+        """Image and LO-leakage tones within ``window_mhz`` of a qubit's transition.
+
+        A line's tones are taken to be its own qubit's f01 and, for cancellation, the f01 of
+        each qubit whose line leaks onto its qubit. Transitions: f01, f12 and the two-photon
+        f02/2 of every qubit. Each entry gives the line, the kind (``"image"`` of which tone,
+        or ``"lo_leak"``), the spurious frequency, the victim, the transition, the offset
+        (MHz) and the level at the victim (dB relative to a full-scale tone of the victim's
+        own line), computed from the device's truth.
+        """
+        dev = self.device
+        state = self._drift.at(self._t_s)
+        out = []
+        for ln in dev.lines:
+            el = ln.electronics
+            if el is None or el.lo_ghz is None:
+                continue
+            played = {dev.qubit(ln.qubit).f01_ghz} | {
+                dev.qubit(dev.line(c.line).qubit).f01_ghz for c in dev.couplings
+                if c.qubit == ln.qubit}
+            spurs = [("image", 2 * el.lo_ghz - f, f, abs(el.image)) for f in sorted(played)
+                     if el.image is not None]
+            if el.lo_leak is not None:
+                spurs.append(("lo_leak", el.lo_ghz, None, abs(el.lo_leak)))
+            for kind, fs, tone, level in spurs:
+                for q in dev.qubits:
+                    e = q.levels.energies_ghz
+                    trans = {"f01": e[1], "f12": e[2] - e[1], "f02/2": e[2] / 2}
+                    for name, ft in trans.items():
+                        off = (fs - ft) * 1e3
+                        if abs(off) > window_mhz:
+                            continue
+                        h = abs(self.field_factor(q.name, ln.name, np.array([fs]), state)[0])
+                        own = dev.line_of(q.name).rabi_mhz * 1e-3
+                        seen = level * h / own
+                        out.append(dict(line=ln.name, kind=kind, tone_ghz=tone,
+                                        spur_ghz=float(fs), victim=q.name, transition=name,
+                                        offset_mhz=float(off),
+                                        level_db=float(20 * np.log10(seen)) if seen else
+                                        -math.inf))
+        return out
+
     def true_matrix(self, t_s: float | None = None) -> np.ndarray:
         """X_ij at each aggressor's own f01, shape (n_qubits, n_lines) in chip order."""
         qubits = self._chip.qubit_names
