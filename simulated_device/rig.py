@@ -207,7 +207,7 @@ class SimRig:
             if el is None or not el.any:
                 continue
             for r in range(R):
-                for i, t in enumerate(rows[r]):
+                for i, t in enumerate(rows[r][: len(rows[r])]):  # not the images added
                     if t[8] != k:
                         continue
                     a = complex(el.compress(np.asarray(t[3])))

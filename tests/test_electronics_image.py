@@ -145,12 +145,12 @@ def test_rapp_curve_and_x_against_amplitude() -> None:
     x = rig.true_crosstalk_at_amplitude("a", "lb", FB, a)
     x0 = rig.true_crosstalk("a", "lb", FB)
     assert np.allclose(x / x0, 1 / (1 + a ** 4) ** 0.25)
-    # The simulated leak follows the same curve: a weak resonant leak's P1 scales as |g(a)|².
+    # The simulated leak follows the same curve: a resonant leak's rotation angle scales as |g(a)|.
     ps = []
     for amp in (0.1, 0.8):
         tl = Timeline((Tone("lb", 0.0, 40.0, FA, amp, 0.0, GAUSS),), ("a",), readout_ns=45.0)
         ps.append(rig.populations([tl], "a")[0, 1])
-    ratio = math.sqrt(ps[1] / ps[0]) / 8.0
+    ratio = math.asin(math.sqrt(ps[1])) / math.asin(math.sqrt(ps[0])) / 8.0
     assert ratio == pytest.approx((1 + 0.1 ** 4) ** 0.25 / (1 + 0.8 ** 4) ** 0.25, rel=2e-3)
 
 

@@ -89,7 +89,7 @@ def _stark_phase(rig: SimRig, cancel: complex, half_pi: float) -> float:
 
 
 def _half_pi(rig: SimRig) -> float:
-    """Amplitude of the 20 ns square π/2 pulse on a (one rescale; leakage to level 2 is small here)."""
+    """Amplitude of the 20 ns square π/2 on a (one rescale; little leaks to level 2)."""
     amp = 0.24
     tl = Timeline((Tone("la", 0.0, 20.0, FA, amp, 0.0, Envelope("square")),), ("a",),
                   readout_ns=25.0)
