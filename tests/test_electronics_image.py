@@ -17,10 +17,13 @@ import math
 import numpy as np
 import pytest
 import qutip as qt
+import tomli_w
 
 from simulated_device import device_from_dict
+from simulated_device.device import load_device
 from simulated_device.electronics import LineElectronics, apply_to_samples, rapp
 from simulated_device.rig import SimRig, SimulatedSampledRig
+from xtalkcal.common import FieldErrors
 from xtalkcal.hardware import Envelope, Timeline, Tone, envelope_values
 
 FA, FB, RABI_A = 4.92, 5.31, 52.0
@@ -169,3 +172,19 @@ def test_collisions_list_the_image_near_a_victim() -> None:
     hit = next(h for h in hits if h["victim"] == "b")
     assert hit["offset_mhz"] == pytest.approx(4.0, abs=1e-6)
     assert SimRig(device(image_dbc=None), drift=False).spurious_collisions() == []
+
+
+def test_bad_electronics_fields_name_file_field_and_range(tmp_path) -> None:
+    d = dict(format="xtalkcal-simdevice", version=3, name="bad", levels=3,
+             limits=dict(max_amplitude=0.9),
+             qubits=[dict(name="a", f01_ghz=FA, anharmonicity_ghz=-0.21, t1_us=50.0,
+                          t2_us=40.0)],
+             lines=[dict(name="la", qubit="a", rabi_mhz=50.0, max_amplitude=0.8,
+                         image_dbc=-35.0, compression_amplitude=500.0)])
+    path = tmp_path / "bad.toml"
+    path.write_bytes(tomli_w.dumps(d).encode())
+    with pytest.raises(FieldErrors) as err:
+        load_device(path)
+    text = str(err.value)
+    assert "bad.toml" in text and "lines[0].image_dbc" in text and "needs lo_ghz" in text
+    assert "lines[0].compression_amplitude" in text and "100" in text
