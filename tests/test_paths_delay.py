@@ -177,3 +177,21 @@ def test_tone_path_with_envelope_delay_agrees_with_the_waveform_filter() -> None
     assert np.max(np.abs(tone - wave)) <= 1e-6
     carrier_only = SimRig(replace(dev, envelope_delay=False), drift=False)
     assert np.max(np.abs(carrier_only.populations([tl], "a")[0] - wave)) > 1e-5
+
+
+def test_resonance_shapes_x_but_keeps_it_at_the_victims_f01() -> None:
+    d = device_dict(delay=0.0)
+    d["couplings"][0]["resonances"] = [[5.2, 40.0, 2.0]]
+    res = SimRig(device_from_dict(d), drift=False)
+    flat = SimRig(device_from_dict(device_dict(delay=0.0)), drift=False)
+    assert res.true_crosstalk("a", "lb", FA) == pytest.approx(flat.true_crosstalk("a", "lb", FA))
+    # Lorentzian written out: R(f) = 1 + s·(w/2)/(w/2 + i(f − f_r)), X ∝ R(f)/R(f01).
+    def r(f):
+        return 1 + 2.0 * 0.02 / (0.02 + 1j * (f - 5.2))
+
+    ratio = res.true_crosstalk("a", "lb", 5.2) / flat.true_crosstalk("a", "lb", 5.2)
+    assert ratio == pytest.approx(r(5.2) / r(FA), rel=1e-12)
+    assert abs(ratio) > 2.5
+    # The tone path sees it: a leak at the resonance drives a harder than a flat path does.
+    tl = Timeline((Tone("lb", 0.0, 40.0, 5.2, 0.3, 0.0, Envelope("gaussian", 8.0)),), ("a",))
+    assert res.populations([tl], "a")[0, 1] > flat.populations([tl], "a")[0, 1]
