@@ -8,7 +8,7 @@ a lab would write (nominal frequencies, line gains, limits) is derived from it b
 Device file, field by field::
 
     format = "xtalkcal-simdevice"
-    version = 2                # 1 or 2; the fields marked "version 2" need version = 2
+    version = 3                # 1, 2 or 3; fields marked "version N" need version ≥ N
     name = "grid9-demo"
     seed = 20261201            # seeds readout sampling, jitter and drift
     levels = 3                 # transmon levels kept per qubit (≥ 2)
@@ -65,6 +65,30 @@ Device file, field by field::
     crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
     phase_deg_change = 20.0    # optional (default 0), added to arg X (−360 … 360)
 
+Leak paths and electronics (version 3; every field optional, each effect off without it;
+the values below are an invented example)::
+
+    [paths]                    # version 3
+    envelope_delay = true      # default true in version 3 (false: carrier-only delay, the
+                               # model of version 1–2 files); see simulated_device.paths
+
+    [[lines]]                  # in addition to the fields above
+    lo_ghz = 4.95              # the line's LO as a lab knows it (0.1 … 50 GHz); needed by
+                               # image_dbc and lo_leak_dbc
+    image_dbc = -35.0          # IQ image at 2·lo_ghz − f of every tone f (−150 … 0 dBc)
+    image_phase_deg = 0.0      # its phase (−360 … 360), relative to conj(tone)
+    lo_leak_dbc = -45.0        # carrier at lo_ghz through every shot, dB below full scale
+    lo_leak_phase_deg = 0.0    # its phase (−360 … 360)
+    compression_amplitude = 1.2    # Rapp saturation amplitude A_sat (0.01 … 100)
+    compression_smoothness = 2.0   # Rapp p (0.5 … 50); see simulated_device.electronics
+
+    [[couplings]]              # in addition to the fields above
+    resonances = [[5.12, 30.0, 0.5]]   # [f_ghz (0.1 … 50), width_mhz (0.001 … 1000),
+                                       #  strength (0 … 100)] per package/box mode
+
+Spurious tones (image, LO leakage) reach every qubit through the same leak paths as the
+line's tones (``[[couplings]]`` plus resonances), and the line's own qubit through its line.
+
 Unlisted (line, qubit) pairs do not couple. The drift of a coupling is its phase random
 walk (``phase_diffusion_rad2_per_hour``, its own or the ``[drift]`` default), its linear
 phase rate, its log-magnitude random walk, and the sum of the steps at or before the time.
@@ -83,6 +107,8 @@ from typing import Any
 
 import numpy as np
 
+from simulated_device.electronics import LineElectronics, read_line_electronics
+from simulated_device.paths import Resonance, read_resonances
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
 from xtalkcal.common import INVALID, Fields, load_toml, read_header, valid
 from xtalkcal.hardware import (
@@ -108,7 +134,7 @@ __all__ = [
 ]
 
 DEVICE_FORMAT = "xtalkcal-simdevice"
-DEVICE_VERSION = 2
+DEVICE_VERSION = 3
 # [[couplings]] fields a version 1 file may not hold.
 _VERSION_2_FIELDS = ("phase_diffusion_rad2_per_hour", "log_magnitude_diffusion_per_hour")
 HOUR_S = 3600.0
@@ -152,6 +178,7 @@ class LineTruth:
     full_scale_dbm: float | None
     self_delay_ns: float = 0.0
     self_slope_db_per_ghz: float = 0.0
+    electronics: LineElectronics | None = None  # version 3: image, LO leak, compression
 
 
 @dataclass(frozen=True)
@@ -166,6 +193,7 @@ class CouplingTruth:
     phase_rate_rad_per_hour: float | None = None
     phase_diffusion_rad2_per_hour: float | None = None  # None: the [drift] default
     log_magnitude_diffusion_per_hour: float | None = None
+    resonances: tuple[Resonance, ...] = ()  # version 3: package/box modes on this path
 
 
 @dataclass(frozen=True)
@@ -224,6 +252,7 @@ class DeviceSpec:
     drift: DriftParams = field(default_factory=DriftParams)
     source: str = "<memory>"
     steps: tuple[StepChange, ...] = ()
+    envelope_delay: bool = False  # version 3 default True: leaks delay envelopes too
 
     @property
     def drifts(self) -> bool:
@@ -324,6 +353,8 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
     qubits = [_read_qubit(qname, qt, n_levels) for qname, qt in top.named_tables("qubits", "qubit")]
     qnames = [q.name for q in qubits]
 
+    version_3 = data.get("version", DEVICE_VERSION) == 3
+    envelope_delay = _read_paths(top, version_3)
     lines: list[LineTruth] = []
     for ln, lt in read_drive_lines(top, qnames):
         lines.append(LineTruth(
@@ -334,12 +365,13 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
             ln.full_scale_dbm,
             lt.number("self_delay_ns", 0.0, lo=-100.0, hi=100.0, unit="ns"),
             lt.number("self_slope_db_per_ghz", 0.0, lo=-60.0, hi=60.0, unit="dB/GHz"),
+            read_line_electronics(lt, version_3),
         ))
         lt.reject_unknown()
     own_qubit = {ln.name: ln.qubit for ln in lines}
 
     version_1 = data.get("version", DEVICE_VERSION) == 1
-    couplings = _read_couplings(top, own_qubit, qnames, version_1)
+    couplings = _read_couplings(top, own_qubit, qnames, version_1, version_3)
     steps = _read_steps(top, couplings, list(own_qubit), qnames, version_1)
     top.reject_unknown()
     top.finish()
@@ -358,11 +390,24 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         drift=drift,
         source=source,
         steps=tuple(steps),
+        envelope_delay=envelope_delay,
     )
 
 
+def _read_paths(top: Fields, version_3: bool) -> bool:
+    """The ``[paths]`` table: whether leaks delay envelopes (version 3 default: yes)."""
+    if "paths" in top.data and not version_3:
+        top.report("paths", "needs version = 3 (a version 1–2 file delays only the carrier)")
+        top.table("paths", None)
+        return False
+    pt = top.table("paths", None)
+    on = pt.boolean("envelope_delay", version_3)
+    pt.reject_unknown()
+    return bool(on) if valid(on) else False
+
+
 def _read_couplings(top: Fields, own_qubit: Mapping[Any, Any], qnames: list[Any],
-                    version_1: bool) -> list[CouplingTruth]:
+                    version_1: bool, version_3: bool = False) -> list[CouplingTruth]:
     """The ``[[couplings]]`` blocks (the version 2 fields refused in a version 1 file)."""
     couplings: list[CouplingTruth] = []
     for ct in top.tables("couplings", None):
@@ -392,6 +437,7 @@ def _read_couplings(top: Fields, own_qubit: Mapping[Any, Any], qnames: list[Any]
                           hi=DIFFUSION_MAX_PER_HOUR, unit="rad²/h"),
                 ct.number("log_magnitude_diffusion_per_hour", None, lo=0.0,
                           hi=DIFFUSION_MAX_PER_HOUR, unit="1/h"),
+                read_resonances(ct, version_3),
             )
         )
         ct.reject_unknown()

@@ -25,10 +25,13 @@ import numpy as np
 from simulated_device.device import DeviceSpec, load_device
 from simulated_device.drift_state import DeviceDrift
 from simulated_device.dynamics import StepControl, ToneBatch, evolve_held, evolve_populations
+from simulated_device.electronics import apply_to_samples
+from simulated_device.paths import resonance_factor
 from xtalkcal.exceptions import TimelineError
 from xtalkcal.hardware import (
     Chip,
     Counts,
+    Envelope,
     SampledRig,
     SampledWaveforms,
     Timeline,
@@ -162,7 +165,73 @@ class SimRig:
         base = own.rabi_mhz * 1e-3 * selfresp
         if line == own.name:
             return base
-        return base * self._drift.crosstalk(victim, line, f, state)
+        return base * self._path_crosstalk(victim, line, f, state)
+
+    def _path_crosstalk(self, victim: str, line: str, f: np.ndarray, state) -> np.ndarray:
+        """X of the path ``line`` → ``victim`` at ``f``, its resonances (if any) included."""
+        x = self._drift.crosstalk(victim, line, f, state)
+        c = self.device.coupling(line, victim)
+        if c is None or not c.resonances:
+            return x
+        f01 = self.device.qubit(victim).f01_ghz + state.qubit_shift_ghz[victim]
+        return x * resonance_factor(f, f01, c.resonances)
+
+    def _path_shift_ns(self, victim: str, line: str) -> float:
+        """How far the tone path moves ``line``'s envelopes at ``victim`` (0 without the
+        envelope delay; sign and meaning in :mod:`simulated_device.paths`)."""
+        if not self.device.envelope_delay:
+            return 0.0
+        own = self.device.line_of(victim)
+        c = None if line == own.name else self.device.coupling(line, victim)
+        return -(own.self_delay_ns + (c.delay_ns if c is not None else 0.0))
+
+    def _hardware_tones(self, victim, cols, ntones, end):
+        """Tone columns (R, M) after the lines' electronics and the paths' envelope delays.
+
+        Compression scales each tone's peak; every tone of a line with an image gets its
+        mirror (conjugate amplitude, so DRAG changes sign); a leaking LO plays through the
+        whole shot. Returns the columns unchanged (same arrays) when nothing is on.
+        """
+        dev = self.device
+        names = self._chip.line_names
+        els = [dev.line(n).electronics for n in names]
+        shifts = np.array([self._path_shift_ns(victim, n) for n in names])
+        if not any(el is not None and el.any for el in els) and not np.any(shifts):
+            return cols, ntones
+        start, dur, freq, amp, code, sigma, drag, ramp, lidx = (c.copy() for c in cols)
+        R = start.shape[0]
+        rows = [[tuple(c[r, k] for c in (start, dur, freq, amp, code, sigma, drag, ramp, lidx))
+                 for k in range(ntones[r])] for r in range(R)]
+        square = Envelope("square").code
+        for k, el in enumerate(els):
+            if el is None or not el.any:
+                continue
+            for r in range(R):
+                for i, t in enumerate(rows[r][: len(rows[r])]):  # not the images added
+                    if t[8] != k:
+                        continue
+                    a = complex(el.compress(np.asarray(t[3])))
+                    rows[r][i] = t[:3] + (a,) + t[4:]
+                    if el.image is not None:
+                        rows[r].append(t[:2] + (2 * el.lo_ghz - t[2], el.image * np.conj(a),
+                                                t[4], t[5], -t[6], t[7], k))
+                if el.lo_leak is not None:
+                    rows[r].append((0.0, end[r], el.lo_ghz, complex(el.compress(
+                        np.asarray(el.lo_leak))), square, 1.0, 0.0, 0.0, k))
+        ntones = np.array([len(rw) for rw in rows], dtype=np.int64)
+        M = max(int(ntones.max(initial=0)), 1)
+        out = [np.zeros((R, M), dtype=c.dtype) for c in cols]
+        out[1][:] = 1.0
+        out[2][:] = 1.0
+        out[4][:] = 3
+        out[5][:] = 1.0
+        for r, rw in enumerate(rows):
+            for i, t in enumerate(rw):
+                for c, v in zip(out, t, strict=True):
+                    c[r, i] = v
+        out[0] = out[0] + np.where(np.arange(M)[None, :] < ntones[:, None],
+                                   shifts[out[8]], 0.0)
+        return tuple(out), ntones
 
     def _batch_rng(self, timelines: Sequence[Timeline], shots: int) -> np.random.Generator:
         """Randomness of one batch, from the seed and the batch's content.
@@ -228,6 +297,10 @@ class SimRig:
                 drag[r, k] = t.envelope.drag_ns
                 ramp[r, k] = t.envelope.ramp_ns
                 lidx[r, k] = line_index[t.line]
+        cols = (start, dur, freq, amp, code, sigma, drag, ramp, lidx)
+        cols, ntones = self._hardware_tones(victim, cols, ntones, end)
+        start, dur, freq, amp, code, sigma, drag, ramp, lidx = cols
+        M = start.shape[1]
         valid = np.arange(M)[None, :] < ntones[:, None]
         q = dev.qubit(victim)
         # Field factor of every tone at this victim.
@@ -261,12 +334,80 @@ class SimRig:
         own = self.device.line_of(victim).name
         if line == own:
             return 1.0 + 0.0j
-        return complex(self._drift.crosstalk(victim, line, np.asarray(freq_ghz, float), state))
+        return complex(self._path_crosstalk(victim, line, np.asarray(freq_ghz, float), state))
 
     def true_ratio(self, victim: str, line: str, freq_ghz: float, t_s: float | None = None
                    ) -> complex:
         """True compensation ratio r = −X (README: the crosstalk element and the ratio)."""
         return -self.true_crosstalk(victim, line, freq_ghz, t_s)
+
+    def true_envelope_delay(self, victim: str, line: str) -> float:
+        """How late (ns) the leak of ``line`` reaches ``victim`` against the victim's own line,
+        in envelope (0 where the envelope is not delayed, or the pair does not couple).
+
+        In the simulator's sign convention the path's ``delay_ns`` moves the leak's envelope
+        *earlier* by ``delay_ns`` (see :mod:`simulated_device.paths`); the value returned is
+        that shift as a delay, ``−delay_ns``. A copy aligned to the aggressor leaves the
+        Stark-effect floor :func:`simulated_device.paths.envelope_floor_db` at it.
+        """
+        own = self.device.line_of(victim)
+        if line == own.name:
+            return 0.0
+        return self._path_shift_ns(victim, line) - self._path_shift_ns(victim, own.name)
+
+    def true_crosstalk_at_amplitude(self, victim: str, line: str, freq_ghz: float,
+                                    amplitudes, t_s: float | None = None) -> np.ndarray:
+        """X of the pair as a weak cancellation tone sees it when ``line`` plays at each of
+        ``amplitudes`` (peak): the aggressor line's compression makes X fall near full scale
+        (X·g(a)/a with g the line's Rapp curve; the weak tone on the victim's line is linear)."""
+        a = np.asarray(amplitudes, dtype=float)
+        x = self.true_crosstalk(victim, line, freq_ghz, t_s)
+        el = self.device.line(line).electronics
+        if el is None or el.saturation is None:
+            return np.full(a.shape, x, dtype=complex)
+        return x * np.abs(el.compress(a.astype(complex))) / a
+
+    def spurious_collisions(self, window_mhz: float = 20.0) -> list[dict]:
+        """Image and LO-leakage tones within ``window_mhz`` of a qubit's transition.
+
+        A line's tones are taken to be its own qubit's f01 and, for cancellation, the f01 of
+        each qubit whose line leaks onto its qubit. Transitions: f01, f12 and the two-photon
+        f02/2 of every qubit. Each entry gives the line, the kind (``"image"`` of which tone,
+        or ``"lo_leak"``), the spurious frequency, the victim, the transition, the offset
+        (MHz) and the level at the victim (dB relative to a full-scale tone of the victim's
+        own line), computed from the device's truth.
+        """
+        dev = self.device
+        state = self._drift.at(self._t_s)
+        out = []
+        for ln in dev.lines:
+            el = ln.electronics
+            if el is None or el.lo_ghz is None:
+                continue
+            played = {dev.qubit(ln.qubit).f01_ghz} | {
+                dev.qubit(dev.line(c.line).qubit).f01_ghz for c in dev.couplings
+                if c.qubit == ln.qubit}
+            spurs = [("image", 2 * el.lo_ghz - f, f, abs(el.image)) for f in sorted(played)
+                     if el.image is not None]
+            if el.lo_leak is not None:
+                spurs.append(("lo_leak", el.lo_ghz, None, abs(el.lo_leak)))
+            for kind, fs, tone, level in spurs:
+                for q in dev.qubits:
+                    e = q.levels.energies_ghz
+                    trans = {"f01": e[1], "f12": e[2] - e[1], "f02/2": e[2] / 2}
+                    for name, ft in trans.items():
+                        off = (fs - ft) * 1e3
+                        if abs(off) > window_mhz:
+                            continue
+                        h = abs(self.field_factor(q.name, ln.name, np.array([fs]), state)[0])
+                        own = dev.line_of(q.name).rabi_mhz * 1e-3
+                        seen = level * h / own
+                        out.append(dict(line=ln.name, kind=kind, tone_ghz=tone,
+                                        spur_ghz=float(fs), victim=q.name, transition=name,
+                                        offset_mhz=float(off),
+                                        level_db=float(20 * np.log10(seen)) if seen else
+                                        -math.inf))
+        return out
 
     def true_matrix(self, t_s: float | None = None) -> np.ndarray:
         """X_ij at each aggressor's own f01, shape (n_qubits, n_lines) in chip order."""
@@ -397,7 +538,8 @@ class SimulatedSampledRig(SampledRig):
                 raise TimelineError("all waveforms of one batch must share one sample rate")
             for il, ln in enumerate(lines):
                 s = wf.samples[ln]
-                if not np.any(s):
+                el = dev.line(ln).electronics
+                if not np.any(s) and (el is None or el.lo_leak is None):
                     continue
                 seen = self._line_response(victim, ln, wf.lo_ghz[ln], s, dt, state)
                 p = carriers.index(wf.lo_ghz[ln])
@@ -413,7 +555,11 @@ class SimulatedSampledRig(SampledRig):
 
     def _line_response(self, victim: str, line: str, lo: float, s: np.ndarray, dt: float,
                        state) -> np.ndarray:
-        """Held Rabi-rate samples (GHz) at ``victim`` from one line's samples ``s``."""
+        """Held Rabi-rate samples (GHz) at ``victim`` from one line's samples ``s``
+        (after the line's electronics, :func:`simulated_device.electronics.apply_to_samples`)."""
+        el = self.sim.device.line(line).electronics
+        if el is not None and el.any:
+            s = apply_to_samples(el, s)
         n = len(s)
         pad = n  # zeros on both sides: a delay must not wrap the record round
         # A component e^{−i2πνt} of the samples (our sign, as for the carriers) sits at
