@@ -183,7 +183,8 @@ def envelope_scalar(env: Envelope, duration: float, tau: float) -> complex:
 
 def qutip_populations(victim: Victim, run: Run, *, flip_anharmonicity: bool = False,
                       detuning_sign: float = 1.0, options: dict | None = None,
-                      segmented: bool = True) -> np.ndarray:
+                      segmented: bool = True, rho0: np.ndarray | None = None,
+                      density: bool = False) -> np.ndarray:
     """Final populations of ``run`` from QuTiP's master-equation solver.
 
     QuTiP uses ħ = 1, so the Hamiltonian is 2π·H/h in rad/ns. By default the integration is
@@ -200,6 +201,10 @@ def qutip_populations(victim: Victim, run: Run, *, flip_anharmonicity: bool = Fa
         Mirror the levels about the harmonic ladder (α → −α); for the sensitivity test only.
     detuning_sign : float
         −1 writes the rotating factor as e^{+i2π(f_k − f)t}; for the sensitivity test only.
+    rho0 : (L, L) array, optional
+        Initial density matrix (default |0⟩⟨0|), in the frame of f01 (= lab frame at t = 0).
+    density : bool
+        Return the final density matrix (frame of f01) instead of the populations.
     """
     L = victim.n_levels
     f = victim.f01
@@ -234,10 +239,11 @@ def qutip_populations(victim: Victim, run: Run, *, flip_anharmonicity: bool = Fa
     if gphi > 0:
         c_ops.append(math.sqrt(2.0 * gphi) * qt.Qobj(np.diag(n).astype(complex)))
     options = options or QUTIP_OPTIONS
-    rho = qt.fock_dm(L, 0)
+    rho = qt.fock_dm(L, 0) if rho0 is None else qt.Qobj(np.asarray(rho0, complex))
     if not segmented:
         result = qt.mesolve(hamiltonian, rho, [0.0, run.end_ns], c_ops=c_ops, options=options)
-        return np.real(np.diag(result.states[-1].full()))
+        final = result.states[-1].full()
+        return final if density else np.real(np.diag(final))
     solver = qt.MESolver(hamiltonian, c_ops=c_ops, options=options)
     cuts = {0.0, run.end_ns}
     for d in run.drives:
@@ -249,7 +255,7 @@ def qutip_populations(victim: Victim, run: Run, *, flip_anharmonicity: bool = Fa
     for a, b in zip(grid[:-1], grid[1:], strict=True):
         solver.start(rho, a)
         rho = solver.step(b)
-    return np.real(np.diag(rho.full()))
+    return rho.full() if density else np.real(np.diag(rho.full()))
 
 
 # ----------------------------------------------------------------------------- cases
