@@ -401,21 +401,21 @@ def case_charge_basis() -> tuple[Victim, Run]:
 
 # Measured max |ΔP| against QuTiP with the default StepControl, written into the ids.
 QUTIP_CASES = [
-    pytest.param(case_pi_gaussian, id="a-pi-gaussian-dev3.3e-09"),
-    pytest.param(case_pi_gaussian_damped, id="a-pi-gaussian-T1T2-dev5.4e-10"),
-    pytest.param(case_stark_ramsey, id="b-stark-ramsey-T1T2-dev3.5e-09"),
-    pytest.param(case_stark_ramsey_above, id="b-stark-ramsey-above-dev1.2e-08"),
-    pytest.param(case_two_photon, id="b-two-photon-0-2-dev8.0e-08"),
-    pytest.param(case_leakage, id="c-leakage-flattop-dev1.3e-08"),
-    pytest.param(case_leakage_gauss, id="c-leakage-gaussian-dev8.0e-09"),
-    pytest.param(case_partial_pair, id="d-partial-pair-dev1.2e-08"),
+    pytest.param(case_pi_gaussian, id="a-pi-gaussian-dev2.1e-10"),
+    pytest.param(case_pi_gaussian_damped, id="a-pi-gaussian-T1T2-dev3.6e-11"),
+    pytest.param(case_stark_ramsey, id="b-stark-ramsey-T1T2-dev3.3e-09"),
+    pytest.param(case_stark_ramsey_above, id="b-stark-ramsey-above-dev7.2e-10"),
+    pytest.param(case_two_photon, id="b-two-photon-0-2-dev1.4e-08"),
+    pytest.param(case_leakage, id="c-leakage-flattop-dev5.0e-10"),
+    pytest.param(case_leakage_gauss, id="c-leakage-gaussian-dev5.0e-10"),
+    pytest.param(case_partial_pair, id="d-partial-pair-dev7.2e-10"),
     # The two long waits cost QuTiP a few seconds each (the kernel: one exponential).
-    pytest.param(case_t1_cascade, id="e-T1-cascade-dev6.1e-10", marks=pytest.mark.slow),
-    pytest.param(case_t2_ramsey, id="e-T2-ramsey-dev5.8e-09", marks=pytest.mark.slow),
-    pytest.param(case_two_tones_below, id="f-two-tones-150MHz-below-dev6.3e-06"),
-    pytest.param(case_two_tones_above, id="f-two-tones-250MHz-above-dev1.0e-07"),
-    pytest.param(case_two_tones_four_levels, id="f-two-tones-4-levels-dev1.6e-06"),
-    pytest.param(case_charge_basis, id="g-charge-basis-dev2.1e-07"),
+    pytest.param(case_t1_cascade, id="e-T1-cascade-dev3.7e-11", marks=pytest.mark.slow),
+    pytest.param(case_t2_ramsey, id="e-T2-ramsey-dev3.7e-10", marks=pytest.mark.slow),
+    pytest.param(case_two_tones_below, id="f-two-tones-150MHz-below-dev4.0e-07"),
+    pytest.param(case_two_tones_above, id="f-two-tones-250MHz-above-dev6.3e-09"),
+    pytest.param(case_two_tones_four_levels, id="f-two-tones-4-levels-dev1.0e-07"),
+    pytest.param(case_charge_basis, id="g-charge-basis-dev1.3e-08"),
 ]
 
 
