@@ -49,7 +49,7 @@ waveforms can be checked against the tone path before any hardware is touched.
 The reference path (:func:`evolve_reference`) integrates the same master equation
 with SciPy's adaptive Runge–Kutta at tight tolerances; it is slow and exists for tests.
 
-About 900 lines because the three paths share the stepper's compiled kernels, which stay
+About 1000 lines because the three paths share the stepper's compiled kernels, which stay
 private to this module.
 """
 
