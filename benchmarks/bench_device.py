@@ -10,12 +10,16 @@ time per timeline of ``evolve_populations`` on all 400 with numba's default thre
 with one thread, the time per timeline of a plain ``qutip.mesolve`` (Python coefficient
 functions, tight tolerances) on a subset, the speed ratios and the largest population
 difference on that subset. With ``--scan`` also a table over candidate ``StepControl`` values.
-The target (≥ 30× at ≤ 1e-4 agreement) lives here only, never in a timed test.
+The target (≥ 30× at ≤ 1e-6 agreement) lives here only, never in a timed test.
 
 Run:  PYTHONPATH=. python benchmarks/bench_device.py [--subset 20] [--scan] [--cold]
+      PYTHONPATH=. python benchmarks/bench_device.py --start-up
 
 ``--cold`` points numba's cache at an empty temporary directory first, so the printed
-compile time is that of a fresh install.
+compile time is that of a fresh install. ``--start-up`` only measures the time to the first
+result of the tone path and of the held path in fresh processes: once on an empty numba
+cache (cold) and once more on the cache that run filled (warm), then whether read-only
+inputs add a compiled specialisation (they must not).
 """
 
 from __future__ import annotations
@@ -31,7 +35,51 @@ from pathlib import Path
 import numpy as np
 
 TARGET_RATIO = 30.0
-TARGET_AGREEMENT = 1e-4
+TARGET_AGREEMENT = 1e-6
+TARGET_COLD_S = 10.0
+
+# Child process of --start-up: time from interpreter start to the first result of each path.
+_START_UP_CHILD = r"""
+import sys, time
+t0 = time.perf_counter()
+import numpy as np
+sys.path.insert(0, "tests")
+import test_device_qutip as t
+from simulated_device.dynamics import _evolve_batch, evolve_held, evolve_populations
+victim, run = t.case_two_tones_below()
+batch = t.tone_batch([run, run])
+args = (victim.levels_ghz, victim.ladder, np.array([victim.t1_ns]), np.array([victim.t2_ns]))
+evolve_populations(*args, batch)
+t1 = time.perf_counter()
+omega = np.zeros((2, 1, 40), complex)
+omega[:, 0, 10:30] = 0.01
+evolve_held(*args, omega, np.array([[victim.f01]]), 0.5)
+t2 = time.perf_counter()
+n0 = len(_evolve_batch.signatures)
+for f in batch.__dataclass_fields__:
+    getattr(batch, f).setflags(write=False)
+evolve_populations(*args, batch)
+print(f"{t1 - t0:.2f} {t2 - t1:.2f} {len(_evolve_batch.signatures) - n0}")
+"""
+
+
+def start_up(root: Path) -> None:
+    """Cold and warm time to first result, each in a fresh process (see module docstring)."""
+    import subprocess
+
+    cache = tempfile.mkdtemp(prefix="xtalkcal-numba-")
+    env = dict(os.environ, NUMBA_CACHE_DIR=cache, PYTHONPATH=str(root))
+    for label in ("cold", "warm"):
+        out = subprocess.run([sys.executable, "-c", _START_UP_CHILD], cwd=root, env=env,
+                             capture_output=True, text=True, check=True).stdout.split()
+        tone, held, extra = float(out[0]), float(out[1]), int(out[2])
+        print(f"{label} cache: tone path first result {tone:.2f} s (import included), "
+              f"then held path {held:.2f} s; extra specialisations from read-only inputs: "
+              f"{extra}")
+        if label == "cold":
+            ok = tone <= TARGET_COLD_S
+            print(f"target cold tone path ≤ {TARGET_COLD_S:.0f} s: "
+                  f"{'met' if ok else 'NOT met'}")
 N_TIMELINES = 400
 SEED = 20240612
 
@@ -78,7 +126,12 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--subset", type=int, default=20, help="timelines run through QuTiP")
     parser.add_argument("--scan", action="store_true", help="also scan StepControl values")
     parser.add_argument("--cold", action="store_true", help="compile numba afresh")
+    parser.add_argument("--start-up", action="store_true",
+                        help="only the cold and warm time to first result")
     args = parser.parse_args(argv)
+    if args.start_up:
+        start_up(Path(__file__).resolve().parents[1])
+        return 0
     if args.cold:
         # Must happen before numba is imported anywhere.
         os.environ["NUMBA_CACHE_DIR"] = tempfile.mkdtemp(prefix="xtalkcal-numba-")
@@ -140,15 +193,15 @@ def main(argv: list[str] | None = None) -> int:
     if args.scan:
         print("\nStepControl scan, 1 thread (max |ΔP| against the QuTiP subset, dop853):")
         ref = results["dop853"][1]
+        # 0.3 rad was the default before: the error falls as (phase step)⁴ (Magnus-4).
         candidates = [
             StepControl(),
             StepControl(phase_per_step=0.3),
-            StepControl(phase_per_step=0.35),
-            StepControl(phase_per_step=0.4),
-            StepControl(phase_per_step=0.5),
+            StepControl(phase_per_step=0.2),
             StepControl(phase_per_step=0.15),
-            StepControl(phase_per_step=0.125),
-            StepControl(1.0, 0.25, 0.25),
+            StepControl(phase_per_step=0.1),
+            StepControl(phase_per_step=0.125, envelope_fraction=0.25),
+            StepControl(phase_per_step=0.125, max_step_ns=1.0),
         ]
         numba.set_num_threads(1)
         for c in candidates:

@@ -38,6 +38,13 @@ Device file, field by field::
     t1_us = 60.0
     t2_us = 45.0
     readout = [[0.98, 0.02, 0.0], [0.04, 0.95, 0.01], [0.02, 0.06, 0.92]]  # P(assigned|level)
+    # qubit noise, all optional and off when absent (see simulated_device.qubit_noise):
+    thermal_population = 0.02  # P(|1⟩) at preparation, Gibbs state of the levels (0 … 0.1)
+    f01_noise_mhz = 0.01       # std of an f01 offset constant over a batch, new each batch
+    f01_shot_noise_mhz = 0.02  # std of an f01 offset per (timeline, jitter group)
+    tls_shift_mhz = 0.05       # f01 shift while a two-level defect is up (−100 … 100)
+    tls_rate_per_hour = 2.0    # its switching rate each way (random telegraph, 0 … 1e6)
+    t1_fluctuation = 0.1       # T1 of a batch is T1·exp(s·z), z ~ N(0, 1); s in 0 … 1
 
     [[lines]]
     name = "d0"
@@ -109,6 +116,7 @@ import numpy as np
 
 from simulated_device.electronics import LineElectronics, read_line_electronics
 from simulated_device.paths import Resonance, read_resonances
+from simulated_device.qubit_noise import QubitNoise
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
 from xtalkcal.common import INVALID, Fields, load_toml, read_header, valid
 from xtalkcal.hardware import (
@@ -156,6 +164,7 @@ class QubitTruth:
     readout: np.ndarray  # (L_assign, L_assign) P(assigned | level), rows sum to 1
     ej_ghz: float | None = None
     ec_ghz: float | None = None
+    noise: QubitNoise = field(default_factory=QubitNoise)
 
     @property
     def f01_ghz(self) -> float:
@@ -508,8 +517,21 @@ def _read_qubit(qname: Any, qt: Fields, n_levels: Any) -> QubitTruth:
         ro_arr = _check_readout(qt, np.asarray(ro, float), n_levels)
     else:
         ro_arr = INVALID
+    noise = _read_qubit_noise(qt)
     qt.reject_unknown()
-    return QubitTruth(qname, levels, t1, t2, ro_arr, ej, ec)
+    return QubitTruth(qname, levels, t1, t2, ro_arr, ej, ec, noise)
+
+
+def _read_qubit_noise(qt: Fields) -> QubitNoise:
+    """The optional qubit-noise fields of one ``[[qubits]]`` block (absent: off)."""
+    return QubitNoise(
+        thermal_population=qt.number("thermal_population", 0.0, lo=0.0, hi=0.1),
+        f01_noise_mhz=qt.number("f01_noise_mhz", 0.0, lo=0.0, hi=10.0, unit="MHz"),
+        f01_shot_noise_mhz=qt.number("f01_shot_noise_mhz", 0.0, lo=0.0, hi=10.0, unit="MHz"),
+        tls_shift_mhz=qt.number("tls_shift_mhz", 0.0, lo=-100.0, hi=100.0, unit="MHz"),
+        tls_rate_per_hour=qt.number("tls_rate_per_hour", 0.0, lo=0.0, hi=1e6, unit="1/h"),
+        t1_fluctuation=qt.number("t1_fluctuation", 0.0, lo=0.0, hi=1.0),
+    )
 
 
 def _check_readout(qt: Fields, ro: np.ndarray, n_levels: Any) -> Any:

@@ -49,7 +49,7 @@ waveforms can be checked against the tone path before any hardware is touched.
 The reference path (:func:`evolve_reference`) integrates the same master equation
 with SciPy's adaptive Runge–Kutta at tight tolerances; it is slow and exists for tests.
 
-About 900 lines because the three paths share the stepper's compiled kernels, which stay
+About 1000 lines because the three paths share the stepper's compiled kernels, which stay
 private to this module.
 """
 
@@ -62,7 +62,8 @@ import numba as nb
 import numpy as np
 from scipy.integrate import solve_ivp
 
-__all__ = ["ToneBatch", "evolve_populations", "evolve_held", "evolve_reference", "StepControl"]
+__all__ = ["ToneBatch", "evolve_populations", "evolve_states", "evolve_held", "evolve_reference",
+           "initial_density", "StepControl"]
 
 TWO_PI = 2.0 * math.pi
 SQRT3 = math.sqrt(3.0)
@@ -87,7 +88,7 @@ class StepControl:
     """
 
     max_step_ns: float = 0.5
-    phase_per_step: float = 0.3
+    phase_per_step: float = 0.125
     envelope_fraction: float = 0.125
 
 
@@ -565,10 +566,9 @@ def _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi
 
 @nb.njit(cache=True)
 def _evolve_one(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, code, sigma, drag,
-                ramp, n_tones, t_end, max_step, phase_per_step, env_fraction):
+                ramp, n_tones, t_end, max_step, phase_per_step, env_fraction, rho0):
     L = levels_ghz.shape[0]
-    rho = np.zeros((L, L), dtype=np.complex128)
-    rho[0, 0] = 1.0
+    rho = rho0.copy()
     # Work arrays of the Magnus stepper, allocated once per run (small allocations per step
     # used to dominate its cost). Ω's entries off the tridiagonal stay zero throughout.
     M = max(n_tones, 1)
@@ -649,28 +649,26 @@ def _evolve_one(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, 
         _magnus_interval(rho, ta, span, f_cur, levels_ghz, ladder, gamma1, gamma_phi, gen_diss,
                          start, dur, freq, omega, code, sigma, drag, ramp, n_tones, max_step,
                          phase_per_step, env_fraction, work, swork)
-    pops = np.empty(L)
-    for n in range(L):
-        pops[n] = rho[n, n].real
-    return pops
+    # Back to the frame of the 0–1 frequency, the frame the caller's ρ is read in.
+    return _change_frame(rho, f_cur, levels_ghz[1] - levels_ghz[0], t_end)
 
 
 @nb.njit(cache=True, parallel=True)
 def _evolve_batch(levels_ghz, ladder, gamma1, gamma_phi, start, dur, freq, omega, code, sigma,
-                  drag, ramp, n_tones, t_end, max_step, phase_per_step, env_fraction):
+                  drag, ramp, n_tones, t_end, max_step, phase_per_step, env_fraction, rho0):
     R = start.shape[0]
     L = levels_ghz.shape[1]
-    out = np.empty((R, L))
+    out = np.empty((R, L, L), dtype=np.complex128)
     for r in nb.prange(R):
         out[r] = _evolve_one(levels_ghz[r], ladder[r], gamma1[r], gamma_phi[r], start[r], dur[r],
                              freq[r], omega[r], code[r], sigma[r], drag[r], ramp[r], n_tones[r],
-                             t_end[r], max_step, phase_per_step, env_fraction)
+                             t_end[r], max_step, phase_per_step, env_fraction, rho0[r])
     return out
 
 
 @nb.njit(cache=True)
 def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame,
-                     n_cells):
+                     n_cells, rho0):
     """One run under a sample-held drive: carrier p holds Rabi rate ``omega[p, k]`` over
     cell k = [k·dt, (k + 1)·dt), k < ``n_cells``, and turns at ``freq[p]``; ``nsub``
     Magnus-4 steps per cell
@@ -678,8 +676,7 @@ def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsu
     :func:`_magnus_interval`."""
     L = levels_ghz.shape[0]
     P = omega.shape[0]
-    rho = np.zeros((L, L), dtype=np.complex128)
-    rho[0, 0] = 1.0
+    rho = rho0.copy()
     om = np.zeros((L, L), dtype=np.complex128)  # entries off the tridiagonal stay zero
     small = np.empty((5, L, L), dtype=np.complex128)  # work arrays, allocated once per run
     U, X2, X3, tmp, T = small[0], small[1], small[2], small[3], small[4]
@@ -716,21 +713,18 @@ def _evolve_held_one(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsu
         _conjugate(U, rho, T)
         if damped:
             _dissipate(d_half if s == total - 1 else d_full, rho)
-    pops = np.empty(L)
-    for n in range(L):
-        pops[n] = rho[n, n].real
-    return pops
+    return _change_frame(rho, f_frame, levels_ghz[1] - levels_ghz[0], total * h)
 
 
 @nb.njit(cache=True, parallel=True)
 def _evolve_held_batch(levels_ghz, ladder, gamma1, gamma_phi, omega, freq, dt, nsub, f_frame,
-                       n_cells):
+                       n_cells, rho0):
     R = omega.shape[0]
     L = levels_ghz.shape[1]
-    out = np.empty((R, L))
+    out = np.empty((R, L, L), dtype=np.complex128)
     for r in nb.prange(R):
         out[r] = _evolve_held_one(levels_ghz[r], ladder[r], gamma1[r], gamma_phi[r], omega[r],
-                                  freq[r], dt, nsub[r], f_frame[r], n_cells[r])
+                                  freq[r], dt, nsub[r], f_frame[r], n_cells[r], rho0[r])
     return out
 
 
@@ -743,7 +737,118 @@ def _rates(t1_ns: np.ndarray, t2_ns: np.ndarray) -> tuple[np.ndarray, np.ndarray
     gphi = g2 - 0.5 * g1
     if np.any(gphi < -1e-15):
         raise ValueError("T2 > 2·T1 is unphysical")
-    return g1, np.maximum(gphi, 0.0)
+    return _c(g1, float), _c(np.maximum(gphi, 0.0), float)
+
+
+def _c(a, dtype) -> np.ndarray:
+    """``a`` as a C-contiguous, writeable array of ``dtype``.
+
+    numba compiles one specialisation per array layout and per read-only flag, so a read-only
+    or strided input (a broadcast view, a memory-mapped file) would compile every kernel a
+    second time; a copy of a few arrays costs microseconds, a compilation tens of seconds.
+    """
+    return np.require(a, dtype=dtype, requirements=("C", "W", "A"))
+
+
+def initial_density(R: int, L: int, psi0: np.ndarray | None = None,
+                    rho0: np.ndarray | None = None) -> np.ndarray:
+    """Initial density matrices (R, L, L) from a pure state, a density matrix or neither.
+
+    Parameters
+    ----------
+    R, L : int
+        Runs and levels.
+    psi0 : complex array (L,) or (R, L), optional
+        Pure initial state, shared by all runs or one per run; normalised here.
+    rho0 : complex array (L, L) or (R, L, L), optional
+        Initial density matrix, shared or per run (Hermitian, trace 1, checked).
+
+    Returns
+    -------
+    (R, L, L) complex array; |0⟩⟨0| for every run if neither is given.
+    """
+    if psi0 is not None and rho0 is not None:
+        raise ValueError("give psi0 or rho0, not both")
+    if psi0 is not None:
+        psi = np.asarray(psi0, dtype=complex)
+        if psi.shape not in ((L,), (R, L)):
+            raise ValueError(f"psi0 has shape {psi.shape}; accepted: ({L},) or ({R}, {L})")
+        psi = np.broadcast_to(psi, (R, L))
+        norm = np.linalg.norm(psi, axis=1)
+        if np.any(norm == 0):
+            raise ValueError("psi0 has a zero vector")
+        psi = psi / norm[:, None]
+        rho = psi[:, :, None] * psi.conj()[:, None, :]
+    elif rho0 is not None:
+        r = np.asarray(rho0, dtype=complex)
+        if r.shape not in ((L, L), (R, L, L)):
+            raise ValueError(f"rho0 has shape {r.shape}; accepted: ({L}, {L}) or ({R}, {L}, {L})")
+        rho = np.broadcast_to(r, (R, L, L))
+        if not np.allclose(rho, np.conj(np.swapaxes(rho, 1, 2)), atol=1e-12):
+            raise ValueError("rho0 is not Hermitian")
+        if not np.allclose(np.trace(rho, axis1=1, axis2=2), 1.0, atol=1e-10):
+            raise ValueError("rho0 does not have trace 1")
+    else:
+        rho = np.zeros((R, L, L), dtype=complex)
+        rho[:, 0, 0] = 1.0
+    return _c(rho, complex)
+
+
+def _populations(rho: np.ndarray) -> np.ndarray:
+    # Round-off can leave populations a hair outside [0, 1]; the sampler needs valid ones.
+    pops = np.clip(np.real(np.diagonal(rho, axis1=1, axis2=2)), 0.0, 1.0)
+    return pops / pops.sum(axis=1, keepdims=True)
+
+
+def _per_run(levels_ghz, ladder, t1_ns, t2_ns, R):
+    """Levels, ladder and rates broadcast to R runs, as the kernels take them."""
+    g1, gphi = _rates(np.broadcast_to(t1_ns, (R,)).astype(float),
+                      np.broadcast_to(t2_ns, (R,)).astype(float))
+    levels = _c(np.broadcast_to(levels_ghz, (R, np.shape(levels_ghz)[-1])), float)
+    lad = _c(np.broadcast_to(ladder, (R, levels.shape[1] - 1)), float)
+    return levels, lad, g1, gphi
+
+
+def evolve_states(
+    levels_ghz: np.ndarray,
+    ladder: np.ndarray,
+    t1_ns: np.ndarray,
+    t2_ns: np.ndarray,
+    tones: ToneBatch,
+    *,
+    psi0: np.ndarray | None = None,
+    rho0: np.ndarray | None = None,
+    control: StepControl | None = None,
+) -> np.ndarray:
+    """Final density matrices of R runs under the tones, from any initial state.
+
+    ρ is returned in the frame rotating at the run's 0–1 frequency ε_1 − ε_0 (the frame of
+    the module docstring with f = f01), so a coherence ρ_01 carries the phase of a drive at
+    f01; the frame coincides with the lab frame at t = 0, where the initial state is given.
+
+    Parameters
+    ----------
+    levels_ghz, ladder, t1_ns, t2_ns, tones, control
+        As :func:`evolve_populations`.
+    psi0, rho0 : arrays, optional
+        Initial state, see :func:`initial_density` (default |0⟩ for every run).
+
+    Returns
+    -------
+    (R, L, L) complex array.
+    """
+    c = control or StepControl()
+    R = tones.start_ns.shape[0]
+    levels, lad, g1, gphi = _per_run(levels_ghz, ladder, t1_ns, t2_ns, R)
+    rho_init = initial_density(R, levels.shape[1], psi0, rho0)
+    return _evolve_batch(levels, lad, g1, gphi,
+                         _c(tones.start_ns, float), _c(tones.duration_ns, float),
+                         _c(tones.freq_ghz, float), _c(tones.omega_ghz, complex),
+                         _c(tones.env_code, np.int64), _c(tones.sigma_ns, float),
+                         _c(tones.drag_ns, float), _c(tones.ramp_ns, float),
+                         _c(tones.n_tones, np.int64), _c(tones.end_ns, float),
+                         float(c.max_step_ns), float(c.phase_per_step),
+                         float(c.envelope_fraction), rho_init)
 
 
 def evolve_populations(
@@ -754,8 +859,10 @@ def evolve_populations(
     tones: ToneBatch,
     *,
     control: StepControl | None = None,
+    psi0: np.ndarray | None = None,
+    rho0: np.ndarray | None = None,
 ) -> np.ndarray:
-    """Final level populations of R runs, each starting in |0⟩.
+    """Final level populations of R runs, each starting in |0⟩ (or ``psi0``/``rho0``).
 
     Parameters
     ----------
@@ -767,33 +874,15 @@ def evolve_populations(
         Relaxation and Ramsey times (ns); ``inf`` disables.
     tones : ToneBatch
     control : StepControl, optional
+    psi0, rho0 : arrays, optional
+        Initial state, see :func:`initial_density`.
 
     Returns
     -------
     (R, L) array of populations.
     """
-    c = control or StepControl()
-    R = tones.start_ns.shape[0]
-    g1, gphi = _rates(np.broadcast_to(t1_ns, (R,)).astype(float),
-                      np.broadcast_to(t2_ns, (R,)).astype(float))
-    levels = np.ascontiguousarray(np.broadcast_to(levels_ghz, (R, np.shape(levels_ghz)[-1])),
-                                  dtype=float)
-    lad = np.ascontiguousarray(np.broadcast_to(ladder, (R, levels.shape[1] - 1)), dtype=float)
-    pops = _evolve_batch(levels, lad, g1, gphi,
-                         np.ascontiguousarray(tones.start_ns, dtype=float),
-                         np.ascontiguousarray(tones.duration_ns, dtype=float),
-                         np.ascontiguousarray(tones.freq_ghz, dtype=float),
-                         np.ascontiguousarray(tones.omega_ghz, dtype=complex),
-                         np.ascontiguousarray(tones.env_code, dtype=np.int64),
-                         np.ascontiguousarray(tones.sigma_ns, dtype=float),
-                         np.ascontiguousarray(tones.drag_ns, dtype=float),
-                         np.ascontiguousarray(tones.ramp_ns, dtype=float),
-                         np.ascontiguousarray(tones.n_tones, dtype=np.int64),
-                         np.ascontiguousarray(tones.end_ns, dtype=float),
-                         c.max_step_ns, c.phase_per_step, c.envelope_fraction)
-    # Round-off can leave populations a hair outside [0, 1]; the sampler needs valid ones.
-    pops = np.clip(pops, 0.0, 1.0)
-    return pops / pops.sum(axis=1, keepdims=True)
+    return _populations(evolve_states(levels_ghz, ladder, t1_ns, t2_ns, tones, psi0=psi0,
+                                      rho0=rho0, control=control))
 
 
 def evolve_held(
@@ -807,6 +896,9 @@ def evolve_held(
     *,
     n_cells: np.ndarray | None = None,
     control: StepControl | None = None,
+    psi0: np.ndarray | None = None,
+    rho0: np.ndarray | None = None,
+    density: bool = False,
 ) -> np.ndarray:
     """Final level populations of R runs under sample-held drives, each starting in |0⟩.
 
@@ -836,20 +928,21 @@ def evolve_held(
     n_cells : (R,) int array, optional
         Cells of each run (≤ N; default N): run r ends, and is read, at ``n_cells[r]·dt``.
     control : StepControl, optional
+    psi0, rho0 : arrays, optional
+        Initial state, see :func:`initial_density` (default |0⟩).
+    density : bool
+        Return the final density matrices (R, L, L), in the frame of f01 as
+        :func:`evolve_states`, instead of the populations.
 
     Returns
     -------
-    (R, L) array of populations.
+    (R, L) array of populations, or (R, L, L) density matrices with ``density``.
     """
     c = control or StepControl()
-    omega = np.ascontiguousarray(omega_ghz, dtype=complex)
+    omega = _c(omega_ghz, complex)
     R = omega.shape[0]
-    freq = np.ascontiguousarray(np.broadcast_to(carrier_ghz, omega.shape[:2]), dtype=float)
-    g1, gphi = _rates(np.broadcast_to(t1_ns, (R,)).astype(float),
-                      np.broadcast_to(t2_ns, (R,)).astype(float))
-    levels = np.ascontiguousarray(np.broadcast_to(levels_ghz, (R, np.shape(levels_ghz)[-1])),
-                                  dtype=float)
-    lad = np.ascontiguousarray(np.broadcast_to(ladder, (R, levels.shape[1] - 1)), dtype=float)
+    freq = _c(np.broadcast_to(carrier_ghz, omega.shape[:2]), float)
+    levels, lad, g1, gphi = _per_run(levels_ghz, ladder, t1_ns, t2_ns, R)
     # Frame: the carrier carrying the most drive, so that a lone carrier is static.
     strength = np.abs(omega).sum(axis=2)
     f_frame = np.where(strength.max(axis=1) > 0, freq[np.arange(R), strength.argmax(axis=1)],
@@ -863,10 +956,10 @@ def evolve_held(
     nsub = np.maximum(1, np.ceil(float(dt_ns) / step - 1e-12)).astype(np.int64)
     cells = np.full(R, omega.shape[2], dtype=np.int64) if n_cells is None else np.minimum(
         np.asarray(n_cells, dtype=np.int64), omega.shape[2])
-    pops = _evolve_held_batch(levels, lad, g1, gphi, omega, freq, float(dt_ns), nsub, f_frame,
-                              np.ascontiguousarray(np.broadcast_to(cells, (R,))))
-    pops = np.clip(pops, 0.0, 1.0)
-    return pops / pops.sum(axis=1, keepdims=True)
+    rho = _evolve_held_batch(levels, lad, g1, gphi, omega, freq, float(dt_ns), nsub,
+                             _c(f_frame, float), _c(np.broadcast_to(cells, (R,)), np.int64),
+                             initial_density(R, levels.shape[1], psi0, rho0))
+    return rho if density else _populations(rho)
 
 
 def evolve_reference(
@@ -879,11 +972,14 @@ def evolve_reference(
     *,
     rtol: float = 1e-10,
     atol: float = 1e-12,
+    rho0: np.ndarray | None = None,
+    density: bool = False,
 ) -> np.ndarray:
     """Slow reference: the same master equation for one run, by SciPy's DOP853.
 
     Integrated in the frame of the victim's 0–1 frequency, interval by interval
-    (so that the integrator never steps across a pulse edge).
+    (so that the integrator never steps across a pulse edge). ``rho0`` (L, L) is the
+    initial state (default |0⟩⟨0|); ``density`` returns the final ρ instead of populations.
     """
     L = len(levels_ghz)
     g1, gphi = _rates(np.array([t1_ns], float), np.array([t2_ns], float))
@@ -913,9 +1009,9 @@ def evolve_reference(
             if 0 < tt < t_end:
                 cuts.add(float(tt))
     cuts = sorted(cuts)
-    y = np.zeros(L * L, complex)
-    y[0] = 1.0
+    y = initial_density(1, L, rho0=rho0)[0].ravel()
     for a, b in zip(cuts[:-1], cuts[1:], strict=True):
         sol = solve_ivp(rhs, (a, b), y, method="DOP853", rtol=rtol, atol=atol)
         y = sol.y[:, -1]
-    return np.real(np.diag(y.reshape(L, L)))
+    rho = y.reshape(L, L)
+    return rho if density else np.real(np.diag(rho))

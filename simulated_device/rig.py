@@ -27,6 +27,7 @@ from simulated_device.drift_state import DeviceDrift
 from simulated_device.dynamics import StepControl, ToneBatch, evolve_held, evolve_populations
 from simulated_device.electronics import apply_to_samples
 from simulated_device.paths import resonance_factor
+from simulated_device.qubit_noise import BatchQubitNoise, TelegraphDefect, draw_batch_noise
 from xtalkcal.exceptions import TimelineError
 from xtalkcal.hardware import (
     Chip,
@@ -86,6 +87,18 @@ class SimRig:
         self._t_s = float(start_s)
         self._shots_total = 0
         self._control = control or StepControl()
+        # Two-level defects of the qubits that have one, each seeded by the seed and its index.
+        self._defects = {q.name: TelegraphDefect(q.noise.tls_rate_per_hour, (self._seed, 15, k))
+                         for k, q in enumerate(self.device.qubits) if q.noise.tls_shift_mhz}
+
+    def qubit_noise(self, victim: str, runs: int, rng: np.random.Generator | None,
+                    t_s: float) -> BatchQubitNoise | None:
+        """One batch's qubit-noise draws for ``victim`` (None if the qubit has none)."""
+        q = self.device.qubit(victim)
+        if not q.noise.enabled:
+            return None
+        tls = self._defects[victim].state(t_s) if victim in self._defects else 0
+        return draw_batch_noise(q.noise, q.levels.energies_ghz, q.t1_us, q.t2_us, runs, rng, tls)
 
     # ------------------------------------------------------------------ protocol
     @property
@@ -254,9 +267,12 @@ class SimRig:
         n_assign = max(q.readout.shape[0] for q in dev.qubits)
         out = np.zeros((R, len(readout), n_assign), dtype=np.int64)
         group_shots = _group_shots(shots, dev.jitter_groups)
+        # A child generator, so the jitter and shot draws stay where they were.
+        qrng = rng.spawn(1)[0]
         for iq, victim in enumerate(readout):
             q = dev.qubit(victim)
-            pops = self._tone_populations(timelines, victim, state, jit)
+            noise = self.qubit_noise(victim, R * dev.jitter_groups, qrng, self._t_s)
+            pops = self._tone_populations(timelines, victim, state, jit, noise)
             out[:, iq, : q.readout.shape[0]] = _assigned_counts(pops, q.readout, group_shots, rng)
         return out
 
@@ -266,8 +282,9 @@ class SimRig:
         jit = np.ones((len(timelines), 1, len(self._chip.line_names)), dtype=complex)
         return self._tone_populations(list(timelines), victim, self._drift.at(self._t_s), jit)
 
-    def _tone_populations(self, timelines, victim, state, jit) -> np.ndarray:
-        """Populations (R·G, L) of ``victim`` under the tones, jitter ``jit`` (R, G, lines)."""
+    def _tone_populations(self, timelines, victim, state, jit, noise=None) -> np.ndarray:
+        """Populations (R·G, L) of ``victim`` under the tones, jitter ``jit`` (R, G, lines),
+        qubit noise ``noise`` (:class:`BatchQubitNoise`, or None)."""
         dev = self.device
         R, G = jit.shape[:2]
         line_names = self._chip.line_names
@@ -318,13 +335,9 @@ class SimRig:
             rep(start), rep(dur), rep(freq), omega, rep(code), rep(sigma), rep(drag),
             rep(ramp), rep(ntones), rep(end),
         )
-        levels = q.levels.energies_ghz + state.qubit_shift_ghz[victim] * np.arange(
-            q.levels.n_levels
-        )
-        return evolve_populations(
-            levels, q.levels.ladder, np.array([q.t1_us * 1e3]), np.array([q.t2_us * 1e3]),
-            batch, control=self._control,
-        )
+        levels, t1, t2, rho0 = _noisy_qubit(q, state.qubit_shift_ghz[victim], noise)
+        return evolve_populations(levels, q.levels.ladder, t1, t2, batch, control=self._control,
+                                  rho0=rho0)
 
     # ------------------------------------------------------------------ ground truth
     def true_crosstalk(self, victim: str, line: str, freq_ghz: float, t_s: float | None = None
@@ -507,8 +520,10 @@ class SimulatedSampledRig(SampledRig):
         n_assign = max(q.readout.shape[0] for q in dev.qubits)
         out = np.zeros((R, len(readout), n_assign), dtype=np.int64)
         group_shots = _group_shots(int(shots), G)
+        qrng = rng.spawn(1)[0]
         for iq, victim in enumerate(readout):
-            pops = self.populations(waveforms, victim, state, jit)
+            noise = sim.qubit_noise(victim, R * G, qrng, started)
+            pops = self.populations(waveforms, victim, state, jit, noise)
             q = dev.qubit(victim)
             out[:, iq, : q.readout.shape[0]] = _assigned_counts(pops, q.readout, group_shots, rng)
         sim._t_s += R * int(shots) * self.repetition_ns * 1e-9
@@ -516,11 +531,12 @@ class SimulatedSampledRig(SampledRig):
         return Counts(readout, out, int(shots), started, sim.now())
 
     def populations(self, waveforms: list[SampledWaveforms], victim: str, state=None,
-                    jit: np.ndarray | None = None) -> np.ndarray:
+                    jit: np.ndarray | None = None, noise=None) -> np.ndarray:
         """Level populations of ``victim`` after each compiled timeline, shape (R·G, L).
 
-        ``state`` is the drift state (default: at the rig's clock) and ``jit`` the jitter
-        factors per (timeline, group, line) (default: none, one group).
+        ``state`` is the drift state (default: at the rig's clock), ``jit`` the jitter
+        factors per (timeline, group, line) (default: none, one group) and ``noise`` the
+        batch's qubit noise (default: none).
         """
         sim = self.sim
         dev = sim.device
@@ -545,13 +561,11 @@ class SimulatedSampledRig(SampledRig):
                 p = carriers.index(wf.lo_ghz[ln])
                 omega[r, :, p, : len(s)] += jit[r, :, il, None] * seen[None, :]
         q = dev.qubit(victim)
-        levels = q.levels.energies_ghz + state.qubit_shift_ghz[victim] * np.arange(
-            q.levels.n_levels)
-        return evolve_held(levels, q.levels.ladder, np.array([q.t1_us * 1e3]),
-                           np.array([q.t2_us * 1e3]), omega.reshape(R * G, len(carriers), n),
+        levels, t1, t2, rho0 = _noisy_qubit(q, state.qubit_shift_ghz[victim], noise)
+        return evolve_held(levels, q.levels.ladder, t1, t2, omega.reshape(R * G, len(carriers), n),
                            np.broadcast_to(np.array(carriers), (R * G, len(carriers))), dt,
                            n_cells=np.repeat([wf.n_samples for wf in waveforms], G),
-                           control=sim._control)
+                           control=sim._control, rho0=rho0)
 
     def _line_response(self, victim: str, line: str, lo: float, s: np.ndarray, dt: float,
                        state) -> np.ndarray:
@@ -591,6 +605,16 @@ def sampled_demo_rig() -> SimulatedSampledRig:
     from simulated_device import demo_device_path
 
     return SimulatedSampledRig(demo_device_path(), seed=1234)
+
+
+def _noisy_qubit(q, drift_shift_ghz: float, noise):
+    """Levels (1 or R·G rows), T1, T2 (ns) and initial ρ of qubit ``q`` under a batch's noise."""
+    n = np.arange(q.levels.n_levels)
+    levels = q.levels.energies_ghz + drift_shift_ghz * n
+    if noise is None:
+        return levels, np.array([q.t1_us * 1e3]), np.array([q.t2_us * 1e3]), None
+    levels = levels[None, :] + noise.shift_ghz[:, None] * n[None, :]
+    return levels, np.array([noise.t1_ns]), np.array([noise.t2_ns]), noise.rho0
 
 
 def _jitter(dev: DeviceSpec, rng: np.random.Generator, runs: int, n_lines: int) -> np.ndarray:
