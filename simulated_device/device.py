@@ -65,6 +65,11 @@ Device file, field by field::
     crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
     phase_deg_change = 20.0    # optional (default 0), added to arg X (−360 … 360)
 
+    [[exchange]]               # version 3: exchange coupling of two transmons (optional)
+    qubit_a = "q0"             # H_J/h = J·(a†b + ab†), rotating-wave (see
+    qubit_b = "q1"             # simulated_device.exchange); a victim with such neighbours
+    j_mhz = 3.0                # is simulated with them as one cluster; 0 < J ≤ 50 MHz
+
 Unlisted (line, qubit) pairs do not couple. The drift of a coupling is its phase random
 walk (``phase_diffusion_rad2_per_hour``, its own or the ``[drift]`` default), its linear
 phase rate, its log-magnitude random walk, and the sum of the steps at or before the time.
@@ -83,6 +88,7 @@ from typing import Any
 
 import numpy as np
 
+from simulated_device.exchange import ExchangeTruth, read_exchange
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
 from xtalkcal.common import INVALID, Fields, load_toml, read_header, valid
 from xtalkcal.hardware import (
@@ -108,7 +114,7 @@ __all__ = [
 ]
 
 DEVICE_FORMAT = "xtalkcal-simdevice"
-DEVICE_VERSION = 2
+DEVICE_VERSION = 3
 # [[couplings]] fields a version 1 file may not hold.
 _VERSION_2_FIELDS = ("phase_diffusion_rad2_per_hour", "log_magnitude_diffusion_per_hour")
 HOUR_S = 3600.0
@@ -224,6 +230,7 @@ class DeviceSpec:
     drift: DriftParams = field(default_factory=DriftParams)
     source: str = "<memory>"
     steps: tuple[StepChange, ...] = ()
+    exchange: tuple[ExchangeTruth, ...] = ()  # [[exchange]] blocks (none: no coupling)
 
     @property
     def drifts(self) -> bool:
@@ -341,6 +348,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
     version_1 = data.get("version", DEVICE_VERSION) == 1
     couplings = _read_couplings(top, own_qubit, qnames, version_1)
     steps = _read_steps(top, couplings, list(own_qubit), qnames, version_1)
+    exchange = read_exchange(top, qnames, data.get("version", DEVICE_VERSION))
     top.reject_unknown()
     top.finish()
     return DeviceSpec(
@@ -358,6 +366,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         drift=drift,
         source=source,
         steps=tuple(steps),
+        exchange=tuple(exchange),
     )
 
 
