@@ -98,3 +98,15 @@ def test_driven_pair_against_mesolve():
                      [0.0, 50.0], c_ops=c_ops, options=opts)
     ref = res.states[-1].full()
     assert np.max(np.abs(rho - ref)) < 1e-6
+
+
+def test_conditional_leak_against_first_order_perturbation():
+    # First order in J (Rayleigh–Schrödinger): A's drive on B's dressed 0–1 transition is
+    # −J/Δ with A in |0⟩ and J/Δ − 2J/(Δ + α_A) with A in |1⟩ (Δ = f_A − f_B); the
+    # difference 2Jα_A/(Δ(Δ + α_A)) is the part no single tone can cancel.
+    c = pair()
+    delta = FA - FB
+    x0 = (lambda el: el[1] / el[0])(c.transition_elements(0, [0])[0])
+    x1 = (lambda el: el[1] / el[0])(c.transition_elements(0, [1])[0])
+    assert abs(x0 / (-J / delta) - 1) < 0.02
+    assert abs((x1 - x0) / (2 * J * ALPHA / (delta * (delta + ALPHA))) - 1) < 0.05
