@@ -72,6 +72,11 @@ Device file, field by field::
     crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
     phase_deg_change = 20.0    # optional (default 0), added to arg X (−360 … 360)
 
+    [[exchange]]               # version 3: exchange coupling of two transmons (optional)
+    qubit_a = "q0"             # H_J/h = J·(a†b + ab†), rotating-wave (see
+    qubit_b = "q1"             # simulated_device.exchange); a victim with such neighbours
+    j_mhz = 3.0                # is simulated with them as one cluster; 0 < J ≤ 50 MHz
+
 Leak paths and electronics (version 3; every field optional, each effect off without it;
 the values below are an invented example)::
 
@@ -115,6 +120,7 @@ from typing import Any
 import numpy as np
 
 from simulated_device.electronics import LineElectronics, read_line_electronics
+from simulated_device.exchange import ExchangeTruth, read_exchange
 from simulated_device.paths import Resonance, read_resonances
 from simulated_device.qubit_noise import QubitNoise
 from simulated_device.transmon import TransmonLevels, charge_basis_levels, duffing_levels
@@ -262,6 +268,7 @@ class DeviceSpec:
     source: str = "<memory>"
     steps: tuple[StepChange, ...] = ()
     envelope_delay: bool = False  # version 3 default True: leaks delay envelopes too
+    exchange: tuple[ExchangeTruth, ...] = ()  # [[exchange]] blocks (none: no coupling)
 
     @property
     def drifts(self) -> bool:
@@ -382,6 +389,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
     version_1 = data.get("version", DEVICE_VERSION) == 1
     couplings = _read_couplings(top, own_qubit, qnames, version_1, version_3)
     steps = _read_steps(top, couplings, list(own_qubit), qnames, version_1)
+    exchange = read_exchange(top, qnames, data.get("version", DEVICE_VERSION))
     top.reject_unknown()
     top.finish()
     return DeviceSpec(
@@ -400,6 +408,7 @@ def device_from_dict(data: Mapping[str, Any], *, source: str = "<memory>") -> De
         source=source,
         steps=tuple(steps),
         envelope_delay=envelope_delay,
+        exchange=tuple(exchange),
     )
 
 
