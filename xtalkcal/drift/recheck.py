@@ -1,10 +1,10 @@
 """Scheduled re-checks on a rig: measure a few points around stored nulls, decide, act.
 
-A re-check of an aggressor's compensated pairs replays the calibration's probe (same
-aggressor amplitude, same amplification K, same method) with **every** cancellation
-tone of that aggressor on, and puts a small ring of points (plus the centre) around
-each re-checked victim's stored null, the rings of different victims kept apart as
-in the calibration (:func:`xtalkcal.calibrate.ring_around`). The analysis and the
+A re-check of a compensated pair replays the calibration's probe (same aggressor
+amplitude, same amplification K, same method) with the pair's own cancellation tone on
+and its column's other tones off (:func:`run_due`; :func:`recheck_column` can also ring
+a column's victims together with every tone on, as the verification does), and puts a
+small ring of points (plus the centre) around the stored null. The analysis and the
 decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
 calibration's rule (the signal rises by a set amount), the curvature prior comes
 from refitting the pair's calibration sweep stored in the ledger.
