@@ -9,6 +9,7 @@ decision rules of :func:`xtalkcal.drift.analyse_recheck` themselves.
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -211,11 +212,29 @@ def test_a_measured_fast_drift_survives_recalibration() -> None:
         _settings(12.0))
 
 
-def test_a_victim_whose_recheck_broke_rings_alone_until_recalibrated() -> None:
-    pair = ("d1", "q2")
-    base = [_entry(0.0, 0.1, kind="null"), _entry(2.0, 0.1)]
-    assert not _due_run(base, 3.0).rings_alone(pair)
-    broke = base + [_entry(3.0, complex(math.nan, math.nan), tag="broken", verdict="rejected"),
-                    _entry(3.0, 0.1)]
-    assert _due_run(broke, 4.0).rings_alone(pair)
-    assert not _due_run(broke + [_entry(5.0, 0.1, kind="null")], 6.0).rings_alone(pair)
+class _Snap:
+    """The part of a MatrixSnapshot that picking re-checks reads."""
+
+    def __init__(self, kinds: dict) -> None:
+        self.entries = {p: SimpleNamespace(kind=k) for p, k in kinds.items()}
+
+    def __contains__(self, pair) -> bool:
+        return pair in self.entries
+
+    def __getitem__(self, pair):
+        return self.entries[pair]
+
+
+def test_only_the_due_pairs_are_rechecked_each_with_its_co_victims_off() -> None:
+    # A due pair does not bring its co-victims along (each keeps the interval its own drift
+    # sets), a survey-only pair is neither re-checked nor played, and in a pair's re-check
+    # the column's other tones are off: their leak through the victim lines' mutual
+    # couplings would otherwise move the measured null.
+    snap = _Snap({("d1", "q0"): "null", ("d1", "q2"): "recheck", ("d1", "q3"): "null",
+                  ("d1", "q4"): "survey", ("d2", "q1"): "null"})
+    run = _due_run([_entry(0.0, 0.1, kind="null")], 1.0)
+    run.snapshot = snap
+    assert run.due_columns([("d1", "q2"), ("d2", "q1"), ("d1", "q4")]) == {
+        "d1": ["q2"], "d2": ["q1"]}
+    assert sorted(run.co_victims("d1", "q2")) == ["q0", "q3"]
+    assert run.co_victims("d2", "q1") == []

@@ -1,10 +1,10 @@
 """Scheduled re-checks on a rig: measure a few points around stored nulls, decide, act.
 
-A re-check of an aggressor's compensated pairs replays the calibration's probe (same
-aggressor amplitude, same amplification K, same method) with **every** cancellation
-tone of that aggressor on, and puts a small ring of points (plus the centre) around
-each re-checked victim's stored null, the rings of different victims kept apart as
-in the calibration (:func:`xtalkcal.calibrate.ring_around`). The analysis and the
+A re-check of a compensated pair replays the calibration's probe (same aggressor
+amplitude, same amplification K, same method) with the pair's own cancellation tone on
+and its column's other tones off (:func:`run_due`; :func:`recheck_column` can also ring
+a column's victims together with every tone on, as the verification does), and puts a
+small ring of points (plus the centre) around the stored null. The analysis and the
 decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
 calibration's rule (the signal rises by a set amount), the curvature prior comes
 from refitting the pair's calibration sweep stored in the ledger.
@@ -411,47 +411,44 @@ class _DueRun:
                 self.put_aside(pair, why)
 
     def due_columns(self, due: list[Pair]) -> dict[str, list[str]]:
-        """Victims to re-check now, by aggressor: every scheduled pair of a batch with a pair
-        due."""
-        # A re-check batch costs the same whatever the number of victims on its rings (shots
-        # per ring are fixed), so when one pair of an aggressor is due, every scheduled pair
-        # of the same batch (the aggressor's Stark victims; a resonant victim has a batch of
-        # its own) is re-checked with it; the other batches wait for their own due times.
-        def batch(pair: Pair) -> str:
-            return "stark" if self.snapshot[pair].method == "stark" else pair[1]
-
-        due_batches = {(a, batch((a, v))) for a, v in due if self.in_use((a, v))}
+        """Victims to re-check now, by aggressor: the due pairs in use, and only those."""
+        # Each pair is re-checked on its own (see :meth:`check`), so a pair that is due does
+        # not bring its co-victims along: every pair keeps the interval its own drift sets.
         by_agg: dict[str, list[str]] = {}
-        for a in sorted({a for a, _ in due_batches}):
-            victims = [v for aa, v in self.schedule.pairs()
-                       if aa == a and (a, batch((a, v))) in due_batches]
-            if victims:
-                by_agg[a] = victims
-        return by_agg
+        for a, v in due:
+            if self.in_use((a, v)):
+                by_agg.setdefault(a, []).append(v)
+        return {a: sorted(vs) for a, vs in sorted(by_agg.items())}
+
+    def co_victims(self, a: str, v: str) -> list[str]:
+        """The other compensated victims of ``a``: their tones stay off in ``v``'s re-check."""
+        return [u for (aa, u), e in self.snapshot.entries.items()
+                if aa == a and u != v and e.kind != "survey"]
 
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
-        """Re-check ``victims`` of ``a`` and act on each outcome; the broken ones.
+        """Re-check ``victims`` of ``a``, each alone, and act on each outcome; the broken ones.
 
-        The confirming repeat rings each victim alone: ringing co-victims leak onto a
-        victim through couplings measured at calibration, and as those couplings drift the
-        leak left after taking them out grows into a misfit that has nothing to do with the
-        pair's own null. Alone, the other tones sit at their stored nulls and leave none.
-        A victim whose re-check broke since its last calibration rings alone from then on
-        (:meth:`rings_alone`): the couplings only drift further until the column is
-        calibrated anew.
+        Each victim's ring is played with the column's other cancellation tones off. With
+        them on, their leak onto the victim through the victim lines' mutual couplings
+        (about the coupling times the other tone, often near the tolerance) has to be
+        taken out with the couplings measured at calibration, and those drift like
+        everything else: what is left moves the measured null, so that a pair whose own
+        element had not moved read as drifted by about that leak, was re-checked at the
+        shortest interval and was never settled. Off, the victim sees only the aggressor's
+        leak and its own tone, ``A·(X − X_stored) + ring offset``: the change of the pair's
+        own element, which is what the stored null and the tolerance refer to. (The
+        all-tones-on field is what the verification measures.)
         """
-        alone = [v for v in victims if confirming or self.rings_alone((a, v))]
-        together = [v for v in victims if v not in alone]
-        try:
-            checks = [c for vs, solo in ((together, False), (alone, True)) if vs
-                      for c in recheck_column(self.rig, self.protocol, self.snapshot, a, vs,
-                                              runner=self.runner, ledger=self.ledger,
-                                              key=f"{key}-solo" if solo else key,
-                                              silent=self.aside(a), solo=solo)]
-        except SafetyLimitError as exc:  # refused before anything was played
-            for v in victims:
+        checks: list[PairCheck] = []
+        for v in victims:
+            try:
+                checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
+                                         runner=self.runner, ledger=self.ledger,
+                                         key=f"{key}-{v}",
+                                         silent=self.aside(a) + self.co_victims(a, v),
+                                         solo=True)
+            except SafetyLimitError as exc:  # refused before anything was played
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
-            return []
         self.ledger.append([c.entry for c in checks])
         broken = []
         for c in checks:
@@ -463,15 +460,6 @@ class _DueRun:
                 continue
             self.act_on(c)
         return broken
-
-    def rings_alone(self, pair: Pair) -> bool:
-        """True when a re-check of ``pair`` was judged broken since its last calibration."""
-        hist = sorted(self.ledger.history(*pair),
-                      key=lambda e: (e.measured_at_s, e.seq, e.position))
-        since = [e for e in hist if e.kind != "recheck"][-1:]
-        start = since[0].measured_at_s if since else -math.inf
-        return any(e.kind == "recheck" and e.tag == RecheckDecision.BROKEN.value
-                   and e.measured_at_s >= start for e in hist)
 
     def act_on(self, c: PairCheck) -> None:
         """Record a re-check in the schedule; re-centre the pair or mark its column for
