@@ -114,6 +114,30 @@ def test_survey_selects_on_the_upper_three_sigma_bound():
     assert survey_selection(at_edge, amp, thr, ["a"], force=()).tolist() == [True]
 
 
+
+def test_survey_selects_only_nullable_victims():
+    amp, thr = 0.1, 10 ** (-40 / 20)
+    strong = [est(-2e-3, sigma=1e-5)] * 3  # all far above the threshold
+    sel = survey_selection(strong, amp, thr, ["a", "b", "c"], force=("c",), nullable=("b",))
+    assert sel.tolist() == [False, True, False]  # a and c keep their survey estimates
+    assert survey_selection(strong, amp, thr, ["a", "b", "c"], force=(),
+                            nullable=()).tolist() == [False, False, False]
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(st.tuples(st.floats(0, 5e-3), st.booleans(), st.booleans()),
+                min_size=1, max_size=8))
+def test_nullable_filters_the_selection_and_nothing_else(rows):
+    amp, thr = 0.1, 1e-2
+    victims = [f"q{i}" for i in range(len(rows))]
+    estimates = [est(z, sigma=1e-4) for z, _, _ in rows]
+    force = tuple(v for v, (_, f, _) in zip(victims, rows, strict=True) if f)
+    nullable = tuple(v for v, (_, _, n) in zip(victims, rows, strict=True) if n)
+    whole = survey_selection(estimates, amp, thr, victims, force)
+    only = survey_selection(estimates, amp, thr, victims, force, nullable=nullable)
+    assert only.tolist() == [w and v in nullable for w, v in zip(whole, victims, strict=True)]
+
+
 # --- the hand-over -------------------------------------------------------------------
 
 

@@ -103,6 +103,25 @@ def test_calibrate_only_the_named_pairs(tmp_path, capsys):
         ("d4", "q5", True)]
 
 
+def test_calibrate_pairs_keeps_the_column_survey_as_estimates(tmp_path, capsys):
+    """--pairs nulls the named pair only; the rest of its column's survey is kept, not
+    dropped: even a victim above the threshold (which a column run would null) stays a
+    survey estimate."""
+    proto = tmp_path / "p.toml"
+    proto.write_text('name = "q"\n[survey]\nshots = 500\nthreshold_db = -30.0\n'
+                     '[null]\nmax_rounds = 1\n')
+    code, text, err = _run(capsys, "calibrate", "--protocol", str(proto), "--pairs", "d4:q5",
+                           "--no-drift", "-q", "-o", str(tmp_path / "m.json"))
+    assert code == 0, err
+    pairs = json.loads((tmp_path / "m.json").read_text())["pairs"]
+    assert {p["aggressor_line"] for p in pairs} == {"d4"}
+    assert {p["victim"] for p in pairs if p["nulled"]} == {"q5"}
+    others = [p for p in pairs if p["victim"] != "q5"]
+    assert len(others) == 7  # every other qubit of the 9-qubit chip, surveyed
+    # above the threshold, not nulled
+    assert any(p["crosstalk"]["magnitude_db"] > -30.0 for p in others)
+
+
 @pytest.mark.parametrize("argv, words", [
     (["--pairs", "d4"], ["LINE:QUBIT"]),
     (["--pairs", "d4:q4"], ["own qubit"]),

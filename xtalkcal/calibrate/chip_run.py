@@ -37,6 +37,7 @@ def calibrate_chip(
     column_parallel: bool = True,
     key_prefix: str = "",
     null_victims: Mapping[str, Collection[str]] | None = None,
+    null_only: Mapping[str, Collection[str]] | None = None,
     log: Callable[[str], None] | None = None,
 ) -> CalibrationResult:
     """Survey every column and null every pair above the protocol's threshold.
@@ -55,6 +56,11 @@ def calibrate_chip(
     null_victims : mapping of aggressor line to victims, optional
         Pairs to null whatever their survey says (a recalibration of pairs already in use
         must not fall back to a survey estimate).
+    null_only : mapping of aggressor line to victims, optional
+        If given, the only pairs that may be nulled (a calibration of named pairs). Each
+        column is still surveyed whole, and its other victims keep their survey estimates
+        (accepted ones; a survey rejected for a pair not named is dropped, not widened:
+        it was not asked for).
     key_prefix : str
         Prefix of the batch keys in the runner's record (distinct calibrations sharing a
         record folder need distinct prefixes).
@@ -67,6 +73,7 @@ def calibrate_chip(
     result = CalibrationResult(chip, protocol, rig.describe(), risk=risk_map(chip, protocol))
     shape = PulseShape(protocol.pulse.duration_ns, protocol.pulse.sigma_ns)
     for line in aggressors or list(chip.line_names):
+        nullable = None if null_only is None else tuple(null_only.get(line, ()))
         own = chip.line(line).qubit
         victims = [q for q in chip.qubit_names if q != own]
         methods = {v: protocol.method_override(line, v)
@@ -94,7 +101,7 @@ def calibrate_chip(
                     handoff = calibrate_pass(rig, runner, protocol, result, PassRequest(
                         line, victims_of_pass, [methods[v] for v in victims_of_pass], shape,
                         stark=(gi >= 1), companions=companions, key_prefix=key_prefix,
-                        force=force, split=column_parallel), say=say)
+                        force=force, nullable=nullable, split=column_parallel), say=say)
                     _null_one_by_one(rig, runner, protocol, result, line, handoff.nulls,
                                      methods, shape, say=say, key_prefix=key_prefix)
                     for v in handoff.resurvey:
@@ -103,9 +110,15 @@ def calibrate_chip(
                         calibrate_pass(rig, runner, protocol, result, PassRequest(
                             line, [v], [methods[v]], shape, stark=False,
                             companions=_nulled_tones(result, protocol, line),
-                            key_prefix=key_prefix, force=force, split=True), say=say)
-                    _widen_rejected(rig, runner, protocol, result, line, victims_of_pass,
+                            key_prefix=key_prefix, force=force, nullable=nullable,
+                            split=True), say=say)
+                    _widen_rejected(rig, runner, protocol, result, line,
+                                    [v for v in victims_of_pass
+                                     if nullable is None or v in nullable],
                                     methods, shape, say=say, key_prefix=key_prefix)
+    if null_only is not None:
+        result.pairs = [p for p in result.pairs if p.accepted
+                        or p.victim in null_only.get(p.aggressor, ())]
     result.shots = runner.shots_executed + runner.shots_resumed
     result.rig_seconds = runner.rig_seconds
     return result

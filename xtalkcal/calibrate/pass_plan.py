@@ -67,6 +67,9 @@ class PassRequest:
         Prefix of the batch keys.
     force : tuple of str
         Victims nulled whatever their survey says.
+    nullable : tuple of str, optional
+        If given, the only victims the pass may null; the others are surveyed and keep
+        their survey estimates (a calibration of named pairs).
     start : PassStart, optional
         Start from known nulls instead of a survey.
     split : bool
@@ -87,6 +90,7 @@ class PassRequest:
     companions: tuple[tuple[str, complex], ...] = ()
     key_prefix: str = ""
     force: tuple[str, ...] = ()
+    nullable: tuple[str, ...] | None = None
     start: PassStart | None = None
     split: bool = False
     survey_scale: float = 1.0
@@ -96,6 +100,8 @@ class PassRequest:
             raise ValueError("survey_scale must be ≥ 1")
         for name in ("victims", "methods", "companions", "force"):
             object.__setattr__(self, name, tuple(getattr(self, name)))
+        if self.nullable is not None:
+            object.__setattr__(self, "nullable", tuple(self.nullable))
 
 
 @dataclass(frozen=True)

@@ -139,7 +139,7 @@ def survey(plan: PassPlan, record: PassRecord, say: Say) -> PassOpening:
     est = record.fit(plan.probe.repeats, np.zeros(V, bool), plan.stark_rows).estimates
     survey_time = record.data_time()
     selected = survey_selection(est, plan.amp, plan.thr, plan.request.victims,
-                                plan.request.force)
+                                plan.request.force, nullable=plan.request.nullable)
     say(f"{plan.request.line}: K={plan.probe.repeats}, survey of {V} victims, "
         f"{int(selected.sum())} above {proto.survey.threshold_db:g} dB")
     centre = np.array([e.z_star if e.accepted else 0j for e in est])
@@ -147,12 +147,15 @@ def survey(plan: PassPlan, record: PassRecord, say: Say) -> PassOpening:
 
 
 def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
-                     victims: Sequence[str], force: Sequence[str]) -> np.ndarray:
+                     victims: Sequence[str], force: Sequence[str], *,
+                     nullable: Sequence[str] | None = None) -> np.ndarray:
     """Which victims a survey selects for nulling.
 
     A victim is selected if its fit is accepted and its upper bound |X| + kσ (k =
     ``SELECT_SIGMAS``) reaches the threshold, or
-    if it is forced; a fit without signal means |X| is small against the ring.
+    if it is forced; a fit without signal means |X| is small against the ring. With
+    ``nullable`` given, a victim outside it is never selected (it keeps its survey
+    estimate), whatever its survey says.
 
     Parameters
     ----------
@@ -164,6 +167,8 @@ def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
         Threshold on |X| (linear).
     victims, force : sequence of str
         Names of the victims; those to null whatever the survey says.
+    nullable : sequence of str, optional
+        The only victims that may be selected (default: all).
 
     Returns
     -------
@@ -175,6 +180,8 @@ def survey_selection(estimates: Sequence[Any], amp: float, thr: float,
             x = -e.z_star / amp
             sx = null_sigma(e) / amp
             selected[i] = abs(x) + SELECT_SIGMAS * sx >= thr or victims[i] in force
+    if nullable is not None:
+        selected &= np.array([v in nullable for v in victims], bool)
     return selected
 
 

@@ -29,11 +29,6 @@ __all__ = ["add_commands", "open_ledger", "record_in_ledger", "measurement_key",
 
 log = logging.getLogger(__name__)
 
-# A threshold no survey estimate reaches (dB): with --pairs only the named pairs are
-# nulled (forced), the rest of their columns keep their survey estimates.
-_NOTHING_ABOVE_DB = 60.0
-
-
 def check_record(path: str | None, resume: bool) -> str | None:
     """Refuse a ``--record`` folder from an earlier day unless ``resume``; one line saying
     what record is used, or None for none / a new one.
@@ -94,21 +89,11 @@ def calibration_scope(args, chip, protocol):
     if aggressors is not None and set(lines) - set(aggressors):
         raise usage_error("--pairs", "names lines outside --aggressors; accepted: pairs of "
                                      "the lines given (or --pairs alone)")
+    # The named pairs are nulled whatever their survey says, and only they
+    # (calibrate_chip's null_only): their columns' surveys share the shots, so the other
+    # victims' survey estimates cost nothing more and are kept.
     forced = {a: [v for aa, v in pairs if aa == a] for a in lines}
-    # The named pairs are nulled whatever their survey says, and only they: the columns'
-    # surveys share their shots, so the others cost nothing more than their survey.
-    protocol = dataclasses.replace(protocol, survey=dataclasses.replace(
-        protocol.survey, threshold_db=_NOTHING_ABOVE_DB))
     return lines, forced, protocol
-
-
-def _keep_pairs(result, forced):
-    """The result limited to the pairs named with ``--pairs``."""
-    keep = {(a, v) for a, vs in forced.items() for v in vs}
-    result.pairs = [p for p in result.pairs if (p.aggressor, p.victim) in keep]
-    used = {p.sweep_id for p in result.pairs}
-    result.sweeps = {k: v for k, v in result.sweeps.items() if k in used}
-    return result
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
@@ -133,9 +118,8 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
     runner = BatchRunner(rig, args.record, progress=progress_bar(args),
                          timeout_s=args.rig_timeout)
     result = calibrate.calibrate_chip(rig, protocol, runner=runner, aggressors=aggressors,
-                                      null_victims=forced, log=lambda s: log.info(s))
-    if forced is not None:
-        result = _keep_pairs(result, forced)
+                                      null_victims=forced, null_only=forced,
+                                      log=lambda s: log.info(s))
     if runner.progress is not None:
         runner.progress.close()
     atomic_write(out, dumps(result) + "\n")
@@ -166,7 +150,7 @@ def dry_run_calibrate(rig, protocol, aggressors=None, forced=None) -> int:
     dry = DryRig(rig)
     runner = BatchRunner(dry)
     calibrate_chip(dry, protocol, runner=runner, aggressors=aggressors, null_victims=forced,
-                   log=lambda s: log.info(s))
+                   null_only=forced, log=lambda s: log.info(s))
     dry_run_report(rig, runner.tally, "before any data (the surveys of every column)")
     print("The null searches depend on what the surveys find: each of their batches is "
           "checked against the same limits before it is sent.")
@@ -275,7 +259,8 @@ def add_scope(cmd: argparse.ArgumentParser) -> None:
                      help="comma-separated aggressor lines to calibrate (default: all)")
     cmd.add_argument("--pairs", default=None, metavar="LINE:QUBIT,...",
                      help="calibrate only these pairs: their columns are surveyed and just "
-                          "these nulled (default: every pair above the threshold)")
+                          "these nulled, the other victims keeping their survey estimates "
+                          "(default: every pair above the threshold)")
 
 
 def add_record(cmd: argparse.ArgumentParser) -> None:
