@@ -48,7 +48,7 @@ from dataclasses import dataclass
 import numba as nb
 import numpy as np
 
-from simulated_device.dynamics import DRAG, FLATTOP, GAUSSIAN, SQUARE, _envelope
+from simulated_device.dynamics import DRAG, FLATTOP, GAUSSIAN, SQUARE, ToneBatch, _envelope
 from simulated_device.exchange import CLUSTER_MAX_QUBITS, exchange_neighbours
 from simulated_device.transmon import TransmonLevels
 
@@ -85,22 +85,10 @@ class ClusterControl:
 
 
 @dataclass(frozen=True)
-class ClusterTones:
-    """Tones of R runs padded to M each; ``omega_ghz`` (R, M, n) is each tone's complex Rabi
-    rate (GHz, envelope peak 1) at each cluster transmon's 0–1 transition. The other fields
-    are as :class:`simulated_device.dynamics.ToneBatch`'s: (R, M) arrays of start, duration,
-    carrier, envelope code, σ, DRAG coefficient and ramp, tones per run (R,), readout (R,)."""
-
-    start_ns: np.ndarray
-    duration_ns: np.ndarray
-    freq_ghz: np.ndarray
-    omega_ghz: np.ndarray
-    env_code: np.ndarray
-    sigma_ns: np.ndarray
-    drag_ns: np.ndarray
-    ramp_ns: np.ndarray
-    n_tones: np.ndarray
-    end_ns: np.ndarray
+class ClusterTones(ToneBatch):
+    """Tones of R runs padded to M each, as :class:`simulated_device.dynamics.ToneBatch`,
+    except that ``omega_ghz`` is (R, M, n): each tone's complex Rabi rate (GHz, envelope
+    peak 1) at each of the n cluster transmons' 0–1 transitions."""
 
 
 @dataclass(frozen=True)

@@ -6,8 +6,8 @@ from __future__ import annotations
 import argparse
 import datetime as dt
 import sys
-from pathlib import Path
 
+from xtalkcal.common import atomic_write
 from xtalkcal.exceptions import ConfigError, XtalkcalError
 
 __all__ = ["EXIT_OK", "EXIT_FAILED", "EXIT_USAGE", "DefaultsFormatter", "atomic_write",
@@ -28,24 +28,6 @@ def print_errors(exc: XtalkcalError) -> None:
 
     for problem in exc.errors if isinstance(exc, FieldErrors) else (exc,):
         print(f"xtalkcal: error: {problem}", file=sys.stderr)
-
-
-def atomic_write(path: Path, text: str) -> None:
-    """Write a text file so that a crash never leaves a half-written one."""
-    import os
-    import tempfile
-
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 def load_protocol(path: str | None):

@@ -21,6 +21,7 @@ from xtalkcal.common.fields import (
 from xtalkcal.common.files import (
     MAX_FILE_BYTES,
     MAX_NESTING,
+    atomic_write,
     load_json,
     load_toml,
     parse_json,
@@ -33,6 +34,7 @@ from xtalkcal.common.values import (
 from xtalkcal.common.version import __version__
 
 __all__ = [
+    "atomic_write",
     "MAX_FILE_BYTES",
     "MAX_NESTING",
     "load_json",

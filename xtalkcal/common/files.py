@@ -148,3 +148,21 @@ def _check_depth(data: Any, source: str) -> None:
             stack.extend((v, depth + 1) for v in node.values())
         elif isinstance(node, list):
             stack.extend((v, depth + 1) for v in node)
+
+
+def atomic_write(path: Path, text: str) -> None:
+    """Write a text file so that a crash never leaves a half-written one."""
+    import os
+    import tempfile
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise

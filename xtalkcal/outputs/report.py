@@ -12,8 +12,6 @@ import base64
 import datetime as dt
 import html
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import markdown
@@ -23,6 +21,7 @@ import numpy as np
 import xtalkcal.outputs.plot as plots
 import xtalkcal.outputs.plot_results as result_plots
 from xtalkcal.calibrate import CalibrationResult
+from xtalkcal.common import atomic_write
 from xtalkcal.hardware import limits_summary
 from xtalkcal.outputs.export import dumps, format_table
 
@@ -52,18 +51,6 @@ def _figure(title: str, name: str) -> list[str]:
 
 def _code(text: str) -> list[str]:
     return ["```text", text, "```", ""]
-
-
-def _write_text(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` through a temporary file and a rename: never half-written."""
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 def render_html(md_text: str, folder: Path, title: str) -> str:
@@ -106,11 +93,11 @@ def write_report(result: CalibrationResult, out: str | Path, *,
     if campaign is not None and campaign.drift:
         lines += _drift_section(campaign, out)
     lines += _provenance_section(result)
-    _write_text(out / "matrix.json", dumps(result) + "\n")
+    atomic_write(out / "matrix.json", dumps(result) + "\n")
     md_text = "\n".join(lines)
     md = out / "report.md"
-    _write_text(md, md_text)
-    _write_text(out / "report.html",
+    atomic_write(md, md_text)
+    atomic_write(out / "report.html",
                 render_html(md_text, out, f"xtalkcal report: {chip.name}"))
     return md
 
@@ -138,7 +125,7 @@ def _calibration_section(result, out, truth, campaign, about, figures) -> list[s
                for p in nulled]
         lines.append(f"- worst true residual of a nulled pair (simulator's truth): "
                      f"{max(res):.1f} dB")
-    _write_text(out / "matrix.txt", format_table(result) + "\n")
+    atomic_write(out / "matrix.txt", format_table(result) + "\n")
     many = len(result.pairs) > _TABLE_ROWS
     lines += ["", "### Matrix" + (f" (the {_TABLE_ROWS} strongest pairs)" if many else ""), ""]
     lines += _code(format_table(result, limit=_TABLE_ROWS if many else None))
