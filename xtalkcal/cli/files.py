@@ -178,7 +178,7 @@ def add_commands(add) -> None:
     e = add("export-chip", cmd_export_chip, "write the nominal chip file of a simulated device")
     e.add_argument("device", help="simulated device file (TOML)")
     e.add_argument("-o", "--output", required=True, help="chip file to write")
-    g = add("sim-chip", cmd_sim_chip, "write an invented simulated device of any size "
+    g = add("sim-chip", cmd_sim_chip, "write an invented simulated device of a chosen size "
                                       "(a chip to try the toolkit on: pass it as --rig FILE)")
     g.add_argument("--layout", choices=("grid", "line"), default="grid",
                    help="square grid (filled row by row) or a line")
