@@ -9,7 +9,7 @@ Prints:
    also split into the Stark and the resonant (leakage, rotation) passes;
    and the worst true field at a victim with all of its aggressor's tones on, for the
    pairwise, multi-victim and closed-loop (:mod:`xtalkcal.compensation.refine`) settings;
-3. precision of the adaptive null search on the leakage pair d4 → q5 over seeded repeats:
+3. precision of the adaptive null search on the leakage pair q4-line → q5 over seeded repeats:
    RMS error of z* divided by the Cramér–Rao bound of the design actually used;
 4. shots: adaptive search versus a 21×21 dense grid at fixed K, at equal RMS error.
 
@@ -133,9 +133,9 @@ def all_on_residual(rig, res, ratios=None) -> float:
 def _leak_setup(seed: int):
     rig = SimRig(demo_device_path(), seed=seed, drift=False)
     chip = rig.chip
-    amp = 0.8 * chip.amplitude_limit("d4")
-    probe1 = ColumnProbe(chip, "d4", ("q5",), amplitude=amp, repeats=1)
-    z_true = rig.true_ratio("q5", "d4", probe1.freq_ghz) * amp
+    amp = 0.8 * chip.amplitude_limit("q4-line")
+    probe1 = ColumnProbe(chip, "q4-line", ("q5",), amplitude=amp, repeats=1)
+    z_true = rig.true_ratio("q5", "q4-line", probe1.freq_ghz) * amp
     return rig, chip, amp, z_true
 
 
@@ -144,7 +144,7 @@ def _measure(rig, chip, amp, z, k, shots):
 
     The shots of a point are split over the probe's preparation-phase cycle (0, π).
     """
-    probe = ColumnProbe(chip, "d4", ("q5",), amplitude=amp, repeats=int(k))
+    probe = ColumnProbe(chip, "q4-line", ("q5",), amplitude=amp, repeats=int(k))
     per = probe.per_point
     if shots % per:
         raise ValueError(f"shots per point must be a multiple of {per}")
@@ -187,7 +187,7 @@ def precision_and_shots(n_seeds: int, n_grid_seeds: int) -> None:
     e = np.array(errs)
     rms = math.sqrt(np.mean(np.abs(e) ** 2))
     crb = math.sqrt(np.mean(crbs))
-    print(f"adaptive null search d4 → q5 over {n_seeds} seeds: RMS |z* error| {rms:.2e}, "
+    print(f"adaptive null search q4-line → q5 over {n_seeds} seeds: RMS |z* error| {rms:.2e}, "
           f"CRB of the designs used {crb:.2e}, ratio {rms / crb:.2f} (target ≤ 1.3); "
           f"mean shots {np.mean(used):,.0f}; model S0={floor:.4f} κ={kappa:.1f} A={A:.3f}")
     # Dense grid baseline at K = 1, centred on the same survey-quality prior.
@@ -214,7 +214,7 @@ def main() -> None:
     ap.add_argument("--skip-chip", action="store_true")
     a = ap.parse_args()
     if not a.skip_chip:
-        accuracy_and_parallelism(["d4", "d1", "d6"] if a.quick else None)
+        accuracy_and_parallelism(["q4-line", "q1-line", "q6-line"] if a.quick else None)
     precision_and_shots(12 if a.quick else 50, 8 if a.quick else 20)
 
 

@@ -39,7 +39,7 @@ Usage::
 
     python benchmarks/bench_drift.py [--chips 3] [--qubits 6] [--days 7] [--drift demo fast]
                                      [--columns-per-chip 1] [--step-chip 0] [--step-hours 60]
-                                     [--demo-chip --columns d4 d6] [--seed 7] [--jobs 2]
+                                     [--demo-chip --columns q4-line q6-line] [--seed 7] [--jobs 2]
 """
 
 from __future__ import annotations
@@ -454,8 +454,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="index of the generated chip with a 3 dB step (-1: none)")
     ap.add_argument("--step-hours", type=float, default=60.0, help="time of the step (60 h)")
     ap.add_argument("--demo-chip", action="store_true", help="also run the bundled demo chip")
-    ap.add_argument("--columns", nargs="+", default=["d4", "d6"],
-                    help="aggressor lines calibrated on the demo chip (default: d4 d6)")
+    ap.add_argument("--columns", nargs="+", default=["q4-line", "q6-line"],
+                    help="aggressor lines calibrated on the demo chip (default: q4-line q6-line)")
     ap.add_argument("--days", type=float, default=7.0, help="simulated days (default 7)")
     ap.add_argument("--seed", type=int, default=7, help="simulator seed (default 7)")
     ap.add_argument("--detail", action="store_true", help="per-pair tables and excursions")

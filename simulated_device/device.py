@@ -47,7 +47,7 @@ Device file, field by field::
     t1_fluctuation = 0.1       # T1 of a batch is T1·exp(s·z), z ~ N(0, 1); s in 0 … 1
 
     [[lines]]
-    name = "d0"
+    name = "q0-line"
     qubit = "q0"
     rabi_mhz = 40.0            # true Rabi frequency on its own qubit at amplitude 1
     max_amplitude = 0.8
@@ -56,7 +56,7 @@ Device file, field by field::
     self_slope_db_per_ghz = 0.0
 
     [[couplings]]              # leak of a line onto another qubit
-    line = "d1"
+    line = "q1-line"
     qubit = "q0"
     crosstalk_db = -28.0       # |X| at the victim's f01, relative to the victim's own line
     phase_deg = 35.0           # arg X at the victim's f01
@@ -67,7 +67,7 @@ Device file, field by field::
 
     [[steps]]                  # version 2: a sudden change of one listed coupling
     at_hours = 30.0            # simulated time it happens (0 … 1e6 h); it holds from then on
-    line = "d1"
+    line = "q1-line"
     qubit = "q0"
     crosstalk_db_change = 3.0  # dB added to |X| (−40 … 40)
     phase_deg_change = 20.0    # optional (default 0), added to arg X (−360 … 360)

@@ -295,7 +295,7 @@ def _qubits(rng: np.random.Generator, f01: np.ndarray, alphas: np.ndarray, p: Fa
 
 
 def _lines(rng: np.random.Generator, n: int, p: FamilyParams) -> list[dict[str, Any]]:
-    return [{"name": f"d{i}", "qubit": f"q{i}", "rabi_mhz": round(rng.uniform(*p.rabi_mhz), 2),
+    return [{"name": f"q{i}-line", "qubit": f"q{i}", "rabi_mhz": round(rng.uniform(*p.rabi_mhz), 2),
              "max_amplitude": p.line_max_amplitude, "full_scale_dbm": p.full_scale_dbm,
              "self_delay_ns": round(rng.uniform(-0.3, 0.3), 3),
              "self_slope_db_per_ghz": round(rng.uniform(-1.5, 1.5), 2)} for i in range(n)]
@@ -317,7 +317,7 @@ def _couplings(rng: np.random.Generator, pos: np.ndarray, p: FamilyParams
             delay = rng.uniform(*p.delay_ns)
             if db < p.omit_below_db:
                 continue
-            c = {"line": f"d{j}", "qubit": f"q{i}", "crosstalk_db": round(db, 2),
+            c = {"line": f"q{j}-line", "qubit": f"q{i}", "crosstalk_db": round(db, 2),
                  "phase_deg": round(phase, 1), "delay_ns": round(delay, 2)}
             out.append(c)
     return out

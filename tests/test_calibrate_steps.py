@@ -218,7 +218,7 @@ def test_raised_k_is_set_by_the_least_ready_victim():
 
 
 def test_request_holds_tuples():
-    req = PassRequest("d4", ["q5"], ["leakage"], PulseShape(20.0, 5.0), stark=False,
+    req = PassRequest("q4-line", ["q5"], ["leakage"], PulseShape(20.0, 5.0), stark=False,
                       companions=[("q3", 0.01j)], force=["q5"])
     assert req.victims == ("q5",) and req.methods == ("leakage",)
     assert req.companions == (("q3", 0.01j),) and req.force == ("q5",)
@@ -227,7 +227,7 @@ def test_request_holds_tuples():
 def test_plan_rings_over_determine_the_column_model(demo_chip):
     proto = load_protocol("protocols/full.toml")
     victims = ("q0", "q2", "q4")
-    req = PassRequest("d1", victims, ("stark",) * 3,
+    req = PassRequest("q1-line", victims, ("stark",) * 3,
                       PulseShape(proto.pulse.duration_ns, proto.pulse.sigma_ns), stark=True,
                       companions=(("q5", 0.002 + 0j),))
     plan = plan_pass(demo_chip, proto, CalibrationResult(demo_chip, proto, "test"), req)
@@ -240,14 +240,14 @@ def test_plan_rings_over_determine_the_column_model(demo_chip):
     assert plan.target == pytest.approx(
         10 ** (proto.null.target_residual_db / 20) * amp / math.sqrt(2 * math.log(72 / 0.05)))
     assert plan.thr == pytest.approx(10 ** (proto.survey.threshold_db / 20))
-    assert plan.tag == "d1-stark" and plan.stark_rows.all() and not plan.coherent.any()
+    assert plan.tag == "q1-line-stark" and plan.stark_rows.all() and not plan.coherent.any()
     # the ring's shots per point keep the protocol's shots per ring
     assert plan.null_shots == max(50, round(proto.null.shots_per_point
                                             * proto.null.points_per_ring / plan.n_null))
     # a second pass of the same kind gets its own record
     res = CalibrationResult(demo_chip, proto, "test")
-    res.sweeps["d1-stark"] = None
-    assert plan_pass(demo_chip, proto, res, req).tag == "d1-stark-q0"
+    res.sweeps["q1-line-stark"] = None
+    assert plan_pass(demo_chip, proto, res, req).tag == "q1-line-stark-q0"
 
 
 # --- properties ----------------------------------------------------------------------

@@ -25,15 +25,15 @@ QUICK = protocol_from_dict({"name": "test", "survey": {"shots": 1000},
 
 
 def test_frequency_plan_picks_methods_and_flags_hazards(demo_chip):
-    assert choose_method(demo_chip, "d4", "q5") == "leakage"  # d4 20 MHz below q5's 1-2
-    assert choose_method(demo_chip, "d6", "q7") == "rotation"  # q6/q7 20 MHz apart
-    assert choose_method(demo_chip, "d1", "q4") == "stark"
+    assert choose_method(demo_chip, "q4-line", "q5") == "leakage"  # q4-line 20 MHz below q5's 1-2
+    assert choose_method(demo_chip, "q6-line", "q7") == "rotation"  # q6/q7 20 MHz apart
+    assert choose_method(demo_chip, "q1-line", "q4") == "stark"
     risks = risk_map(demo_chip, load_protocol("protocols/full.toml"))
     flagged = {(r["aggressor"], r["victim"]): r["hazards"] for r in risks if r["hazards"]}
-    assert any(h.startswith("1-2 at -20 MHz") for h in flagged[("d4", "q5")])
-    assert any(h.startswith("0-1 at -20 MHz") for h in flagged[("d6", "q7")])
-    assert any(h.startswith("0-1 at +20 MHz") for h in flagged[("d7", "q6")])
-    assert ("d1", "q4") not in flagged
+    assert any(h.startswith("1-2 at -20 MHz") for h in flagged[("q4-line", "q5")])
+    assert any(h.startswith("0-1 at -20 MHz") for h in flagged[("q6-line", "q7")])
+    assert any(h.startswith("0-1 at +20 MHz") for h in flagged[("q7-line", "q6")])
+    assert ("q1-line", "q4") not in flagged
     # flagged pairs come first, most hazardous (smallest detuning) first
     n = len(flagged)
     assert all(r["hazards"] for r in risks[:n]) and not any(r["hazards"] for r in risks[n:])
@@ -43,9 +43,9 @@ def test_frequency_plan_picks_methods_and_flags_hazards(demo_chip):
 
 def test_leakage_probe_nulls_at_the_true_ratio(demo_rig):
     chip = demo_rig.chip
-    probe = ColumnProbe(chip, "d4", ("q5",), amplitude=0.7, repeats=8)
+    probe = ColumnProbe(chip, "q4-line", ("q5",), amplitude=0.7, repeats=8)
     f = probe.freq_ghz
-    z_true = demo_rig.true_ratio("q5", "d4", f) * 0.7
+    z_true = demo_rig.true_ratio("q5", "q4-line", f) * 0.7
     pts = np.array([[0], [z_true], [z_true * 1.3], [z_true * 0.7]], dtype=complex)
     s = probe.signals(demo_rig.run(probe.timelines(pts), 4000), 4).signal[:, 0]
     assert s[0] > 0.3  # uncancelled: strong leakage
@@ -53,12 +53,14 @@ def test_leakage_probe_nulls_at_the_true_ratio(demo_rig):
     assert s[1] < s[2] and s[1] < s[3]
 
 
-@pytest.mark.parametrize("line, victims", [("d7", ("q0", "q2", "q6")), ("d0", ("q2", "q7"))])
+@pytest.mark.parametrize(
+    "line, victims", [("q7-line", ("q0", "q2", "q6")), ("q0-line", ("q2", "q7"))]
+)
 def test_train_amplifies_every_resonant_victim_k_fold(demo_rig, line, victims):
     """A train coherent for all of a column's resonant victims at once (spacing and
     per-pulse phase step): 4K pulses at a field offset dz/4 from the true null give the
     signal K pulses give at dz, for every victim (small angles: P ∝ (K·θ)²). Before the
-    phase step, d7's 50 ns spacing made q0's pulses alternate in sign (30 MHz × 50 ns =
+    phase step, q7-line's 50 ns spacing made q0's pulses alternate in sign (30 MHz × 50 ns =
     1.5 cycles). Truth: the simulator."""
     chip = demo_rig.chip
     amp = 0.8 * chip.amplitude_limit(line)
@@ -86,12 +88,12 @@ def test_train_amplifies_every_resonant_victim_k_fold(demo_rig, line, victims):
 
 
 @pytest.mark.parametrize("line,victim,method", [
-    ("d0", "q2", "rotation"),  # -10 MHz
-    ("d6", "q7", "rotation"),  # -20 MHz
-    ("d7", "q0", "rotation"),  # -30 MHz
-    ("d7", "q2", "rotation"),  # -40 MHz (beyond the default window: probed as rotation here)
-    ("d6", "q0", "rotation"),  # -50 MHz (likewise)
-    ("d4", "q5", "leakage"),  # -20 MHz from the 1-2 transition
+    ("q0-line", "q2", "rotation"),  # -10 MHz
+    ("q6-line", "q7", "rotation"),  # -20 MHz
+    ("q7-line", "q0", "rotation"),  # -30 MHz
+    ("q7-line", "q2", "rotation"),  # -40 MHz (beyond the default window: probed as rotation here)
+    ("q6-line", "q0", "rotation"),  # -50 MHz (likewise)
+    ("q4-line", "q5", "leakage"),  # -20 MHz from the 1-2 transition
 ])
 def test_expected_rotation_follows_the_pulse_spectrum(demo_rig, line, victim, method):
     """K pulses at a field dz off the null turn a detuned victim by K·θ(dz), θ including
@@ -133,8 +135,8 @@ def test_common_spacing_makes_detunings_whole_cycles():
 
 def test_stark_probe_signal_grows_with_field(demo_rig):
     chip = demo_rig.chip
-    probe = ColumnProbe(chip, "d1", ("q4",), amplitude=0.7, repeats=40, merged=True)
-    z_true = demo_rig.true_ratio("q4", "d1", probe.freq_ghz) * 0.7
+    probe = ColumnProbe(chip, "q1-line", ("q4",), amplitude=0.7, repeats=40, merged=True)
+    z_true = demo_rig.true_ratio("q4", "q1-line", probe.freq_ghz) * 0.7
     pts = np.array([[z_true], [z_true + 0.1], [z_true + 0.2]])
     tls = probe.timelines(pts) + probe.reference_timelines()
     c = demo_rig.run(tls, 20000)
@@ -150,13 +152,13 @@ def test_stark_probe_signal_grows_with_field(demo_rig):
 
 
 def test_stark_readings_past_pi_are_unwrapped(demo_rig):
-    """A sensitive victim (q1 is 65 MHz above d3's tone) read beyond π: the phase keeps
+    """A sensitive victim (q1 is 65 MHz above q3-line's tone) read beyond π: the phase keeps
     following δ = Ω²α/(2Δ(Δ−α)) (Krantz et al., Appl. Phys. Rev. 6, 021318, 2019)
     instead of aliasing to a negative reading."""
     from xtalkcal.calibrate import measure_probe
 
-    probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=62, merged=True)
-    z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
+    probe = ColumnProbe(demo_rig.chip, "q3-line", ("q1",), amplitude=0.64, repeats=62, merged=True)
+    z_true = demo_rig.true_ratio("q1", "q3-line", probe.freq_ghz) * 0.64
     r = np.array([0.03, 0.06, 0.1])  # predicted phases ~0.35, 1.4 and 3.9 rad
     s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "wrap")
     predicted = probe.stark_gain("q1") * r**2
@@ -170,11 +172,11 @@ def test_preparation_phase_cycle_makes_the_signal_depend_on_the_field_magnitude_
     """An imperfect π pulse leaves coherence; without the 0/π cycle the leakage signal
     depends on the angle around the true null (a first harmonic), with it it does not."""
     chip = demo_rig.chip
-    zt = demo_rig.true_ratio("q5", "d4", chip.qubit("q4").f01_ghz) * 0.72
+    zt = demo_rig.true_ratio("q5", "q4-line", chip.qubit("q4").f01_ghz) * 0.72
     ring = (zt + 0.03 * np.exp(2j * np.pi * np.arange(8) / 8))[:, None]
     spread = {}
     for cycle in ((0.0,), (0.0, math.pi)):
-        probe = ColumnProbe(chip, "d4", ("q5",), amplitude=0.72, repeats=4, phase_cycle=cycle)
+        probe = ColumnProbe(chip, "q4-line", ("q5",), amplitude=0.72, repeats=4, phase_cycle=cycle)
         s = probe.signals(demo_rig.run(probe.timelines(ring), 400_000), 8).signal[:, 0]
         first = abs(np.sum(s * np.exp(-2j * np.pi * np.arange(8) / 8))) / 4
         spread[len(cycle)] = first
@@ -268,15 +270,15 @@ def test_column_fit_gives_each_batch_its_own_offset():
 @pytest.fixture(scope="module")
 def d4_result():
     rig = SimRig(demo_device_path(), seed=7, drift=False)
-    return rig, calibrate_chip(rig, QUICK, aggressors=["d4"])
+    return rig, calibrate_chip(rig, QUICK, aggressors=["q4-line"])
 
 
 def test_column_calibration_recovers_the_true_column(d4_result):
     rig, res = d4_result
     assert len(res.pairs) == 8
-    leak = res.pair("d4", "q5")
+    leak = res.pair("q4-line", "q5")
     assert leak.accepted and leak.nulled and leak.method == "leakage"
-    truth = rig.true_crosstalk("q5", "d4", leak.freq_ghz)
+    truth = rig.true_crosstalk("q5", "q4-line", leak.freq_ghz)
     resid = 20 * math.log10(abs(leak.x - truth))
     assert resid < -50
     # every accepted estimate is within 5 sigma of the truth or below -50 dB from it
@@ -288,22 +290,22 @@ def test_column_calibration_recovers_the_true_column(d4_result):
 
 def test_column_parallel_costs_one_pass_per_method_group(d4_result):
     _, res = d4_result
-    assert set(res.sweeps) == {"d4-res", "d4-stark"}
-    assert res.sweeps["d4-stark"].sizes["victim"] == 7
+    assert set(res.sweeps) == {"q4-line-res", "q4-line-stark"}
+    assert res.sweeps["q4-line-stark"].sizes["victim"] == 7
 
 
 def test_leakage_null_raises_the_amplification_as_it_sharpens(d4_result):
     rig, res = d4_result
-    leak = res.pair("d4", "q5")
-    ks = np.unique(res.sweeps["d4-res"]["repeats"].values)
+    leak = res.pair("q4-line", "q5")
+    ks = np.unique(res.sweeps["q4-line-res"]["repeats"].values)
     assert len(ks) >= 2 and leak.repeats == ks[-1]  # raised, and reported at the last K
-    truth = rig.true_crosstalk("q5", "d4", leak.freq_ghz)
+    truth = rig.true_crosstalk("q5", "q4-line", leak.freq_ghz)
     assert abs(leak.x - truth) < 4 * leak.stderr
 
 
 @pytest.mark.parametrize("seed", [11, 12, 16])
 def test_resonant_victim_of_a_shared_train_is_not_missed(seed):
-    """d7 has two rotation victims, q0 30 MHz below and q6 20 MHz above d7 (q2, 40 MHz
+    """q7-line has two rotation victims, q0 30 MHz below and q6 20 MHz above q7-line (q2, 40 MHz
     below, was a third with the former 60 MHz window). With a pulse spacing coherent
     for q0 only, q6's (truly −29 dB) two survey pulses could cancel
     (seed 12: no signal at all). The train is now coherent for all three; q6 must be
@@ -316,9 +318,9 @@ def test_resonant_victim_of_a_shared_train_is_not_missed(seed):
     rig = SimRig(demo_device_path(), seed=seed, drift=False)
     proto = load_protocol("protocols/full.toml")
     proto = dataclasses.replace(proto, only_methods=("rotation", "leakage"))
-    res = calibrate_chip(rig, proto, aggressors=["d7"])
-    p = res.pair("d7", "q6")
-    truth = rig.true_crosstalk("q6", "d7", p.freq_ghz)
+    res = calibrate_chip(rig, proto, aggressors=["q7-line"])
+    p = res.pair("q7-line", "q6")
+    truth = rig.true_crosstalk("q6", "q7-line", p.freq_ghz)
     assert 20 * math.log10(abs(truth)) > -30
     assert p.accepted and p.nulled, p
     assert 20 * math.log10(abs(p.x - truth)) < -50
@@ -331,7 +333,7 @@ def test_resonant_victim_of_a_shared_train_is_not_missed(seed):
 
 
 def test_victim_shown_below_threshold_at_a_raised_k_is_not_nulled():
-    """d7's survey K is set by q6 (20 MHz off d7, truly −29 dB); q0, 30 MHz off (spectral
+    """q7-line's survey K is set by q6 (20 MHz off q7-line, truly −29 dB); q0, 30 MHz off (spectral
     weight 0.47), is surveyed at that K with a wide error and selected by |X| + 2σ ≥
     −40 dB although truly −47 dB (seed 11). The ring at the raised K shows it below the
     threshold: it is measured there and no longer searched."""
@@ -341,41 +343,41 @@ def test_victim_shown_below_threshold_at_a_raised_k_is_not_nulled():
     proto = load_protocol("protocols/full.toml")
     proto = dataclasses.replace(proto, only_methods=("rotation", "leakage"))
     lines: list[str] = []
-    res = calibrate_chip(rig, proto, aggressors=["d7"], log=lines.append)
+    res = calibrate_chip(rig, proto, aggressors=["q7-line"], log=lines.append)
     assert any("q0 below -40 dB" in s for s in lines), lines
-    p, q6 = res.pair("d7", "q0"), res.pair("d7", "q6")
-    ks = np.unique(res.sweeps["d7-res"]["repeats"].values)
+    p, q6 = res.pair("q7-line", "q0"), res.pair("q7-line", "q6")
+    ks = np.unique(res.sweeps["q7-line-res"]["repeats"].values)
     assert p.accepted and not p.nulled and p.stage == "survey"
     assert p.repeats == ks[-1] > ks[0]  # measured at the raised K, not the survey's
-    truth = rig.true_crosstalk("q0", "d7", p.freq_ghz)
+    truth = rig.true_crosstalk("q0", "q7-line", p.freq_ghz)
     assert abs(p.x - truth) < 4 * p.stderr
     assert 20 * math.log10(abs(truth)) < -43  # truly below the threshold
     assert q6.accepted and q6.nulled
-    assert 20 * math.log10(abs(q6.x - rig.true_crosstalk("q6", "d7", q6.freq_ghz))) < -50
+    assert 20 * math.log10(abs(q6.x - rig.true_crosstalk("q6", "q7-line", q6.freq_ghz))) < -50
 
 
 def test_resonant_tones_ring_during_the_stark_pass(d4_result):
-    """The leakage victim's tone varies during d4's Stark pass: the column fit measures
-    how q5's line reaches the Stark victims at d4's frequency (truth: the simulator)."""
+    """The leakage victim's tone varies during q4-line's Stark pass: the column fit measures
+    how q5's line reaches the Stark victims at q4-line's frequency (truth: the simulator)."""
     rig, res = d4_result
-    ds = res.sweeps["d4-stark"]
+    ds = res.sweeps["q4-line-stark"]
     assert list(ds["companion"].values) == ["q5"]
     assert np.ptp(ds["tone_re"].values) > 0
-    victims, sources, C, err = res.couplings["d4-stark"]
+    victims, sources, C, err = res.couplings["q4-line-stark"]
     k = sources.index("q5")
     f = ds.attrs["frequency_ghz"]
     for i, v in enumerate(victims):
-        t = rig.true_crosstalk(v, "d5", f)
+        t = rig.true_crosstalk(v, "q5-line", f)
         assert abs(C[i, k] - t) < 4 * err[i, k] + 2e-3, v
     # a Stark victim's null is that of the aggressor alone, not shifted by q5's tone
     for p in res.pairs:
         if p.method == "stark" and p.nulled:
-            t = rig.true_crosstalk(p.victim, "d4", p.freq_ghz)
+            t = rig.true_crosstalk(p.victim, "q4-line", p.freq_ghz)
             assert abs(p.x - t) < max(4 * p.stderr, 10 ** (-52 / 20)), p
 
 
 def test_closed_loop_refinement_lowers_the_all_on_residual(d4_result):
-    """Against the simulator's truth: the field at each victim with every tone of d4 on
+    """Against the simulator's truth: the field at each victim with every tone of q4-line on
     (X_ij + r_ij + Σ_k X_ik(f_j)·r_kj) is lower after refinement than with the first-order
     pairwise settings, and the refined settings say they were refined."""
     from xtalkcal.calibrate import measured_couplings
@@ -395,7 +397,7 @@ def test_closed_loop_refinement_lowers_the_all_on_residual(d4_result):
     after = settings_all_on_db(truth, rig.chip, ref.settings, 0.0)
     assert after < before - 3 and after < -50
     # the passes measured both directions of the leak between the groups
-    victims, sources, C, _ = ref.results[0].couplings["d4-res"]
+    victims, sources, C, _ = ref.results[0].couplings["q4-line-res"]
     assert victims == ("q5",) and len(sources) == 8 and np.isfinite(C[0, 1:]).all()
 
 
@@ -406,15 +408,15 @@ def test_stark_windows_keep_sensitive_victims_in_range(demo_chip):
     shape = PulseShape(32.0, 8.0)
     victims = ("q0", "q1", "q2", "q4", "q5", "q6", "q7", "q8")
     methods = ("stark",) * len(victims)
-    win = stark_windows(demo_chip, "d3", victims, methods, 0.64, 187, shape)
-    probe = ColumnProbe(demo_chip, "d3", victims, amplitude=0.64, repeats=187,
+    win = stark_windows(demo_chip, "q3-line", victims, methods, 0.64, 187, shape)
+    probe = ColumnProbe(demo_chip, "q3-line", victims, amplitude=0.64, repeats=187,
                         methods=methods, shape=shape, merged=True, stark_windows_ns=win)
     zmax = 1.5 * 0.64 * 10 ** (STRONGEST_DB / 20)
     for v, w in zip(victims, win, strict=True):
         assert probe.stark_gain(v) * zmax**2 <= STARK_PHASE_MAX * 1.05, v
         if w == 0:  # whole train: weakly responding victims keep their full sensitivity
             assert probe.stark_window(v)[1] - probe.stark_window(v)[0] > probe.train_ns()
-    assert win[victims.index("q1")] > 0  # q1 sits 65 MHz from d3's tone
+    assert win[victims.index("q1")] > 0  # q1 sits 65 MHz from q3-line's tone
 
 
 def test_windowed_stark_probe_follows_the_stark_formula(demo_rig):
@@ -422,17 +424,17 @@ def test_windowed_stark_probe_follows_the_stark_formula(demo_rig):
     δ = Ω²α/(2Δ(Δ−α)) (Krantz et al. 2019) over the window's share of the train."""
     from xtalkcal.calibrate import measure_probe
 
-    probe = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=187,
+    probe = ColumnProbe(demo_rig.chip, "q3-line", ("q1",), amplitude=0.64, repeats=187,
                         merged=True, stark_windows_ns=(1500.0,))
-    full = ColumnProbe(demo_rig.chip, "d3", ("q1",), amplitude=0.64, repeats=187, merged=True)
+    full = ColumnProbe(demo_rig.chip, "q3-line", ("q1",), amplitude=0.64, repeats=187, merged=True)
     assert probe.stark_gain("q1") == pytest.approx(full.stark_gain("q1") * 1500 / 5984, rel=0.02)
-    z_true = demo_rig.true_ratio("q1", "d3", probe.freq_ghz) * 0.64
+    z_true = demo_rig.true_ratio("q1", "q3-line", probe.freq_ghz) * 0.64
     r = np.array([0.04, 0.07])
     s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "win")
     assert s.signal[:, 0] == pytest.approx(probe.stark_gain("q1") * r**2, rel=0.06)
 
 
-@pytest.mark.parametrize("line,victim", [("d6", "q0"), ("d0", "q6"), ("d2", "q6")])
+@pytest.mark.parametrize("line,victim", [("q6-line", "q0"), ("q0-line", "q6"), ("q2-line", "q6")])
 def test_stark_probe_sees_victims_beyond_the_resonant_window(demo_rig, line, victim):
     """Victims 50–60 MHz from the aggressor (beyond the 35 MHz window; spectral weight
     0.07 and below, so a resonant probe hardly sees them) are Stark victims: in the
@@ -458,7 +460,7 @@ def test_stark_probe_sees_victims_beyond_the_resonant_window(demo_rig, line, vic
 
 
 def test_interrupted_calibration_resumes_identically(tmp_path):
-    lines = ["d6"]
+    lines = ["q6-line"]
     clean = calibrate_chip(SimRig(demo_device_path(), seed=3, drift=False), QUICK,
                            aggressors=lines)
 
@@ -506,16 +508,16 @@ def test_calibrate_cli_writes_the_matrix_json(tmp_path, capsys):
     data = json.loads(out.read_text())
     assert data["schema"] == "xtalkcal-matrix/1"
     pairs = {(p["aggressor_line"], p["victim"]): p for p in data["pairs"]}
-    p = pairs[("d4", "q5")]
+    p = pairs[("q4-line", "q5")]
     assert p["verdict"] == "accepted" and p["method"] == "leakage"
     assert p["ratio"]["re"] == pytest.approx(-p["crosstalk"]["re"])
     assert -27 < p["crosstalk"]["magnitude_db"] < -22
-    assert "d4 → q5" in capsys.readouterr().out
+    assert "q4-line → q5" in capsys.readouterr().out
 
 
 def test_demo_runs_end_to_end_reduced(tmp_path):
     out = tmp_path / "demo"
-    args = ["demo", "--out", str(out), "--aggressors", "d4", "--days", "0.6",
+    args = ["demo", "--out", str(out), "--aggressors", "q4-line", "--days", "0.6",
             "--rb-qubits", "q4,q5", "--rb-draws", "2", "-q"]
     assert main(args) == 0
     for name in ("report.md", "report.html", "matrix.json", "matrix_db.png",
@@ -530,7 +532,7 @@ def test_demo_runs_end_to_end_reduced(tmp_path):
     from xtalkcal.store import Ledger
 
     settings = CompensationSettings.read_json(out / "settings.json")
-    assert any(p.aggressor_line == "d4" and p.victim == "q5" for p in settings.pairs)
+    assert any(p.aggressor_line == "q4-line" and p.victim == "q5" for p in settings.pairs)
     kinds = {e.kind for e in Ledger(out / "ledger").entries()}
     assert {"null", "recheck"} <= kinds
     assert main(args) == 2  # the folder is not empty: refused

@@ -35,9 +35,9 @@ CHIP: dict[str, Any] = {
          "t1_us": 45.0},
     ],
     "lines": [
-        {"name": "d0", "qubit": "q0", "rabi_mhz": 40.0, "max_amplitude": 0.8},
-        {"name": "d1", "qubit": "q1", "rabi_mhz": 35.0},
-        {"name": "d2", "qubit": "q2", "rabi_mhz": 42.0, "full_scale_dbm": -20.0},
+        {"name": "q0-line", "qubit": "q0", "rabi_mhz": 40.0, "max_amplitude": 0.8},
+        {"name": "q1-line", "qubit": "q1", "rabi_mhz": 35.0},
+        {"name": "q2-line", "qubit": "q2", "rabi_mhz": 42.0, "full_scale_dbm": -20.0},
     ],
     "readout": {"groups": [["q0", "q1"], ["q2"]]},
 }
@@ -66,12 +66,12 @@ DEVICE: dict[str, Any] = {
         {"name": "q1", "ej_ghz": 16.0, "ec_ghz": 0.25, "t1_us": 60.0, "t2_us": 50.0},
     ],
     "lines": [
-        {"name": "d0", "qubit": "q0", "rabi_mhz": 50.0},
-        {"name": "d1", "qubit": "q1", "rabi_mhz": 45.0, "self_delay_ns": 0.5},
+        {"name": "q0-line", "qubit": "q0", "rabi_mhz": 50.0},
+        {"name": "q1-line", "qubit": "q1", "rabi_mhz": 45.0, "self_delay_ns": 0.5},
     ],
     "couplings": [
-        {"line": "d0", "qubit": "q1", "crosstalk_db": -30.0, "phase_deg": 40.0},
-        {"line": "d1", "qubit": "q0", "crosstalk_db": -35.0, "phase_deg": -20.0},
+        {"line": "q0-line", "qubit": "q1", "crosstalk_db": -30.0, "phase_deg": 40.0},
+        {"line": "q1-line", "qubit": "q0", "crosstalk_db": -35.0, "phase_deg": -20.0},
     ],
 }
 
@@ -204,7 +204,7 @@ def test_device_mistakes_all_reported():
     data = copy.deepcopy(DEVICE)
     data["qubits"][0]["readout"] = [[0.9, 0.2], [0.05, 0.95]]  # a row sums to 1.1
     data["qubits"][1]["ec_ghz"] = 4.0  # EJ/EC = 4: a charge qubit, not a transmon
-    data["couplings"][0]["qubit"] = "q0"  # d0's own qubit
+    data["couplings"][0]["qubit"] = "q0"  # q0-line's own qubit
     data["couplings"][1]["phase_deg"] = 400.0
     data["electronics"]["jitter_groups"] = 0
     with pytest.raises(FieldErrors) as info:

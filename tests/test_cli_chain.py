@@ -40,7 +40,7 @@ def _chain(tmp_path, capsys, rig_args: list[str]):
     led, sched = str(tmp_path / "ledger"), str(tmp_path / "schedule.json")
     said = {}
     code, said["calibrate"], err = _run(
-        capsys, "calibrate", *rig_args, "--protocol", QUICK, "--aggressors", "d4",
+        capsys, "calibrate", *rig_args, "--protocol", QUICK, "--aggressors", "q4-line",
         "--ledger", led, "-q", "-o", str(tmp_path / "m.json"))
     assert code == 0, err
     code, said["settings"], err = _run(
@@ -55,7 +55,7 @@ def _chain(tmp_path, capsys, rig_args: list[str]):
         capsys, "report", "--ledger", led, "--out", str(tmp_path / "report"),
         "--verification", str(tmp_path / "v.json"))
     assert code == 0, err
-    code, said["history"], err = _run(capsys, "history", "--ledger", led, "--pair", "d4:q5",
+    code, said["history"], err = _run(capsys, "history", "--ledger", led, "--pair", "q4-line:q5",
                                       "--csv")
     assert code == 0, err
     n_entries = len(Ledger(led).entries())
@@ -91,7 +91,7 @@ def _check_chain(tmp_path, said):
     assert "Verification of the written settings" in md and "true" not in md.lower()
     assert (tmp_path / "report" / "matrix_db.png").exists()
     rows = list(csv.DictReader(said["history"].splitlines()))
-    assert rows and all(r["aggressor_line"] == "d4" and r["victim"] == "q5" for r in rows)
+    assert rows and all(r["aggressor_line"] == "q4-line" and r["victim"] == "q5" for r in rows)
     for r in rows:  # dates, not rig seconds
         assert dt.datetime.fromisoformat(r["stored_utc"]).utcoffset() == dt.timedelta(0)
     assert "UTC" in said["list"] and "nothing was sent" in said["list"]

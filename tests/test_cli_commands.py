@@ -40,12 +40,12 @@ def _run(capsys, *argv):
 
 @pytest.fixture(scope="module")
 def calibrated(tmp_path_factory):
-    """A leakage-only calibration of column d4 into a ledger (no drift)."""
+    """A leakage-only calibration of column q4-line into a ledger (no drift)."""
     tmp = tmp_path_factory.mktemp("cal")
     proto = tmp / "p.toml"
     proto.write_text(PROTO)
     led = tmp / "ledger"
-    assert main(["calibrate", "--protocol", str(proto), "--aggressors", "d4", "--no-drift",
+    assert main(["calibrate", "--protocol", str(proto), "--aggressors", "q4-line", "--no-drift",
                  "--seed", "2", "--ledger", str(led), "-q", "-o", str(tmp / "m.json")]) == 0
     return proto, led
 
@@ -66,7 +66,7 @@ def test_pairwise_settings_are_minus_x_of_the_ledger(calibrated, tmp_path, capsy
     (["--solve", "closed-loop"], "--rig"),
     (["--solve", "pairwise", "--rig", "sim"], "--rig"),
     (["-o", "settings.txt"], "-o"),
-    (["--pairs", "d4:q9"], "--pairs"),
+    (["--pairs", "q4-line:q9"], "--pairs"),
     (["--as-of", "yesterday"], "--as-of"),
     (["--as-of", "2001-01-01"], "--as-of"),
 ])
@@ -95,12 +95,12 @@ def test_closed_loop_settings_refine_on_the_rig_and_are_recorded(calibrated, tmp
 def test_calibrate_only_the_named_pairs(tmp_path, capsys):
     proto = tmp_path / "p.toml"
     proto.write_text(PROTO)
-    code, text, err = _run(capsys, "calibrate", "--protocol", str(proto), "--pairs", "d4:q5",
+    code, text, err = _run(capsys, "calibrate", "--protocol", str(proto), "--pairs", "q4-line:q5",
                            "--no-drift", "-q", "-o", str(tmp_path / "m.json"))
     assert code == 0, err
     doc = json.loads((tmp_path / "m.json").read_text())
     assert [(p["aggressor_line"], p["victim"], p["nulled"]) for p in doc["pairs"]] == [
-        ("d4", "q5", True)]
+        ("q4-line", "q5", True)]
 
 
 def test_calibrate_pairs_keeps_the_column_survey_as_estimates(tmp_path, capsys):
@@ -110,11 +110,11 @@ def test_calibrate_pairs_keeps_the_column_survey_as_estimates(tmp_path, capsys):
     proto = tmp_path / "p.toml"
     proto.write_text('name = "q"\n[survey]\nshots = 500\nthreshold_db = -30.0\n'
                      '[null]\nmax_rounds = 1\n')
-    code, text, err = _run(capsys, "calibrate", "--protocol", str(proto), "--pairs", "d4:q5",
+    code, text, err = _run(capsys, "calibrate", "--protocol", str(proto), "--pairs", "q4-line:q5",
                            "--no-drift", "-q", "-o", str(tmp_path / "m.json"))
     assert code == 0, err
     pairs = json.loads((tmp_path / "m.json").read_text())["pairs"]
-    assert {p["aggressor_line"] for p in pairs} == {"d4"}
+    assert {p["aggressor_line"] for p in pairs} == {"q4-line"}
     assert {p["victim"] for p in pairs if p["nulled"]} == {"q5"}
     others = [p for p in pairs if p["victim"] != "q5"]
     assert len(others) == 7  # every other qubit of the 9-qubit chip, surveyed
@@ -123,11 +123,11 @@ def test_calibrate_pairs_keeps_the_column_survey_as_estimates(tmp_path, capsys):
 
 
 @pytest.mark.parametrize("argv, words", [
-    (["--pairs", "d4"], ["LINE:QUBIT"]),
-    (["--pairs", "d4:q4"], ["own qubit"]),
+    (["--pairs", "q4-line"], ["LINE:QUBIT"]),
+    (["--pairs", "q4-line:q4"], ["own qubit"]),
     (["--pairs", "d99:q5"], ["d99", "accepted"]),
-    (["--aggressors", "d4,dx"], ["--aggressors", "accepted"]),
-    (["--aggressors", "d6", "--pairs", "d4:q5"], ["--pairs"]),
+    (["--aggressors", "q4-line,dx"], ["--aggressors", "accepted"]),
+    (["--aggressors", "q6-line", "--pairs", "q4-line:q5"], ["--pairs"]),
 ])
 def test_calibrate_scope_mistakes(tmp_path, capsys, argv, words):
     code, _out, err = _run(capsys, "calibrate", *argv, "-q", "-o", str(tmp_path / "m.json"))
@@ -137,7 +137,7 @@ def test_calibrate_scope_mistakes(tmp_path, capsys, argv, words):
 def test_a_record_from_an_earlier_day_is_refused_unless_resumed(tmp_path, capsys):
     proto = tmp_path / "p.toml"
     proto.write_text(PROTO)
-    args = ["calibrate", "--protocol", str(proto), "--aggressors", "d4", "--no-drift",
+    args = ["calibrate", "--protocol", str(proto), "--aggressors", "q4-line", "--no-drift",
             "--seed", "1", "-q", "--record", str(tmp_path / "rec"), "-o", str(tmp_path / "m.json")]
     assert main(args) == 0
     capsys.readouterr()
@@ -211,11 +211,11 @@ def test_rig_config_mistakes(tmp_path, capsys, rig, words):
 def test_history_dates_and_mistakes(calibrated, capsys):
     _proto, led = calibrated
     code, out, err = _run(capsys, "history", "--ledger", str(led))
-    assert code == 0 and "UTC" in out and "d4 → q5" in out
+    assert code == 0 and "UTC" in out and "q4-line → q5" in out
     code, out, _ = _run(capsys, "history", "--ledger", str(led), "--as-of", "2001-01-01")
     assert code == 0 and "0 entries" in out
-    code, _out, err = _run(capsys, "history", "--ledger", str(led), "--pair", "d4:q2")
-    assert code == 2 and "--pair" in err and "d4:q5" in err
+    code, _out, err = _run(capsys, "history", "--ledger", str(led), "--pair", "q4-line:q2")
+    assert code == 2 and "--pair" in err and "q4-line:q5" in err
     code, _out, err = _run(capsys, "history", "--ledger", str(led), "--as-of", "13/01/2026")
     assert code == 2 and "--as-of" in err and "ISO" in err
 
@@ -241,7 +241,7 @@ def test_run_on_a_plug_in_rig_does_the_whole_job_without_truth(tmp_path, capsys)
     assert main(["export-chip", demo_device_path(), "-o", str(chip)]) == 0
     out = tmp_path / "job"
     code, text, err = _run(capsys, "run", "--rig", f"{__name__}:plain_rig", "--chip",
-                           str(chip), "--protocol", str(proto), "--aggressors", "d4",
+                           str(chip), "--protocol", str(proto), "--aggressors", "q4-line",
                            "--refine-rounds", "1", "--out", str(out), "-q")
     assert code in (0, 1), err
     for name in ("settings.json", "settings.csv", "report.md", "report.html", "matrix.json"):

@@ -29,16 +29,16 @@ def test_due_rechecks_what_is_due_and_records_it(tmp_path, capsys):
     assert "nothing due" in capsys.readouterr().out
     assert len(Ledger(led).entries()) == n0  # nothing measured
     data = json.loads(sched.read_text())
-    assert {(p["aggressor"], p["victim"]) for p in data["pairs"]} >= {("d4", "q5")}
+    assert {(p["aggressor"], p["victim"]) for p in data["pairs"]} >= {("q4-line", "q5")}
     for p in data["pairs"]:  # make everything due now
         p["due_s"] = 0.0
     sched.write_text(json.dumps(data))
     assert main(["due", "--protocol", str(proto), "--ledger", str(led),
                  "--schedule", str(sched)]) == 0
     out = capsys.readouterr().out
-    assert "re-checked" in out and "d4 → q5" in out
+    assert "re-checked" in out and "q4-line → q5" in out
     rechecks = [e for e in Ledger(led).entries() if e.kind == "recheck"]
-    assert {(e.aggressor, e.victim) for e in rechecks} >= {("d4", "q5")}
+    assert {(e.aggressor, e.victim) for e in rechecks} >= {("q4-line", "q5")}
     later = json.loads(sched.read_text())
     assert all(p["due_s"] > 0 for p in later["pairs"])  # rescheduled
 
@@ -58,7 +58,7 @@ def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
     assert main(["due", "--protocol", str(proto), "--ledger", str(led),
                  "--schedule", str(sched)]) == 0
     ledger = Ledger(led)
-    e = ledger.current()[("d4", "q5")]
+    e = ledger.current()[("q4-line", "q5")]
     ledger.append([dataclasses.replace(e, kind="survey", measured_at_s=e.measured_at_s + 1,
                                        sweep_id="", seq=0, position=0)])
     data = json.loads(sched.read_text())
@@ -69,7 +69,7 @@ def test_pair_no_longer_compensated_leaves_the_schedule(tmp_path, capsys):
     assert main(["due", "--protocol", str(proto), "--ledger", str(led),
                  "--schedule", str(sched)]) == 0
     left = {(p["aggressor"], p["victim"]) for p in json.loads(sched.read_text())["pairs"]}
-    assert ("d4", "q5") not in left
+    assert ("q4-line", "q5") not in left
 
 
 def test_a_broken_recheck_recalibrates_the_column(tmp_path):
@@ -89,10 +89,10 @@ def test_a_broken_recheck_recalibrates_the_column(tmp_path):
     proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
                                 "survey": {"shots": 500}, "null": {"max_rounds": 3}})
     rig = SimRig(demo_device_path(), seed=5, drift=False)
-    res = calibrate_chip(rig, proto, aggressors=["d4"])
+    res = calibrate_chip(rig, proto, aggressors=["q4-line"])
     led = Ledger.create(tmp_path / "ledger", chip=rig.chip.name)
     entries = ledger_entries(res, run_tag="cal")
-    # the stored null of d4 → q5 moved by 3× its own magnitude
+    # the stored null of q4-line → q5 moved by 3× its own magnitude
     entries = [dataclasses.replace(e, value=e.value * 4) if e.victim == "q5" else e
                for e in entries]
     led.append(entries, sweeps=ledger_sweeps(res, run_tag="cal"))
@@ -103,13 +103,13 @@ def test_a_broken_recheck_recalibrates_the_column(tmp_path):
     c, repeat = [c for c in first.checked if c.victim == "q5"]
     assert c.outcome.decision is RecheckDecision.BROKEN
     assert repeat.outcome.decision is RecheckDecision.BROKEN
-    assert first.recalibrated == ["d4"]
-    fresh = led.current()[("d4", "q5")]
-    truth = rig.true_crosstalk("q5", "d4", fresh.frequency_ghz)
+    assert first.recalibrated == ["q4-line"]
+    fresh = led.current()[("q4-line", "q5")]
+    truth = rig.true_crosstalk("q5", "q4-line", fresh.frequency_ghz)
     assert 20 * math.log10(abs(fresh.value - truth)) < -45
     # The broken pair stays on the short interval its re-check gave it: a recalibration does
     # not reset it to the protocol's long one (its drift is not known to be slow).
-    assert schedule.slot(("d4", "q5")).interval_h == proto.recheck.min_interval_hours
+    assert schedule.slot(("q4-line", "q5")).interval_h == proto.recheck.min_interval_hours
 
 
 def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, monkeypatch):
@@ -125,7 +125,7 @@ def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, 
     proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
                                 "survey": {"shots": 500}, "null": {"max_rounds": 3}})
     rig = SimRig(demo_device_path(), seed=5, drift=False)
-    res = calibrate_chip(rig, proto, aggressors=["d4"])
+    res = calibrate_chip(rig, proto, aggressors=["q4-line"])
     led = Ledger.create(tmp_path / "ledger", chip=rig.chip.name)
     led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
     schedule = Schedule(proto.recheck)
@@ -147,7 +147,7 @@ def test_a_broken_recheck_that_does_not_repeat_costs_no_recalibration(tmp_path, 
     decisions = [c.outcome.decision for c in rep.checked if c.victim == "q5"]
     assert decisions[0] is RecheckDecision.BROKEN and decisions[1] is RecheckDecision.WITHIN
     assert rep.recalibrated == []
-    assert [e.kind for e in led.history("d4", "q5")].count("recheck") == 2
+    assert [e.kind for e in led.history("q4-line", "q5")].count("recheck") == 2
 
 
 def test_pairs_the_schedule_lacked_start_at_the_first_interval():
@@ -162,16 +162,16 @@ def test_pairs_the_schedule_lacked_start_at_the_first_interval():
     settings = RecheckSettings(interval_hours=12.0, min_interval_hours=0.5, max_interval_hours=48.0)
     schedule = Schedule(settings)
     snap = SimpleNamespace(entries={
-        ("d0", "q1"): SimpleNamespace(kind="null", measured_at_s=3600.0),
-        ("d0", "q2"): SimpleNamespace(kind="survey", measured_at_s=3600.0),
-        ("d1", "q0"): SimpleNamespace(kind="recheck", measured_at_s=7200.0),
+        ("q0-line", "q1"): SimpleNamespace(kind="null", measured_at_s=3600.0),
+        ("q0-line", "q2"): SimpleNamespace(kind="survey", measured_at_s=3600.0),
+        ("q1-line", "q0"): SimpleNamespace(kind="recheck", measured_at_s=7200.0),
     })
     added = cover_every_column(schedule, snap)
-    assert added == [("d0", "q1"), ("d1", "q0")]
+    assert added == [("q0-line", "q1"), ("q1-line", "q0")]
     first_h = first_interval(settings)
     assert 0.5 <= first_h < 12.0
-    slot = schedule.slot(("d0", "q1"))
+    slot = schedule.slot(("q0-line", "q1"))
     assert slot.interval_h == first_h
     assert slot.due_s == 3600.0 + first_h * 3600.0
-    assert schedule.slot(("d1", "q0")).due_s == 7200.0 + first_h * 3600.0
+    assert schedule.slot(("q1-line", "q0")).due_s == 7200.0 + first_h * 3600.0
     assert cover_every_column(schedule, snap) == []  # already there: left alone

@@ -113,17 +113,17 @@ def test_without_record_nothing_is_deduplicated(tmp_path):
     """Only a run that resumed from a record is compared with the ledger."""
     from xtalkcal.cli import _measurement_key
 
-    e = dict(aggressor="d1", victim="q2", frequency_ghz=5.0, value=complex("nan+nanj"),
+    e = dict(aggressor="q1-line", victim="q2", frequency_ghz=5.0, value=complex("nan+nanj"),
              covariance=((1.0, 0.0), (0.0, 1.0)), method="leakage", shots=1, amplification=1,
              quality=float("nan"), verdict="rejected", reason="no fit", measured_at_s=1.0,
              measured_at_utc="2031-01-01T00:00:00+00:00", rig="r", software_version="v",
-             kind="survey", tag="cal-a", sweep_id="cal-a/d1-res")
+             kind="survey", tag="cal-a", sweep_id="cal-a/q1-line-res")
     from xtalkcal.store import LedgerEntry
 
     a = LedgerEntry(**e)
-    b = LedgerEntry(**{**e, "tag": "cal-b", "sweep_id": "cal-b/d1-res", "measured_at_s": 9.0})
+    b = LedgerEntry(**{**e, "tag": "cal-b", "sweep_id": "cal-b/q1-line-res", "measured_at_s": 9.0})
     assert _measurement_key(a) == _measurement_key(b)  # NaN equal to itself, tag ignored
-    c = LedgerEntry(**{**e, "sweep_id": "cal-a/d1-other"})
+    c = LedgerEntry(**{**e, "sweep_id": "cal-a/q1-line-other"})
     assert _measurement_key(a) != _measurement_key(c)
 
 

@@ -35,9 +35,9 @@ def device_dict(n: int = 6, **overrides: Any) -> dict[str, Any]:
     """An invented device with n qubits, every line coupled to every other qubit."""
     qubits = [{"name": f"q{i}", "f01_ghz": 4.6 + 0.11 * i, "anharmonicity_ghz": -0.2,
                "t1_us": 50.0, "t2_us": 40.0} for i in range(n)]
-    lines = [{"name": f"d{i}", "qubit": f"q{i}", "rabi_mhz": 40.0, "max_amplitude": 0.8}
+    lines = [{"name": f"q{i}-line", "qubit": f"q{i}", "rabi_mhz": 40.0, "max_amplitude": 0.8}
              for i in range(n)]
-    couplings = [{"line": f"d{j}", "qubit": f"q{i}", "crosstalk_db": -30.0 - i - j,
+    couplings = [{"line": f"q{j}-line", "qubit": f"q{i}", "crosstalk_db": -30.0 - i - j,
                   "phase_deg": 10.0 * (i + 2 * j), "delay_ns": 1.0}
                  for j in range(n) for i in range(n) if i != j]
     data: dict[str, Any] = {
@@ -121,7 +121,7 @@ def test_own_diffusion_alone_makes_a_device_drift():
 def _step_device(at_h: float = 2.0, **drift: float) -> dict[str, Any]:
     data = device_dict(n=3)
     data["drift"] = dict(drift)
-    data["steps"] = [{"at_hours": at_h, "line": "d1", "qubit": "q0",
+    data["steps"] = [{"at_hours": at_h, "line": "q1-line", "qubit": "q0",
                       "crosstalk_db_change": 3.0, "phase_deg_change": 20.0}]
     return data
 
@@ -130,15 +130,15 @@ def test_a_step_is_in_the_truth_exactly_from_its_time():
     data = _step_device(at_h=2.0)
     rig = SimRig(device_from_dict(data), seed=3)
     c = data["couplings"][[(b["line"], b["qubit"]) for b in data["couplings"]].index(
-        ("d1", "q0"))]
+        ("q1-line", "q0"))]
     f = 4.6  # the victim q0's f01: arg X there is phase_deg
     base = 10 ** (c["crosstalk_db"] / 20) * np.exp(1j * math.radians(c["phase_deg"]))
     stepped = base * 10 ** (3.0 / 20) * np.exp(1j * math.radians(20.0))
     at = 2.0 * HOUR_S
     for t in (0.0, at - 1.0, at - 1e-6, math.nextafter(at, 0.0)):
-        assert rig.true_crosstalk("q0", "d1", f, t) == pytest.approx(base, rel=1e-12), t
+        assert rig.true_crosstalk("q0", "q1-line", f, t) == pytest.approx(base, rel=1e-12), t
     for t in (at, at + 1e-6, at + 30.0, 10 * at):
-        assert rig.true_crosstalk("q0", "d1", f, t) == pytest.approx(stepped, rel=1e-12), t
+        assert rig.true_crosstalk("q0", "q1-line", f, t) == pytest.approx(stepped, rel=1e-12), t
     # The other pairs do not move; the matrix (at each aggressor's f01) holds the step.
     before, after = rig.true_matrix(at - 1.0), rig.true_matrix(at)
     changed = np.argwhere(before != after)
@@ -155,20 +155,25 @@ def test_a_step_adds_to_the_random_walk_and_drift_off_has_none():
     rig, ref = SimRig(device_from_dict(data), seed=9), SimRig(device_from_dict(plain), seed=9)
     factor = 10 ** (3.0 / 20) * np.exp(1j * math.radians(20.0))
     for t in (0.0, 1800.0, 3599.0, 3600.0, 7200.5):
-        x, x0 = rig.true_crosstalk("q0", "d1", 4.9, t), ref.true_crosstalk("q0", "d1", 4.9, t)
+        x, x0 = (
+            rig.true_crosstalk("q0", "q1-line", 4.9, t),
+            ref.true_crosstalk("q0", "q1-line", 4.9, t),
+        )
         assert x == pytest.approx(x0 * (factor if t >= 3600.0 else 1.0), rel=1e-12)
-        assert rig.true_crosstalk("q1", "d0", 4.9, t) == ref.true_crosstalk("q1", "d0", 4.9, t)
+        assert rig.true_crosstalk("q1", "q0-line", 4.9, t) == ref.true_crosstalk(
+            "q1", "q0-line", 4.9, t
+        )
     frozen = SimRig(device_from_dict(data), seed=9, drift=False)
-    assert frozen.true_crosstalk("q0", "d1", 4.9, 7200.0) == frozen.true_crosstalk(
-        "q0", "d1", 4.9, 0.0)
+    assert frozen.true_crosstalk("q0", "q1-line", 4.9, 7200.0) == frozen.true_crosstalk(
+        "q0", "q1-line", 4.9, 0.0)
 
 
 def test_counts_before_a_step_are_those_of_the_device_without_it():
     data = _step_device(at_h=1.0, phase_diffusion_rad2_per_hour=D_DEFAULT)
     plain = copy.deepcopy(data)
     del plain["steps"]
-    # d1 driven at q0's f01: its leak turns q0 by about 2 rad in 400 ns.
-    tl = Timeline((Tone("d1", 0.0, 400.0, 4.6, 0.8, 0.0, Envelope("square")),), ("q0", "q2"))
+    # q1-line driven at q0's f01: its leak turns q0 by about 2 rad in 400 ns.
+    tl = Timeline((Tone("q1-line", 0.0, 400.0, 4.6, 0.8, 0.0, Envelope("square")),), ("q0", "q2"))
     out = []
     for d in (data, plain):
         rig = SimRig(device_from_dict(d), seed=4)
@@ -176,7 +181,7 @@ def test_counts_before_a_step_are_those_of_the_device_without_it():
         rig.wait(HOUR_S)
         out.append((before, rig.run([tl] * 4, 200).counts))
     assert np.array_equal(out[0][0], out[1][0])
-    assert not np.array_equal(out[0][1], out[1][1])  # +3 dB on d1 → q0 shows in the counts
+    assert not np.array_equal(out[0][1], out[1][1])  # +3 dB on q1-line → q0 shows in the counts
 
 
 # ------------------------------------------------------------------ validation
@@ -213,11 +218,11 @@ def test_every_new_number_is_bounded_in_one_line(where, key, bad):
 
 def test_step_problems_name_the_field():
     data = _step_device()
-    data["steps"].append({"at_hours": 1.0, "line": "d1", "qubit": "q1",
+    data["steps"].append({"at_hours": 1.0, "line": "q1-line", "qubit": "q1",
                           "crosstalk_db_change": 1.0})
-    data["steps"].append({"at_hours": 1.0, "line": "d9", "qubit": "q0",
+    data["steps"].append({"at_hours": 1.0, "line": "q9-line", "qubit": "q0",
                           "crosstalk_db_change": 1.0, "when": 3})
-    data["steps"].append({"line": "d0", "qubit": "q1"})
+    data["steps"].append({"line": "q0-line", "qubit": "q1"})
     lines = _problems(data)
     assert any(ln.startswith("dev.toml: steps[1].qubit: ") and "not a listed coupling" in ln
                for ln in lines), lines

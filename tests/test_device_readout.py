@@ -50,11 +50,11 @@ def device_dict(**overrides: Any) -> dict[str, Any]:
              "t2_us": 50.0, "readout": READOUT_Q1},
         ],
         "lines": [
-            {"name": "d0", "qubit": "q0", "rabi_mhz": 50.0, "max_amplitude": 0.6},
-            {"name": "d1", "qubit": "q1", "rabi_mhz": 45.0, "max_amplitude": 0.8},
+            {"name": "q0-line", "qubit": "q0", "rabi_mhz": 50.0, "max_amplitude": 0.6},
+            {"name": "q1-line", "qubit": "q1", "rabi_mhz": 45.0, "max_amplitude": 0.8},
         ],
         "couplings": [
-            {"line": "d0", "qubit": "q1", "crosstalk_db": -6.0, "phase_deg": 40.0,
+            {"line": "q0-line", "qubit": "q1", "crosstalk_db": -6.0, "phase_deg": 40.0,
              "delay_ns": 0.7},
         ],
     }
@@ -68,10 +68,10 @@ def probe_timeline() -> Timeline:
     slow = Envelope("gaussian", sigma_ns=8.0)
     return Timeline(
         tones=(
-            Tone("d0", 0.0, 24.0, 5.0, 0.35, 0.3, env),
+            Tone("q0-line", 0.0, 24.0, 5.0, 0.35, 0.3, env),
             # q1: a π pulse on 0–1, then a pulse at its 1–2 frequency.
-            Tone("d1", 24.0, 32.0, 5.12, 0.5 / (0.045 * pulse_area_ns(slow, 32.0)), 0.0, slow),
-            Tone("d1", 56.0, 32.0, 4.92, 0.3, 0.0, slow),
+            Tone("q1-line", 24.0, 32.0, 5.12, 0.5 / (0.045 * pulse_area_ns(slow, 32.0)), 0.0, slow),
+            Tone("q1-line", 56.0, 32.0, 4.92, 0.3, 0.0, slow),
         ),
         readout=("q0", "q1"),
         label="probe",
@@ -239,7 +239,9 @@ def test_drift_random_walk_variance_grows_linearly(channel: str) -> None:
         drift = DeviceDrift(spec, rng=np.random.default_rng(1000 + s))
         for k, t in enumerate(times):
             state = drift.at(float(t))
-            values[s, k] = (state.phase_rad if channel == "phase" else state.log_mag)[("q1", "d0")]
+            values[s, k] = (state.phase_rad if channel == "phase" else state.log_mag)[
+                ("q1", "q0-line")
+            ]
     diffusion = d_phase if channel == "phase" else d_mag
     mean_rate = rate if channel == "phase" else 0.0
     tol = 4.5 * math.sqrt(2.0 / n_seeds)
@@ -259,19 +261,19 @@ def test_drift_random_walk_variance_grows_linearly(channel: str) -> None:
 
 
 def test_over_limit_timeline_is_refused_before_anything_runs() -> None:
-    """A tone over d0's limit (0.6) refuses the whole batch; clock, shots, draws untouched."""
+    """A tone over q0-line's limit (0.6) refuses the whole batch; clock, shots, draws untouched."""
     spec = device_from_dict(device_dict())
     rig = SimRig(spec, drift=False)
     rig.run([probe_timeline()], 10)
     clock, spent = rig.now(), rig.shots_spent
     env = Envelope("gaussian", sigma_ns=6.0)
-    loud = Timeline((Tone("d0", 0.0, 24.0, 5.0, 0.61, 0.0, env),), ("q0", "q1"), label="loud")
+    loud = Timeline((Tone("q0-line", 0.0, 24.0, 5.0, 0.61, 0.0, env),), ("q0", "q1"), label="loud")
     # Two tones within the limit each but overlapping on one line: the sum is what counts.
-    stacked = Timeline((Tone("d0", 0.0, 24.0, 5.0, 0.35, 0.0, env),
-                        Tone("d0", 10.0, 24.0, 5.2, 0.35, 0.0, env)), ("q0", "q1"),
+    stacked = Timeline((Tone("q0-line", 0.0, 24.0, 5.0, 0.35, 0.0, env),
+                        Tone("q0-line", 10.0, 24.0, 5.2, 0.35, 0.0, env)), ("q0", "q1"),
                        label="stacked")
     for bad in ([loud], [probe_timeline(), loud], [stacked]):
-        with pytest.raises(SafetyLimitError, match="d0"):
+        with pytest.raises(SafetyLimitError, match="q0-line"):
             rig.run(bad, 1000)
         assert rig.now() == clock and rig.shots_spent == spent
     # No random draws were spent either: the next batch is what a fresh rig gives.
@@ -280,11 +282,11 @@ def test_over_limit_timeline_is_refused_before_anything_runs() -> None:
     np.testing.assert_array_equal(rig.run([probe_timeline()] * 4, 50).counts,
                                   fresh.run([probe_timeline()] * 4, 50).counts)
     # At the limit itself the tone is accepted.
-    rig.run([Timeline((Tone("d0", 0.0, 24.0, 5.0, 0.6, 0.0, env),), ("q0", "q1"))], 1)
+    rig.run([Timeline((Tone("q0-line", 0.0, 24.0, 5.0, 0.6, 0.0, env),), ("q0", "q1"))], 1)
 
 
 def test_simrig_satisfies_the_rig_protocol() -> None:
     rig = SimRig(device_from_dict(device_dict()))
     assert isinstance(rig, xtalkcal.hardware.Rig)
-    assert rig.chip.line_names == ("d0", "d1")
+    assert rig.chip.line_names == ("q0-line", "q1-line")
     assert "readout-test-pair" in rig.describe()

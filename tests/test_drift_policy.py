@@ -359,7 +359,7 @@ X0 = 0.01 * np.exp(0.5j)
 
 def entry(t_s: float, x: complex, sigma: float, **kw: object) -> LedgerEntry:
     fields: dict[str, object] = dict(
-        aggressor="d1",
+        aggressor="q1-line",
         victim="q2",
         frequency_ghz=5.1,
         value=complex(x),
@@ -614,18 +614,22 @@ H = 3600.0
 
 def test_due_and_record(within_outcome: RecheckOutcome) -> None:
     sch = Schedule(SETTINGS)
-    sch.calibrated(("d1", "q2"), 0.0)
-    sch.calibrated(("d2", "q1"), 0.0, interval_h=2.0)
-    sch.calibrated(("d3", "q1"), 1 * H)
+    sch.calibrated(("q1-line", "q2"), 0.0)
+    sch.calibrated(("q2-line", "q1"), 0.0, interval_h=2.0)
+    sch.calibrated(("q3-line", "q1"), 1 * H)
     assert sch.due(1.9 * H) == []
-    assert sch.due(2 * H) == [("d2", "q1")]  # due exactly at the due time
-    assert sch.due(7 * H) == [("d2", "q1"), ("d1", "q2"), ("d3", "q1")]  # most overdue first
-    nxt = sch.record(("d2", "q1"), within_outcome, 7 * H)
+    assert sch.due(2 * H) == [("q2-line", "q1")]  # due exactly at the due time
+    assert sch.due(7 * H) == [
+        ("q2-line", "q1"),
+        ("q1-line", "q2"),
+        ("q3-line", "q1"),
+    ]  # most overdue first
+    nxt = sch.record(("q2-line", "q1"), within_outcome, 7 * H)
     assert nxt.interval_h == 4.0
-    slot = sch.slot(("d2", "q1"))
+    slot = sch.slot(("q2-line", "q1"))
     assert slot.due_s == 11 * H and slot.last_checked_s == 7 * H
     assert slot.last_decision is RecheckDecision.WITHIN
-    assert sch.due(7 * H) == [("d1", "q2"), ("d3", "q1")]
+    assert sch.due(7 * H) == [("q1-line", "q2"), ("q3-line", "q1")]
     assert sch.pending() == {}
 
 
@@ -633,16 +637,19 @@ def test_follow_ups_are_pending_until_calibrated() -> None:
     sch = Schedule(SETTINGS)
     broken = gaussian_recheck(3 * RHO / A, 0)
     drifted = gaussian_recheck(10 ** (-42 / 20), 0, sigma=0.002)
-    sch.record(("d1", "q2"), broken, 10 * H)  # unscheduled pairs are added
-    sch.record(("d2", "q3"), drifted, 10 * H)
-    assert sch.pending() == {("d1", "q2"): FollowUp.RECALIBRATE, ("d2", "q3"): FollowUp.RECENTRE}
-    assert sch.slot(("d1", "q2")).interval_h == SETTINGS.min_interval_hours
-    assert sch.slot(("d2", "q3")).interval_h == 0.5 * SETTINGS.interval_hours
-    sch.calibrated(("d1", "q2"), 11 * H)
-    assert sch.pending() == {("d2", "q3"): FollowUp.RECENTRE}
-    assert sch.slot(("d1", "q2")).due_s == 11 * H + SETTINGS.min_interval_hours * H
-    sch.remove(("d2", "q3"))
-    assert ("d2", "q3") not in sch and len(sch) == 1
+    sch.record(("q1-line", "q2"), broken, 10 * H)  # unscheduled pairs are added
+    sch.record(("q2-line", "q3"), drifted, 10 * H)
+    assert sch.pending() == {
+        ("q1-line", "q2"): FollowUp.RECALIBRATE,
+        ("q2-line", "q3"): FollowUp.RECENTRE,
+    }
+    assert sch.slot(("q1-line", "q2")).interval_h == SETTINGS.min_interval_hours
+    assert sch.slot(("q2-line", "q3")).interval_h == 0.5 * SETTINGS.interval_hours
+    sch.calibrated(("q1-line", "q2"), 11 * H)
+    assert sch.pending() == {("q2-line", "q3"): FollowUp.RECENTRE}
+    assert sch.slot(("q1-line", "q2")).due_s == 11 * H + SETTINGS.min_interval_hours * H
+    sch.remove(("q2-line", "q3"))
+    assert ("q2-line", "q3") not in sch and len(sch) == 1
 
 
 # Names under the documented rule (xtalkcal.common.NAME_RULE); times and intervals over
@@ -681,11 +688,11 @@ def test_save_is_atomic_and_leaves_no_temporaries(
     path = tmp_path / "schedule.json"
     sch = Schedule.load_or_new(path, SETTINGS)
     assert len(sch) == 0
-    sch.calibrated(("d1", "q2"), 0.0)
+    sch.calibrated(("q1-line", "q2"), 0.0)
     sch.save(path)
     first = path.read_text(encoding="utf-8")
     assert Schedule.load(path, SETTINGS) == sch
-    sch.record(("d1", "q2"), within_outcome, 6 * H)
+    sch.record(("q1-line", "q2"), within_outcome, 6 * H)
 
     def failing_replace(src: object, dst: object) -> None:
         raise OSError("disk gone")
@@ -715,7 +722,7 @@ def test_save_is_atomic_and_leaves_no_temporaries(
 )
 def test_malformed_schedule_files_name_the_field(mutate: object, match: str) -> None:
     sch = Schedule(SETTINGS)
-    sch.calibrated(("d1", "q2"), 0.0)
+    sch.calibrated(("q1-line", "q2"), 0.0)
     doc = sch.to_dict()
     mutate(doc)  # type: ignore[operator]
     with pytest.raises(ScheduleFileError, match=match):

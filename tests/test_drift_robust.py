@@ -139,17 +139,17 @@ def test_a_step_is_caught_at_the_first_recheck_after_it_and_handled_at_once(tmp_
     for c in doc["couplings"]:
         c.pop("phase_rate_rad_per_hour", None)
     step_h = 3.0
-    doc["steps"] = [{"at_hours": step_h, "line": "d4", "qubit": "q5",
+    doc["steps"] = [{"at_hours": step_h, "line": "q4-line", "qubit": "q5",
                      "crosstalk_db_change": 3.0}]
     rig = SimRig(device_from_dict(doc), seed=5, drift=True)
     proto = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
                                 "survey": {"shots": 500}, "null": {"max_rounds": 3}})
-    res = calibrate_chip(rig, proto, aggressors=["d4"])
+    res = calibrate_chip(rig, proto, aggressors=["q4-line"])
     led = Ledger.create(tmp_path / "ledger", chip=rig.chip.name)
     led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
     schedule = Schedule(proto.recheck)
     schedule_after_calibration(schedule, res, rig.now())
-    pair = ("d4", "q5")
+    pair = ("q4-line", "q5")
     assert pair in schedule
     for _ in range(40):
         rig.wait(max(0.0, min(schedule.slot(p).due_s for p in schedule.pairs()) - rig.now()))
@@ -160,9 +160,9 @@ def test_a_step_is_caught_at_the_first_recheck_after_it_and_handled_at_once(tmp_
     else:
         pytest.fail("no re-check of the pair after the step")
     assert mine[0].outcome.decision is not RecheckDecision.WITHIN
-    assert pair in rep.recentred or "d4" in rep.recalibrated
+    assert pair in rep.recentred or "q4-line" in rep.recalibrated
     fresh = led.current()[pair]
-    truth = rig.true_crosstalk("q5", "d4", fresh.frequency_ghz)
+    truth = rig.true_crosstalk("q5", "q4-line", fresh.frequency_ghz)
     assert 20 * math.log10(abs(fresh.value - truth)) < proto.recheck.tolerance_db
 
 
@@ -171,7 +171,7 @@ def _entry(t_h: float, x: complex, *, kind: str = "recheck", tag: str = "within"
     from xtalkcal.store import LedgerEntry
 
     return LedgerEntry(
-        aggressor="d1", victim="q2", frequency_ghz=5.1, value=complex(x),
+        aggressor="q1-line", victim="q2", frequency_ghz=5.1, value=complex(x),
         covariance=((sigma**2, 0.0), (0.0, sigma**2)), method="stark", shots=8000,
         amplification=4, quality=1.0, verdict=verdict, measured_at_s=3600.0 * t_h,
         measured_at_utc="2031-01-01T00:00:00.000000+00:00", rig="invented",
@@ -204,11 +204,11 @@ def test_a_measured_fast_drift_survives_recalibration() -> None:
             for t in (0.0, 1.5, 3.0, 4.5)]
     hist.append(_entry(6.0, x0 * np.exp(1j * w * 6.0), kind="null", tag="calibrated"))
     run = _due_run(hist, 6.0)
-    iv = run.fresh_interval(("d1", "q2"), 48.0)
+    iv = run.fresh_interval(("q1-line", "q2"), 48.0)
     assert iv <= 0.5 * 1.2  # at most the policy's safety (0.5) times the hours left
     assert iv < 12.0
     # without history the pair is first checked early
-    assert _due_run([hist[0]], 0.0).fresh_interval(("d1", "q2"), None) == first_interval(
+    assert _due_run([hist[0]], 0.0).fresh_interval(("q1-line", "q2"), None) == first_interval(
         _settings(12.0))
 
 
@@ -230,11 +230,18 @@ def test_only_the_due_pairs_are_rechecked_each_with_its_co_victims_off() -> None
     # sets), a survey-only pair is neither re-checked nor played, and in a pair's re-check
     # the column's other tones are off: their leak through the victim lines' mutual
     # couplings would otherwise move the measured null.
-    snap = _Snap({("d1", "q0"): "null", ("d1", "q2"): "recheck", ("d1", "q3"): "null",
-                  ("d1", "q4"): "survey", ("d2", "q1"): "null"})
+    snap = _Snap(
+        {
+            ("q1-line", "q0"): "null",
+            ("q1-line", "q2"): "recheck",
+            ("q1-line", "q3"): "null",
+            ("q1-line", "q4"): "survey",
+            ("q2-line", "q1"): "null",
+        }
+    )
     run = _due_run([_entry(0.0, 0.1, kind="null")], 1.0)
     run.snapshot = snap
-    assert run.due_columns([("d1", "q2"), ("d2", "q1"), ("d1", "q4")]) == {
-        "d1": ["q2"], "d2": ["q1"]}
-    assert sorted(run.co_victims("d1", "q2")) == ["q0", "q3"]
-    assert run.co_victims("d2", "q1") == []
+    assert run.due_columns([("q1-line", "q2"), ("q2-line", "q1"), ("q1-line", "q4")]) == {
+        "q1-line": ["q2"], "q2-line": ["q1"]}
+    assert sorted(run.co_victims("q1-line", "q2")) == ["q0", "q3"]
+    assert run.co_victims("q2-line", "q1") == []

@@ -112,7 +112,7 @@ def test_magnitudes_in_range_and_falling_with_distance(tmp_path):
         for c in doc["couplings"]:
             assert -60.0 <= c["crosstalk_db"] <= -15.0
             assert 0.0 <= c["delay_ns"] <= 8.0 and -180.0 <= c["phase_deg"] <= 180.0
-            d = math.dist(pos[int(c["line"][1:])], pos[int(c["qubit"][1:])])
+            d = math.dist(pos[int(c["line"][1:].split("-")[0])], pos[int(c["qubit"][1:])])
             by_distance.setdefault(round(d, 6), []).append(c["crosstalk_db"])
     means = [np.mean(by_distance[d]) for d in sorted(by_distance)]
     assert len(means) >= 5 and all(np.diff(means) < 0), means

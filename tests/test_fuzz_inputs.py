@@ -45,27 +45,27 @@ name = "with-overrides"
 [methods]
 only = ["leakage", "rotation", "stark"]
 overrides = [
-  { aggressor = "d4", victim = "q5", method = "leakage" },
-  { aggressor = "d6", victim = "q7", method = "rotation" },
-  { aggressor = "d1", victim = "q4", method = "stark" },
+  { aggressor = "q4-line", victim = "q5", method = "leakage" },
+  { aggressor = "q6-line", victim = "q7", method = "rotation" },
+  { aggressor = "q1-line", victim = "q4", method = "stark" },
 ]
 """
 
 
 def _schedule_text() -> str:
     sch = Schedule(SETTINGS)
-    sch.calibrated(("d4", "q5"), 120.0)
-    sch.calibrated(("d6", "q7"), 250.5, interval_h=6.0)
-    sch.calibrated(("d1", "q4"), 300.0)
-    sch.set_aside(("d1", "q4"), "stored |X| needs more than line d4's limit", 300.0)
+    sch.calibrated(("q4-line", "q5"), 120.0)
+    sch.calibrated(("q6-line", "q7"), 250.5, interval_h=6.0)
+    sch.calibrated(("q1-line", "q4"), 300.0)
+    sch.set_aside(("q1-line", "q4"), "stored |X| needs more than line q4-line's limit", 300.0)
     return sch.to_json()
 
 
 def _settings_text() -> str:
     pairs = (
-        PairSetting("d4", "q4", "q5", "d5", 4.78, complex(-0.05, 0.02),
+        PairSetting("q4-line", "q4", "q5", "q5-line", 4.78, complex(-0.05, 0.02),
                     ((1e-8, 2e-9), (2e-9, 3e-8)), 42.5, "leakage"),
-        PairSetting("d6", "q6", "q7", "d7", 4.87, complex(0.01, -0.003),
+        PairSetting("q6-line", "q6", "q7", "q7-line", 4.87, complex(0.01, -0.003),
                     ((4e-9, 0.0), (0.0, 4e-9)), 80.0, "rotation", solve="multi-victim"),
     )
     return CompensationSettings("grid9-demo", pairs, "2026-12-01T22:00:00+00:00").to_json()
@@ -92,7 +92,7 @@ KINDS: dict[str, tuple[str, str, Callable[[Path], object], bool]] = {
 }
 
 BAD_NAMES = ["d/4", "..", "q 5", "q5\\n", "\u051b5", "q\u200b5", "", "5q", "q" * 70,
-             "../../etc", "q5.", "d4\\u0000"]
+             "../../etc", "q5.", "q4-line\\u0000"]
 BAD_NUMBERS_TOML = ["1e308", "-1e308", "nan", "inf", "-inf", "-1", "0", "1e-320",
                     "99999999999999999999999999", "-0.0", "1e20", "9" * 5000, "0x7fffffffff"]
 BAD_NUMBERS_JSON = ["1e308", "-1e308", "NaN", "Infinity", "-Infinity", "1e999", "-1", "0",

@@ -46,8 +46,8 @@ def _err_lines(capsys) -> list[str]:
 
 def _schedule_doc() -> dict[str, Any]:
     sch = Schedule(SETTINGS)
-    sch.calibrated(("d4", "q5"), 10.0)
-    sch.calibrated(("d6", "q7"), 20.0)
+    sch.calibrated(("q4-line", "q5"), 10.0)
+    sch.calibrated(("q6-line", "q7"), 20.0)
     return sch.to_dict()
 
 
@@ -174,7 +174,7 @@ def _full_protocol() -> dict[str, Any]:
 
 
 def _settings_doc() -> dict[str, Any]:
-    p = PairSetting("d4", "q4", "q5", "d5", 4.78, complex(-0.05, 0.02),
+    p = PairSetting("q4-line", "q4", "q5", "q5-line", 4.78, complex(-0.05, 0.02),
                     ((1e-8, 2e-9), (2e-9, 3e-8)), 42.5, "leakage")
     return CompensationSettings("grid9-demo", (p,), "2026-12-01T22:00:00+00:00").to_dict()
 
@@ -281,10 +281,10 @@ def test_unknown_line_in_overrides_is_refused_by_check_and_calibrate(tmp_path, c
                                                                       no_rig_time):
     proto = tmp_path / "p.toml"
     proto.write_text('format = "xtalkcal-protocol"\nname = "typo"\n[methods]\noverrides = [\n'
-                     '  { aggressor = "d4", victim = "q5", method = "leakage" },\n'
+                     '  { aggressor = "q4-line", victim = "q5", method = "leakage" },\n'
                      '  { aggressor = "d99", victim = "q5", method = "leakage" },\n'
-                     '  { aggressor = "d6", victim = "q77", method = "rotation" },\n'
-                     '  { aggressor = "d6", victim = "q6", method = "rotation" },\n]\n')
+                     '  { aggressor = "q6-line", victim = "q77", method = "rotation" },\n'
+                     '  { aggressor = "q6-line", victim = "q6", method = "rotation" },\n]\n')
     assert main(["check", str(proto)]) == 0  # alone: the names obey the rule
     capsys.readouterr()
     assert main(["check", str(CHIP_FILE), str(proto)]) == 2
@@ -305,7 +305,7 @@ def test_unknown_names_in_schedule_are_refused_by_check_and_due(tmp_path, capsys
                                                                 no_rig_time):
     doc = _schedule_doc()
     doc["pairs"].append(dict(doc["pairs"][0], aggressor="d99", victim="q5"))
-    doc["pairs"].append(dict(doc["pairs"][0], aggressor="d3", victim="q3"))
+    doc["pairs"].append(dict(doc["pairs"][0], aggressor="q3-line", victim="q3"))
     sched = tmp_path / "s.json"
     sched.write_text(json.dumps(doc))
     assert main(["check", str(sched), str(CHIP_FILE)]) == 2
@@ -342,10 +342,10 @@ def test_pair_over_the_line_limit_is_set_aside_once_and_the_rest_goes_on(tmp_pat
                  "-o", str(tmp_path / "m.json")]) == 0
     assert main(["due", *args]) == 0
     ledger = Ledger(led)
-    assert {("d4", "q5"), ("d5", "q3")} <= set(ledger.current().entries)
+    assert {("q4-line", "q5"), ("q5-line", "q3")} <= set(ledger.current().entries)
     # A stored |X| of +6 dB: its cancellation tone would be 1.6× the aggressor's, beyond
-    # line d5's limit (0.8). Every re-check of it is refused by the safety check.
-    e = ledger.current()[("d4", "q5")]
+    # line q5-line's limit (0.8). Every re-check of it is refused by the safety check.
+    e = ledger.current()[("q4-line", "q5")]
     ledger.append([dataclasses.replace(e, value=e.value / abs(e.value) * 2.0,
                                        measured_at_s=e.measured_at_s + 1, sweep_id="",
                                        seq=0, position=0)])
@@ -354,20 +354,20 @@ def test_pair_over_the_line_limit_is_set_aside_once_and_the_rest_goes_on(tmp_pat
     assert main(["due", *args]) == 1  # a person is told once
     cap = capsys.readouterr()
     assert "Traceback" not in cap.out + cap.err and cap.err == ""
-    said = [ln for ln in cap.out.splitlines() if "d4 → q5" in ln]
+    said = [ln for ln in cap.out.splitlines() if "q4-line → q5" in ln]
     assert len(said) == 1 and "set aside" in said[0] and "limit 0.8" in said[0]
-    assert any(ln.startswith("d5 → q3: within") for ln in cap.out.splitlines())
+    assert any(ln.startswith("q5-line → q3: within") for ln in cap.out.splitlines())
     slot = {(p["aggressor"], p["victim"]): p for p in json.loads(sched.read_text())["pairs"]}
-    assert "line d5, above its limit 0.8" in slot[("d4", "q5")]["set_aside"]
-    assert slot[("d5", "q3")]["last_decision"] == "within"
+    assert "line q5-line, above its limit 0.8" in slot[("q4-line", "q5")]["set_aside"]
+    assert slot[("q5-line", "q3")]["last_decision"] == "within"
     n_rechecks = sum(e.kind == "recheck" for e in Ledger(led).entries())
     # Later runs: no failure repeated, one short mention, the rest re-checked, exit 0.
     _all_due(sched)
     assert main(["due", *args]) == 0
     cap = capsys.readouterr()
     assert cap.err == ""
-    assert [ln for ln in cap.out.splitlines() if "d4 → q5" in ln] == [
-        "set aside (not re-checked): d4 → q5; see the schedule file for why"]
+    assert [ln for ln in cap.out.splitlines() if "q4-line → q5" in ln] == [
+        "set aside (not re-checked): q4-line → q5; see the schedule file for why"]
     assert sum(e.kind == "recheck" for e in Ledger(led).entries()) == n_rechecks + 1
     # A new calibration of the pair takes it back into the schedule.
     Ledger(led).append([dataclasses.replace(e, measured_at_s=e.measured_at_s + 2,
@@ -375,7 +375,7 @@ def test_pair_over_the_line_limit_is_set_aside_once_and_the_rest_goes_on(tmp_pat
     assert main(["due", *args]) == 0
     assert "calibrated anew since it was set aside" in capsys.readouterr().out
     back = {(p["aggressor"], p["victim"]): p for p in json.loads(sched.read_text())["pairs"]}
-    assert back[("d4", "q5")]["set_aside"] == ""
+    assert back[("q4-line", "q5")]["set_aside"] == ""
 
 
 QUICK = protocol_from_dict({"name": "leak", "methods": {"only": ["leakage"]},
@@ -387,7 +387,7 @@ def test_resumed_calibration_keeps_the_times_of_an_uninterrupted_run(tmp_path):
     at 0 again): every estimate carries the rig time of the uninterrupted run, and with
     drift on, the batches measured after the resume see the same drifted chip (the same
     estimates)."""
-    lines = ["d4", "d5"]  # two batches each
+    lines = ["q4-line", "q5-line"]  # two batches each
     clean_rig = SimRig(demo_device_path(), seed=3, drift=True)
     clean = calibrate_chip(clean_rig, QUICK, aggressors=lines)
     rig = SimRig(demo_device_path(), seed=3, drift=True)

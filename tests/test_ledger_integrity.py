@@ -499,9 +499,9 @@ def test_a_writer_never_reuses_the_number_of_a_commit_it_never_saw(tmp_path: Pat
     path = tmp_path / "l"
     build(path)
     (path / _name(3)).unlink()
-    (path / _digest(3)).rename(tmp_path / "d3")
+    (path / _digest(3)).rename(tmp_path / "q3-line")
     stale = Ledger(path)  # sees commits 1 and 2 only
-    (tmp_path / "d3").rename(path / _digest(3))
+    (tmp_path / "q3-line").rename(path / _digest(3))
     with pytest.raises(LedgerError, match=f"{_name(3)}: missing, but its digest file"):
         stale.append([make_entry(victim="q7", measured_at_s=900.0)])
     assert (path / _digest(3)).exists() and not (path / _name(3)).exists()

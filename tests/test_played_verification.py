@@ -31,7 +31,7 @@ QUICK = "protocols/quick-survey.toml"
 def column_d4():
     rig = SimRig(demo_device_path(), seed=11, drift=False)
     proto = load_protocol(QUICK)
-    cal = calibrate_chip(rig, proto, aggressors=["d4"])
+    cal = calibrate_chip(rig, proto, aggressors=["q4-line"])
     return rig, proto, cal
 
 
@@ -74,13 +74,13 @@ def test_played_tones_are_refused_beyond_the_limits(column_d4):
 
 
 def _synthetic(xs, covs, couplings, chip):
-    """A calibration of line d4 with the given victims' X, covariances and the couplings the
-    column fit measured between their lines at d4's frequency."""
+    """A calibration of line q4-line with the given victims' X, covariances and the couplings the
+    column fit measured between their lines at q4-line's frequency."""
     victims = ["q1", "q3", "q5"][: len(xs)]
     f = chip.qubit("q4").f01_ghz
     res = CalibrationResult(chip, default_protocol(), "synthetic")
     for v, x, c in zip(victims, xs, covs, strict=True):
-        res.pairs.append(PairResult("d4", v, "stark", f, True, "", x, np.eye(2) * c, True,
+        res.pairs.append(PairResult("q4-line", v, "stark", f, True, "", x, np.eye(2) * c, True,
                                     1000, 1, 0.0, "null", sweep_id="s"))
     res.sweeps["s"] = xr.Dataset(attrs={"frequency_ghz": f})
     C = np.array(couplings[: len(victims) ** 2]).reshape(len(victims), len(victims))

@@ -122,8 +122,8 @@ def _ramsey(rig: SimRig, wait: float) -> Timeline:
     env = Envelope("gaussian", sigma_ns=5.0)
     amp = 0.25 / (2 * math.pi * 0.04 * 0.8 * 10.0)  # roughly π/2, not needed exactly
     f = rig.device.qubit("q0").f01_ghz
-    tones = (Tone("d0", 0.0, 20.0, f, amp, 0.0, env),
-             Tone("d0", 20.0 + wait, 20.0, f, amp, 0.0, env))
+    tones = (Tone("q0-line", 0.0, 20.0, f, amp, 0.0, env),
+             Tone("q0-line", 20.0 + wait, 20.0, f, amp, 0.0, env))
     return Timeline(tones, readout=("q0", "q1"), readout_ns=40.0 + wait)
 
 

@@ -30,7 +30,7 @@ SECTIONS = ["Calibration", "Settings", "Verification", "Simultaneous randomized 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory) -> Path:
     out = tmp_path_factory.mktemp("page") / "demo"
-    args = ["demo", "--out", str(out), "--aggressors", "d4", "--days", "0.3",
+    args = ["demo", "--out", str(out), "--aggressors", "q4-line", "--days", "0.3",
             "--rb-qubits", "q4,q5", "--rb-draws", "2", "-q"]
     assert main(args) == 0
     return out
@@ -137,7 +137,7 @@ def test_matrix_figure_marks_threshold_and_frequencies(demo, demo_chip):
     cal = calibration_from_ledger(led, chip, proto)
     ax = plot_matrix_db(cal)
     labels = [t.get_text() for t in ax.get_xticklabels()]
-    assert labels[4].startswith("d4\n") and labels[4].endswith(f"{cal.pairs[0].freq_ghz:.3f}")
+    assert labels[4].startswith("q4-line\n") and labels[4].endswith(f"{cal.pairs[0].freq_ghz:.3f}")
     bar = ax.images[0].colorbar
     levels = [ln.get_ydata()[0] for ln in bar.ax.lines]
     assert proto.survey.threshold_db in levels

@@ -209,7 +209,7 @@ def test_any_plugin_exception_becomes_a_rig_error_naming_the_batch(tmp_path, exc
     assert not list(tmp_path.iterdir())
 
 
-@pytest.mark.parametrize("exc", [SafetyLimitError("d1 over its limit"),
+@pytest.mark.parametrize("exc", [SafetyLimitError("q1-line over its limit"),
                                  TimelineError("tone beyond the readout"),
                                  RigError("interlock open")],
                          ids=lambda e: type(e).__name__)

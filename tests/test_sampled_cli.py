@@ -32,6 +32,6 @@ def test_cli_calibrates_through_sampled_waveforms(tmp_path, capsys) -> None:
     # device's (the tone simulator's truth); its phase is not compared: through the waveform
     # path the null sees the line responses at the qubit's 1-2 frequency, 20 MHz from the
     # tone's, where the tone path evaluates them at the tone's (2π·Δf·τ, several degrees).
-    x = pairs[("d4", "q5")]["ratio"]
-    truth = sampled_rig().sim.true_ratio("q5", "d4", pairs[("d4", "q5")]["frequency_ghz"])
+    x = pairs[("q4-line", "q5")]["ratio"]
+    truth = sampled_rig().sim.true_ratio("q5", "q4-line", pairs[("q4-line", "q5")]["frequency_ghz"])
     assert abs(x["magnitude_db"] - 20 * math.log10(abs(truth))) < 0.3

@@ -88,7 +88,7 @@ def test_two_photon_population_grows_as_field_to_the_fourth_and_k_squared():
 
 # --- the calibration of a two-photon victim -------------------------------------------
 
-# A six-qubit grid whose pair d0 → q3 sits on q3's two-photon line (0 MHz) at −29 dB.
+# A six-qubit grid whose pair q0-line → q3 sits on q3's two-photon line (0 MHz) at −29 dB.
 PARAMS = FamilyParams(n_qubits=6, layout="grid", leakage_hazards=2, near_resonant_hazards=1,
                       two_photon_hazards=1, nearest_db=-25.878277257890126,
                       falloff_db=13.230373131853028, delay_ns=(0.0, 3.587798689647377))
@@ -101,31 +101,31 @@ def two_photon_rig():
 
 
 def test_far_two_photon_pairs_are_no_hazard():
-    # Rabi's bound Ω2²/(Ω2² + δ2²) at the planned field: on the demo chip d4 → q7 sits
+    # Rabi's bound Ω2²/(Ω2² + δ2²) at the planned field: on the demo chip q4-line → q7 sits
     # 8 MHz from q7's two-photon line (δ2 = 16 MHz), far beyond Ω2 (≈ 0.5 MHz)
     from simulated_device import demo_device_path
 
     chip = SimRig(demo_device_path(), drift=False).chip
-    amp = pass_amplitude(default_protocol(), chip, "d4")
-    assert near_two_photon(chip, "d4", "q7")
-    assert not two_photon_hazard(chip, "d4", "q7", amp)
+    amp = pass_amplitude(default_protocol(), chip, "q4-line")
+    assert near_two_photon(chip, "q4-line", "q7")
+    assert not two_photon_hazard(chip, "q4-line", "q7", amp)
 
 
 def test_plan_gives_a_two_photon_victim_a_short_train(two_photon_rig):
     chip = two_photon_rig.chip
     proto = default_protocol()
-    assert near_two_photon(chip, "d0", "q3")
-    assert abs(two_photon_detuning_ghz(chip, "d0", "q3")) < 1e-3
-    amp = pass_amplitude(proto, chip, "d0")
-    assert two_photon_hazard(chip, "d0", "q3", amp)
-    assert stark_phase_scale(chip, "d0", "q3", amp) == TWO_PHOTON_STARK_SCALE
-    assert stark_phase_scale(chip, "d0", "q1", amp) == 1.0
+    assert near_two_photon(chip, "q0-line", "q3")
+    assert abs(two_photon_detuning_ghz(chip, "q0-line", "q3")) < 1e-3
+    amp = pass_amplitude(proto, chip, "q0-line")
+    assert two_photon_hazard(chip, "q0-line", "q3", amp)
+    assert stark_phase_scale(chip, "q0-line", "q3", amp) == TWO_PHOTON_STARK_SCALE
+    assert stark_phase_scale(chip, "q0-line", "q1", amp) == 1.0
     k_max = int(proto.survey.max_train_ns // proto.pulse.duration_ns)
     shape = PulseShape(proto.pulse.duration_ns, proto.pulse.sigma_ns)
-    k = two_photon_stark_repeats(chip, "d0", "q3", amp, k_max, shape)
+    k = two_photon_stark_repeats(chip, "q0-line", "q3", amp, k_max, shape)
     assert 1 <= k < k_max
     # the whole train's Stark phase at 1.5× the strongest planned null is within the bound
-    probe = ColumnProbe(chip, "d0", ("q3",), amplitude=amp, repeats=k, methods=("stark",),
+    probe = ColumnProbe(chip, "q0-line", ("q3",), amplitude=amp, repeats=k, methods=("stark",),
                         shape=shape, merged=True)
     z = 1.5 * amp * 10 ** (STRONGEST_DB / 20)
     assert probe.stark_gain("q3") * z * z <= TWO_PHOTON_STARK_SCALE * STARK_PHASE_MAX
@@ -134,10 +134,10 @@ def test_plan_gives_a_two_photon_victim_a_short_train(two_photon_rig):
 def test_two_photon_victim_is_nulled_within_its_error(two_photon_rig):
     rig = two_photon_rig
     proto = default_protocol()
-    res: CalibrationResult = calibrate_chip(rig, proto, aggressors=["d0"])
-    p = res.pair("d0", "q3")
+    res: CalibrationResult = calibrate_chip(rig, proto, aggressors=["q0-line"])
+    p = res.pair("q0-line", "q3")
     f = rig.chip.qubit("q0").f01_ghz
-    truth = rig.true_crosstalk("q3", "d0", f)
+    truth = rig.true_crosstalk("q3", "q0-line", f)
     assert 20 * math.log10(abs(truth)) > -32  # a strong pair
     assert p.accepted and p.nulled and p.method == "stark"
     err = abs(p.x - truth)

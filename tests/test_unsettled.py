@@ -21,7 +21,7 @@ from xtalkcal.outputs import format_table, unsettled_pairs
 def _pair(victim, *, accepted=True, reason="", nulled=True, sigma=1e-4):
     cov = None if not accepted else np.eye(2) * sigma**2 / 2  # trace = σ²
     x = None if not accepted else complex(0.03, 0.01)
-    return PairResult("d4", victim, "leakage", 4.78, accepted, reason, x, cov, nulled, 1000, 1,
+    return PairResult("q4-line", victim, "leakage", 4.78, accepted, reason, x, cov, nulled, 1000, 1,
                       0.0, "null" if nulled else "survey")
 
 
@@ -40,10 +40,10 @@ def result(demo_chip):
 
 def test_rejected_pairs_fail_and_loose_nulls_warn(result):
     failures, warnings = unsettled_pairs(result)
-    assert failures == ["d4 → q5 (leakage): rejected at the survey stage, outside_region: the "
+    assert failures == ["q4-line → q5 (leakage): rejected at the survey stage, outside_region: the "
                         "fitted null lies outside the swept region (a strong leak); not "
                         "compensated"]
-    assert len(warnings) == 1 and warnings[0].startswith("d4 → q1 (leakage): nulled, but")
+    assert len(warnings) == 1 and warnings[0].startswith("q4-line → q1 (leakage): nulled, but")
     assert f"{-50 + 20 * math.log10(2):.1f} dB (99 %)" in warnings[0]
     table = format_table(result)
     assert [ln for ln in table.splitlines() if "nulled*" in ln] == [
@@ -57,7 +57,7 @@ def test_the_cli_exits_nonzero_naming_each_unsettled_pair(monkeypatch, result, t
     out = tmp_path / "m.json"
     assert main(["calibrate", "--no-drift", "-q", "-o", str(out)]) == 1
     text = capsys.readouterr().out
-    assert "unsettled: d4 → q5 (leakage): rejected at the survey stage, outside_region" in text
-    assert "warning: d4 → q1 (leakage): nulled, but its error of X may reach" in text
+    assert "unsettled: q4-line → q5 (leakage): rejected at the survey stage, outside_region" in text
+    assert "warning: q4-line → q1 (leakage): nulled, but its error of X may reach" in text
     assert "q3" not in text.split("unsettled:")[-1]
     assert out.exists()  # what was measured is still written

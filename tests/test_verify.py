@@ -262,7 +262,7 @@ def test_timelines_are_right_aligned_and_isolated_keeps_the_timing(demo_chip):
     for k, (a, b) in enumerate(zip(sim, iso, strict=True)):
         li, s = divmod(k, 2)
         assert a.end_ns == b.end_ns == seqs.n_slots(li, s) * g.slot_ns
-        assert {t.line for t in b.tones} <= {"d5"}
+        assert {t.line for t in b.tones} <= {"q5-line"}
         assert set(b.tones) <= set(a.tones)
         for q in ("q4", "q5"):
             tones = [t for t in a.tones if t.line == demo_chip.line_of(q).name]
@@ -326,12 +326,12 @@ def test_simultaneous_rb_shows_the_leakage_pair(demo_device):
     rig = SimRig(demo_device, seed=3, drift=False)
     seqs = draw_sequences(["q4", "q5"], [1, 25, 50, 100], 16, rng=8)
     # best-case cancellation from the simulator's truth, r = −X
-    r54 = rig.true_ratio("q5", "d4", rig.chip.qubit("q4").f01_ghz)
-    r45 = rig.true_ratio("q4", "d5", rig.chip.qubit("q5").f01_ghz)
+    r54 = rig.true_ratio("q5", "q4-line", rig.chip.qubit("q4").f01_ghz)
+    r45 = rig.true_ratio("q4", "q5-line", rig.chip.qubit("q5").f01_ghz)
 
     def cancel(tl):
-        extra = [t.scaled(r54, "d5") for t in tl.tones if t.line == "d4"]
-        extra += [t.scaled(r45, "d4") for t in tl.tones if t.line == "d5"]
+        extra = [t.scaled(r54, "q5-line") for t in tl.tones if t.line == "q4-line"]
+        extra += [t.scaled(r45, "q4-line") for t in tl.tones if t.line == "q5-line"]
         return replace(tl, tones=tl.tones + tuple(extra))
 
     rep = simultaneous_rb(rig, seqs, transforms={"uncompensated": None, "compensated": cancel},
@@ -344,7 +344,7 @@ def test_simultaneous_rb_shows_the_leakage_pair(demo_device):
     # q4 hardly feels q5 (q5's drive is 230 MHz away from both q4 transitions)
     ratio, err = rep.comparison("q4").ratio["uncompensated"]
     assert abs(ratio - 1) < 0.2
-    # cancelling the d4 → q5 leak brings q5 back to its isolated error
+    # cancelling the q4-line → q5 leak brings q5 back to its isolated error
     ratio, err = q5.ratio["compensated"]
     assert abs(ratio - 1) < max(0.1, 3 * err), (ratio, err)
     ds = rep.to_dataset()
@@ -362,7 +362,7 @@ def test_transform_hook_is_applied_to_every_timeline(demo_device):
 
     def drop_d4(tl):
         seen.append(tl.label)
-        return replace(tl, tones=tuple(t for t in tl.tones if t.line != "d4"))
+        return replace(tl, tones=tuple(t for t in tl.tones if t.line != "q4-line"))
 
     data = run_rb(rig, seqs, transform=drop_d4, shots=20000)
     iso = run_rb(rig, seqs, mode="isolated", shots=20000)

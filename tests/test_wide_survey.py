@@ -29,9 +29,9 @@ def test_wider_survey_plan(demo_chip):
     shape = PulseShape(proto.pulse.duration_ns, proto.pulse.sigma_ns)
     res = CalibrationResult(demo_chip, proto, "test")
     for stark, method, victim in ((False, "leakage", "q5"), (True, "stark", "q0")):
-        base = plan_pass(demo_chip, proto, res, PassRequest("d4", (victim,), (method,), shape,
+        base = plan_pass(demo_chip, proto, res, PassRequest("q4-line", (victim,), (method,), shape,
                                                             stark=stark))
-        wide = plan_pass(demo_chip, proto, res, PassRequest("d4", (victim,), (method,), shape,
+        wide = plan_pass(demo_chip, proto, res, PassRequest("q4-line", (victim,), (method,), shape,
                                                             stark=stark, survey_scale=2.0))
         lim = 0.45 * demo_chip.amplitude_limit(demo_chip.line_of(victim).name)
         if stark:  # a train 4× shorter: the same phase at a ring 2× wider
@@ -41,18 +41,18 @@ def test_wider_survey_plan(demo_chip):
             assert wide.radius[0] == pytest.approx(min(2 * base.radius[0], lim))
         assert wide.tag.endswith("-wide2") and wide.tag != base.tag
     with pytest.raises(ValueError):
-        PassRequest("d4", ("q5",), ("leakage",), shape, stark=False, survey_scale=0.5)
+        PassRequest("q4-line", ("q5",), ("leakage",), shape, stark=False, survey_scale=0.5)
 
 
 def test_strong_leakage_pair_outside_the_ring_is_nulled():
     doc = generate_device(STRONG, 5)
     rig = SimRig(device_from_dict(doc, source=doc["name"]), drift=False)
     lines = []
-    res = calibrate_chip(rig, default_protocol(), aggressors=["d2"], log=lines.append)
+    res = calibrate_chip(rig, default_protocol(), aggressors=["q2-line"], log=lines.append)
     assert any("surveyed again 2× wider" in t for t in lines)
     f = rig.chip.qubit("q2").f01_ghz
     for p in res.pairs:
-        truth = rig.true_crosstalk(p.victim, "d2", f)
+        truth = rig.true_crosstalk(p.victim, "q2-line", f)
         if 20 * math.log10(abs(truth)) > -20:
             assert p.accepted and p.nulled, p
             err = abs(p.x - truth)

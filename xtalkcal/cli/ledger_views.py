@@ -79,7 +79,9 @@ def cmd_history(args: argparse.Namespace) -> int:
         else:
             line, sep, victim = args.pair.partition(":")
             if not sep or not line or not victim or "," in args.pair:
-                raise usage_error("--pair", f"{args.pair!r}: expected one LINE:QUBIT, e.g. d4:q5")
+                raise usage_error(
+                    "--pair", f"{args.pair!r}: expected one LINE:QUBIT, e.g. q4-line:q5"
+                )
             pair = (line, victim)
         if pair not in led.pairs():
             held = ", ".join(f"{a}:{v}" for a, v in led.pairs()[:12])

@@ -85,7 +85,7 @@ def parse_pairs(text: str, chip, option: str = "--pairs") -> list[tuple[str, str
             continue
         line, sep, qubit = item.partition(":")
         if not sep or not line or not qubit:
-            raise usage_error(option, f"{item!r}: expected LINE:QUBIT (e.g. d4:q5), "
+            raise usage_error(option, f"{item!r}: expected LINE:QUBIT (e.g. q4-line:q5), "
                                       "comma-separated")
         if line not in chip.line_names:
             raise usage_error(option, f"{item!r}: no line {line!r} on chip {chip.name!r}; "

@@ -137,7 +137,7 @@ def add_commands(add) -> None:
     _add_job(d, out="xtalkcal-demo", rb="q1,q4,q5,q6,q7")
     d.add_argument("--seed", type=int, default=None, help="simulator seed")
     d.add_argument("--days", type=float, default=7.0, help="simulated days of drift watch")
-    d.add_argument("--watch", default="d4,d6,d7",
+    d.add_argument("--watch", default="q4-line,q6-line,q7-line",
                    help="aggressor lines the drift watch follows: the columns with the chip's "
                         "frequency-plan hazards by default, 'all' for every column (slower)")
     d.add_argument("--dry-run", action="store_true",

@@ -98,9 +98,9 @@ def pairwise_settings(
 
     Examples
     --------
-    >>> s = pairwise_settings({("d4", "q5"): (0.03 + 0.04j, [[1e-6, 0], [0, 1e-6]],
+    >>> s = pairwise_settings({("q4-line", "q5"): (0.03 + 0.04j, [[1e-6, 0], [0, 1e-6]],
     ...                        4.78, 10.0, "leakage")}, chip)  # doctest: +SKIP
-    >>> s.pair("d4", "q5").ratio  # doctest: +SKIP
+    >>> s.pair("q4-line", "q5").ratio  # doctest: +SKIP
     (-0.03-0.04j)
     """
     _check_matrix_chip(matrix, chip)

@@ -214,7 +214,7 @@ class Schedule:
     File format (JSON, UTF-8)::
 
         {"format": "xtalkcal-schedule", "schema_version": 1,
-         "pairs": [{"aggressor": "d1", "victim": "q2", "interval_hours": 6.0,
+         "pairs": [{"aggressor": "q1-line", "victim": "q2", "interval_hours": 6.0,
                     "due_s": 21600.0, "last_checked_s": null, "last_decision": null,
                     "follow_up": "none", "note": ""}, ...]}
 

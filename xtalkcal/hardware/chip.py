@@ -28,7 +28,7 @@ write it out even if it only repeats ``max_amplitude = 1.0``.
     t2_us = 40.0                 # optional nominal T2 (echo-free Ramsey)
 
     [[lines]]
-    name = "d0"
+    name = "q0-line"
     qubit = "q0"                 # the qubit this line is meant to drive
     rabi_mhz = 40.0              # Rabi frequency on its own qubit at amplitude 1
     max_amplitude = 0.8          # this line's own peak-amplitude limit

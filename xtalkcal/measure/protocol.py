@@ -18,7 +18,7 @@ are those of ``protocols/full.toml``. Field by field::
     # only = ["leakage"]         # measure only the pairs whose chosen method is listed
     #                            # ("leakage", "rotation", "stark"); the others are left
     #                            # out of the calibration (default []: every pair)
-    # overrides = [{ aggressor = "d4", victim = "q5", method = "leakage" }]
+    # overrides = [{ aggressor = "q4-line", victim = "q5", method = "leakage" }]
 
     [survey]                     # one pass per aggressor, all victims together
     shots = 1000                 # per timeline

@@ -12,8 +12,8 @@ Schema ``xtalkcal-matrix/1`` (all angles in degrees, magnitudes in dB = 20·log1
       "threshold_db": -40.0,
       "pairs": [
         {
-          "aggressor_line": "d4", "aggressor_qubit": "q4", "victim": "q5",
-          "victim_line": "d5", "frequency_ghz": 4.78,
+          "aggressor_line": "q4-line", "aggressor_qubit": "q4", "victim": "q5",
+          "victim_line": "q5-line", "frequency_ghz": 4.78,
           "method": "leakage", "stage": "null", "nulled": true,
           "verdict": "accepted", "reason": "",
           "crosstalk": {"re": ..., "im": ..., "magnitude_db": ..., "phase_deg": ...,
