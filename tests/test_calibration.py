@@ -431,7 +431,9 @@ def test_windowed_stark_probe_follows_the_stark_formula(demo_rig):
     z_true = demo_rig.true_ratio("q1", "q3-line", probe.freq_ghz) * 0.64
     r = np.array([0.04, 0.07])
     s = measure_probe(BatchRunner(demo_rig), probe, (z_true + r)[:, None], 4000, "win")
-    assert s.signal[:, 0] == pytest.approx(probe.stark_gain("q1") * r**2, rel=0.06)
+    # 6 % for the second-order formula's own error at these drives, plus 4σ of shot noise.
+    expected = probe.stark_gain("q1") * r**2
+    assert np.all(np.abs(s.signal[:, 0] - expected) <= 0.06 * expected + 4 * s.stderr[:, 0])
 
 
 @pytest.mark.parametrize("line,victim", [("q6-line", "q0"), ("q0-line", "q6"), ("q2-line", "q6")])

@@ -169,7 +169,7 @@ def test_a_lab_chip_file_sets_the_limits_the_simulator_runs_under(tmp_path, caps
     assert str(chip) in first and f"≤ {limit:g} of full scale" in first
     if limit == 0.6:
         assert code == 0, err
-        rows = [ln.split() for ln in out.splitlines() if re.match(r"d\d+ ", ln)]
+        rows = [ln.split() for ln in out.splitlines() if re.match(r"q\d+-line ", ln)]
         assert rows and all(float(r[1]) <= limit for r in rows)
     else:  # the survey ring would need more than 0.5 on a victim line
         assert code == 2 and str(chip) in err and "limits.max_amplitude" in err
