@@ -157,19 +157,9 @@ def test_the_first_ledger_format_still_opens() -> None:
 @pytest.fixture(scope="module")
 def raised_k_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """A small calibration whose null search raises K (points at two K in one sweep)."""
-    from simulated_device import SimRig, demo_device_path
-    from xtalkcal.calibrate import calibrate_chip
-    from xtalkcal.measure import protocol_from_dict
-    from xtalkcal.store import ledger_entries, ledger_sweeps
+    from test_ledger_netcdf import small_calibration_ledger
 
-    proto = protocol_from_dict({"name": "small", "methods": {"only": ["leakage"]},
-                                "survey": {"shots": 200}, "null": {"max_rounds": 3}})
-    rig = SimRig(demo_device_path(), seed=5, drift=False)
-    res = calibrate_chip(rig, proto, aggressors=[rig.chip.lines[4].name])
-    path = tmp_path_factory.mktemp("cal") / "ledger"
-    led = Ledger.create(path, chip=rig.chip.name)
-    led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
-    return path
+    return small_calibration_ledger(tmp_path_factory.mktemp("cal") / "ledger", max_rounds=3)
 
 
 _OPEN_SWEEPS = NO_XTALKCAL + r"""
@@ -242,3 +232,20 @@ def test_signal_units_per_method() -> None:
     assert _signal_units("leakage,stark,rotation", 3) == ["1", "rad", "1"]
     assert _signal_units("", 2) == ["1", "1"]
     assert np.array_equal(_signal_units("stark", 1), ["rad"])
+
+
+@pytest.mark.parametrize("version, ok", [(1, True), (2, False), (None, False), (True, False)])
+def test_verification_files_carry_format_and_version(tmp_path: Path, version, ok) -> None:
+    from xtalkcal.exceptions import ConfigError
+    from xtalkcal.outputs.played import played_to_dict, read_played
+
+    doc = played_to_dict([], chip="c", settings="s.json", rig="r")
+    assert (doc["format"], doc["version"]) == ("xtalkcal-verification", 1)
+    doc = {**doc, "tolerance_db": -40.0, "version": version}
+    path = tmp_path / "v.json"
+    path.write_text(json.dumps(doc))
+    if ok:
+        assert read_played(path, "c") == []
+    else:
+        with pytest.raises(ConfigError, match="version"):
+            read_played(path, "c")

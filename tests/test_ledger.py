@@ -912,6 +912,9 @@ def test_newer_current_files_refused(tmp_path: Path) -> None:
     with h5py.File(receipt.file, "r+") as fh:
         assert "schema_version" not in fh.attrs
         fh.attrs["version"] = np.int64(SCHEMA_VERSION + 1)
+    from test_ledger_integrity import reseal
+
+    reseal(led.path, receipt.seq)
     with pytest.raises(LedgerError, match=f"version {SCHEMA_VERSION + 1}.*upgrade"):
         Ledger(led.path)
     marker = led.path / "xtalkcal-ledger.json"

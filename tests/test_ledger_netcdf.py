@@ -45,22 +45,26 @@ def _group(sweep_id: str) -> str:
     return "sweeps/" + quote(sweep_id, safe="-_.~+@:,=()")
 
 
-@pytest.fixture(scope="module")
-def calibration_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A ledger holding one small calibration of the bundled demo chip (one column,
-    leakage only, one search round) with its sweeps."""
+def small_calibration_ledger(path: Path, max_rounds: int = 1) -> Path:
+    """A ledger at ``path`` holding one small calibration of the bundled demo chip (one
+    column, leakage only, ``max_rounds`` search rounds) with its sweeps."""
     from simulated_device import SimRig, demo_device_path
     from xtalkcal.calibrate import calibrate_chip
     from xtalkcal.measure import protocol_from_dict
 
     proto = protocol_from_dict({"name": "small", "methods": {"only": ["leakage"]},
-                                "survey": {"shots": 200}, "null": {"max_rounds": 1}})
+                                "survey": {"shots": 200}, "null": {"max_rounds": max_rounds}})
     rig = SimRig(demo_device_path(), seed=5, drift=False)
     res = calibrate_chip(rig, proto, aggressors=[rig.chip.lines[4].name])
-    path = tmp_path_factory.mktemp("cal") / "ledger"
     led = Ledger.create(path, chip=rig.chip.name)
     led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
     return path
+
+
+@pytest.fixture(scope="module")
+def calibration_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A ledger holding one small calibration (one search round)."""
+    return small_calibration_ledger(tmp_path_factory.mktemp("cal") / "ledger")
 
 
 def test_every_group_of_a_calibration_ledger_opens_with_plain_xarray(
