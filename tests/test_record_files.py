@@ -99,7 +99,8 @@ def test_a_record_opens_with_xarray_alone_and_holds_its_tones(tmp_path: Path) ->
                             "tone": 4}
     assert seen["counts"] == counts.counts.tolist() and seen["qubit"] == list(counts.qubits)
     assert seen["units"]["counts"] == "shots" and seen["units"]["freq_ghz"] == "GHz"
-    assert seen["units"]["amplitude"] == "1" and seen["units"]["phase_rad"] == "rad"
+    assert seen["units"]["amplitude"] == "fraction of full scale"
+    assert seen["units"]["phase_rad"] == "rad"
     assert {"line", "tone_timeline", "label"} <= set(seen["coords"])
     played = [(k, t) for k, tl in enumerate(tls) for t in tl.tones]
     assert seen["tone_timeline"] == [k for k, _ in played]

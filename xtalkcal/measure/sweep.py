@@ -2,13 +2,24 @@
 
 Describe, run, record are kept apart: probes *describe* timelines; the
 :class:`BatchRunner` *runs* them on a rig after a dry-run safety check; every
-completed batch is *recorded* at once in its own small HDF5 file (written to a
+completed batch is *recorded* at once in its own small netCDF-4 file (written to a
 temporary name, fsync'd, then atomically renamed), so a crash loses at most the
 batch in flight. Given the same run directory, a new runner returns a recorded
 batch instead of executing it again — only if the request (timelines and shots)
 is identical to the one recorded (a fingerprint is stored with it): a deterministic
 calibration that is interrupted and started again resumes where it stopped, and a
 later measurement that happens to reuse a key is measured anew.
+
+A record opens with ``xarray.open_dataset(path, engine="h5netcdf")`` and no xtalkcal:
+root attributes ``format = "xtalkcal-batch"``, ``version = 2``, ``shots``, ``started_s``,
+``finished_s`` (rig clock, s), ``request`` (the fingerprint) and ``content`` (checksum of the
+counts and the tones); ``counts`` (shots) along ``timeline`` x ``qubit`` x ``level``; per
+timeline its ``label`` and ``readout_ns`` (NaN: at the end of the last tone); and every tone
+played, along ``tone``: ``tone_timeline`` (its timeline), ``line``, ``start_ns``,
+``duration_ns``, ``freq_ghz``, ``amplitude`` (fraction of full scale), ``phase_rad``,
+``envelope`` and its ``sigma_ns``, ``drag_ns``, ``ramp_ns``. Records of the first format
+(HDF5 attribute ``schema = "xtalkcal-batch/1"``, counts only) still resume, and are
+rewritten in the current format, tones included, when they do.
 
 Nothing a rig returns is trusted: every answer is checked against its request
 (:func:`xtalkcal.hardware.check_counts`) before it is used or recorded, so a batch that
@@ -257,7 +268,7 @@ _TONE_FIELDS = (
     ("start_ns", "ns", "tone start on the global clock"),
     ("duration_ns", "ns", "tone duration"),
     ("freq_ghz", "GHz", "carrier frequency"),
-    ("amplitude", "1", "peak amplitude |a|, fraction of the line's full scale"),
+    ("amplitude", "fraction of full scale", "peak amplitude |a| of the tone"),
     ("phase_rad", "rad", "phase of the tone against the global clock"),
     ("sigma_ns", "ns", "gaussian standard deviation of the envelope (gaussian, drag)"),
     ("drag_ns", "ns", "DRAG coefficient beta of the envelope (drag)"),
