@@ -508,7 +508,7 @@ def test_calibrate_cli_writes_the_matrix_json(tmp_path, capsys):
     out = tmp_path / "m.json"
     assert main(["calibrate", "--protocol", str(proto), "--no-drift", "-q", "-o", str(out)]) == 0
     data = json.loads(out.read_text())
-    assert data["schema"] == "xtalkcal-matrix/1"
+    assert (data["format"], data["version"]) == ("xtalkcal-matrix", 1)
     pairs = {(p["aggressor_line"], p["victim"]): p for p in data["pairs"]}
     p = pairs[("q4-line", "q5")]
     assert p["verdict"] == "accepted" and p["method"] == "leakage"

@@ -315,7 +315,7 @@ def test_json_round_trip(s):
     text = s.to_json()
     back = CompensationSettings.from_json(text)
     assert back == s
-    assert json.loads(text)["schema"] == SETTINGS_SCHEMA
+    assert json.loads(text)["format"] + "/1" == SETTINGS_SCHEMA
 
 
 @given(settings_sets.filter(lambda s: len(s) > 0))
@@ -350,8 +350,11 @@ def test_files_are_written_atomically_and_read_back(two, tmp_path: Path):
 def test_malformed_files_name_the_field(two):
     _, s = two
     doc = s.to_dict()
+    with pytest.raises(ConfigError, match="version: expected 1"):
+        CompensationSettings.from_dict(doc | {"version": 2})
+    first = {k: v for k, v in doc.items() if k not in ("format", "version")}
     with pytest.raises(ConfigError, match="schema: expected 'xtalkcal-settings/1'"):
-        CompensationSettings.from_dict(doc | {"schema": "xtalkcal-settings/2"})
+        CompensationSettings.from_dict(first | {"schema": "xtalkcal-settings/2"})
     edited = json.loads(s.to_json())
     edited["pairs"][0]["ratio"]["magnitude_db"] = -30.0  # edited display value only
     with pytest.raises(ConfigError, match=r"pairs\[0\]\.ratio\.magnitude_db: .*authoritative"):

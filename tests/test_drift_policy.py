@@ -345,6 +345,7 @@ def test_outcome_record_is_json() -> None:
     o = gaussian_recheck(0.001, 1)
     d = json.loads(json.dumps(o.to_dict(), allow_nan=False))
     assert d["decision"] == o.decision.value
+    assert (d["format"], d["version"]) == ("xtalkcal-recheck-outcome", 1)
     assert d["shift"] == pytest.approx([o.shift.real, o.shift.imag])
     broken = gaussian_recheck(3 * RHO / A, 1)
     json.dumps(broken.to_dict(), allow_nan=False)
@@ -712,7 +713,8 @@ def test_save_is_atomic_and_leaves_no_temporaries(
     ("mutate", "match"),
     [
         (lambda d: d.update(format="other"), "format"),
-        (lambda d: d.update(schema_version=99), "newer"),
+        (lambda d: d.update(version=99), "newer"),
+        (lambda d: (d.pop("version"), d.update(schema_version=99)), "newer"),
         (lambda d: d["pairs"][0].update(interval_hours=-1.0), r"pairs\[0\]\.interval_hours"),
         (lambda d: d["pairs"][0].update(follow_up="panic"), r"pairs\[0\]\.follow_up"),
         (lambda d: d["pairs"][0].update(due_s="soon"), r"pairs\[0\]\.due_s"),

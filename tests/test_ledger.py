@@ -905,6 +905,27 @@ def test_newer_schema_refused(fixture_copy: Path) -> None:
         Ledger(fixture_copy)
 
 
+def test_newer_current_files_refused(tmp_path: Path) -> None:
+    """Files of the one naming (``version``) are refused as newer as the older ones were."""
+    led = Ledger.create(tmp_path / "l", chip="c")
+    receipt = led.append([make_entry()])
+    with h5py.File(receipt.file, "r+") as fh:
+        assert "schema_version" not in fh.attrs
+        fh.attrs["version"] = np.int64(SCHEMA_VERSION + 1)
+    from test_ledger_integrity import reseal
+
+    reseal(led.path, receipt.seq)
+    with pytest.raises(LedgerError, match=f"version {SCHEMA_VERSION + 1}.*upgrade"):
+        Ledger(led.path)
+    marker = led.path / "xtalkcal-ledger.json"
+    info = json.loads(marker.read_text())
+    assert info["format"] == "xtalkcal-ledger" and "schema_version" not in info
+    info["version"] = SCHEMA_VERSION + 1
+    marker.write_text(json.dumps(info))
+    with pytest.raises(LedgerError, match="version .*upgrade xtalkcal"):
+        Ledger(led.path)
+
+
 def test_newer_marker_refused(fixture_copy: Path) -> None:
     marker = fixture_copy / "xtalkcal-ledger.json"
     info = json.loads(marker.read_text())
@@ -939,7 +960,7 @@ def test_migration_hook_runs_on_old_files(
     led.compact()  # rewrites everything as the next version
     (merged,) = fixture_copy.glob("*.h5")
     with h5py.File(merged, "r") as fh:
-        assert int(np.asarray(fh.attrs["schema_version"]).item()) == nxt
+        assert int(np.asarray(fh.attrs["version"]).item()) == nxt
     assert_same_dataset(Ledger(fixture_copy).sweep("null-L1-q2"), _fixture_sweep())
 
 
@@ -954,7 +975,8 @@ def _file_versions(path: Path) -> dict[str, int]:
     out = {}
     for p in sorted(path.glob("*.h5")):
         with h5py.File(p, "r") as fh:
-            out[p.name] = int(np.asarray(fh.attrs["schema_version"]).item())
+            key = "version" if "version" in fh.attrs else "schema_version"  # files before
+            out[p.name] = int(np.asarray(fh.attrs[key]).item())
     return out
 
 
@@ -978,7 +1000,8 @@ def test_old_ledgers_are_read_in_place_and_take_new_commits(tmp_path: Path, fixt
     led.append([new], sweeps={"new/1": special_sweep()})
     versions = _file_versions(path)
     assert sorted(versions.values()) == [1] * len(batches) + [2]
-    assert json.loads((path / "xtalkcal-ledger.json").read_text())["schema_version"] == 2
+    marker = json.loads((path / "xtalkcal-ledger.json").read_text())
+    assert marker["version"] == 2 and "schema_version" not in marker
     mixed = Ledger(path)
     assert [canon(e.bare()) for e in mixed.entries()] == [canon(e) for e in [*want, new]]
     assert mixed.sweep_ids() == (*(s for _, sw in batches for s in sw), "new/1")

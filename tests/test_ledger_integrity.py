@@ -291,10 +291,10 @@ def _marker_field(key: str, value: object):
 
 
 ATTACKS: dict[str, Callable[[Path], str]] = {
-    "schema_version as text": _edit(2, _set_attr("schema_version", "one")),
-    "schema_version as text, digest not updated": _edit(
-        2, _set_attr("schema_version", "one"), sealed=False),
-    "schema_version as float": _edit(2, _set_attr("schema_version", 1.0)),
+    "version as text": _edit(2, _set_attr("version", "one")),
+    "version as text, digest not updated": _edit(
+        2, _set_attr("version", "one"), sealed=False),
+    "version as float": _edit(2, _set_attr("version", 1.0)),
     "seq range attribute as text": _edit(3, _set_attr("seq_last", "3")),
     "chip attribute of another chip": _edit(2, _set_attr("chip", "other-chip")),
     "entries group missing": _edit(2, _delete("entries")),
@@ -445,7 +445,7 @@ def counting_rig(monkeypatch: pytest.MonkeyPatch, demo_chip):
     return mod.__name__
 
 
-@pytest.mark.parametrize("attack", ["schema_version as text", "truncated file",
+@pytest.mark.parametrize("attack", ["version as text", "truncated file",
                                     "digest points to a missing commit file",
                                     "ledger marker garbage JSON"])
 def test_calibrate_refuses_a_broken_ledger_before_any_rig_time(

@@ -22,7 +22,7 @@ from xtalkcal.store import Ledger, ledger_entries, ledger_sweeps
 
 # What a notebook user runs: xarray alone, no xtalkcal import (checked in the child).
 _OPEN_ALL = r"""
-import json, sys
+import json
 import xarray as xr
 path = sys.argv[1]
 tree = xr.open_datatree(path, engine="h5netcdf")
@@ -35,7 +35,7 @@ for node in tree.subtree:
                       "coords": sorted(ds.coords), "vars": sorted(ds.data_vars)}
     ds.close()
 assert not any(m.split(".")[0] == "xtalkcal" for m in sys.modules), "xtalkcal was imported"
-print(json.dumps({"root": dict(tree.attrs) | {"schema_version": int(tree.attrs["schema_version"])},
+print(json.dumps({"root": dict(tree.attrs) | {"version": int(tree.attrs["version"])},
                   "groups": out}, default=str))
 """
 
@@ -45,22 +45,26 @@ def _group(sweep_id: str) -> str:
     return "sweeps/" + quote(sweep_id, safe="-_.~+@:,=()")
 
 
-@pytest.fixture(scope="module")
-def calibration_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A ledger holding one small calibration of the bundled demo chip (one column,
-    leakage only, one search round) with its sweeps."""
+def small_calibration_ledger(path: Path, max_rounds: int = 1) -> Path:
+    """A ledger at ``path`` holding one small calibration of the bundled demo chip (one
+    column, leakage only, ``max_rounds`` search rounds) with its sweeps."""
     from simulated_device import SimRig, demo_device_path
     from xtalkcal.calibrate import calibrate_chip
     from xtalkcal.measure import protocol_from_dict
 
     proto = protocol_from_dict({"name": "small", "methods": {"only": ["leakage"]},
-                                "survey": {"shots": 200}, "null": {"max_rounds": 1}})
+                                "survey": {"shots": 200}, "null": {"max_rounds": max_rounds}})
     rig = SimRig(demo_device_path(), seed=5, drift=False)
     res = calibrate_chip(rig, proto, aggressors=[rig.chip.lines[4].name])
-    path = tmp_path_factory.mktemp("cal") / "ledger"
     led = Ledger.create(path, chip=rig.chip.name)
     led.append(ledger_entries(res, run_tag="cal"), sweeps=ledger_sweeps(res, run_tag="cal"))
     return path
+
+
+@pytest.fixture(scope="module")
+def calibration_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A ledger holding one small calibration (one search round)."""
+    return small_calibration_ledger(tmp_path_factory.mktemp("cal") / "ledger")
 
 
 def test_every_group_of_a_calibration_ledger_opens_with_plain_xarray(
@@ -68,14 +72,16 @@ def test_every_group_of_a_calibration_ledger_opens_with_plain_xarray(
 ) -> None:
     led = Ledger(calibration_ledger)
     (commit,) = calibration_ledger.glob("*.h5")
-    done = subprocess.run([sys.executable, "-c", _OPEN_ALL, str(commit)], capture_output=True,
-                          text=True, timeout=300, check=False)
+    from test_record_files import NO_XTALKCAL
+
+    done = subprocess.run([sys.executable, "-I", "-c", NO_XTALKCAL + _OPEN_ALL, str(commit)],
+                          capture_output=True, text=True, timeout=300, check=False)
     assert done.returncode == 0, done.stderr
     seen = json.loads(done.stdout)
     assert seen["root"]["format"] == "xtalkcal-ledger"
-    assert seen["root"]["schema_version"] == 2
+    assert seen["root"]["version"] == 2 and "schema_version" not in seen["root"]
     assert seen["root"]["chip"] == led.chip
-    want = {"/entries"} | {"/" + _group(sid) for sid in led.sweep_ids()}
+    want = {"/entries", "/matrix"} | {"/" + _group(sid) for sid in led.sweep_ids()}
     assert set(seen["groups"]) == want
     assert seen["groups"]["/entries"]["dims"] == {"entry": len(led.entries())}
     # Each sweep as xarray sees it has the values the ledger gives back.
@@ -189,19 +195,57 @@ def test_matrix_view_follows_x_ij_victim_first(tmp_path: Path) -> None:
 
 def test_readme_example_runs_on_a_ledger(calibration_ledger: Path) -> None:
     """The notebook example of the README's "Reading the data", run as written (with the
-    demo's folder replaced by this ledger's) in a Python that imports no xtalkcal."""
+    demo's folder replaced by this ledger's) in `python -I`, every xtalkcal import refused."""
+    from test_record_files import NO_XTALKCAL
+
     readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
     section = readme.split("## Reading the data", 1)[1]
     code = section.split("```python\n", 1)[1].split("```", 1)[0]
     assert len(code.strip().splitlines()) <= 8
     code = code.replace("DIR/ledger", str(calibration_ledger))
-    check = ("\nimport sys\nassert not any(m.split('.')[0] == 'xtalkcal' for m in sys.modules)"
-             "\nprint(sweep.sizes['point'], x.size)\n")
-    done = subprocess.run([sys.executable, "-c", code + check], capture_output=True, text=True,
-                          timeout=300, check=False)
+    check = ("\nassert not any(m.split('.')[0] == 'xtalkcal' for m in sys.modules)"
+             "\nprint(sweep.sizes['point'], at_k.sizes['point'], int(x.notnull().sum()),"
+             " matrix.x_real.dims, sweep.signal.dims, sep='|')\n")
+    done = subprocess.run([sys.executable, "-I", "-c", NO_XTALKCAL + code + check],
+                          capture_output=True, text=True, timeout=300, check=False)
     assert done.returncode == 0, done.stderr
-    points, n = map(int, done.stdout.split())
-    assert points > 0 and n == len(Ledger(calibration_ledger).entries())
+    points, at_k, n, mdims, sdims = done.stdout.strip().split("|")
+    led = Ledger(calibration_ledger)
+    assert 0 < int(at_k) <= int(points)
+    assert int(n) == len(led.current())
+    assert "('victim', 'aggressor')" in mdims and "('victim', 'point')" in sdims
+
+
+def test_the_matrix_group_is_the_ledgers_matrix(calibration_ledger: Path,
+                                                tmp_path: Path) -> None:
+    """``/matrix`` of each commit is `Ledger.current()` as it stood after that commit, and
+    of a compacted file the whole ledger's."""
+    import shutil
+
+    from test_ledger import make_entry
+
+    path = tmp_path / "l"
+    shutil.copytree(calibration_ledger, path)
+    led = Ledger(path)
+    (e0,) = [e for e in led.entries() if e.accepted][:1]
+    newer = make_entry(aggressor=e0.aggressor, victim=e0.victim, value=5e-3 + 1e-3j,
+                       measured_at_s=e0.measured_at_s + 10.0)
+    receipt = led.append([newer, make_entry(aggressor="other", victim="q0", value=1e-4 + 0j,
+                                            verdict="rejected", reason="test")])
+    for file in (receipt.file, None):
+        if file is None:
+            led.compact()
+            (file,) = path.glob("*.h5")
+        want = Ledger(path).current().to_dataset()
+        with xr.open_dataset(file, group="matrix", engine="h5netcdf") as got:
+            assert got["x_real"].dims == ("victim", "aggressor")
+            for name in ("x_real", "x_imag", "magnitude_db", "present"):
+                np.testing.assert_array_equal(got[name].values, want[name].values)
+            assert list(got["aggressor"].values) == list(want["aggressor"].values)
+            assert got["x_real"].attrs["units"] == "1"
+        assert complex(float(got.x_real.sel(victim=e0.victim, aggressor=e0.aggressor)),
+                       float(got.x_imag.sel(victim=e0.victim, aggressor=e0.aggressor))) \
+            == 5e-3 + 1e-3j
 
 
 @pytest.mark.parametrize("ds", [

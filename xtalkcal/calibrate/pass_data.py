@@ -183,44 +183,44 @@ class PassRecord:
         attrs : dict
             Attributes of the dataset.
         """
-        Z = np.vstack(self.points)
+        Z = np.vstack(self.points).T  # victim first (X_ij: victim i), then the point
         extra = {}
         if companions:
-            T = np.vstack(self.tones)
+            T = np.vstack(self.tones).T
             extra = {
-                "tone_re": (("point", "companion"), T.real, {
+                "tone_re": (("companion", "point"), T.real, {
                     "units": "fraction of full scale",
                     "long_name": "tone of a victim nulled in another pass, real part"}),
-                "tone_im": (("point", "companion"), T.imag, {
+                "tone_im": (("companion", "point"), T.imag, {
                     "units": "fraction of full scale", "long_name": "same, imaginary part"}),
             }
         kap = np.array([e.curvature if e.accepted else math.nan for e in final])
         kap_err = np.array([e.curvature_stderr * math.sqrt(birge_ratio(e)) if e.accepted
                             else math.nan for e in final])
         rel = {"units": "relative to the victim's own line"}
+        units = _signal_units(str(attrs.get("methods", "")), len(victims))
+        sig_units = units[0] if len(set(units)) == 1 else "per victim: signal_units"
+        kap_units = "signal per (fraction of full scale)²"
         return xr.Dataset(
             {
                 **extra,
                 "curvature": (("victim",), kap, {
-                    "long_name": "fitted curvature κ of the signal",
-                    "units": "signal per (fraction of full scale)²"}),
-                "curvature_stderr": (("victim",), kap_err,
-                                     {"long_name": "standard error of κ"}),
-                "z_re": (("point", "victim"), Z.real, {
+                    "long_name": "fitted curvature κ of the signal", "units": kap_units}),
+                "curvature_stderr": (("victim",), kap_err, {
+                    "long_name": "standard error of κ (Birge-scaled)", "units": kap_units}),
+                "z_re": (("victim", "point"), Z.real, {
                     "units": "fraction of full scale",
                     "long_name": "cancellation tone, real part"}),
-                "z_im": (("point", "victim"), Z.imag, {
+                "z_im": (("victim", "point"), Z.imag, {
                     "units": "fraction of full scale",
                     "long_name": "cancellation tone, imag part"}),
-                "signal": (("point", "victim"), np.vstack(self.signal),
-                           {"long_name": "error signal"}),
-                "stderr": (("point", "victim"), np.vstack(self.stderr),
-                           {"long_name": "standard error"}),
-                "shots": (("point", "victim"), np.vstack(self.shots), {"units": "shots"}),
-                "round": (("point",), np.concatenate(self.rounds),
-                          {"long_name": "search round"}),
-                "repeats": (("point",), np.concatenate(self.repeats),
-                            {"long_name": "amplification K"}),
+                "signal": (("victim", "point"), np.vstack(self.signal).T, {
+                    "units": sig_units, "long_name": "error signal: P(|2>) (leakage), "
+                    "P(|1>) (rotation) or Stark phase (stark)"}),
+                "stderr": (("victim", "point"), np.vstack(self.stderr).T, {
+                    "units": sig_units, "long_name": "standard error of the error signal"}),
+                "shots": (("victim", "point"), np.vstack(self.shots).T, {
+                    "units": "shots", "long_name": "shots read out for the point"}),
                 "coupling_re": (("victim", "from_victim"), couplings.couplings.real, {
                     "long_name": "field at victim from from_victim's line, real part", **rel}),
                 "coupling_im": (("victim", "from_victim"), couplings.couplings.imag, {
@@ -228,11 +228,28 @@ class PassRecord:
                 "coupling_stderr": (("victim", "from_victim"), couplings.couplings_stderr, {
                     "long_name": "standard error of the coupling (√trace)", **rel}),
             },
-            coords={"victim": list(victims), "from_victim": list(victims) + list(companions),
-                    **({"companion": list(companions)} if companions else {})},
-            attrs=attrs,
+            coords={
+                "victim": list(victims), "from_victim": list(victims) + list(companions),
+                **({"companion": list(companions)} if companions else {}),
+                # K and the round tell the points apart: ds.where(ds.repeats == 4)
+                "repeats": ("point", np.concatenate(self.repeats), {
+                    "units": "1", "long_name": "amplification K (aggressor pulse "
+                    "repetitions)"}),
+                "round": ("point", np.concatenate(self.rounds), {
+                    "units": "1", "long_name": "search round (0: the survey ring)"}),
+                "signal_units": ("victim", np.array(units, dtype=str),
+                                 {"long_name": "units of the victim's signal and stderr"}),
+            },
+            attrs={**attrs, "axes": "victim first, point second (X_ij: victim i, the "
+                   "aggressor line j is the attribute aggressor)"},
         )
 
+
+def _signal_units(methods: str, n: int) -> list[str]:
+    """Per victim, the unit of its signal: ``"1"`` for a probability, ``"rad"`` (Stark)."""
+    names = methods.split(",") if methods else []
+    names = names if len(names) == n else [""] * n
+    return ["rad" if m == "stark" else "1" for m in names]
 
 def _slice(counts, a: int, b: int):
     from xtalkcal.hardware import Counts

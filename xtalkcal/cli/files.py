@@ -11,11 +11,49 @@ from xtalkcal.exceptions import ConfigError, XtalkcalError
 __all__ = ["add_commands"]
 
 
+# Names files carried before every kind used ``format`` + ``version``.
+_OLD_KINDS = {"xtalkcal.recheck_outcome": "xtalkcal-recheck-outcome",
+              "xtalkcal.pair_trend": "xtalkcal-pair-trend",
+              "xtalkcal.null_estimate": "xtalkcal-null-estimate"}
+
+
+def file_kind(doc: object) -> tuple[str | None, int | None]:
+    """``(format, version)`` of a JSON or TOML document of the toolkit, of any naming.
+
+    The one naming is ``{"format": "xtalkcal-<kind>", "version": N}``; older files are read
+    too: ``"schema": "xtalkcal-<kind>/N"``, ``"schema": "xtalkcal.<kind>"`` with
+    ``"schema_version"``, and ``format`` with ``schema_version``.
+
+    Parameters
+    ----------
+    doc : object
+        The parsed document.
+
+    Returns
+    -------
+    tuple
+        The kind (None if the document names none) and its version (None if not stated).
+    """
+    if not isinstance(doc, dict):
+        return None, None
+    version = doc.get("version", doc.get("schema_version"))
+    version = version if isinstance(version, int) and not isinstance(version, bool) else None
+    if "format" in doc:
+        return str(doc["format"]), version
+    name = doc.get("schema")
+    if not isinstance(name, str):
+        return None, version
+    head, _, tail = name.partition("/")
+    if tail.isdigit():
+        return head, int(tail)
+    return _OLD_KINDS.get(name, name), version
+
+
 def _detect_format(path: str) -> str:
     from xtalkcal.common import load_toml
 
     data, _ = load_toml(path)
-    return str(data.get("format", ""))
+    return str(file_kind(data)[0] or "")
 
 
 def cmd_check(args: argparse.Namespace) -> int:
@@ -90,23 +128,23 @@ def _check_one(path: str) -> tuple[object, object, str]:
 def _check_json(path: str) -> tuple[object, None, str]:
     """A schedule or settings file (JSON), told apart by its ``format`` / ``schema``."""
     from xtalkcal.common import load_json
-    from xtalkcal.compensation import SETTINGS_SCHEMA, CompensationSettings
+    from xtalkcal.compensation import SETTINGS_FORMAT, CompensationSettings
     from xtalkcal.drift import SCHEDULE_FORMAT, Schedule
     from xtalkcal.measure import default_protocol
 
     doc, source = load_json(path)
-    kind = doc.get("format", doc.get("schema")) if isinstance(doc, dict) else None
+    kind, _ = file_kind(doc)
     if kind == SCHEDULE_FORMAT:
         sch = Schedule.from_dict(doc, default_protocol().recheck, source=source)
         n_aside = len(sch.set_aside_pairs())
         return sch, None, f"{path}: schedule: {len(sch)} pairs ({n_aside} set aside) — OK"
-    if kind == SETTINGS_SCHEMA:
+    if kind == SETTINGS_FORMAT:
         settings = CompensationSettings.from_dict(doc, source=source)
         return settings, None, (f"{path}: settings for chip {settings.chip!r}: "
                                 f"{len(settings)} pairs — OK")
     raise ConfigError(source, "format", f"{str(kind)[:40]!r} is not a file kind "
                       f"`check` reads; accepted: format {SCHEDULE_FORMAT!r} (a "
-                      f"schedule) or schema {SETTINGS_SCHEMA!r} (settings)")
+                      f"schedule) or {SETTINGS_FORMAT!r} (settings)")
 
 
 def cmd_export_chip(args: argparse.Namespace) -> int:

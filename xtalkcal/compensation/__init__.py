@@ -25,6 +25,7 @@ from xtalkcal.compensation.refine import (
 )
 from xtalkcal.compensation.settings import (
     CSV_COLUMNS,
+    SETTINGS_FORMAT,
     SETTINGS_SCHEMA,
     SOLVES,
     CompensationSettings,
@@ -55,6 +56,7 @@ __all__ = [
     "CSV_COLUMNS",
     "CompensationSettings",
     "PairSetting",
+    "SETTINGS_FORMAT",
     "SETTINGS_SCHEMA",
     "SOLVES",
     "Solve",

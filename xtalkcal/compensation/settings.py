@@ -29,7 +29,11 @@ from xtalkcal.compensation.elements import Cov2, _cov2, _db
 from xtalkcal.exceptions import ConfigError
 from xtalkcal.store import utc_timestamp
 
-SETTINGS_SCHEMA = "xtalkcal-settings/1"
+SETTINGS_FORMAT = "xtalkcal-settings"
+SETTINGS_VERSION = 1
+"""``format`` and ``version`` at the top of a settings JSON file."""
+SETTINGS_SCHEMA = f"{SETTINGS_FORMAT}/{SETTINGS_VERSION}"
+"""The name the first JSON files carried in ``schema`` (still read), and the CSV's column."""
 
 Solve = Literal["pairwise", "multi-victim", "closed-loop"]
 SOLVES: tuple[str, ...] = get_args(Solve)
@@ -247,9 +251,10 @@ class CompensationSettings:
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict[str, Any]:
-        """The settings as a JSON-shaped dictionary of schema ``xtalkcal-settings/1``."""
+        """The settings as a JSON-shaped dictionary (format ``xtalkcal-settings``, version 1)."""
         return {
-            "schema": SETTINGS_SCHEMA,
+            "format": SETTINGS_FORMAT,
+            "version": SETTINGS_VERSION,
             "chip": self.chip,
             "created_utc": self.created_utc,
             "software": self.software,
@@ -262,7 +267,8 @@ class CompensationSettings:
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any], *, source: str = "<json>") -> CompensationSettings:
-        """Validate a dictionary of schema ``xtalkcal-settings/1``.
+        """Validate a dictionary of format ``xtalkcal-settings`` (or the first files' schema
+        ``xtalkcal-settings/1``).
 
         Raises
         ------
@@ -273,7 +279,7 @@ class CompensationSettings:
 
     @classmethod
     def from_json(cls, text: str, *, source: str = "<json>") -> CompensationSettings:
-        """Parse JSON text of schema ``xtalkcal-settings/1`` (inverse of :meth:`to_json`)."""
+        """Parse settings JSON text (inverse of :meth:`to_json`)."""
         data = parse_json(text, source)  # strict: no NaN, no duplicate keys, bounded nesting
         if not isinstance(data, dict):
             raise ConfigError(source, "<document>", "expected a JSON object at the top level")
@@ -441,7 +447,8 @@ class _Reader:
 
 _PAIR_FIELDS = ("aggressor_line", "aggressor_qubit", "victim", "victim_line", "frequency_ghz",
                 "ratio", "covariance", "stderr_db", "measured_at_s", "method", "solve", "source")
-_TOP_FIELDS = ("schema", "chip", "created_utc", "software", "pairs")
+_TOP_FIELDS = ("format", "version", "chip", "created_utc", "software", "pairs")
+_TOP_FIELDS_V0 = ("schema", "chip", "created_utc", "software", "pairs")  # the first files
 
 
 def _check_display(rd: _Reader, ratio: complex, mag_db: float | None, phase_deg: float | None,
@@ -467,11 +474,22 @@ def _make_pair(source: str, where: str, fields: dict[str, Any]) -> PairSetting:
 
 def _settings_from_dict(data: Mapping[str, Any], source: str) -> CompensationSettings:
     top = _Reader(data, source, "")
-    schema = top.string("schema")
-    if schema != SETTINGS_SCHEMA:
-        raise top.error("schema", f"expected {SETTINGS_SCHEMA!r}, got {schema!r} (a newer "
-                                  "xtalkcal wrote it, or it is another kind of file)")
-    top.reject_unknown(_TOP_FIELDS)
+    if "format" not in data and "schema" in data:  # a file of the first naming
+        schema = top.string("schema")
+        if schema != SETTINGS_SCHEMA:
+            raise top.error("schema", f"expected {SETTINGS_SCHEMA!r}, got {schema!r} (a "
+                                      "newer xtalkcal wrote it, or it is another kind of file)")
+        top.reject_unknown(_TOP_FIELDS_V0)
+    else:
+        fmt = top.string("format")
+        if fmt != SETTINGS_FORMAT:
+            raise top.error("format", f"expected {SETTINGS_FORMAT!r}, got {fmt!r} (another "
+                                      "kind of file)")
+        version = data.get("version")
+        if isinstance(version, bool) or version != SETTINGS_VERSION:
+            raise top.error("version", f"expected {SETTINGS_VERSION}, got {version!r} (a "
+                                       "newer xtalkcal wrote it, or the file was edited)")
+        top.reject_unknown(_TOP_FIELDS)
     chip = top.string("chip")
     created = top.string("created_utc")
     software = top.string("software", empty=True)

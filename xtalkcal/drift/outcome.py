@@ -19,6 +19,9 @@ from xtalkcal.common import (
 from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.fits import RejectionReason
 
+OUTCOME_FORMAT = "xtalkcal-recheck-outcome"  # written before as schema "xtalkcal.recheck_outcome"
+OUTCOME_VERSION = 1
+
 
 class RecheckDecision(str, enum.Enum):
     """What a re-check says about a pair's stored compensation."""
@@ -206,8 +209,8 @@ class RecheckOutcome:
             return [[json_float(x) for x in row] for row in m]
 
         return {
-            "schema": "xtalkcal.recheck_outcome",
-            "schema_version": 1,
+            "format": OUTCOME_FORMAT,
+            "version": OUTCOME_VERSION,
             "decision": self.decision.value,
             "reason": self.reason,
             "cause": self.cause.value,

@@ -213,7 +213,7 @@ class Schedule:
     -----
     File format (JSON, UTF-8)::
 
-        {"format": "xtalkcal-schedule", "schema_version": 1,
+        {"format": "xtalkcal-schedule", "version": 2,
          "pairs": [{"aggressor": "q1-line", "victim": "q2", "interval_hours": 6.0,
                     "due_s": 21600.0, "last_checked_s": null, "last_decision": null,
                     "follow_up": "none", "note": ""}, ...]}
@@ -384,7 +384,7 @@ class Schedule:
         """The JSON document (see the class notes)."""
         return {
             "format": SCHEDULE_FORMAT,
-            "schema_version": SCHEDULE_SCHEMA_VERSION,
+            "version": SCHEDULE_SCHEMA_VERSION,
             "pairs": [self._slots[p].to_dict() for p in self.pairs()],
         }
 
@@ -406,21 +406,23 @@ class Schedule:
         if doc.get("format") != SCHEDULE_FORMAT:
             raise ScheduleFileError(source, "format", f"expected {SCHEDULE_FORMAT!r}, got "
                                                       f"{short_repr(doc.get('format'))}")
-        version = doc.get("schema_version")
+        # "version" (the one naming of every file kind); "schema_version" in older files.
+        field = "version" if "version" in doc or "schema_version" not in doc else "schema_version"
+        version = doc.get(field)
         if isinstance(version, bool) or not isinstance(version, int) or version < 1:
-            raise ScheduleFileError(source, "schema_version",
+            raise ScheduleFileError(source, field,
                                     f"expected an integer from 1 to {SCHEDULE_SCHEMA_VERSION}, "
                                     f"got {short_repr(version)}")
         if version > SCHEDULE_SCHEMA_VERSION:
-            raise ScheduleFileError(source, "schema_version",
+            raise ScheduleFileError(source, field,
                                     f"{short_repr(version)} is newer than this code "
                                     f"reads; accepted: 1 to {SCHEDULE_SCHEMA_VERSION} (or "
                                     "upgrade xtalkcal)")
-        extra = sorted(set(doc) - {"format", "schema_version", "pairs"})
+        extra = sorted(set(doc) - {"format", field, "pairs"})
         if extra:
             raise ScheduleFileError(source, "(top level)",
                                     f"unknown top-level field(s) {_names(extra)}; accepted: "
-                                    "format, schema_version, pairs")
+                                    f"format, {field}, pairs")
         raw = doc.get("pairs")
         if not isinstance(raw, list):
             raise ScheduleFileError(source, "pairs", "expected a list of objects, got "

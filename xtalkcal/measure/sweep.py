@@ -2,13 +2,24 @@
 
 Describe, run, record are kept apart: probes *describe* timelines; the
 :class:`BatchRunner` *runs* them on a rig after a dry-run safety check; every
-completed batch is *recorded* at once in its own small HDF5 file (written to a
+completed batch is *recorded* at once in its own small netCDF-4 file (written to a
 temporary name, fsync'd, then atomically renamed), so a crash loses at most the
 batch in flight. Given the same run directory, a new runner returns a recorded
 batch instead of executing it again — only if the request (timelines and shots)
 is identical to the one recorded (a fingerprint is stored with it): a deterministic
 calibration that is interrupted and started again resumes where it stopped, and a
 later measurement that happens to reuse a key is measured anew.
+
+A record opens with ``xarray.open_dataset(path, engine="h5netcdf")`` and no xtalkcal:
+root attributes ``format = "xtalkcal-batch"``, ``version = 2``, ``shots``, ``started_s``,
+``finished_s`` (rig clock, s), ``request`` (the fingerprint) and ``content`` (checksum of the
+counts and the tones); ``counts`` (shots) along ``timeline`` x ``qubit`` x ``level``; per
+timeline its ``label`` and ``readout_ns`` (NaN: at the end of the last tone); and every tone
+played, along ``tone``: ``tone_timeline`` (its timeline), ``line``, ``start_ns``,
+``duration_ns``, ``freq_ghz``, ``amplitude`` (fraction of full scale), ``phase_rad``,
+``envelope`` and its ``sigma_ns``, ``drag_ns``, ``ramp_ns``. Records of the first format
+(HDF5 attribute ``schema = "xtalkcal-batch/1"``, counts only) still resume, and are
+rewritten in the current format, tones included, when they do.
 
 Nothing a rig returns is trusted: every answer is checked against its request
 (:func:`xtalkcal.hardware.check_counts`) before it is used or recorded, so a batch that
@@ -40,11 +51,19 @@ from concurrent.futures import Future
 from concurrent.futures import TimeoutError as FutureTimeout
 from pathlib import Path
 
+import h5netcdf
 import h5py
 import numpy as np
 
 from xtalkcal.exceptions import RigError, SafetyLimitError, TimelineError
-from xtalkcal.hardware import Counts, PowerTally, Rig, Timeline, check_counts, common_readout
+from xtalkcal.hardware import (
+    Counts,
+    PowerTally,
+    Rig,
+    Timeline,
+    check_counts,
+    common_readout,
+)
 
 __all__ = ["BatchRunner"]
 
@@ -156,6 +175,7 @@ class BatchRunner:
                 advance = getattr(self.rig, "advance_clock_to", None)
                 if advance is not None:
                     advance(counts.finished_s)
+                self._convert(path, counts, digest, timelines)
                 return counts
             # Same key, different request (e.g. a later calibration reusing a run folder):
             # the record must not stand in for a measurement it is not.
@@ -172,7 +192,7 @@ class BatchRunner:
         # and a rerun with the same record measures the batch again.
         counts = check_counts(self._call_rig(key, timelines, shots), batch=key, **request)
         if path is not None:
-            _write_atomic(path, counts, digest)
+            _write_atomic(path, counts, digest, timelines)
         self.batches += 1
         self.shots_executed += len(timelines) * shots
         self.rig_seconds_executed += counts.finished_s - counts.started_s
@@ -180,6 +200,16 @@ class BatchRunner:
         if self.progress is not None:
             self.progress(len(timelines) * shots)
         return counts
+
+    @staticmethod
+    def _convert(path: Path, counts: Counts, digest: str, timelines: list[Timeline]) -> None:
+        """Rewrite a first-format record that answered its request in the current format,
+        now that its tones are known (atomically; a read-only record stays as it is)."""
+        try:
+            if _is_first_format(path):
+                _write_atomic(path, counts, digest, timelines)
+        except OSError as exc:
+            log.warning("recorded batch %s kept in its first format (%s)", path, exc)
 
     def _call_rig(self, key: str, timelines: list[Timeline], shots: int) -> object:
         """``rig.run``, with its failures as RigError naming the batch, and the timeout."""
@@ -228,31 +258,113 @@ def _digest(timelines: Sequence[Timeline], shots: int) -> str:
                            digest_size=16).hexdigest()
 
 
+RECORD_FORMAT = "xtalkcal-batch"
+RECORD_VERSION = 2
+"""Format name and version written at the root of every record file (netCDF-4)."""
+_RECORD_V1 = "xtalkcal-batch/1"  # HDF5 attribute ``schema`` of the first records
+
+# The tone table of a record (dimension ``tone``): name, units, long name.
+_TONE_FIELDS = (
+    ("start_ns", "ns", "tone start on the global clock"),
+    ("duration_ns", "ns", "tone duration"),
+    ("freq_ghz", "GHz", "carrier frequency"),
+    ("amplitude", "fraction of full scale", "peak amplitude |a| of the tone"),
+    ("phase_rad", "rad", "phase of the tone against the global clock"),
+    ("sigma_ns", "ns", "gaussian standard deviation of the envelope (gaussian, drag)"),
+    ("drag_ns", "ns", "DRAG coefficient beta of the envelope (drag)"),
+    ("ramp_ns", "ns", "cosine ramp length of the envelope (flattop)"),
+)
+_ENVELOPE_FIELDS = frozenset({"sigma_ns", "drag_ns", "ramp_ns"})
+
+
 def _content(qubits: Sequence[str], counts: np.ndarray, shots: int, started_s: float,
-             finished_s: float) -> str:
-    """Checksum of a recorded batch's data, stored with it: a file changed on disk is caught."""
+             finished_s: float, tones: dict[str, np.ndarray] | None = None) -> str:
+    """Checksum of a recorded batch's data, stored with it: a file changed on disk is caught.
+
+    ``tones`` (the tone table of a version-2 record) is part of the sum when given."""
     h = hashlib.blake2b(digest_size=16)
     counts = np.ascontiguousarray(counts)  # as stored: a changed dtype changes the sum
     h.update(repr((tuple(str(q) for q in qubits), counts.shape, counts.dtype.str,
                    int(shots), float(started_s).hex(), float(finished_s).hex())).encode())
     h.update(counts.tobytes())
+    for name, col in (tones or {}).items():
+        h.update(name.encode())
+        if col.dtype.kind == "O" or col.dtype.kind == "U":
+            h.update(repr([str(v) for v in col]).encode())
+        else:
+            h.update(np.ascontiguousarray(col).tobytes())
     return h.hexdigest()
 
 
-def _write_atomic(path: Path, counts: Counts, digest: str) -> None:
+def _tone_table(timelines: Sequence[Timeline]) -> dict[str, np.ndarray]:
+    """The tones of a batch as columns along ``tone`` (``timeline`` is each tone's row)."""
+    rows = [(k, t) for k, tl in enumerate(timelines) for t in tl.tones]
+    table: dict[str, np.ndarray] = {
+        "tone_timeline": np.array([k for k, _ in rows], dtype=np.int64),
+        "line": np.array([t.line for _, t in rows], dtype=object),
+        "envelope": np.array([t.envelope.kind for _, t in rows], dtype=object),
+    }
+    for name, _, _ in _TONE_FIELDS:
+        of_envelope = name in _ENVELOPE_FIELDS
+        table[name] = np.array([float(getattr(t.envelope if of_envelope else t, name))
+                                for _, t in rows], dtype=np.float64)
+    return table
+
+
+def _str_var(group, name: str, dim: str, values: np.ndarray, attrs: dict) -> None:
+    v = group.create_variable(name, (dim,), h5py.string_dtype("utf-8"),
+                              data=values if len(values) else None)
+    v.attrs.update(attrs)
+
+
+def _write_atomic(path: Path, counts: Counts, digest: str,
+                  timelines: Sequence[Timeline]) -> None:
+    """Write a batch record as a netCDF-4 file that xarray opens as it is (h5netcdf):
+    the counts along (timeline, qubit, level) and every tone each timeline played."""
+    tones = _tone_table(timelines)
+    labels = np.array([tl.label for tl in timelines], dtype=object)
+    readout_ns = np.array([math.nan if tl.readout_ns is None else float(tl.readout_ns)
+                           for tl in timelines], dtype=np.float64)
+    n, nq, nl = counts.counts.shape
     fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".tmp", dir=path.parent)
     os.close(fd)
     try:
-        with h5py.File(tmp, "w") as f:
-            f.attrs["schema"] = "xtalkcal-batch/1"
-            f.attrs["qubits"] = np.array(counts.qubits, dtype=h5py.string_dtype())
-            f.attrs["shots"] = counts.shots
-            f.attrs["started_s"] = counts.started_s
-            f.attrs["finished_s"] = counts.finished_s
-            f.attrs["request"] = digest
-            f.attrs["content"] = _content(counts.qubits, counts.counts, counts.shots,
-                                          counts.started_s, counts.finished_s)
-            f.create_dataset("counts", data=counts.counts)
+        with h5netcdf.File(tmp, "w") as f:
+            f.dimensions = {"timeline": n, "qubit": nq, "level": nl,
+                            "tone": len(tones["line"])}
+            _str_var(f, "qubit", "qubit", np.array(counts.qubits, dtype=object),
+                     {"long_name": "qubit read out"})
+            lv = f.create_variable("level", ("level",), np.int64, data=np.arange(nl))
+            lv.attrs.update({"units": "1", "long_name": "transmon level assigned"})
+            tv = f.create_variable("timeline", ("timeline",), np.int64, data=np.arange(n))
+            tv.attrs.update({"units": "1", "long_name": "index of the timeline in the batch"})
+            cv = f.create_variable("counts", ("timeline", "qubit", "level"),
+                                   counts.counts.dtype, data=counts.counts)
+            cv.attrs.update({"units": "shots",
+                             "long_name": "shots that assigned each level to each qubit"})
+            _str_var(f, "label", "timeline", labels, {"long_name": "label of the timeline"})
+            rv = f.create_variable("readout_ns", ("timeline",), np.float64, data=readout_ns)
+            rv.attrs.update({"units": "ns", "long_name": "readout time on the global clock "
+                             "(NaN: at the end of the last tone)"})
+            m = len(tones["line"])
+            ttv = f.create_variable("tone_timeline", ("tone",), np.int64,
+                                    data=tones["tone_timeline"] if m else None)
+            ttv.attrs.update({"units": "1", "long_name": "timeline that plays the tone"})
+            _str_var(f, "line", "tone", tones["line"], {"long_name": "drive line"})
+            _str_var(f, "envelope", "tone", tones["envelope"], {"long_name": "envelope kind"})
+            for name, units, long_name in _TONE_FIELDS:
+                v = f.create_variable(name, ("tone",), np.float64,
+                                      data=tones[name] if m else None)
+                v.attrs.update({"units": units, "long_name": long_name})
+            f.attrs["coordinates"] = "label tone_timeline line"
+            f.attrs.update({
+                "format": RECORD_FORMAT, "version": np.int64(RECORD_VERSION),
+                "shots": np.int64(counts.shots), "started_s": float(counts.started_s),
+                "finished_s": float(counts.finished_s), "time_units": "s (rig clock)",
+                "request": digest,
+                "content": _content(counts.qubits, counts.counts, counts.shots,
+                                    counts.started_s, counts.finished_s, tones),
+            })
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)
@@ -261,29 +373,76 @@ def _write_atomic(path: Path, counts: Counts, digest: str) -> None:
         raise
 
 
+def _one(value: object) -> object:
+    """The value of a one-element attribute (netCDF writes numbers as arrays of one)."""
+    arr = np.asarray(value)
+    if arr.size != 1:
+        raise ValueError(f"attribute holds {arr.size} values, expected one")
+    return arr.reshape(-1)[0]
+
+
+def _record_version(f: h5py.File) -> int:
+    """1 or 2: the format of a record file (KeyError for anything else)."""
+    if str(f.attrs.get("format", "")) == RECORD_FORMAT:
+        version = int(_one(f.attrs["version"]))
+        if version == RECORD_VERSION:
+            return version
+        raise KeyError(f"version {version} of {RECORD_FORMAT!r}; this xtalkcal reads "
+                       f"versions 1 and {RECORD_VERSION}")
+    if str(f.attrs.get("schema", "")) == _RECORD_V1:
+        return 1
+    raise KeyError(f"no format {RECORD_FORMAT!r} (nor schema {_RECORD_V1!r}) at its root")
+
+
+def _read_tones(f: h5py.File) -> dict[str, np.ndarray]:
+    out: dict[str, np.ndarray] = {"tone_timeline": np.asarray(f["tone_timeline"][()])}
+    for name in ("line", "envelope"):
+        ds = f[name]
+        out[name] = np.array(ds.asstr()[()] if ds.size else [], dtype=object)
+    for name, _, _ in _TONE_FIELDS:
+        out[name] = np.asarray(f[name][()], dtype=np.float64)
+    return {k: out[k] for k in _tone_order()}
+
+
+def _tone_order() -> tuple[str, ...]:
+    return ("tone_timeline", "line", "envelope", *(name for name, _, _ in _TONE_FIELDS))
+
+
 def _read(path: Path) -> tuple[Counts, str]:
     """A recorded batch and its request fingerprint; RigError naming the file if unreadable.
 
-    The counts are not checked against a request here (the caller does that once it knows
-    the record answers its request), only against the checksum written with them (records
-    written before checksums were kept have none and are only checked by the caller).
+    Reads both formats: version 2 (netCDF-4, with the tones) and the first HDF5 records
+    (``schema = "xtalkcal-batch/1"``, counts only). The counts are not checked against a
+    request here (the caller does that once it knows the record answers its request), only
+    against the checksum written with them (records written before checksums were kept have
+    none and are only checked by the caller).
     """
     again = "delete the file to measure the batch again"
     try:
         with h5py.File(path, "r") as f:
-            qubits = tuple(str(q) for q in f.attrs["qubits"])
+            version = _record_version(f)
+            qubits = tuple(str(q) for q in (f.attrs["qubits"] if version == 1
+                                            else f["qubit"].asstr()[()]))
             digest = str(f.attrs.get("request", ""))
             content = f.attrs.get("content")
-            counts = Counts(qubits, f["counts"][()], int(f.attrs["shots"]),
-                            float(f.attrs["started_s"]), float(f.attrs["finished_s"]))
+            counts = Counts(qubits, f["counts"][()], int(_one(f.attrs["shots"])),
+                            float(_one(f.attrs["started_s"])),
+                            float(_one(f.attrs["finished_s"])))
+            tones = _read_tones(f) if version == 2 else None
     except (OSError, KeyError, TypeError, ValueError) as exc:
         raise RigError(f"recorded batch {path}: cannot be read "
                        f"({type(exc).__name__}: {exc}); {again}") from exc
     if content is not None:
         actual = _content(counts.qubits, counts.counts, counts.shots, counts.started_s,
-                          counts.finished_s)
+                          counts.finished_s, tones)
         if str(content) != actual:
             raise RigError(f"recorded batch {path}: its data do not match the checksum "
                            f"written with them (the file was changed or damaged on disk); "
                            f"{again}")
     return counts, digest
+
+
+def _is_first_format(path: Path) -> bool:
+    """True for a record of the first format (counts only, no tones)."""
+    with h5py.File(path, "r") as f:
+        return str(f.attrs.get("format", "")) != RECORD_FORMAT

@@ -4,6 +4,7 @@ May import: :mod:`xtalkcal.verification` and below. Nothing here imports a later
 """
 
 from xtalkcal.outputs.export import (
+    MATRIX_FORMAT,
     MATRIX_SCHEMA,
     dumps,
     format_table,
@@ -90,6 +91,7 @@ __all__ = [
     "plot_residuals",
     "plot_verification",
     "write_report",
+    "MATRIX_FORMAT",
     "MATRIX_SCHEMA",
     "dumps",
     "format_table",

@@ -1,9 +1,10 @@
 """The measured matrix and cancellation ratios as a versioned JSON file of our own schema.
 
-Schema ``xtalkcal-matrix/1`` (all angles in degrees, magnitudes in dB = 20·log10|·|)::
+Format ``xtalkcal-matrix``, version 1 (all angles in degrees, magnitudes in dB =
+20·log10|·|)::
 
     {
-      "schema": "xtalkcal-matrix/1",
+      "format": "xtalkcal-matrix", "version": 1,
       "chip": "grid9-demo",
       "created_utc": "2026-12-01T22:00:00+00:00",
       "software": "xtalkcal 0.1.0",
@@ -28,7 +29,9 @@ Schema ``xtalkcal-matrix/1`` (all angles in degrees, magnitudes in dB = 20·log1
 ``ratio`` is r_ij = −X_ij: for each tone s(t) at f_j on the aggressor line, the victim
 line adds r_ij·s(t) at f_j. ``stderr_db`` is 20·log10 of sqrt(trace covariance) —
 the residual crosstalk level one standard error of the estimate leaves. A rejected
-pair carries ``verdict = "rejected"``, a ``reason``, and no numbers.
+pair carries ``verdict = "rejected"``, a ``reason``, and no numbers. Files written before
+the format names were made one carry ``"schema": "xtalkcal-matrix/1"`` instead of
+``format`` and ``version`` (`matrix_format` reads both).
 """
 
 from __future__ import annotations
@@ -41,9 +44,31 @@ from typing import Any
 from xtalkcal.calibrate import NULL_CONFIDENCE, CalibrationResult
 from xtalkcal.common import __version__
 
-__all__ = ["MATRIX_SCHEMA", "result_to_json", "format_table"]
+__all__ = ["MATRIX_FORMAT", "MATRIX_SCHEMA", "MATRIX_VERSION", "matrix_format",
+           "result_to_json", "format_table"]
 
-MATRIX_SCHEMA = "xtalkcal-matrix/1"
+MATRIX_FORMAT = "xtalkcal-matrix"
+MATRIX_VERSION = 1
+MATRIX_SCHEMA = f"{MATRIX_FORMAT}/{MATRIX_VERSION}"
+"""The name the first matrix files carried in ``schema`` (still read by `matrix_format`)."""
+
+
+def matrix_format(doc: Any) -> tuple[str, int] | None:
+    """``(format, version)`` of a matrix JSON document of either naming, else None.
+
+    Parameters
+    ----------
+    doc : object
+        A parsed JSON document.
+    """
+    if not isinstance(doc, dict):
+        return None
+    if "format" in doc:
+        version = doc.get("version")
+        ok = isinstance(version, int) and not isinstance(version, bool)
+        return (str(doc["format"]), version) if ok else None
+    name, _, version = str(doc.get("schema", "")).partition("/")
+    return (name, int(version)) if version.isdigit() else None
 
 
 def _c(z: complex) -> dict[str, float]:
@@ -53,7 +78,7 @@ def _c(z: complex) -> dict[str, float]:
 
 
 def result_to_json(result: CalibrationResult) -> dict[str, Any]:
-    """The result as a JSON-able dictionary of schema ``xtalkcal-matrix/1``."""
+    """The result as a JSON-able dictionary (format ``xtalkcal-matrix``, version 1)."""
     chip = result.chip
     pairs = []
     for p in result.pairs:
@@ -80,7 +105,8 @@ def result_to_json(result: CalibrationResult) -> dict[str, Any]:
             d["ratio"] = _c(-p.x)
         pairs.append(d)
     return {
-        "schema": MATRIX_SCHEMA,
+        "format": MATRIX_FORMAT,
+        "version": MATRIX_VERSION,
         "chip": chip.name,
         "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "software": f"xtalkcal {__version__}",

@@ -203,6 +203,7 @@ def verify_settings(rig, protocol: Protocol, calibration: CalibrationResult,
 
 
 PLAYED_FORMAT = "xtalkcal-verification"
+PLAYED_VERSION = 1
 
 
 def played_to_dict(played: list[PlayedResidual], *, chip: str, settings: str, rig: str
@@ -220,7 +221,7 @@ def played_to_dict(played: list[PlayedResidual], *, chip: str, settings: str, ri
                 "reason": r.reason}
 
     tol = played[0].tolerance_db if played else math.nan
-    return {"format": PLAYED_FORMAT, "version": 1, "chip": chip, "settings": settings,
+    return {"format": PLAYED_FORMAT, "version": PLAYED_VERSION, "chip": chip, "settings": settings,
             "rig": rig, "tolerance_db": tol,
             "created_utc": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
             "pairs": [pair(r) for r in played]}
@@ -235,6 +236,10 @@ def read_played(path, chip: str) -> list[PlayedResidual]:
     if not isinstance(doc, dict) or doc.get("format") != PLAYED_FORMAT:
         raise ConfigError(source, "format", f"accepted: {PLAYED_FORMAT!r} (written by "
                                             "`xtalkcal verify -o FILE`)")
+    version = doc.get("version")
+    if isinstance(version, bool) or version != PLAYED_VERSION:
+        raise ConfigError(source, "version", f"{str(version)[:20]!r}; accepted: "
+                                             f"{PLAYED_VERSION} (a newer xtalkcal wrote it?)")
     if doc.get("chip") != chip:
         raise ConfigError(source, "chip", f"{str(doc.get('chip'))[:40]!r}: the ledger is for "
                                           f"chip {chip!r}")

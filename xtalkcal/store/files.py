@@ -149,6 +149,13 @@ class _Marker:
     legacy_files: frozenset[str] | None  # None: a ledger from before digests existed
 
 
+def version_key(attrs: Any) -> str:
+    """The name of the version field of a marker or commit file: ``version`` (the one naming
+    of every file kind), ``schema_version`` in files written before."""
+    return "schema_version" if "version" not in attrs and "schema_version" in attrs \
+        else "version"
+
+
 def _read_marker(path: Path) -> _Marker:
     marker = path / _MARKER_NAME
     if not marker.is_file():
@@ -162,12 +169,13 @@ def _read_marker(path: Path) -> _Marker:
         raise LedgerError(f"{marker}: unreadable ledger marker ({exc})") from exc
     if not isinstance(info, dict) or info.get("format") != _FORMAT:
         raise LedgerError(f"{marker}: not an xtalkcal ledger marker (format field)")
-    version = info.get("schema_version")
+    key = version_key(info)
+    version = info.get(key)
     if isinstance(version, bool) or not isinstance(version, int) or version < 1:
-        raise LedgerError(f"{marker}: schema_version must be a positive integer, got {version!r}")
+        raise LedgerError(f"{marker}: {key} must be a positive integer, got {version!r}")
     if version > schema.SCHEMA_VERSION:
         raise LedgerError(
-            f"{marker}: ledger has schema_version {version}, this xtalkcal reads up to "
+            f"{marker}: ledger has {key} {version}, this xtalkcal reads up to "
             f"{schema.SCHEMA_VERSION}; upgrade xtalkcal to open it"
         )
     chip = info.get("chip")

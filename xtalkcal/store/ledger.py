@@ -31,6 +31,7 @@ from xtalkcal.store.reading import (
     _build_view,
     _CommitFile,
     _read_stored_sweep,
+    _time_key,
     _Vanished,
     _View,
 )
@@ -360,7 +361,9 @@ class Ledger:
             self._prepare_write()
             seq = _next_seq(self._path, self._view.last_seq)
             stored = tuple(dataclasses.replace(e, seq=seq, position=k) for k, e in enumerate(batch))
-            path = _write_commit(self._path, self._chip, seq, seq, stored, _new_sweeps(plans, seq))
+            matrix = _matrix_after(self._chip, (*self._view.entries, *stored), seq)
+            path = _write_commit(self._path, self._chip, seq, seq, stored, _new_sweeps(plans, seq),
+                                 matrix)
             self._refresh()
         return CommitReceipt(seq, path, stored, tuple(sweep_map))
 
@@ -386,7 +389,8 @@ class Ledger:
                 all_entries = [e for cf in files for e in cf.entries]
                 fill = _merged_sweeps(self._path, files)
                 _write_commit(self._path, self._chip, files[0].first, files[-1].last,
-                              all_entries, fill)
+                              all_entries, fill,
+                              _matrix_after(self._chip, all_entries, files[-1].last))
                 merged = len(files)
                 redundant = redundant + keep
             _remove_redundant(self._path, redundant)
@@ -421,3 +425,13 @@ def verify_ledger(path: str | os.PathLike[str]) -> LedgerReport:
     led = Ledger.__new__(Ledger)
     led._setup(path, 60.0)
     return led.verify()
+
+
+def _matrix_after(chip: str, entries: Iterable[LedgerEntry], last_seq: int) -> xr.Dataset:
+    """The matrix view of ``entries``: the latest accepted entry of each pair (as `as_of`)."""
+    by_pair: dict[tuple[str, str], list[LedgerEntry]] = {}
+    for e in entries:
+        if e.accepted:
+            by_pair.setdefault((e.aggressor, e.victim), []).append(e)
+    chosen = {p: max(v, key=_time_key) for p, v in sorted(by_pair.items())}
+    return MatrixSnapshot(chip, MappingProxyType(chosen), math.inf, last_seq).to_dataset()

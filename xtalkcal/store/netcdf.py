@@ -4,7 +4,8 @@ A commit file is a netCDF-4 file written with h5netcdf, readable with
 ``xarray.open_dataset(path, group=..., engine="h5netcdf")`` or ``xarray.open_datatree(path,
 engine="h5netcdf")`` and no xtalkcal import:
 
-- ``/`` (no variables): attributes ``format``, ``schema_version``, ``chip``, ``seq_first``,
+- ``/`` (no variables): attributes ``format`` (``"xtalkcal-ledger"``), ``version`` (the
+  schema version; ``schema_version`` in files written before), ``chip``, ``seq_first``,
   ``seq_last``, ``written_utc`` (ISO-8601, UTC).
 - ``/entries``: the entry table along dimension ``entry`` (one ledger entry per element,
   coordinate ``entry`` = ``"seq.position"``). The crosstalk element
@@ -16,6 +17,13 @@ engine="h5netcdf")`` and no xtalkcal import:
   not a wall clock); ``measured_at_utc`` is the wall clock as ISO-8601 UTC text.
   ``aggressor``, ``victim`` and ``amplification`` (the pulse repetitions K) are coordinates,
   so points taken at different K are told apart by ``.sel``/``.where`` on a coordinate.
+- ``/matrix``: the crosstalk matrix as it stood after the commit (the latest accepted entry
+  of each pair over the whole ledger, `MatrixSnapshot.to_dataset`): dimensions
+  ``victim`` x ``aggressor`` (X_ij: victim i first), ``x_real``, ``x_imag``, their
+  standard errors, ``magnitude_db`` and the rest with ``units`` and ``long_name``; NaN
+  (or ``""``) where a pair has no accepted entry, ``present`` saying which have one. It is
+  a convenience copy for readers without xtalkcal: `Ledger` recomputes the matrix from
+  the entries and never reads it. Files written before it was added have none.
 - ``/sweeps/<name>``: one group per stored sweep, ``<name>`` being the sweep id
   percent-encoded (``urllib.parse.quote``: ``"run/null-L1-q2"`` is
   ``"run%2Fnull-L1-q2"``). Variables, dimensions and attributes are the sweep's own, with
@@ -250,14 +258,26 @@ def _write_variable(group: Any, var: _NcVariable) -> None:
         v.attrs[key] = value
 
 
-def write_sweep(sweeps: Any, plan: SweepPlanV2, seq: int) -> None:
-    """Write one planned sweep as a new group of ``sweeps`` (an h5netcdf group)."""
-    g = sweeps.create_group(group_name(plan.sweep_id))
+def _write_group(parent: Any, name: str, plan: SweepPlanV2) -> Any:
+    """Write a planned dataset as the new group ``name`` of ``parent`` (h5netcdf)."""
+    g = parent.create_group(name)
     g.dimensions = dict(plan.dims)
     for var in plan.variables:
         _write_variable(g, var)
     for key, value in plan.attrs.items():
         g.attrs[key] = value
+    return g
+
+
+def write_matrix(f: Any, matrix: xr.Dataset) -> None:
+    """Write the matrix as it stands after the commit (`MatrixSnapshot.to_dataset`) as the
+    group ``/matrix`` of an h5netcdf file."""
+    _write_group(f, "matrix", plan_sweep("matrix", matrix))
+
+
+def write_sweep(sweeps: Any, plan: SweepPlanV2, seq: int) -> None:
+    """Write one planned sweep as a new group of ``sweeps`` (an h5netcdf group)."""
+    g = _write_group(sweeps, group_name(plan.sweep_id), plan)
     g.attrs[_SWEEP_ID] = plan.sweep_id
     g.attrs[_SEQ] = np.int64(seq)
     order = json.loads(sweeps.attrs.get(_ORDER, "[]"))

@@ -25,6 +25,7 @@ from xtalkcal.store.files import (
     _Marker,
     _read_digest,
     _stamp,
+    version_key,
 )
 from xtalkcal.store.netcdf import check_sweep, sweep_groups
 
@@ -117,14 +118,15 @@ def _decode(
     its structure is not the one written here."""
     if fh.attrs.get("format") != _FORMAT:
         raise _Malformed("not an xtalkcal ledger commit file (format attribute)")
-    version = _attr(fh, "schema_version", int, "/")
+    key = version_key(fh.attrs)
+    version = _attr(fh, key, int, "/")
     if version > schema.SCHEMA_VERSION:
         raise _Malformed(
-            f"schema_version {version} is newer than this xtalkcal reads "
+            f"{key} {version} is newer than this xtalkcal reads "
             f"({schema.SCHEMA_VERSION}); upgrade xtalkcal"
         )
     if version < 1:
-        raise _Malformed(f"schema_version must be >= 1, got {version}")
+        raise _Malformed(f"{key} must be >= 1, got {version}")
     file_chip = _attr(fh, "chip", str, "/")
     if file_chip != chip:
         raise _Malformed(

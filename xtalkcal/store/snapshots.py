@@ -26,7 +26,7 @@ def _entry_table(entries: list[LedgerEntry]) -> dict[str, np.ndarray]:
     c00, c11 = cov[:, 0, 0], cov[:, 1, 1]
     c01 = 0.5 * (cov[:, 0, 1] + cov[:, 1, 0])
     mag = np.hypot(re_, im_)
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         var_mag = (re_**2 * c00 + 2 * re_ * im_ * c01 + im_**2 * c11) / mag**2
         var_phase = (im_**2 * c00 - 2 * re_ * im_ * c01 + re_**2 * c11) / mag**4
         table = {

@@ -52,6 +52,7 @@ from xtalkcal.store.files import (
     _temporary,
     _write_marker,
     _writer_lock,
+    version_key,
 )
 from xtalkcal.store.netcdf import (
     _SEQ,
@@ -59,6 +60,7 @@ from xtalkcal.store.netcdf import (
     open_file,
     plan_sweep,
     write_entries,
+    write_matrix,
     write_sweep,
 )
 from xtalkcal.store.reading import _CommitFile
@@ -117,7 +119,7 @@ def _make_ledger_dir(
             raise LedgerError(f"{root}: directory is not empty and not a ledger ({foreign[:3]}...)")
         info = {
             "format": _FORMAT,
-            "schema_version": schema.SCHEMA_VERSION,
+            "version": schema.SCHEMA_VERSION,
             "chip": chip,
             "created_utc": utc_timestamp(),
             "integrity": {"digest": "sha256", "legacy_files": []},
@@ -211,9 +213,10 @@ def _raise_marker_version(root: Path, marker: _Marker) -> _Marker:
     """Before the first commit of the current schema version into an older ledger (under the
     lock): say so in the marker, so that an older xtalkcal refuses the ledger as newer than
     it reads instead of meeting a file it cannot decode. Returns the marker in force."""
-    if marker.info.get("schema_version") == schema.SCHEMA_VERSION:
+    if marker.info.get(version_key(marker.info)) == schema.SCHEMA_VERSION:
         return marker
-    _write_marker(root, {**marker.info, "schema_version": schema.SCHEMA_VERSION})
+    info = {k: v for k, v in marker.info.items() if k != "schema_version"}
+    _write_marker(root, {**info, "version": schema.SCHEMA_VERSION})
     return _read_marker(root)
 
 
@@ -238,6 +241,7 @@ def _write_commit(
     last: int,
     entries: Iterable[LedgerEntry],
     fill_sweeps: _SweepFiller,
+    matrix: xr.Dataset | None = None,
 ) -> Path:
     """Write one immutable commit file: temp name, fsync, atomic rename, fsync dir."""
     final = root / _final_name(first, last)
@@ -249,16 +253,18 @@ def _write_commit(
     try:
         with open_file(tmp) as fh:
             fh.attrs["format"] = _FORMAT
-            fh.attrs["schema_version"] = np.int64(schema.SCHEMA_VERSION)
+            fh.attrs["version"] = np.int64(schema.SCHEMA_VERSION)
             fh.attrs["chip"] = chip
             fh.attrs["seq_first"] = np.int64(first)
             fh.attrs["seq_last"] = np.int64(last)
             fh.attrs["written_utc"] = utc_timestamp()
             write_entries(fh, _entries_to_columns(entries))
             fill_sweeps(fh.create_group("sweeps"))
+            if matrix is not None:
+                write_matrix(fh, matrix)
         _fsync_file(tmp)
         size, sha = _hash_file(tmp)
-        record = {"format": _DIGEST_FORMAT, "file": final.name, "tmp": tmp.name,
+        record = {"format": _DIGEST_FORMAT, "version": 1, "file": final.name, "tmp": tmp.name,
                   "size": size, "sha256": sha}
         # Durable before the rename: a visible commit always has its digest.
         _atomic_write_bytes(root, digest.name, json.dumps(record, indent=1).encode())
