@@ -316,7 +316,9 @@ def plot_null_landscape(sweep: xr.Dataset, victim: str, *, z_star: complex | Non
     methods = str(sweep.attrs.get("methods", "")).split(",")
     method = methods[victims.index(victim)] if len(methods) == len(victims) else ""
     name, unit = _SIGNAL.get(method, ("error signal", ""))
-    unit = s.signal.attrs.get("units") or unit
+    # Sweeps state their signal's unit per victim (UDUNITS: "1" for a probability).
+    stored = s["signal_units"].values if "signal_units" in s.coords else s.signal.attrs.get("units")
+    unit = {"1": "probability"}.get(str(stored), str(stored)) if stored else unit
     x, y, sig = s.z_re.values, s.z_im.values, s.signal.values
     k_final = sweep.attrs.get("repeats")
     # Points taken at another amplification K (a raised-K null search) have signals on
