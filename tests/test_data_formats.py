@@ -35,6 +35,7 @@ DATA = Path(__file__).resolve().parent / "data"
     ({"schema": "xtalkcal.recheck_outcome", "schema_version": 1},
      ("xtalkcal-recheck-outcome", 1)),
     ({"schema": "xtalkcal.pair_trend", "schema_version": 1}, ("xtalkcal-pair-trend", 1)),
+    ({"schema": "xtalkcal.ring_estimate", "schema_version": 1}, ("xtalkcal-ring-estimate", 1)),
     ({"format": "xtalkcal-chip", "version": True}, ("xtalkcal-chip", None)),
     ({"pairs": []}, (None, None)),
     ([1, 2], (None, None)),

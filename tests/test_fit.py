@@ -327,6 +327,12 @@ def test_to_dict_is_json_and_round_trips():
     np.testing.assert_array_equal(back.covariance, est.covariance)
     assert back.amplitude == est.amplitude
     assert back.to_dict() == d
+    assert (d["format"], d["version"]) == ("xtalkcal-null-estimate", 1)
+    old = {k: v for k, v in d.items() if k not in ("format", "version")}
+    old.update(schema="xtalkcal.null_estimate", schema_version=1)  # the first naming
+    assert NullEstimate.from_dict(old).to_dict() == d
+    with pytest.raises(FitInputError, match="xtalkcal-null-estimate"):
+        NullEstimate.from_dict({**d, "format": "xtalkcal-settings"})
     rej = _rejected_estimate()
     d2 = json.loads(json.dumps(rej.to_dict()))
     back2 = NullEstimate.from_dict(d2)

@@ -14,7 +14,8 @@ __all__ = ["add_commands"]
 # Names files carried before every kind used ``format`` + ``version``.
 _OLD_KINDS = {"xtalkcal.recheck_outcome": "xtalkcal-recheck-outcome",
               "xtalkcal.pair_trend": "xtalkcal-pair-trend",
-              "xtalkcal.null_estimate": "xtalkcal-null-estimate"}
+              "xtalkcal.null_estimate": "xtalkcal-null-estimate",
+              "xtalkcal.ring_estimate": "xtalkcal-ring-estimate"}
 
 
 def file_kind(doc: object) -> tuple[str | None, int | None]:

@@ -321,8 +321,8 @@ class PairTrend:
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record (non-finite numbers as ``None``)."""
         return {
-            "schema": "xtalkcal.pair_trend",
-            "schema_version": 1,
+            "format": "xtalkcal-pair-trend",
+            "version": 1,
             "aggressor": self.aggressor,
             "victim": self.victim,
             "frequency_ghz": self.frequency_ghz,

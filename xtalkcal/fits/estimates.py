@@ -118,11 +118,11 @@ class _Guarded(Generic[_V]):
         """
         return self._values
 
-    def _record_head(self, schema: str) -> dict[str, Any]:
+    def _record_head(self, kind: str) -> dict[str, Any]:
         """The first keys of :meth:`to_dict`, common to every estimate, valid or not."""
         return {
-            "schema": schema,
-            "schema_version": _SCHEMA_VERSION,
+            "format": kind,
+            "version": _SCHEMA_VERSION,
             "method": self.method,
             "verdict": self.verdict.value,
             "reason": self.reason.value,
@@ -248,7 +248,7 @@ class NullEstimate(_Guarded[NullFitValues]):
     # -- records --------------------------------------------------------
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record. Numeric values only when accepted."""
-        d = self._record_head("xtalkcal.null_estimate")
+        d = self._record_head("xtalkcal-null-estimate")
         d["amplifications"] = [int(k) for k in self.amplifications]
         if self.accepted:
             v = self._values
@@ -267,10 +267,13 @@ class NullEstimate(_Guarded[NullFitValues]):
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> NullEstimate:
         """Rebuild an estimate from :meth:`to_dict` output."""
-        if d.get("schema") != "xtalkcal.null_estimate":
+        # Records written before the one format naming carry "schema": "xtalkcal.null_estimate".
+        kind = d.get("format", {"xtalkcal.null_estimate": "xtalkcal-null-estimate"}.get(
+            str(d.get("schema")), d.get("schema")))
+        if kind != "xtalkcal-null-estimate":
             raise FitInputError(
-                f"not a null-estimate record: schema={d.get('schema')!r}, "
-                "expected 'xtalkcal.null_estimate'"
+                f"not a null-estimate record: format={kind!r}, "
+                "expected 'xtalkcal-null-estimate'"
             )
         verdict = Verdict(d["verdict"])
         values = _NAN_VALUES
@@ -364,7 +367,7 @@ class RingEstimate(_Guarded[RingValues]):
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able record. Numeric values only when accepted."""
-        d = self._record_head("xtalkcal.ring_estimate")
+        d = self._record_head("xtalkcal-ring-estimate")
         if self.accepted:
             v = self._values
             d.update({k: json_float(getattr(v, k)) for k in _RING_KEYS})
