@@ -298,15 +298,22 @@ class DeviceSpec:
         return next((c for c in self.couplings if c.line == line and c.qubit == qubit), None)
 
     def chip(self) -> Chip:
-        """The chip file a lab would have: nominal values only, no hidden truth."""
+        """The chip file a lab would have: nominal values only, no hidden truth.
+
+        A qubit with exchange neighbours is listed at its dressed frequencies (neighbours in
+        |0⟩), as a lab measures them.
+        """
+        from simulated_device.coupled import dressed_frequencies
+
+        freqs = {q.name: dressed_frequencies(self, q.name) for q in self.qubits}
         return Chip(
             name=self.name,
             qubits=tuple(
                 Qubit(
                     q.name,
-                    round(q.f01_ghz, 6),
-                    round(q.f12_ghz - q.f01_ghz, 6),
-                    round(q.f12_ghz, 6),
+                    round(freqs[q.name][0], 6),
+                    round(freqs[q.name][1] - freqs[q.name][0], 6),
+                    round(freqs[q.name][1], 6),
                     q.t1_us,
                     q.t2_us,
                 )
