@@ -190,7 +190,15 @@ def _column_victim(
     off = first - 1
     centre = zi.mean()
     reach = float(np.abs(zi - centre).max())
-    if abs(a - centre) > (1 + rules.region_margin) * reach:
+    # The region is judged where the swept landscape is lowest: the aggressor's null
+    # moved by the other tones' leak at their mean settings (a − Σ c_ik·z̄_k), which is
+    # where the rings are centred; the null of the aggressor's leak alone may lie
+    # outside them by the companions' leak.
+    seen = a
+    for j, k in enumerate(others):
+        g = complex(b[first + 4 * j], b[first + 1 + 4 * j])
+        seen -= complex(g.real, -g.imag) / (2 * kappa) * Z[k].mean()
+    if abs(seen - centre) > (1 + rules.region_margin) * reach:
         reason, msg = RejectionReason.OUTSIDE_REGION, "the null lies outside the swept points"
     else:
         reason, msg = RejectionReason.NONE, "accepted"
@@ -214,6 +222,20 @@ def _column_victim(
 
 
 def _column_rejected(reason: RejectionReason, message: str, n: int, dof: int) -> NullEstimate:
+    return column_rejected(reason, message, n, dof)
+
+
+def column_rejected(reason: RejectionReason, message: str, n: int, dof: int) -> NullEstimate:
+    """A rejected column estimate (for a caller whose own check of the data rejects a fit).
+
+    Parameters
+    ----------
+    reason : RejectionReason
+    message : str
+        One sentence on why.
+    n, dof : int
+        Points and degrees of freedom of the fit it replaces.
+    """
     return NullEstimate(method="paraboloid-column", verdict=Verdict.REJECTED, reason=reason,
                         message=message, n_points=n, total_shots=None, reduced_chi2=math.nan,
                         dof=dof)
