@@ -16,6 +16,9 @@ from xtalkcal.fits.verdicts import DEFAULT_RULES, RejectionReason, Verdict, Verd
 
 # ----------------------------------------------------------------------------- column fits
 
+# Refits at most, each with the dropped second-order term taken out at the last estimates.
+_REFITS = 12
+
 
 @dataclass(frozen=True)
 class ColumnNullFit:
@@ -123,14 +126,23 @@ def fit_paraboloid_column(
         varies = np.ptp(Zi.real, axis=1) + np.ptp(Zi.imag, axis=1) > 0
         gi = G[i, act]
         est, c_row, c_err = _column_victim(Zi, S[i, act], E[i, act], gi, i, varies, rules)
-        # The dropped term κ|Σ c_k z_k|² is second order; subtract it with the first
-        # estimates and refit once (it matters when shots are plentiful).
-        if est.accepted:
+        # The dropped term κ|Σ c_k z_k|² is second order; subtract it with the estimates
+        # so far and refit, until the null settles. Once was not enough: a ring's centre
+        # point alone tells κ from the offset, and a companion ring 4× the victim's
+        # behind a −13 dB coupling moved that contrast by 80 %, so one refit left the
+        # null 2·10⁻³ off (noise-free).
+        for _ in range(_REFITS):
+            if not est.accepted:
+                break
             lead = np.nan_to_num(c_row) @ Zi
             est2, c2, e2 = _column_victim(Zi, S[i, act] - est.curvature * np.abs(lead) ** 2,
                                           E[i, act], gi, i, varies, rules)
-            if est2.accepted:
-                est, c_row, c_err = est2, c2, e2
+            if not est2.accepted:
+                break
+            moved = abs(est2.z_star - est.z_star)
+            est, c_row, c_err = est2, c2, e2
+            if moved <= 1e-3 * est.position_stderr:
+                break
         out.append(est)
         coup[i] = c_row
         coup_err[i] = c_err
