@@ -167,18 +167,16 @@ class PassPlan:
         return tuple(q for q, _ in self.request.companions)
 
     def rings(self, centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0,
-              repeats: int | None = None) -> np.ndarray:
+              comp_radius: np.ndarray | None = None) -> np.ndarray:
         """Ring points (n+1, V + C): the victims' rings, then the companions'.
 
-        At a K (``repeats``) above the first, the companions' rings shrink as 1/K, as the
-        victims' own do: a companion's leak onto a victim (its coupling times the ring's
-        radius) then keeps the share of the victim's signal it had at the first K. Held
-        at the first K's radius, a −14 dB coupling made a companion's leak ten times a
-        leakage victim's own ring at K = 64, far up the fringe, and the fit lost the null.
+        ``comp_radius``: the companions' ring radii (default: the first K's,
+        ``self.comp_radius``; a raised K shrinks them, see
+        :func:`xtalkcal.calibrate.stages.tone_radii`).
         """
-        scale = 1.0 if repeats is None else min(1.0, self.probe.repeats / max(repeats, 1))
+        cr = self.comp_radius if comp_radius is None else np.asarray(comp_radius, float)
         return ring_around(np.concatenate([centre, self.comp_centre]),
-                           np.concatenate([rad, self.comp_radius * scale]), n, phase0=phase0)
+                           np.concatenate([rad, cr]), n, phase0=phase0)
 
 
 def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,

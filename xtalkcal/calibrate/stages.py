@@ -128,14 +128,64 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
     if done.all():
         return ended, False
     probe, rad = raise_k(plan, probe, est, selected, rad, say)
-    # Victims handed to passes of their own ring like companions: shrunk alike.
-    for i in np.flatnonzero(state.handed):
-        rad[i] *= min(1.0, plan.probe.repeats / probe.repeats)
+    rad, comp = tone_radii(plan, col, rad, selected, state.handed, probe.repeats)
     pts = plan.rings(centre, rad, plan.n_null, phase0=math.pi / plan.n_null * rounds,
-                     repeats=probe.repeats)
+                     comp_radius=comp)
     record.measure(probe, pts, plan.null_shots, f"{plan.tag}-null{rounds:02d}", rounds)
     return StageState(probe, centre, selected, state.searched, state.handed, rounds,
                       cleared), True
+
+
+#: At a raised K a tone that only rings to reach the victims (a companion, a handed
+#: victim) leaks onto each victim being nulled at most this fraction of that victim's own
+#: ring radius (its coupling times its ring's radius).
+TONE_LEAK_SHARE = 0.7
+
+
+def tone_radii(plan: PassPlan, col, rad: np.ndarray, selected: np.ndarray,
+               handed: np.ndarray, repeats: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ring radii of the ringing tones at K = ``repeats``: (victims' ``rad``, companions').
+
+    A tone ringing with radius r_k around its null leaks c_ik·r_k onto victim i, whose
+    own ring shrinks as 1/K. Held at the first K's radius, a −14 dB coupling made that
+    leak ten times a leakage victim's ring at K = 64, far up the fringe, and the fit lost
+    the null. Shrunk as 1/K, the tone's ring no longer told the coupling's bilinear term
+    from the victim's own first harmonic (they differ only by r_i·r_k) and the null's
+    error grew 30-fold. So each ringing tone keeps the widest ring whose leak onto every
+    victim being nulled, at its measured coupling, is ``TONE_LEAK_SHARE`` of that victim's
+    ring radius, within the first K's radius; a tone whose couplings are unmeasured
+    shrinks as 1/K.
+
+    Parameters
+    ----------
+    plan : PassPlan
+    col : ColumnNullFit
+        The fit at the current K (its couplings; NaN where not determined).
+    rad : ndarray (V,)
+        The victims' ring radii at the new K (handed victims: their first radius).
+    selected, handed : ndarray of bool (V,)
+        Victims being nulled; victims nulled elsewhere that ring here.
+    repeats : int
+        The new K.
+    """
+    rad = np.asarray(rad, float).copy()
+    shrink = min(1.0, plan.probe.repeats / max(repeats, 1))
+    V = plan.n_victims
+    first = np.concatenate([rad[:V], plan.comp_radius])
+    ringing = np.concatenate([handed, np.ones(plan.comp_radius.size, bool)])
+    out = first.copy()
+    nulled = np.flatnonzero(selected)
+    for k in np.flatnonzero(ringing):
+        if shrink >= 1.0:
+            continue
+        c = np.abs(np.asarray(col.couplings)[nulled, k]) if nulled.size else np.array([])
+        ok = np.isfinite(c) & (c > 0)
+        if nulled.size and ok.all():
+            out[k] = min(first[k], float(np.min(TONE_LEAK_SHARE * rad[nulled] / c)))
+        else:
+            out[k] = first[k] * shrink
+    rad[handed] = out[:V][handed]
+    return rad, out[V:]
 
 
 def seen_nulls(col, tone_centres: np.ndarray) -> np.ndarray:
