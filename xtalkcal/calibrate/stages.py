@@ -153,8 +153,11 @@ def tone_radii(plan: PassPlan, col, rad: np.ndarray, selected: np.ndarray,
     from the victim's own first harmonic (they differ only by r_i·r_k) and the null's
     error grew 30-fold. So each ringing tone keeps the widest ring whose leak onto every
     victim being nulled, at its measured coupling, is ``TONE_LEAK_SHARE`` of that victim's
-    ring radius, within the first K's radius; a tone whose couplings are unmeasured
-    shrinks as 1/K.
+    ring radius, within the first K's radius (at any K: a Stark victim's ring may be far
+    narrower than a companion's first ring); a tone whose couplings are unmeasured
+    shrinks as 1/K. Beyond that share the column fit is biased: noise-free, a leak 1.3×
+    the victim's ring left its null 24σ off, at 0.7× it is unbiased
+    (``tests/test_wrapped_rings.py``).
 
     Parameters
     ----------
@@ -176,8 +179,6 @@ def tone_radii(plan: PassPlan, col, rad: np.ndarray, selected: np.ndarray,
     out = first.copy()
     nulled = np.flatnonzero(selected)
     for k in np.flatnonzero(ringing):
-        if shrink >= 1.0:
-            continue
         c = np.abs(np.asarray(col.couplings)[nulled, k]) if nulled.size else np.array([])
         ok = np.isfinite(c) & (c > 0)
         if nulled.size and ok.all():
