@@ -15,11 +15,17 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from xtalkcal.calibrate import JOINT_NULL_SPAN, RING_MARGIN, RISE_PROBABILITY, CalibrationResult
+from xtalkcal.calibrate import (
+    JOINT_NULL_SPAN,
+    RING_MARGIN,
+    RISE_PROBABILITY,
+    STRONGEST_DB,
+    CalibrationResult,
+)
 from xtalkcal.calibrate.pass_plan import PassRequest, plan_pass
-from xtalkcal.calibrate.passes import hand_over, survey_selection
+from xtalkcal.calibrate.passes import hand_over, held_down, survey_selection
 from xtalkcal.calibrate.stages import null_found, raised_repeats, ring_radius
-from xtalkcal.measure import PulseShape, load_protocol
+from xtalkcal.measure import PulseShape, choose_method, load_protocol
 
 
 def est(z=0j, sigma=1e-4, chi2=1.0, kappa=1e4, accepted=True):
@@ -192,6 +198,41 @@ def test_hand_over_resurveys_unseen_victims_of_a_column():
     # a victim alone in its pass has nowhere better to be surveyed
     h = _hand_over(estimates[1:2], [False], [False])
     assert h.resurvey == []
+
+
+def test_hand_over_resurveys_a_victim_whose_survey_k_was_held_down():
+    # q2 is coherent, but the column's survey K was set by a far more responsive victim
+    # (held down): its "no signal" says little, so it is surveyed alone at its own K.
+    estimates = [est(1e-5), est(accepted=False), est(accepted=False)]
+    victims = ["q0", "q1", "q2"]
+    centre = np.array([1e-5, 0j, 0j])
+    h = hand_over(victims, estimates, np.array([True, False, False]),
+                  np.array([True, True, True]), centre, 1e-4, 12,
+                  held=np.array([False, False, True]))
+    assert h.resurvey == ["q2"] and not h.handed.any()
+    # selected or accepted victims are never surveyed again, held down or not
+    h = hand_over(victims, [est(1e-5), est(2e-5), est(3e-5)], np.array([True, False, True]),
+                  np.ones(3, bool), np.array([1e-5, 2e-5, 3e-5]), 1e-4, 12,
+                  held=np.ones(3, bool))
+    assert h.resurvey == []
+
+
+def test_held_down_marks_victims_far_less_responsive_than_the_survey_k(demo_chip):
+    proto = load_protocol("protocols/full.toml")
+    shape = PulseShape(proto.pulse.duration_ns, proto.pulse.sigma_ns)
+    line = "q4-line"
+    victims = [q for q in demo_chip.qubit_names if q != "q4"
+               and choose_method(demo_chip, line, q, proto.windows) != "stark"]
+    methods = [choose_method(demo_chip, line, q, proto.windows) for q in victims]
+    plan = plan_pass(demo_chip, proto, CalibrationResult(demo_chip, proto, "t"),
+                     PassRequest(line, victims, methods, shape, stark=False))
+    held = held_down(plan)
+    own = [(math.pi / 4) / plan.probe.expected_rotation_per_pulse(v, STRONGEST_DB)
+           for v in victims]
+    for h, k in zip(held, own, strict=True):
+        assert h == (min(k, plan.k_max) >= 2 * plan.probe.repeats)
+    # the victim that sets the survey's K is never held down
+    assert not held[int(np.argmin(own))]
 
 
 # --- raising K -----------------------------------------------------------------------

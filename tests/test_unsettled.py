@@ -61,3 +61,24 @@ def test_the_cli_exits_nonzero_naming_each_unsettled_pair(monkeypatch, result, t
     assert "warning: q4-line → q1 (leakage): nulled, but its error of X may reach" in text
     assert "q3" not in text.split("unsettled:")[-1]
     assert out.exists()  # what was measured is still written
+
+
+def test_a_stark_pair_still_saturated_fails_the_run(monkeypatch, demo_chip, tmp_path, capsys):
+    # A Stark pair whose rings wrapped even at the widest survey stays "saturated": its
+    # crosstalk is strong and unknown, so the run names it and exits non-zero.
+    import xtalkcal.calibrate
+
+    res = CalibrationResult(demo_chip, default_protocol(), "test rig")
+    res.pairs += [
+        PairResult("q4-line", "q0", "stark", 4.78, False, "saturated", None, None, False, 1000,
+                   46, 0.0, "survey"),
+        _pair("q7", sigma=0.5 * 10 ** (-50 / 20) / NULL_CONFIDENCE),
+    ]
+    failures, _ = unsettled_pairs(res)
+    assert len(failures) == 1 and failures[0].startswith("q4-line → q0 (stark): rejected")
+    assert "saturated" in failures[0]
+    monkeypatch.setattr(xtalkcal.calibrate, "calibrate_chip", lambda *a, **k: res)
+    assert main(["calibrate", "--no-drift", "-q", "-o", str(tmp_path / "m.json")]) == 1
+    text = capsys.readouterr().out
+    assert "unsettled: q4-line → q0 (stark): rejected at the survey stage, saturated" in text
+    assert "Traceback" not in text

@@ -5,11 +5,20 @@ and the sweep record it leaves in the result.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import xarray as xr
 
-from xtalkcal.fits import ColumnNullFit, VerdictRules, fit_paraboloid_column, linearise_fringe
+from xtalkcal.fits import (
+    ColumnNullFit,
+    RejectionReason,
+    VerdictRules,
+    column_rejected,
+    fit_paraboloid_column,
+    linearise_fringe,
+    ring_wraps,
+)
 from xtalkcal.hardware import Rig
 from xtalkcal.measure import BatchRunner, ColumnProbe
 
@@ -166,7 +175,41 @@ class PassRecord:
             floors = np.array([col.estimates[i].floor for i in rows])[:, None]
             S[rows], E[rows] = linearise_fringe(S[rows], E[rows], floors)
             col = fit_paraboloid_column(Z, S, E, groups=groups, tones=tones, rules=_RULES)
-        return col
+        return self._wrapped_rejected(col, k, stark_rows)
+
+    def wrapped(self, k: int, stark_rows: np.ndarray) -> np.ndarray:
+        """Per victim: whether a Stark ring measured at ``k`` read phases that wrapped.
+
+        Each batch is one ring (its centre first); see :func:`xtalkcal.fits.ring_wraps`.
+        """
+        out = np.zeros(self.n_victims, bool)
+        for pts, sig, reps in zip(self.points, self.signal, self.repeats, strict=True):
+            if reps[0] != k:
+                continue
+            for i in np.flatnonzero(stark_rows):
+                out[i] |= ring_wraps(pts[:, i], sig[:, i])
+        return out
+
+    def _wrapped_rejected(self, col: ColumnNullFit, k: int, stark_rows: np.ndarray
+                          ) -> ColumnNullFit:
+        """The column fit with every Stark victim whose readings wrapped rejected.
+
+        A wrapped ring is no evidence about the null (a strong pair's ring past the
+        read-out range looks flat: "no signal"), and its fit is meaningless: such a
+        victim is ``saturated``, which the caller cures with a shorter train.
+        """
+        wrapped = self.wrapped(k, stark_rows)
+        if not wrapped.any():
+            return col
+        est = list(col.estimates)
+        for i in np.flatnonzero(wrapped):
+            e = est[i]
+            est[i] = column_rejected(
+                RejectionReason.SATURATED, "the Stark phase readings wrapped around the ring "
+                "(the phase passed the read-out range)", e.n_points, e.dof)
+        cp, ce = col.couplings.copy(), col.couplings_stderr.copy()
+        cp[wrapped], ce[wrapped] = np.nan, np.nan
+        return replace(col, estimates=tuple(est), couplings=cp, couplings_stderr=ce)
 
     def dataset(self, victims, companions, final, couplings: ColumnNullFit,
                 attrs: dict) -> xr.Dataset:

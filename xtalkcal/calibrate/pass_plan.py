@@ -166,11 +166,17 @@ class PassPlan:
     def companion_names(self) -> tuple[str, ...]:
         return tuple(q for q, _ in self.request.companions)
 
-    def rings(self, centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0
-              ) -> np.ndarray:
-        """Ring points (n+1, V + C): the victims' rings, then the companions'."""
+    def rings(self, centre: np.ndarray, rad: np.ndarray, n: int, phase0: float = 0.0,
+              comp_radius: np.ndarray | None = None) -> np.ndarray:
+        """Ring points (n+1, V + C): the victims' rings, then the companions'.
+
+        ``comp_radius``: the companions' ring radii (default: the first K's,
+        ``self.comp_radius``; a raised K shrinks them, see
+        :func:`xtalkcal.calibrate.stages.tone_radii`).
+        """
+        cr = self.comp_radius if comp_radius is None else np.asarray(comp_radius, float)
         return ring_around(np.concatenate([centre, self.comp_centre]),
-                           np.concatenate([rad, self.comp_radius]), n, phase0=phase0)
+                           np.concatenate([rad, cr]), n, phase0=phase0)
 
 
 def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,

@@ -16,6 +16,7 @@
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -24,7 +25,7 @@ import numpy as np
 
 from xtalkcal.calibrate.pass_data import PassRecord, birge_ratio, null_sigma, shots_per_point
 from xtalkcal.calibrate.pass_plan import PassPlan, PassRequest, Say, plan_pass
-from xtalkcal.calibrate.plan import JOINT_NULL_SPAN, RING_MARGIN, SELECT_SIGMAS
+from xtalkcal.calibrate.plan import JOINT_NULL_SPAN, RING_MARGIN, SELECT_SIGMAS, STRONGEST_DB
 from xtalkcal.calibrate.result import CalibrationResult, PairResult
 from xtalkcal.calibrate.stages import StageState, null_stages
 from xtalkcal.hardware import Rig
@@ -112,7 +113,8 @@ def calibrate_pass(rig: Rig, runner: BatchRunner, protocol: Protocol,
     handoff = Handoff([], [], np.zeros(V, bool))
     if request.split and not request.stark and request.start is None:
         handoff = hand_over(request.victims, opening.estimates, opening.selected,
-                            plan.coherent, opening.centre, plan.target, plan.probe.repeats)
+                            plan.coherent, opening.centre, plan.target, plan.probe.repeats,
+                            held=held_down(plan))
     selected = opening.selected & ~handoff.handed
     state = StageState(plan.probe, opening.centre, selected, selected.copy(), handoff.handed,
                        opening.rounds)
@@ -203,9 +205,33 @@ def start_from_nulls(plan: PassPlan, record: PassRecord, say: Say) -> PassOpenin
     return PassOpening(centre, np.ones(V, bool), None, survey_time, 1)
 
 
+#: A victim whose own unambiguous K is at least this many times the survey's (set by a
+#: more responsive victim of the column) is "held down" (:func:`held_down`).
+HELD_DOWN_FACTOR = 2.0
+
+
+def held_down(plan: PassPlan) -> np.ndarray:
+    """Per victim: whether the survey's K is well below the one its own response allows.
+
+    The survey's K keeps the most responsive victim's null unambiguous; a victim driven
+    far more weakly (detuned further, a smaller spectral weight) then sees a ring whose
+    signal barely rises, and may read "no signal" even for a strong pair. Alone, its K
+    would be ``HELD_DOWN_FACTOR`` or more times higher.
+    """
+    probe, req = plan.probe, plan.request
+    out = np.zeros(plan.n_victims, bool)
+    if req.stark:
+        return out
+    for i, v in enumerate(req.victims):
+        own = (math.pi / 4) / (probe.expected_rotation_per_pulse(v, STRONGEST_DB)
+                               * req.survey_scale)
+        out[i] = min(own, plan.k_max) >= HELD_DOWN_FACTOR * probe.repeats
+    return out
+
+
 def hand_over(victims: Sequence[str], estimates: Sequence[Any], selected: np.ndarray,
               coherent: np.ndarray, centre: np.ndarray, target: float,
-              repeats: int) -> Handoff:
+              repeats: int, held: np.ndarray | None = None) -> Handoff:
     """Which victims of a resonant survey are left to passes of their own.
 
     A resonant victim the train is not coherent for sees K pulses add up with whatever
@@ -236,11 +262,18 @@ def hand_over(victims: Sequence[str], estimates: Sequence[Any], selected: np.nda
         The stop rule's 1σ target (fraction of full scale).
     repeats : int
         The survey's K.
+    held : ndarray of bool (V,), optional
+        Victims whose survey K another victim held down (:func:`held_down`): one that
+        shows no signal is surveyed again alone too, at its own K: its signal rises with
+        (K·θ)², so at a K several times too low a strong pair's ring may rise less than
+        the noise.
     """
     V = len(victims)
+    held = np.zeros(V, bool) if held is None else np.asarray(held, bool)
     resurvey = []
     if V > 1:
-        resurvey = [victims[i] for i in range(V) if not coherent[i] and not selected[i]
+        resurvey = [victims[i] for i in range(V)
+                    if (not coherent[i] or held[i]) and not selected[i]
                     and not estimates[i].accepted]
     handed = selected & ~coherent
     joint = selected & coherent

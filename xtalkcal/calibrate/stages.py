@@ -82,7 +82,8 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
     req = plan.request
     rounds = state.rounds + 1
     probe = state.probe
-    est = record.fit(probe.repeats, state.searched, plan.stark_rows).estimates
+    col = record.fit(probe.repeats, state.searched, plan.stark_rows)
+    est = col.estimates
     selected, cleared = state.selected.copy(), dict(state.cleared)
     if req.start is None and rounds >= 2:
         # Victims selected only because their survey was imprecise (|X| + kσ at the
@@ -106,30 +107,116 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
     rad = np.zeros(plan.n_victims)
     done = np.ones(plan.n_victims, bool)
     last = record.last_ring()
+    seen = seen_nulls(col, np.concatenate([state.centre, plan.comp_centre]))
     for i in range(plan.n_victims):
         e = est[i]
         if selected[i] and e.accepted:
-            centre[i] = e.z_star
+            centre[i] = seen[i]
             rise = (RISE_STARK_RAD * stark_phase_scale(plan.chip, req.line, req.victims[i],
                                                      plan.amp)
                     if req.methods[i] == "stark" else RISE_PROBABILITY)
             rad[i] = min(math.sqrt(rise / max(e.curvature, 1e-12)), plan.cap[i])
-            done[i] = null_found(e, req.methods[i], plan.target, last[:, i])
+            done[i] = null_found(e, req.methods[i], plan.target, last[:, i], seen[i])
         elif selected[i]:
-            rad[i] = plan.radius[i]
+            # No accepted fit at this K: a ring as high up the signal as the survey's
+            # (its radius shrunk as 1/K); the survey's own radius at a raised K would
+            # rise far up the fringe and lose the null altogether.
+            rad[i] = plan.radius[i] * min(1.0, plan.probe.repeats / probe.repeats)
             done[i] = False
         elif state.handed[i]:
             rad[i] = companion_radius(plan.amp, plan.chip, req.victims[i], centre[i])
     if done.all():
         return ended, False
     probe, rad = raise_k(plan, probe, est, selected, rad, say)
-    pts = plan.rings(centre, rad, plan.n_null, phase0=math.pi / plan.n_null * rounds)
+    rad, comp = tone_radii(plan, col, rad, selected, state.handed, probe.repeats)
+    pts = plan.rings(centre, rad, plan.n_null, phase0=math.pi / plan.n_null * rounds,
+                     comp_radius=comp)
     record.measure(probe, pts, plan.null_shots, f"{plan.tag}-null{rounds:02d}", rounds)
     return StageState(probe, centre, selected, state.searched, state.handed, rounds,
                       cleared), True
 
 
-def null_found(e, method: str, target: float, last_ring: np.ndarray) -> bool:
+#: At a raised K a tone that only rings to reach the victims (a companion, a handed
+#: victim) leaks onto each victim being nulled at most this fraction of that victim's own
+#: ring radius (its coupling times its ring's radius).
+TONE_LEAK_SHARE = 0.7
+
+
+def tone_radii(plan: PassPlan, col, rad: np.ndarray, selected: np.ndarray,
+               handed: np.ndarray, repeats: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ring radii of the ringing tones at K = ``repeats``: (victims' ``rad``, companions').
+
+    A tone ringing with radius r_k around its null leaks c_ik·r_k onto victim i, whose
+    own ring shrinks as 1/K. Held at the first K's radius, a −14 dB coupling made that
+    leak ten times a leakage victim's ring at K = 64, far up the fringe, and the fit lost
+    the null. Shrunk as 1/K, the tone's ring no longer told the coupling's bilinear term
+    from the victim's own first harmonic (they differ only by r_i·r_k) and the null's
+    error grew 30-fold. So each ringing tone keeps the widest ring whose leak onto every
+    victim being nulled, at its measured coupling, is ``TONE_LEAK_SHARE`` of that victim's
+    ring radius, within the first K's radius (at any K: a Stark victim's ring may be far
+    narrower than a companion's first ring); a tone whose couplings are unmeasured
+    shrinks as 1/K. Beyond that share the column fit is biased: noise-free, a leak 1.3×
+    the victim's ring left its null 24σ off, at 0.7× it is unbiased
+    (``tests/test_wrapped_rings.py``).
+
+    Parameters
+    ----------
+    plan : PassPlan
+    col : ColumnNullFit
+        The fit at the current K (its couplings; NaN where not determined).
+    rad : ndarray (V,)
+        The victims' ring radii at the new K (handed victims: their first radius).
+    selected, handed : ndarray of bool (V,)
+        Victims being nulled; victims nulled elsewhere that ring here.
+    repeats : int
+        The new K.
+    """
+    rad = np.asarray(rad, float).copy()
+    shrink = min(1.0, plan.probe.repeats / max(repeats, 1))
+    V = plan.n_victims
+    first = np.concatenate([rad[:V], plan.comp_radius])
+    ringing = np.concatenate([handed, np.ones(plan.comp_radius.size, bool)])
+    out = first.copy()
+    nulled = np.flatnonzero(selected)
+    for k in np.flatnonzero(ringing):
+        c = np.abs(np.asarray(col.couplings)[nulled, k]) if nulled.size else np.array([])
+        ok = np.isfinite(c) & (c > 0)
+        if nulled.size and ok.all():
+            out[k] = min(first[k], float(np.min(TONE_LEAK_SHARE * rad[nulled] / c)))
+        else:
+            out[k] = first[k] * shrink
+    rad[handed] = out[:V][handed]
+    return rad, out[V:]
+
+
+def seen_nulls(col, tone_centres: np.ndarray) -> np.ndarray:
+    """Per victim, where its signal is lowest with the other tones at their ring centres.
+
+    The column fit's null ``a_i`` is that of the aggressor's leak alone; with the other
+    tones k at ``z_k`` the victim's field vanishes at ``a_i − Σ_k c_ik·z_k``
+    (:func:`xtalkcal.fits.fit_paraboloid_column`). Rings are centred there: a companion
+    far from zero behind a strong coupling (−14 dB, a null at 0.03 of full scale) moves
+    the lowest point by twice a raised K's ring radius, and a ring centred on ``a_i``
+    then sat high up the fringe. NaN for a victim without an accepted fit.
+
+    Parameters
+    ----------
+    col : ColumnNullFit
+        The column fit (its couplings at this K, NaN where not determined).
+    tone_centres : ndarray of complex (V + C,)
+        The centres of every tone's ring: the victims', then the companions'.
+    """
+    out = np.full(len(col.estimates), np.nan + 0j)
+    for i, e in enumerate(col.estimates):
+        if e.accepted:
+            c = np.nan_to_num(np.asarray(col.couplings[i], dtype=complex))
+            c[i] = 0
+            out[i] = e.z_star - c @ tone_centres[: c.size]
+    return out
+
+
+def null_found(e, method: str, target: float, last_ring: np.ndarray,
+               seen: complex | None = None) -> bool:
     """The stop rule: whether a victim's null is known well enough to end its search.
 
     Its 1σ error (Birge-scaled) must be at most ``target``. A sin² signal is not
@@ -152,11 +239,16 @@ def null_found(e, method: str, target: float, last_ring: np.ndarray) -> bool:
         :func:`ring_around` lays them out, a survey ring with its centre repeated); the
         radius is the largest distance of a point from the centre, since a repeated
         centre would make the second point's distance 0.
+    seen : complex, optional
+        Where the victim's signal is lowest with the other tones at their ring centres
+        (:func:`seen_nulls`; default the estimate's null): the point the ring must be
+        centred on.
     """
     done = null_sigma(e) <= target
     if method != "stark":
         r_last = ring_radius(last_ring)
-        done &= (abs(e.z_star - last_ring[0]) <= r_last / RING_MARGIN
+        low = e.z_star if seen is None else seen
+        done &= (abs(low - last_ring[0]) <= r_last / RING_MARGIN
                  and e.curvature * r_last**2 <= 2 * RISE_PROBABILITY)
     return bool(done)
 

@@ -7,6 +7,7 @@ later stage of the flow.
 
 from xtalkcal.fits.column import (
     ColumnNullFit,
+    column_rejected,
     fit_paraboloid_column,
     linearise_fringe,
 )
@@ -35,7 +36,9 @@ from xtalkcal.fits.paraboloid import (
     fit_paraboloid_counts,
 )
 from xtalkcal.fits.ring import (
+    WRAP_JUMP_RAD,
     fit_ring,
+    ring_wraps,
 )
 from xtalkcal.fits.verdicts import (
     DEFAULT_RULES,
@@ -62,10 +65,13 @@ __all__ = [
     "RingEstimate",
     "RingValues",
     "fit_ring",
+    "ring_wraps",
+    "WRAP_JUMP_RAD",
     "fit_null",
     "fit_null_gaussian",
     "null_signal",
     "ColumnNullFit",
+    "column_rejected",
     "fit_paraboloid_column",
     "linearise_fringe",
     "binomial_signal",

@@ -3,6 +3,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numpy.typing import ArrayLike
 
@@ -111,3 +113,56 @@ def fit_ring(
         v.setflags(write=False)
     accepted = codes == _CODE[RejectionReason.NONE]
     return RingBatch(shape, n, accepted, codes, np.asarray(redchi, float), dof, raw)
+
+
+# ---------------------------------------------------------------------------
+# Wrapped phase readings on a ring
+# ---------------------------------------------------------------------------
+
+#: A jump (rad) between angular neighbours on a ring of phase readings beyond which the
+#: readings have wrapped: half a turn, far above what a smooth ring shows between
+#: neighbours (at most ≈ 2·A·sin(π/n) for a first harmonic of amplitude A: 1.5 rad for a
+#: 3 rad rise on 13 points) and above shot noise of a few hundredths of a radian.
+WRAP_JUMP_RAD = math.pi
+
+
+def ring_wraps(z: ArrayLike, s: ArrayLike, *, jump: float = WRAP_JUMP_RAD) -> bool:
+    """Whether phase readings ``s`` on one ring of points ``z`` (centre first) wrapped.
+
+    A phase is read modulo 2π. Around a ring the true phase is a smooth function of the
+    angle (a paraboloid gives a first harmonic; other tones' leak adds small others), so
+    neighbouring angles read close values unless the true phase crossed the edge of the
+    read-out range between them, where the reading jumps by about 2π. A ring whose
+    readings wrap looks flat or noisy to a fit (a strong null outside the ring then reads
+    as "no signal"); this tells it apart. Points at the centre (distance below half the
+    ring's radius) are not part of the ring.
+
+    Parameters
+    ----------
+    z : array_like of complex (n,)
+        The ring's points: its centre first (as :func:`ring_around` lays them out).
+    s : array_like of float (n,)
+        The phase readings (rad) at those points.
+    jump : float
+        The jump between angular neighbours that counts as a wrap.
+
+    Returns
+    -------
+    bool
+    """
+    zz = np.asarray(z, dtype=complex).ravel()
+    ss = np.asarray(s, dtype=float).ravel()
+    if zz.shape != ss.shape:
+        raise FitInputError(f"z and s must have the same number of points, got {zz.size} "
+                            f"and {ss.size}")
+    if zz.size < 3:
+        return False
+    d = zz - zz[0]
+    r = np.abs(d)
+    on = r > 0.5 * r.max() if r.max() > 0 else np.zeros(r.shape, bool)
+    if on.sum() < 3:
+        return False
+    order = np.argsort(np.angle(d[on]))
+    ring = ss[on][order]
+    steps = np.abs(np.diff(np.concatenate([ring, ring[:1]])))
+    return bool(steps.max() > jump)
