@@ -47,6 +47,7 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import re
 import tempfile
 import time
 from collections import Counter
@@ -312,10 +313,16 @@ class Case:
         }
 
 
+def _line_number(line: str) -> int:
+    """The qubit number in a line's name (``q12-line`` → 12), for a stable order."""
+    m = re.search(r"\d+", line)
+    return int(m.group()) if m else -1
+
+
 def choose_columns(doc: dict, n: int) -> list[str]:
     """The stepped line first, then the lines with the most couplings of |X| ≥ −40 dB."""
     strong = Counter(c["line"] for c in doc["couplings"] if c["crosstalk_db"] >= -40.0)
-    order = sorted(strong, key=lambda line: (-strong[line], int(line[1:])))
+    order = sorted(strong, key=lambda line: (-strong[line], _line_number(line)))
     first = [s["line"] for s in doc.get("steps", [])]
     return list(dict.fromkeys(first + order))[:n]
 
