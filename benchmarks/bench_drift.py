@@ -100,6 +100,8 @@ class PolicyRun:
     recentred: list[tuple[float, Pair]] = field(default_factory=list)
     recalibrated: list[tuple[float, str]] = field(default_factory=list)
     due_calls: int = 0
+    recheck_shots: int = 0  # policy A: re-checks (repeats included)
+    recal_shots: int = 0  # policy A: column recalibrations
     triggers: list[str] = field(default_factory=list)  # pairs behind A's recalibrations
 
 
@@ -155,6 +157,8 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
             rig.wait(max(0.0, due_s - rig.now()))
             rep = run_due(rig, proto, ledger, schedule, runner=runner)
             run.due_calls += 1
+            run.recheck_shots += rep.recheck_shots
+            run.recal_shots += rep.recalibration_shots
             for c in rep.checked:
                 pair = (c.aggressor, c.victim)
                 slot = schedule.slot(pair) if pair in schedule else None
@@ -372,6 +376,11 @@ def print_case(case: Case, detail: bool) -> None:
           + ", ".join(f"{k} {n}" for k, n in sorted(decisions.items()))
           + f"; {case.rejected()} entries rejected), {len(runA.recentred)} re-centrings, "
           f"{len(runA.recalibrated)} column recalibrations; shots(A)/shots(B) = {case.ratio:.3f}")
+    n_checks = max(len(runA.checks), 1)
+    print(f"  A's shots: initial {runA.initial_shots:,}, re-checks {runA.recheck_shots:,} "
+          f"({runA.recheck_shots / n_checks:,.0f} per re-check), recalibrations "
+          f"{runA.recal_shots:,}; B's: {runB.calibrations} calibrations of "
+          f"{runB.shots / max(runB.calibrations, 1):,.0f} on average")
     if runA.triggers:
         print("  recalibrations triggered by: " + ", ".join(
             f"{k} ×{n}" for k, n in Counter(runA.triggers).most_common()))
