@@ -287,8 +287,9 @@ def second_stage_target(residual: float, tolerance_db: float) -> float:
     ``|dX|²/σ²`` is non-central χ² with 2 degrees of freedom).
     """
     tol = 10 ** (float(tolerance_db) / 20)
-    margin = tol - residual if math.isfinite(residual) else tol
-    return 0.25 * min(max(margin, 0.5 * tol), tol)
+    if not (math.isfinite(residual) and residual < tol):
+        return 0.25 * tol
+    return 0.25 * min(max(tol - residual, 0.5 * tol), tol)
 
 
 def second_stage_shots(first_shots: int, first_error: float, target: float) -> int:
