@@ -47,6 +47,7 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import re
 import tempfile
 import time
 from collections import Counter
@@ -99,6 +100,8 @@ class PolicyRun:
     recentred: list[tuple[float, Pair]] = field(default_factory=list)
     recalibrated: list[tuple[float, str]] = field(default_factory=list)
     due_calls: int = 0
+    recheck_shots: int = 0  # policy A: re-checks (repeats included)
+    recal_shots: int = 0  # policy A: column recalibrations
     triggers: list[str] = field(default_factory=list)  # pairs behind A's recalibrations
 
 
@@ -154,6 +157,8 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
             rig.wait(max(0.0, due_s - rig.now()))
             rep = run_due(rig, proto, ledger, schedule, runner=runner)
             run.due_calls += 1
+            run.recheck_shots += rep.recheck_shots
+            run.recal_shots += rep.recalibration_shots
             for c in rep.checked:
                 pair = (c.aggressor, c.victim)
                 slot = schedule.slot(pair) if pair in schedule else None
@@ -312,10 +317,16 @@ class Case:
         }
 
 
+def _line_number(line: str) -> int:
+    """The qubit number in a line's name (``q12-line`` → 12), for a stable order."""
+    m = re.search(r"\d+", line)
+    return int(m.group()) if m else -1
+
+
 def choose_columns(doc: dict, n: int) -> list[str]:
     """The stepped line first, then the lines with the most couplings of |X| ≥ −40 dB."""
     strong = Counter(c["line"] for c in doc["couplings"] if c["crosstalk_db"] >= -40.0)
-    order = sorted(strong, key=lambda line: (-strong[line], int(line[1:])))
+    order = sorted(strong, key=lambda line: (-strong[line], _line_number(line)))
     first = [s["line"] for s in doc.get("steps", [])]
     return list(dict.fromkeys(first + order))[:n]
 
@@ -365,6 +376,11 @@ def print_case(case: Case, detail: bool) -> None:
           + ", ".join(f"{k} {n}" for k, n in sorted(decisions.items()))
           + f"; {case.rejected()} entries rejected), {len(runA.recentred)} re-centrings, "
           f"{len(runA.recalibrated)} column recalibrations; shots(A)/shots(B) = {case.ratio:.3f}")
+    n_checks = max(len(runA.checks), 1)
+    print(f"  A's shots: initial {runA.initial_shots:,}, re-checks {runA.recheck_shots:,} "
+          f"({runA.recheck_shots / n_checks:,.0f} per re-check), recalibrations "
+          f"{runA.recal_shots:,}; B's: {runB.calibrations} calibrations of "
+          f"{runB.shots / max(runB.calibrations, 1):,.0f} on average")
     if runA.triggers:
         print("  recalibrations triggered by: " + ", ".join(
             f"{k} ×{n}" for k, n in Counter(runA.triggers).most_common()))

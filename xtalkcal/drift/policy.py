@@ -70,6 +70,15 @@ def _interval_limits(settings: RecheckSettings) -> tuple[float, float, float]:
 FIRST_INTERVAL_FRACTION = 0.125
 
 
+# Fraction of the trend's predicted hours left (mean + 1 sigma of the residual at the
+# tolerance) at which run_due checks a pair again. For a residual driven by a random walk the
+# variance grows linearly in time, so at a quarter of the hours left the 1-sigma band is half
+# the tolerance: the check lands where mean + 2 sigma reaches it. A 1-D walk from a fresh null
+# then spends ~1 % of each interval beyond the tolerance (the time average of
+# 2 Phi(-tol / sigma(t))); at 0.5 (sigma = 0.71 tol) it was ~6 %.
+DUE_SAFETY = 0.25
+
+
 def first_interval(settings: RecheckSettings) -> float:
     """First re-check interval of a pair without history (h), within the protocol's limits.
 

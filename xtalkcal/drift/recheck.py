@@ -51,7 +51,7 @@ from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
 from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
-from xtalkcal.drift.policy import first_interval, next_check
+from xtalkcal.drift.policy import DUE_SAFETY, first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -102,6 +102,8 @@ class DueReport:
     still_aside: list[Pair] = field(default_factory=list)  # set aside by an earlier run
     reinstated: list[Pair] = field(default_factory=list)  # calibrated anew since set aside
     shots: int = 0
+    recheck_shots: int = 0  # of ``shots``: re-checks, their repeats included
+    recalibration_shots: int = 0  # of ``shots``: column recalibrations
 
 
 def _column_in_use(snapshot: MatrixSnapshot, aggressor: str, wanted: list[str],
@@ -252,6 +254,102 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
         sweep_id=stored.sweep_id)
 
 
+# A pair re-checked alone: a cross of CROSS_POINTS points about its stored null, then the
+# centre. The first stage spends FIRST_STAGE_FRACTION of the protocol's re-check shots;
+# the second is sized from the first's own error (see second_stage_target).
+CROSS_POINTS = 4
+FIRST_STAGE_FRACTION = 0.25
+MAX_SECOND_STAGE = 16  # the second stage spends at most this many times the first's shots
+
+
+def residual_axis(out: RecheckOutcome) -> float:
+    """Largest standard-error axis of a re-check's ``dX`` (inf when it has none).
+
+    The error of the null the re-check would adopt, in every direction, not only along the
+    residual: what re-centring the pair leaves behind.
+    """
+    c = np.asarray(out.shift_covariance, dtype=float)
+    if not np.all(np.isfinite(c)):
+        return math.inf
+    return float(math.sqrt(max(float(np.linalg.eigvalsh(c)[-1]), 0.0)))
+
+
+def second_stage_target(residual: float, tolerance_db: float) -> float:
+    """Error of the residual a re-check aims at: a quarter of its margin to the tolerance.
+
+    The margin ``tol − |dX|`` of the first stage's estimate, taken within
+    ``[tol/2, tol]``: an estimate at or above the tolerance will be re-centred on the
+    re-check's own null, whose error is then the pair's residual, so it gets a quarter of a
+    fresh null's margin (the whole tolerance); the floor of half the tolerance keeps an
+    estimate close to it from asking for unbounded shots. With this error, a pair whose
+    residual is a third of the tolerance fails "confidently within" (``|dX| + 2σ < tol``)
+    by chance with probability ``ncx2.sf(16, 2, 4)`` ≈ 3.4 % (the estimate's
+    ``|dX|²/σ²`` is non-central χ² with 2 degrees of freedom).
+    """
+    tol = 10 ** (float(tolerance_db) / 20)
+    if not (math.isfinite(residual) and residual < tol):
+        return 0.25 * tol
+    return 0.25 * min(max(tol - residual, 0.5 * tol), tol)
+
+
+def second_stage_shots(first_shots: int, first_error: float, target: float) -> int:
+    """Shots per point of the second stage: the pooled error ``first_error·√(n1/(n1+n2))``
+    reaches ``target`` (0 when the first stage already does; an undetermined first error
+    gets the rest of the protocol's shots), at most ``MAX_SECOND_STAGE`` times the first's.
+    """
+    if not math.isfinite(first_error):
+        need = first_shots * (1.0 / FIRST_STAGE_FRACTION - 1.0)
+    elif first_error <= target:
+        return 0
+    else:
+        need = first_shots * ((first_error / target) ** 2 - 1.0)
+    return int(min(math.ceil(need), MAX_SECOND_STAGE * first_shots))
+
+
+def _pooled(stages: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
+            ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Signal and error per point of stages measured at the same points, and the shots.
+
+    Each stage is weighted by its shots (the same weight at every point): for counts this
+    is the pooled fraction, and a Stark batch's common reference offset stays one constant
+    offset, which the paraboloid's ``c0`` absorbs.
+    """
+    n = np.array([float(sh.mean()) for _, _, sh in stages])
+    w = n / n.sum()
+    signal = sum(wi * s for wi, (s, _, _) in zip(w, stages, strict=True))
+    err = np.sqrt(sum((wi * e) ** 2 for wi, (_, e, _) in zip(w, stages, strict=True)))
+    return signal, err, int(sum(sh.sum() for _, _, sh in stages))
+
+
+def _solo_check(rig: Rig, runner: BatchRunner, gp: _GroupProbe, amp: float,
+                settings, key: str) -> PairCheck:
+    """One pair re-checked alone in two stages on a cross about its stored null."""
+    v, e = gp.group[0], gp.entries[0]
+    radius = _ring_radii(gp)
+    pts = ring_around(gp.z_stored, radius, CROSS_POINTS)
+    total = settings.shots_per_point * settings.points  # the protocol's shots per ring
+    first = max(50, int(round(FIRST_STAGE_FRACTION * total / pts.shape[0])))
+    tag = f"{key}-{gp.probe.aggressor}-{'stark' if gp.stark else 'res-' + v}"
+    stages = []
+
+    def analyse(shots: int, label: str) -> RecheckOutcome:
+        sig = measure_probe(runner, gp.probe, pts, shots, label)
+        stages.append((sig.signal[:, 0], sig.stderr[:, 0], sig.shots[:, 0]))
+        signal, err, _ = _pooled(stages)
+        return _analyse_pair(pts[:, 0], signal, err, err, gp.z_stored[0], amp,
+                             settings.tolerance_db, gp.priors[0])
+
+    out = analyse(first, tag)
+    more = second_stage_shots(first, residual_axis(out),
+                              second_stage_target(out.residual, settings.tolerance_db))
+    if more:
+        out = analyse(more, f"{tag}-more")
+    _, _, shots = _pooled(stages)
+    entry = _recheck_entry(rig, gp.probe.aggressor, v, e, out, amp, gp.amplification, shots,
+                           rig.now(), settings.tolerance_db)
+    return PairCheck(gp.probe.aggressor, v, out, entry)
+
+
 def recheck_column(
     rig: Rig,
     protocol: Protocol,
@@ -285,8 +383,10 @@ def recheck_column(
     silent : iterable of str
         Victims whose stored tones are not played (pairs set aside, see :func:`run_due`).
     solo : bool
-        Put each victim on a ring of its own (the column's other tones held at their stored
-        nulls), instead of ringing the calibration pass's co-victims together.
+        Re-check each victim on its own (the column's other tones held at their stored
+        nulls): a cross of ``CROSS_POINTS`` points about its stored null and the centre, in
+        two stages (:func:`second_stage_shots`), instead of ringing the calibration pass's
+        co-victims together.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -299,6 +399,9 @@ def recheck_column(
               else nulled_pass_groups({v: column[v].method for v in wanted}))
     for group in groups:
         gp = _group_probe(chip, aggressor, group, column, amp, shape, ledger)
+        if solo:
+            checks.append(_solo_check(rig, runner, gp, amp, settings, key))
+            continue
         radius = _ring_radii(gp)
         n = ring_points_for(len(group), settings.points)
         shots = shots_per_point(settings.shots_per_point, settings.points, n)
@@ -440,6 +543,7 @@ class _DueRun:
         all-tones-on field is what the verification measures.)
         """
         checks: list[PairCheck] = []
+        before = self.runner.shots_executed
         for v in victims:
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
@@ -449,6 +553,7 @@ class _DueRun:
                                          solo=True)
             except SafetyLimitError as exc:  # refused before anything was played
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
+        self.report.recheck_shots += self.runner.shots_executed - before
         self.ledger.append([c.entry for c in checks])
         broken = []
         for c in checks:
@@ -469,7 +574,7 @@ class _DueRun:
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
         trend = pair_trend(self.ledger.history(*pair),
                            tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
-        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
+        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, safety=DUE_SAFETY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
                  f"residual {c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
@@ -497,8 +602,10 @@ class _DueRun:
         tag = f"recal-{a}-{int(rig.now())}"
         aside = self.aside(a)
         in_use = [v for aa, v in schedule.pairs() if aa == a and v not in aside]
+        before = self.runner.shots_executed
         res = calibrate_chip(rig, protocol, runner=self.runner, aggressors=[a], key_prefix=tag,
                              null_victims={a: in_use})
+        self.report.recalibration_shots += self.runner.shots_executed - before
         entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)
         if entries or sweeps:  # a column with nothing left to measure stores nothing
             ledger.append(entries, sweeps=sweeps)
@@ -523,7 +630,7 @@ class _DueRun:
             return first_interval(settings)
         if previous_h is None and trend.hours_left is None:
             return first_interval(settings)
-        return next_check(trend, previous_h, settings).interval_h
+        return next_check(trend, previous_h, settings, safety=DUE_SAFETY).interval_h
 
 
 def run_due(
