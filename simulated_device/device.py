@@ -435,15 +435,19 @@ def _read_couplings(top: Fields, own_qubit: Mapping[Any, Any], qnames: list[Any]
                     version_1: bool, version_3: bool = False) -> list[CouplingTruth]:
     """The ``[[couplings]]`` blocks (the version 2 fields refused in a version 1 file)."""
     couplings: list[CouplingTruth] = []
+    seen: set[tuple[Any, Any]] = set()
+    known_qubits = dict.fromkeys(qnames)  # ordered names with O(1) look-up: large chips
     for ct in top.tables("couplings", None):
-        line = ct.reference("line", list(own_qubit), "line")
-        qubit = ct.reference("qubit", qnames, "qubit")
+        line = ct.reference("line", own_qubit, "line")
+        qubit = ct.reference("qubit", known_qubits, "qubit")
         if valid(line, qubit, own_qubit.get(line)) and own_qubit.get(line) == qubit:
             qubit = ct.reject("qubit", "a line's coupling to its own qubit is set by its "
                                        "rabi_mhz; accepted: another qubit")
-        elif valid(line, qubit) and any(c.line == line and c.qubit == qubit for c in couplings):
+        elif valid(line, qubit) and (line, qubit) in seen:
             qubit = ct.reject("qubit", f"coupling {line} → {qubit} is listed twice; "
                                        "accepted: one [[couplings]] block per pair")
+        if valid(line, qubit):
+            seen.add((line, qubit))
         phase_deg = ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")
         if version_1:
             for key in (k for k in _VERSION_2_FIELDS if k in ct.data):
