@@ -48,6 +48,7 @@ from dataclasses import dataclass
 
 import numba as nb
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from simulated_device.dynamics import DRAG, FLATTOP, GAUSSIAN, SQUARE, ToneBatch, _envelope
 from simulated_device.exchange import CLUSTER_MAX_QUBITS, exchange_neighbours
@@ -541,10 +542,14 @@ def evolve_cluster(cluster: Cluster, tones: ClusterTones, rho0=None, *,
     def arr(x, dtype=float):
         return np.ascontiguousarray(x, dtype=dtype)
 
-    return _evolve_batch(
-        _initial_states(cluster, rho0, R), run_energies, nvec, hj, raise_ops, coupled, g1, gphi,
-        dims, strides, arr(tones.start_ns), arr(tones.duration_ns), arr(tones.freq_ghz), omega,
-        arr(tones.env_code, np.int64), arr(tones.sigma_ns), arr(tones.drag_ns),
-        arr(tones.ramp_ns), arr(tones.n_tones, np.int64), arr(tones.end_ns),
-        float(f_out[0]), out_phase,
-        (float(c.max_step_ns), float(c.phase_per_step), float(c.envelope_fraction)))
+    # One BLAS thread inside the kernel: its matrices are small (d ≤ 64) and the runs are
+    # already spread over cores; a threaded BLAS under parallel runs oversubscribes the
+    # cores (measured: a 27 × 27 eigendecomposition 200× slower under load).
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _evolve_batch(
+            _initial_states(cluster, rho0, R), run_energies, nvec, hj, raise_ops, coupled, g1,
+            gphi, dims, strides, arr(tones.start_ns), arr(tones.duration_ns),
+            arr(tones.freq_ghz), omega, arr(tones.env_code, np.int64), arr(tones.sigma_ns),
+            arr(tones.drag_ns), arr(tones.ramp_ns), arr(tones.n_tones, np.int64),
+            arr(tones.end_ns), float(f_out[0]), out_phase,
+            (float(c.max_step_ns), float(c.phase_per_step), float(c.envelope_fraction)))

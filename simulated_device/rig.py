@@ -426,6 +426,21 @@ class SimRig:
         x = self.true_crosstalk(victim, line, f, t_s)
         return CoupledCrosstalk((), {(): x}, x, {})
 
+    def true_coupled_matrix(self, t_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """State-averaged effective X and the largest conditional part per (qubit, line), at
+        each aggressor's own (dressed) f01, shape (n_qubits, n_lines) each, chip order; for an
+        uncoupled chip the first is :meth:`true_matrix` and the second is zero."""
+        qubits, lines = self._chip.qubit_names, self._chip.lines
+        avg = np.zeros((len(qubits), len(lines)), dtype=complex)
+        cond = np.zeros((len(qubits), len(lines)), dtype=complex)
+        for i, v in enumerate(qubits):
+            for j, ln in enumerate(lines):
+                x = self.true_coupled_crosstalk(v, ln.name, None, t_s)
+                avg[i, j] = x.average
+                if x.conditional:
+                    cond[i, j] = max(x.conditional.values(), key=abs)
+        return avg, cond
+
     def true_zz_ghz(self, qubit_a: str, qubit_b: str, t_s: float | None = None) -> float:
         """Static ZZ (GHz) of two qubits, E_11 − E_10 − E_01 + E_00 of the dressed levels of
         ``qubit_a``'s cluster (its other members in |0⟩); 0 where ``qubit_b`` is not in it."""

@@ -26,7 +26,7 @@ import qutip as qt
 
 from simulated_device.coupled import ClusterWarning
 from simulated_device.device import device_from_dict
-from simulated_device.rig import SimRig
+from simulated_device.rig import SimRig, SimulatedSampledRig
 from xtalkcal.hardware import Envelope, Timeline, Tone, pulse_area_ns
 
 FA, FB, ALPHA, J_MHZ = 4.8, 5.0, -0.3, 3.0  # Δ = f_A − f_B = −200 MHz
@@ -265,3 +265,27 @@ def test_a_capped_cluster_is_announced_at_load():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         SimRig(device_from_dict(pair_data()), drift=False)  # nobody left out: silent
+
+
+def test_the_rig_plays_a_preparation_of_the_aggressors_own_qubit():
+    """A π pulse on a's own line, then a's line plays at b's frequency (200 MHz from a): the
+    rig checks and plays it like any timeline, and a is read in |1⟩."""
+    rig = pair_rig(t1_us=1e5, t2_us=1e5)
+    fa, fb = rig.chip.qubit("a").f01_ghz, rig.chip.qubit("b").f01_ghz
+    pi = Tone("a-line", 0.0, 40.0, fa, pi_amplitude(), 0.0, GAUSS)
+    tl = Timeline((pi, Tone("a-line", 50.0, 40.0, fb, 0.3, 0.0, GAUSS)), readout=("b", "a"))
+    counts = rig.run([tl], 2000)
+    assert counts.counts.shape[:2] == (1, 2) and counts.counts[0, 1, 1] > 1000
+    p_a = rig.populations([Timeline((pi,), readout=("a",))], "a")[0]
+    assert p_a[1] == pytest.approx(1.0, abs=2e-3)
+
+
+def test_coupled_matrix_and_the_waveform_path_warning():
+    rig = pair_rig()
+    avg, cond = rig.true_coupled_matrix()
+    names = rig.chip.qubit_names
+    ib, ja = names.index("b"), [ln.name for ln in rig.chip.lines].index("a-line")
+    x = rig.true_coupled_crosstalk("b", "a-line")
+    assert avg[ib, ja] == x.average and cond[ib, ja] == x.conditional["a"]
+    with pytest.warns(ClusterWarning, match="exchange"):
+        SimulatedSampledRig(device_from_dict(pair_data()))
