@@ -137,6 +137,10 @@ class PassPlan:
         Resonant victims whose K pulses add up in phase.
     stark_rows : ndarray of bool (V,)
         Victims read out by a Stark phase.
+    k_stark : int
+        Stark pass: the K of its train at the protocol's full length (within the
+        two-photon limit), to which the null rounds of a shortened survey return
+        (0 for a resonant pass).
     """
 
     request: PassRequest
@@ -157,6 +161,7 @@ class PassPlan:
     thr: float
     coherent: np.ndarray
     stark_rows: np.ndarray
+    k_stark: int = 0
 
     @property
     def n_victims(self) -> int:
@@ -197,13 +202,17 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
                        shape=request.shape)
     spacing = base.spacing_ns
     scale = float(request.survey_scale)
+    k_stark = 0
     if stark:
         k_survey = max(1, int(protocol.survey.max_train_ns // request.shape.duration_ns
                               / scale**2))
+        k_stark = max(1, int(protocol.survey.max_train_ns // request.shape.duration_ns))
         for v in victims:  # victims near their two-photon line: a short train
             if two_photon_hazard(chip, line, v, amp):
                 k_survey = min(k_survey, two_photon_stark_repeats(
                     chip, line, v, amp, k_survey, request.shape))
+                k_stark = min(k_stark, two_photon_stark_repeats(
+                    chip, line, v, amp, k_stark, request.shape))
     else:
         # Largest per-pulse rotation we plan for (strongest crosstalk, leakage √2):
         # keep K·θ ≤ π/4 so a null up to 2× that radius stays unambiguous.
@@ -257,4 +266,5 @@ def plan_pass(chip: Chip, protocol: Protocol, result: CalibrationResult,
         thr=10 ** (protocol.survey.threshold_db / 20),
         coherent=np.array([not stark and probe.coherent(v) for v in victims]),
         stark_rows=np.array([m == "stark" for m in methods]),
+        k_stark=max(k_stark, K) if stark else 0,
     )

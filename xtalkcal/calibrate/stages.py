@@ -21,6 +21,7 @@ from xtalkcal.calibrate.plan import (
     STRONGEST_DB,
     companion_radius,
     stark_phase_scale,
+    stark_windows,
 )
 from xtalkcal.measure import ColumnProbe
 
@@ -121,7 +122,10 @@ def k_stage(plan: PassPlan, record: PassRecord, state: StageState, say: Say
             # No accepted fit at this K: a ring as high up the signal as the survey's
             # (its radius shrunk as 1/K); the survey's own radius at a raised K would
             # rise far up the fringe and lose the null altogether.
-            rad[i] = plan.radius[i] * min(1.0, plan.probe.repeats / probe.repeats)
+            shrink = min(1.0, plan.probe.repeats / probe.repeats)
+            # (a Stark ring's rise ∝ K·r², a resonant one's ∝ (K·r)²)
+            rad[i] = plan.radius[i] * (math.sqrt(shrink) if req.methods[i] == "stark"
+                                       else shrink)
             done[i] = False
         elif state.handed[i]:
             rad[i] = companion_radius(plan.amp, plan.chip, req.victims[i], centre[i])
@@ -270,6 +274,8 @@ def raise_k(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any], selected: np
     """
     req = plan.request
     nulling = [i for i in range(plan.n_victims) if selected[i]]
+    if req.stark and nulling and all(est[i].accepted for i in nulling):
+        return lengthen_stark_train(plan, probe, est, nulling, rad, say)
     if (req.stark or not nulling or not plan.coherent[nulling].all()
             or not all(est[i].accepted for i in nulling)):
         return probe, rad
@@ -288,6 +294,43 @@ def raise_k(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any], selected: np
         rad[i] = min(math.sqrt(RISE_PROBABILITY / max(
             est[i].curvature * (k_new / k_cur) ** 2, 1e-12)), plan.cap[i])
     say(f"{req.line}: K raised to {k_new} for {', '.join(req.victims[i] for i in nulling)}")
+    return probe, rad
+
+
+def lengthen_stark_train(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any],
+                         nulling: Sequence[int], rad: np.ndarray, say: Say
+                         ) -> tuple[ColumnProbe, np.ndarray]:
+    """Return a shortened Stark train (a wider survey's) to full length once nulls are known.
+
+    A strong pair's survey needs a short train (its phase at the survey ring would wrap),
+    but once the rings are centred on the null their rise is set by the rise rule
+    whatever the train: a longer train only sharpens the null (the phase per |w|², the
+    gain g, grows with the train; the null's error falls as 1/√g). So the null rounds go
+    to the protocol's full train (``plan.k_stark``; its Ramsey windows as planned), or
+    the longest of K/2, K/4, … that keeps every ring ``RING_MARGIN`` null errors wide
+    (radius ∝ 1/√g). The new K's points are fitted on their own.
+    """
+    req = plan.request
+    k_cur = probe.repeats
+    k_new = plan.k_stark
+    while k_new > k_cur:
+        windows = stark_windows(plan.chip, req.line, req.victims, req.methods, plan.amp,
+                                k_new, req.shape)
+        longer = ColumnProbe(plan.chip, req.line, req.victims, amplitude=plan.amp,
+                             repeats=k_new, methods=req.methods, shape=req.shape, merged=True,
+                             companions=plan.companion_names, stark_windows_ns=windows)
+        gain = {i: longer.stark_gain(req.victims[i]) / probe.stark_gain(req.victims[i])
+                for i in nulling}
+        new_rad = rad.copy()
+        for i in nulling:
+            rise = RISE_STARK_RAD * stark_phase_scale(plan.chip, req.line, req.victims[i],
+                                                      plan.amp)
+            new_rad[i] = math.sqrt(rise / max(est[i].curvature * gain[i], 1e-12))
+        if all(new_rad[i] >= RING_MARGIN * null_sigma(est[i]) for i in nulling):
+            say(f"{req.line}: Stark train back to K={k_new} for "
+                f"{', '.join(req.victims[i] for i in nulling)}")
+            return longer, new_rad
+        k_new = max(k_cur, k_new // 2) if k_new // 2 > k_cur else k_cur
     return probe, rad
 
 
