@@ -21,6 +21,7 @@ from xtalkcal.drift.outcome import (
     RecheckRules,
 )
 from xtalkcal.drift.policy import (
+    DUE_POLICY,
     DUE_SAFETY,
     FIRST_INTERVAL_FRACTION,
     NextCheck,
@@ -61,6 +62,7 @@ __all__ = [
     "PairTrend",
     "RandomWalkRate",
     "pair_trend",
+    "DUE_POLICY",
     "DUE_SAFETY",
     "FIRST_INTERVAL_FRACTION",
     "NextCheck",
