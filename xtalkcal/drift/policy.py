@@ -82,6 +82,10 @@ DUE_SAFETY = 0.25
 # its margin (drift.recheck.second_stage_target), so its upper 2-sigma bound is rarely 6 dB
 # below the tolerance even at a null just adopted; the trend's cap (DUE_SAFETY) is what
 # keeps the interval short where the drift demands it.
+# run_due predicts with each pair's diffusion constants raised by one standard error
+# (drift.pair_trend's diffusion_sigma), so a walk not yet resolved from the entries' errors
+# still caps the interval.
+DUE_DIFFUSION_SIGMA = 1.0
 DUE_POLICY = dict(safety=DUE_SAFETY, lengthen=2.0, modest_lengthen=2.0)
 
 

@@ -52,7 +52,7 @@ from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
 from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
-from xtalkcal.drift.policy import DUE_POLICY, first_interval, next_check
+from xtalkcal.drift.policy import DUE_DIFFUSION_SIGMA, DUE_POLICY, first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -583,7 +583,8 @@ class _DueRun:
         pair = (c.aggressor, c.victim)
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
         trend = pair_trend(self.ledger.history(*pair),
-                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
+                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now(),
+                           diffusion_sigma=DUE_DIFFUSION_SIGMA)
         nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, **DUE_POLICY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
@@ -635,7 +636,7 @@ class _DueRun:
         settings = self.protocol.recheck
         try:
             trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
-                               now_s=self.rig.now())
+                               now_s=self.rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
         except DriftInputError:  # no usable entry (cannot happen after an accepted one)
             return first_interval(settings)
         if previous_h is None and trend.hours_left is None:
