@@ -95,7 +95,7 @@ class PolicyRun:
     calibrations: int = 0  # full column-set calibrations (policy B), initial included
     # Policy A: one row per re-checked pair: (t_s, pair, decision, residual_db, accepted,
     # next interval h, the outcome's reason, the entry's reason, reduced chi-square, null
-    # shift in ring radii).
+    # shift in ring radii, the signal shots behind the re-check).
     checks: list[tuple] = field(default_factory=list)
     recentred: list[tuple[float, Pair]] = field(default_factory=list)
     recalibrated: list[tuple[float, str]] = field(default_factory=list)
@@ -168,6 +168,7 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
                     slot.interval_h if slot else math.nan, c.outcome.reason, c.entry.reason,
                     float(c.outcome.reduced_chi2),
                     float(abs(c.outcome.null_shift) / c.outcome.probe_radius),
+                    int(c.entry.shots),
                 ))
             run.recentred += [(rep.now_s, p) for p in rep.recentred]
             run.recalibrated += [(rep.now_s, a) for a in rep.recalibrated]
@@ -402,13 +403,18 @@ def print_case(case: Case, detail: bool) -> None:
     for c in runA.checks:
         intervals.setdefault(c[1], []).append(c[5])
     per_checks = Counter(c[1] for c in runA.checks)
-    print(f"  {'pair':<10}{'A within':>10}{'A worst':>10}{'checks':>8}{'last interval':>15}"
+    per_shots = Counter()
+    for c in runA.checks:
+        per_shots[c[1]] += c[10]
+    print(f"  {'pair':<10}{'A within':>10}{'A worst':>10}{'checks':>8}{'shots/check':>12}"
+          f"{'last interval':>15}"
           f"{'B within':>10}{'B worst':>10}{'B fresh med/worst':>19}")
     for p in pairs:
         iv = intervals.get(p, [math.nan])[-1]
         fl = case.floorB[p]
         print(f"  {p[0] + '→' + p[1]:<10}{100 * np.mean(case.resA[p] <= tol):>9.2f}%"
-              f"{np.max(case.resA[p]):>9.1f} {per_checks[p]:>7d}{iv:>13.1f} h"
+              f"{np.max(case.resA[p]):>9.1f} {per_checks[p]:>7d}"
+              f"{per_shots[p] / max(per_checks[p], 1):>12,.0f}{iv:>13.1f} h"
               f"{100 * np.mean(case.resB[p] <= tol):>9.2f}%{np.max(case.resB[p]):>9.1f} "
               f"{np.median(fl):>10.1f}/{np.max(fl):.1f}")
     for p in pairs:

@@ -159,3 +159,41 @@ def test_curvature_ratio_below_one_is_refused() -> None:
 
     with pytest.raises(DriftInputError, match="curvature_ratio"):
         RecheckRules(curvature_ratio=0.9)
+
+
+def _walk_history(seed: int, n: int = 6, sigma: float = TOL / 4):
+    """A pair at -30 dB whose phase walks 0.02 rad/√h, re-checked every 4 h with an error of
+    a quarter of the tolerance: the walk's steps are about the size of the errors."""
+    from xtalkcal.store import LedgerEntry
+
+    rng = np.random.default_rng(seed)
+    t = 4.0 * np.arange(n)
+    phase = np.concatenate([[0.0], np.cumsum(0.02 * 2.0 * rng.standard_normal(n - 1))])
+    x = 10 ** (-30 / 20) * np.exp(1j * phase)
+    x = x + sigma * (rng.standard_normal(n) + 1j * rng.standard_normal(n))
+    return [LedgerEntry(aggressor="q1-line", victim="q2", frequency_ghz=5.1, value=complex(v),
+                        covariance=((sigma**2, 0.0), (0.0, sigma**2)), method="stark",
+                        shots=8000, amplification=4, quality=1.0, verdict="accepted",
+                        measured_at_s=3600.0 * tk, measured_at_utc="2031-01-01T00:00:00+00:00",
+                        rig="invented", software_version="test", kind="recheck")
+            for tk, v in zip(t, x, strict=True)]
+
+
+def test_the_diffusion_upper_bound_caps_a_walk_estimated_as_none() -> None:
+    from xtalkcal.drift import pair_trend
+
+    seen_zero = 0
+    for seed in range(40):
+        hist = _walk_history(seed)
+        now = hist[-1].measured_at_s
+        plain = pair_trend(hist, tolerance_db=TOL_DB, now_s=now)
+        upper = pair_trend(hist, tolerance_db=TOL_DB, now_s=now, diffusion_sigma=1.0)
+        assert plain.phase.diffusion == upper.phase.diffusion  # the estimate is unchanged
+        assert upper.hours_to_tolerance <= plain.hours_to_tolerance
+        if plain.phase.diffusion == 0.0:
+            seen_zero += 1
+            assert math.isfinite(upper.hours_to_tolerance)
+            assert upper.hours_to_tolerance < plain.hours_to_tolerance
+    assert seen_zero > 0  # the case the bound is for does occur at these errors
+    with pytest.raises(Exception, match="diffusion_sigma"):
+        pair_trend(hist, tolerance_db=TOL_DB, now_s=now, diffusion_sigma=-1.0)

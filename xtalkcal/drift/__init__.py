@@ -21,6 +21,8 @@ from xtalkcal.drift.outcome import (
     RecheckRules,
 )
 from xtalkcal.drift.policy import (
+    DUE_DIFFUSION_SIGMA,
+    DUE_POLICY,
     DUE_SAFETY,
     FIRST_INTERVAL_FRACTION,
     NextCheck,
@@ -61,6 +63,8 @@ __all__ = [
     "PairTrend",
     "RandomWalkRate",
     "pair_trend",
+    "DUE_DIFFUSION_SIGMA",
+    "DUE_POLICY",
     "DUE_SAFETY",
     "FIRST_INTERVAL_FRACTION",
     "NextCheck",

@@ -43,6 +43,7 @@ from xtalkcal.calibrate import (
     pass_amplitude,
     ring_around,
     ring_points_for,
+    ring_radius_caps,
     shots_per_point,
     stark_windows,
     survey_radii,
@@ -51,7 +52,7 @@ from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
 from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
-from xtalkcal.drift.policy import DUE_SAFETY, first_interval, next_check
+from xtalkcal.drift.policy import DUE_DIFFUSION_SIGMA, DUE_POLICY, first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -154,13 +155,22 @@ def _group_probe(chip: Chip, aggressor: str, group: list[str], column: dict[str,
     return _GroupProbe(group, entries, stark, K, probe, z_stored, priors)
 
 
-def _ring_radii(gp: _GroupProbe) -> np.ndarray:
-    """Ring radius per victim of the batch (fraction of full scale)."""
+# Rise of a Stark victim's cross in a re-check of its own (rad). A Stark phase is quadratic
+# in the field and read without wrapping up to 3π/2 (ColumnProbe.signals), and the null's
+# position error goes as 1/√(κ·rise): the calibration's null-ring cap (1.5 × RISE_STARK_RAD,
+# calibrate.ring_radius_caps) costs a third fewer shots than its 2 rad for the same error.
+RECHECK_RISE_STARK_RAD = 1.5 * RISE_STARK_RAD
+
+
+def _ring_radii(gp: _GroupProbe, *, solo: bool = False) -> np.ndarray:
+    """Ring radius per victim of the batch (fraction of full scale); ``solo``: the rise of a
+    pair re-checked alone (``RECHECK_RISE_STARK_RAD`` for Stark victims)."""
     # The calibration's rule: where the signal rises by a set amount; without a
     # stored sweep, the survey's radius from the nominal chip.
-    radius = survey_radii(gp.probe)
+    radius = ring_radius_caps(gp.probe) if solo else survey_radii(gp.probe)
+    stark_rise = RECHECK_RISE_STARK_RAD if solo else RISE_STARK_RAD
     for i, (e, pr) in enumerate(zip(gp.entries, gp.priors, strict=True)):
-        rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
+        rise = stark_rise if e.method == "stark" else RISE_PROBABILITY
         if pr is not None and pr[0] > 0:
             radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
     return radius
@@ -259,7 +269,7 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
 # the second is sized from the first's own error (see second_stage_target).
 CROSS_POINTS = 4
 FIRST_STAGE_FRACTION = 0.25
-MAX_SECOND_STAGE = 16  # the second stage spends at most this many times the first's shots
+MAX_SECOND_STAGE = 8  # the second stage spends at most this many times the first's shots
 
 
 def residual_axis(out: RecheckOutcome) -> float:
@@ -325,7 +335,7 @@ def _solo_check(rig: Rig, runner: BatchRunner, gp: _GroupProbe, amp: float,
                 settings, key: str) -> PairCheck:
     """One pair re-checked alone in two stages on a cross about its stored null."""
     v, e = gp.group[0], gp.entries[0]
-    radius = _ring_radii(gp)
+    radius = _ring_radii(gp, solo=True)
     pts = ring_around(gp.z_stored, radius, CROSS_POINTS)
     total = settings.shots_per_point * settings.points  # the protocol's shots per ring
     first = max(50, int(round(FIRST_STAGE_FRACTION * total / pts.shape[0])))
@@ -573,8 +583,9 @@ class _DueRun:
         pair = (c.aggressor, c.victim)
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
         trend = pair_trend(self.ledger.history(*pair),
-                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
-        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, safety=DUE_SAFETY)
+                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now(),
+                           diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, **DUE_POLICY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
                  f"residual {c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
@@ -625,12 +636,12 @@ class _DueRun:
         settings = self.protocol.recheck
         try:
             trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
-                               now_s=self.rig.now())
+                               now_s=self.rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
         except DriftInputError:  # no usable entry (cannot happen after an accepted one)
             return first_interval(settings)
         if previous_h is None and trend.hours_left is None:
             return first_interval(settings)
-        return next_check(trend, previous_h, settings, safety=DUE_SAFETY).interval_h
+        return next_check(trend, previous_h, settings, **DUE_POLICY).interval_h
 
 
 def run_due(
