@@ -23,6 +23,8 @@ import warnings
 import numpy as np
 import pytest
 import qutip as qt
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
 
 from simulated_device.coupled import ClusterWarning
 from simulated_device.device import device_from_dict
@@ -289,3 +291,25 @@ def test_coupled_matrix_and_the_waveform_path_warning():
     assert avg[ib, ja] == x.average and cond[ib, ja] == x.conditional["a"]
     with pytest.warns(ClusterWarning, match="exchange"):
         SimulatedSampledRig(device_from_dict(pair_data()))
+
+
+@settings(max_examples=25, deadline=None, derandomize=True)
+@given(j_mhz=st.floats(0.5, 5.0), delta_mhz=st.floats(150.0, 400.0), sign=st.sampled_from([-1, 1]),
+       alpha=st.floats(-0.3, -0.18))
+def test_hybridisation_leak_follows_first_order_theory(j_mhz, delta_mhz, sign, alpha):
+    """Over pairs (J, Δ = f_A − f_B, α_A = α_B) away from the |Δ| = |α| collisions, the
+    rig's truth for a's line on b (no classical leak) is −J/Δ with a in |0⟩ and its
+    conditional part 2Jα/(Δ(Δ + α)) (first-order Rayleigh–Schrödinger perturbation theory),
+    to within the second order, a few (J/min|denominator|)."""
+    delta = sign * delta_mhz * 1e-3
+    assume(min(abs(delta + alpha), abs(delta - alpha)) > 0.06)
+    data = pair_data(j_mhz=j_mhz, x_ab_db=None, x_ba_db=None)
+    data["qubits"][1]["f01_ghz"] = FB + delta
+    for q in data["qubits"]:
+        q["anharmonicity_ghz"] = alpha
+    x = SimRig(device_from_dict(data), drift=False).true_coupled_crosstalk("b", "a-line")
+    j = j_mhz * 1e-3
+    small = j / min(abs(delta), abs(delta + alpha), abs(delta - alpha))
+    assert abs(x.by_state[(0,)] / (-j / delta) - 1) < 3 * small
+    cond = 2 * j * alpha / (delta * (delta + alpha))
+    assert abs(x.conditional["a"] / cond - 1) < 3 * small
