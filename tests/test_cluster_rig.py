@@ -313,3 +313,33 @@ def test_hybridisation_leak_follows_first_order_theory(j_mhz, delta_mhz, sign, a
     assert abs(x.by_state[(0,)] / (-j / delta) - 1) < 3 * small
     cond = 2 * j * alpha / (delta * (delta + alpha))
     assert abs(x.conditional["a"] / cond - 1) < 3 * small
+
+
+def test_a_members_noise_shift_is_a_moved_transmon():
+    """A batch's f01 offset of a cluster member (quasi-static noise) acts exactly as that
+    transmon's frequency moved in the device file, and its thermal start is the member's."""
+    from simulated_device.qubit_noise import BatchQubitNoise
+
+    s = 0.0007  # GHz
+    rig = pair_rig()
+    fb = rig.chip.qubit("b").f01_ghz
+    tl = Timeline((Tone("b-line", 0.0, 40.0, fb, 0.2, 0.0, GAUSS),
+                   Tone("b-line", 540.0, 40.0, fb, 0.2, 0.5, GAUSS)), readout=("b",))
+    jit = np.ones((1, 1, 2), complex)
+    state = rig._drift.at(0.0)
+    noise = {"a": BatchQubitNoise(np.array([s]), 40e3, 30e3, None)}
+    p_noise = rig._tone_populations([tl], "b", state, jit, noise)
+    moved = pair_data()
+    moved["qubits"][1]["f01_ghz"] = FA + s
+    rig_m = SimRig(device_from_dict(moved), drift=False)
+    p_moved = rig_m._tone_populations([tl], "b", rig_m._drift.at(0.0), jit)
+    # Not to round-off: the readout's dressed basis is the batch's, not each run's (their
+    # difference is of order (J/Δ)²·(s/Δ)² in population).
+    assert np.max(np.abs(p_noise - p_moved)) < 1e-8
+    assert np.max(np.abs(p_noise - rig.populations([tl], "b"))) > 1e-6  # the shift mattered
+    # Thermal start of b alone (a in |0⟩): an idle readout shows it.
+    rho0 = np.diag([0.9, 0.08, 0.02]).astype(complex)
+    idle = Timeline((), readout=("b",), readout_ns=1e-3)
+    p = rig._tone_populations([idle], "b", state, jit,
+                              {"b": BatchQubitNoise(np.zeros(1), 40e3, 30e3, rho0)})
+    assert p[0] == pytest.approx([0.9, 0.08, 0.02], abs=1e-6)
