@@ -343,3 +343,15 @@ def test_a_members_noise_shift_is_a_moved_transmon():
     p = rig._tone_populations([idle], "b", state, jit,
                               {"b": BatchQubitNoise(np.zeros(1), 40e3, 30e3, rho0)})
     assert p[0] == pytest.approx([0.9, 0.08, 0.02], abs=1e-6)
+
+
+def test_a_cancellation_tone_drives_the_aggressor_conditionally():
+    """b's line (where a cancellation tone for a → b plays) drives a through the exchange;
+    the state-dependent half of that drive, (X_{b=1} − X_{b=0})/2, is J·α_B/(Δ(Δ − α_B)),
+    Δ = f_A − f_B, to first order in J (Rayleigh–Schrödinger; −27 dB for this pair)."""
+    rig = pair_rig(x_ab_db=None, x_ba_db=None)
+    x = rig.true_coupled_crosstalk("a", "b-line")
+    delta, j = FA - FB, J_MHZ * 1e-3
+    first = j * ALPHA / (delta * (delta - ALPHA))
+    assert x.conditional["b"] / 2 == pytest.approx(first, rel=0.03)
+    assert x.by_state[(0,)] == pytest.approx(j / delta, rel=0.02)  # −J/(f_B − f_A)
