@@ -231,7 +231,7 @@ def test_exchange_on_nearest_neighbours_when_asked():
     dev = device_from_dict(coupled)
     assert len(dev.exchange) == 4
     nine = device_from_dict(generate_device(FamilyParams(exchange_mhz=(1.0, 4.0)), 3))
-    with pytest.warns(ClusterWarning) as caught:  # the centre has 4 neighbours, others 3
+    with pytest.warns(ClusterWarning) as caught:  # centre: 4 neighbours, edges: 3 (cap: 2)
         SimRig(nine, drift=False)
     assert any("cluster of q4 capped at 3" in str(w.message) for w in caught)
     with pytest.raises(ValueError, match="exchange_mhz"):
