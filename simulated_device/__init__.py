@@ -10,7 +10,8 @@ What it owns:
   couplings with phases and delays, relaxation, readout errors, drift, electronics
   jitter), and the chip file a lab would write, derived from it;
 * transmon levels (:mod:`simulated_device.transmon`) and the driven, damped dynamics
-  (:mod:`simulated_device.dynamics`);
+  (:mod:`simulated_device.dynamics`); exchange-coupled clusters of a few transmons
+  (:mod:`simulated_device.cluster`) and how the rig uses them (:mod:`simulated_device.coupled`);
 * seeded drift versus simulated time (:mod:`simulated_device.drift`,
   :mod:`simulated_device.drift_state`);
 * :class:`SimRig` (:mod:`simulated_device.rig`), which runs timelines into counts.

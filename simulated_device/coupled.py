@@ -10,10 +10,10 @@ Every tone of every line drives every member with that member's own field factor
 (:meth:`simulated_device.rig.SimRig.field_factor`: its own line's gain, or the leak path's
 X), each member's tones moved by its own path delays, and the victim's level populations are
 the marginal of the cluster's final density matrix. Qubit noise acts on every member as on a
-lone qubit: its thermal start (the cluster starts in the product of the members' Gibbs
-states of their bare levels), its per-run f01 offsets and its batch T1. The readout reports
-the victim's level of the dressed state (:func:`victim_populations`). Victims without
-exchange neighbours keep the single-transmon path.
+lone qubit: its thermal start (the dressed states, populated by the product of the
+members' Gibbs populations of their labels), its per-run f01 offsets and its batch T1. The
+readout reports the victim's level of the dressed state (:func:`victim_populations`).
+Victims without exchange neighbours keep the single-transmon path.
 
 Truth of a coupled pair (:func:`coupled_crosstalk`), from the Hamiltonian alone: a tone at f
 on line ℓ drives the victim's dressed 0–1 transition (neighbours in the product state s) by
@@ -80,23 +80,29 @@ def _member_cluster(device, victim, state, noises) -> Cluster:
 
 
 def _initial_rho(cluster: Cluster, noises, runs: int) -> np.ndarray | None:
-    """Product of the members' thermal starts (None: every member in |0⟩)."""
-    parts = []
+    """Thermal start of the cluster (None: every member in |0⟩).
+
+    Each member's Gibbs populations (its own ``thermal_population``) are multiplied into the
+    population of every dressed state by its label, and the state is diagonal in the dressed
+    basis, as a thermal state of the coupled Hamiltonian is (to the labels' accuracy).
+    """
+    pops = []
     for n, L in zip(cluster.names, cluster.dims, strict=True):
         nz = (noises or {}).get(n)
+        p = np.zeros(L)
         if nz is None or nz.rho0 is None:
-            r = np.zeros((L, L), dtype=complex)
-            r[0, 0] = 1.0
+            p[0] = 1.0
         else:  # levels above the cluster's are dropped (their weight is ~e^{-βε_4})
-            r = np.array(nz.rho0[:L, :L], dtype=complex)
-            r /= np.trace(r)
-        parts.append(r)
-    if all(p[0, 0] == 1.0 for p in parts):
+            p = np.real(np.diag(nz.rho0))[:L].copy()
+            p /= p.sum()
+        pops.append(p)
+    if all(p[0] == 1.0 for p in pops):
         return None
-    rho = parts[0]
-    for p in parts[1:]:
-        rho = np.kron(rho, p)
-    return rho
+    weight = pops[0]
+    for p in pops[1:]:
+        weight = np.kron(weight, p)
+    _, vec = cluster.dressed()
+    return (vec * weight[None, :]) @ vec.conj().T
 
 
 def cluster_states(rig, victim, cols, ntones, end, state, jit, noises=None,

@@ -76,6 +76,8 @@ Device file, field by field::
     qubit_a = "q0"             # H_J/h = J·(a†b + ab†), rotating-wave (see
     qubit_b = "q1"             # simulated_device.exchange); a victim with such neighbours
     j_mhz = 3.0                # is simulated with them as one cluster; 0 < J ≤ 50 MHz
+                               # (simulated_device.coupled); the derived chip file lists
+                               # its dressed frequencies
 
 Leak paths and electronics (version 3; every field optional, each effect off without it;
 the values below are an invented example)::

@@ -41,6 +41,10 @@ How a chip is drawn
   ``t2_over_t1`` (at most 2, so T2 ≤ 2·T1); readout errors drawn per qubit.
 * **Limits.** ``[limits]`` with a per-line amplitude limit and an average-power limit; every
   line has ``full_scale_dbm``.
+* **Exchange** (off by default). With ``exchange_mhz = (lo, hi)``, hi > 0, every
+  nearest-neighbour pair (distance 1) gets an ``[[exchange]]`` J uniform in that range, drawn
+  from a stream of its own (the rest of the chip is the one drawn without it); the document
+  is then version 3 with ``[paths] envelope_delay = false`` (the leak model of version 2).
 """
 
 from __future__ import annotations
@@ -151,6 +155,7 @@ class FamilyParams:
     max_amplitude: float = 0.9
     max_average_power_dbm: float = -40.0
     full_scale_dbm: float = -25.0
+    exchange_mhz: tuple[float, float] = (0.0, 0.0)
 
     def __post_init__(self) -> None:
         problems = []
@@ -173,6 +178,8 @@ class FamilyParams:
             problems.append("step_db within ±40 dB and step_hours within 0 … 1e6 h")
         if not 0.0 < self.line_max_amplitude <= 1.0 or not 0.0 < self.max_amplitude <= 1.0:
             problems.append("amplitude limits must be within (0, 1]")
+        if not 0.0 <= self.exchange_mhz[0] <= self.exchange_mhz[1] <= 50.0:
+            problems.append("exchange_mhz must be an ordered range within 0 … 50 MHz")
         if problems:
             raise ValueError("FamilyParams: " + "; ".join(problems))
 
@@ -408,6 +415,15 @@ def generate_device(params: FamilyParams, seed: int) -> dict[str, Any]:
         "couplings": _couplings(rng, pos, params),
     }
     _add_drift(rng, doc, params)
+    if params.exchange_mhz[1] > 0.0:
+        erng = np.random.default_rng(np.random.SeedSequence([int(seed), params.n_qubits, 3]))
+        doc["version"] = 3
+        doc["paths"] = {"envelope_delay": False}
+        doc["exchange"] = [
+            {"qubit_a": f"q{a}", "qubit_b": f"q{b}",
+             "j_mhz": round(float(erng.uniform(*params.exchange_mhz)), 3) or 0.001}
+            for a in range(params.n_qubits) for b in range(a + 1, params.n_qubits)
+            if abs(np.linalg.norm(pos[a] - pos[b]) - 1.0) < 1e-9]
     return doc
 
 

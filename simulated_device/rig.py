@@ -309,7 +309,8 @@ class SimRig:
 
     def populations(self, timelines: Sequence[Timeline], victim: str) -> np.ndarray:
         """Level populations of ``victim`` after each timeline, shape (R, L): no jitter, no
-        shots, drift state at the rig's clock; nothing is checked or counted (for tests)."""
+        shots, drift state at the rig's clock; nothing is checked or counted (for tests). A
+        victim with exchange neighbours is read in the dressed basis, as :meth:`run` reads it."""
         jit = np.ones((len(timelines), 1, len(self._chip.line_names)), dtype=complex)
         return self._tone_populations(list(timelines), victim, self._drift.at(self._t_s), jit)
 

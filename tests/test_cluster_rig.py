@@ -23,6 +23,8 @@ import warnings
 import numpy as np
 import pytest
 import qutip as qt
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
 
 from simulated_device.coupled import ClusterWarning
 from simulated_device.device import device_from_dict
@@ -289,3 +291,67 @@ def test_coupled_matrix_and_the_waveform_path_warning():
     assert avg[ib, ja] == x.average and cond[ib, ja] == x.conditional["a"]
     with pytest.warns(ClusterWarning, match="exchange"):
         SimulatedSampledRig(device_from_dict(pair_data()))
+
+
+@settings(max_examples=25, deadline=None, derandomize=True)
+@given(j_mhz=st.floats(0.5, 5.0), delta_mhz=st.floats(150.0, 400.0), sign=st.sampled_from([-1, 1]),
+       alpha=st.floats(-0.3, -0.18))
+def test_hybridisation_leak_follows_first_order_theory(j_mhz, delta_mhz, sign, alpha):
+    """Over pairs (J, Δ = f_A − f_B, α_A = α_B) away from the |Δ| = |α| collisions, the
+    rig's truth for a's line on b (no classical leak) is −J/Δ with a in |0⟩ and its
+    conditional part 2Jα/(Δ(Δ + α)) (first-order Rayleigh–Schrödinger perturbation theory),
+    to within the second order, a few (J/min|denominator|)."""
+    delta = sign * delta_mhz * 1e-3
+    assume(min(abs(delta + alpha), abs(delta - alpha)) > 0.06)
+    data = pair_data(j_mhz=j_mhz, x_ab_db=None, x_ba_db=None)
+    data["qubits"][1]["f01_ghz"] = FB + delta
+    for q in data["qubits"]:
+        q["anharmonicity_ghz"] = alpha
+    x = SimRig(device_from_dict(data), drift=False).true_coupled_crosstalk("b", "a-line")
+    j = j_mhz * 1e-3
+    small = j / min(abs(delta), abs(delta + alpha), abs(delta - alpha))
+    assert abs(x.by_state[(0,)] / (-j / delta) - 1) < 3 * small
+    cond = 2 * j * alpha / (delta * (delta + alpha))
+    assert abs(x.conditional["a"] / cond - 1) < 3 * small
+
+
+def test_a_members_noise_shift_is_a_moved_transmon():
+    """A batch's f01 offset of a cluster member (quasi-static noise) acts exactly as that
+    transmon's frequency moved in the device file, and its thermal start is the member's."""
+    from simulated_device.qubit_noise import BatchQubitNoise
+
+    s = 0.0007  # GHz
+    rig = pair_rig()
+    fb = rig.chip.qubit("b").f01_ghz
+    tl = Timeline((Tone("b-line", 0.0, 40.0, fb, 0.2, 0.0, GAUSS),
+                   Tone("b-line", 540.0, 40.0, fb, 0.2, 0.5, GAUSS)), readout=("b",))
+    jit = np.ones((1, 1, 2), complex)
+    state = rig._drift.at(0.0)
+    noise = {"a": BatchQubitNoise(np.array([s]), 40e3, 30e3, None)}
+    p_noise = rig._tone_populations([tl], "b", state, jit, noise)
+    moved = pair_data()
+    moved["qubits"][1]["f01_ghz"] = FA + s
+    rig_m = SimRig(device_from_dict(moved), drift=False)
+    p_moved = rig_m._tone_populations([tl], "b", rig_m._drift.at(0.0), jit)
+    # Not to round-off: the readout's dressed basis is the batch's, not each run's (their
+    # difference is of order (J/Δ)²·(s/Δ)² in population).
+    assert np.max(np.abs(p_noise - p_moved)) < 1e-8
+    assert np.max(np.abs(p_noise - rig.populations([tl], "b"))) > 1e-6  # the shift mattered
+    # Thermal start of b alone (a in |0⟩): an idle readout shows it.
+    rho0 = np.diag([0.9, 0.08, 0.02]).astype(complex)
+    idle = Timeline((), readout=("b",), readout_ns=1e-3)
+    p = rig._tone_populations([idle], "b", state, jit,
+                              {"b": BatchQubitNoise(np.zeros(1), 40e3, 30e3, rho0)})
+    assert p[0] == pytest.approx([0.9, 0.08, 0.02], abs=1e-6)
+
+
+def test_a_cancellation_tone_drives_the_aggressor_conditionally():
+    """b's line (where a cancellation tone for a → b plays) drives a through the exchange;
+    the state-dependent half of that drive, (X_{b=1} − X_{b=0})/2, is J·α_B/(Δ(Δ − α_B)),
+    Δ = f_A − f_B, to first order in J (Rayleigh–Schrödinger; −27 dB for this pair)."""
+    rig = pair_rig(x_ab_db=None, x_ba_db=None)
+    x = rig.true_coupled_crosstalk("a", "b-line")
+    delta, j = FA - FB, J_MHZ * 1e-3
+    first = j * ALPHA / (delta * (delta - ALPHA))
+    assert x.conditional["b"] / 2 == pytest.approx(first, rel=0.03)
+    assert x.by_state[(0,)] == pytest.approx(j / delta, rel=0.02)  # −J/(f_B − f_A)

@@ -274,3 +274,26 @@ def test_a_thousand_qubit_chip_is_drawn_and_loads(tmp_path):
     assert path.stat().st_size < 20e6
     with pytest.raises(ValueError, match="accepted: 2 … 1000"):
         FamilyParams(n_qubits=1001)
+
+def test_exchange_on_nearest_neighbours_when_asked():
+    from simulated_device.coupled import ClusterWarning
+    from simulated_device.device import device_from_dict
+
+    plain = generate_device(FamilyParams(n_qubits=4), 3)
+    coupled = generate_device(FamilyParams(n_qubits=4, exchange_mhz=(1.0, 4.0)), 3)
+    assert "exchange" not in plain and plain["version"] == 2
+    assert coupled["version"] == 3 and coupled["paths"] == {"envelope_delay": False}
+    # The rest of the chip is the one drawn without exchange.
+    assert {k: v for k, v in coupled.items() if k not in ("exchange", "version", "paths")} == \
+        {k: v for k, v in plain.items() if k != "version"}
+    pairs = {(e["qubit_a"], e["qubit_b"]) for e in coupled["exchange"]}
+    assert pairs == {("q0", "q1"), ("q2", "q3"), ("q0", "q2"), ("q1", "q3")}  # 2 × 2 grid
+    assert all(1.0 <= e["j_mhz"] <= 4.0 for e in coupled["exchange"])
+    dev = device_from_dict(coupled)
+    assert len(dev.exchange) == 4
+    nine = device_from_dict(generate_device(FamilyParams(exchange_mhz=(1.0, 4.0)), 3))
+    with pytest.warns(ClusterWarning) as caught:  # centre: 4 neighbours, edges: 3 (cap: 2)
+        SimRig(nine, drift=False)
+    assert any("cluster of q4 capped at 3" in str(w.message) for w in caught)
+    with pytest.raises(ValueError, match="exchange_mhz"):
+        FamilyParams(exchange_mhz=(3.0, 1.0))
