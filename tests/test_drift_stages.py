@@ -197,3 +197,25 @@ def test_the_diffusion_upper_bound_caps_a_walk_estimated_as_none() -> None:
     assert seen_zero > 0  # the case the bound is for does occur at these errors
     with pytest.raises(Exception, match="diffusion_sigma"):
         pair_trend(hist, tolerance_db=TOL_DB, now_s=now, diffusion_sigma=-1.0)
+
+
+def _drifted(residual: float, stderr: float) -> object:
+    from types import SimpleNamespace
+
+    return SimpleNamespace(decision=RecheckDecision.DRIFTED, confident=True, tolerance_db=TOL_DB,
+                           residual=residual, residual_stderr=stderr)
+
+
+def test_a_step_is_a_residual_confidently_beyond_twice_the_tolerance() -> None:
+    from xtalkcal.drift.recheck import STEP_TAG, is_step, since_step
+
+    assert is_step(_drifted(4 * TOL, 0.1 * TOL))
+    assert not is_step(_drifted(2.1 * TOL, 0.1 * TOL))  # within 2 sigma of twice the tolerance
+    assert not is_step(_drifted(1.5 * TOL, 0.01 * TOL))  # an ordinary drift
+    # the trend starts again at the latest step entry (accepted or not)
+    hist = _walk_history(0, n=6)
+    import dataclasses
+
+    hist[3] = dataclasses.replace(hist[3], tag=STEP_TAG, verdict="rejected")
+    assert since_step(hist) == hist[3:]
+    assert since_step(hist[:3]) == hist[:3]

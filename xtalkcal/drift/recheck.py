@@ -238,6 +238,33 @@ def _analyse_pair(z: np.ndarray, signal: np.ndarray, stderr: np.ndarray,
     return out
 
 
+# A re-check whose residual is confidently above STEP_FACTOR times the tolerance found a step:
+# intervals are set so that a drifting pair is checked where its predicted residual (2σ)
+# reaches the tolerance, so twice the tolerance is a change the drift model did not
+# foresee. Its entry is tagged STEP_TAG and the pair's trend starts again from it.
+STEP_FACTOR = 2.0
+STEP_TAG = "step"
+
+
+def is_step(out: RecheckOutcome, factor: float = STEP_FACTOR) -> bool:
+    """True for a drifted re-check with ``|dX| − kσ > factor · tol`` (k: the rules'
+    ``confidence_sigma``, as in ``confident``)."""
+    if out.decision is not RecheckDecision.DRIFTED or not out.confident:
+        return False
+    tol = 10 ** (out.tolerance_db / 20)
+    return bool(out.residual - 2.0 * out.residual_stderr > factor * tol)
+
+
+def since_step(history: Iterable[LedgerEntry]) -> list[LedgerEntry]:
+    """A pair's history from its latest step (an entry tagged ``STEP_TAG``) on; all of it
+    without one. The drift before a step says nothing of the drift after it, and a step
+    taken as a random-walk increment would hold the pair at the shortest interval."""
+    entries = list(history)
+    at = max((i for i, e in enumerate(entries) if e.kind == "recheck" and e.tag == STEP_TAG),
+             default=0)
+    return entries[at:]
+
+
 def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
                    out: RecheckOutcome, amp: float, amplification: int, shots: int,
                    now: float, tolerance_db: float) -> LedgerEntry:
@@ -259,7 +286,7 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
         verdict="accepted" if ok else "rejected", reason=reason,
         measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
         software_version=f"xtalkcal {__version__}", kind="recheck",
-        tag=f"{out.decision.value}",
+        tag=STEP_TAG if is_step(out) else out.decision.value,
         # the calibration sweep this analysis rests on (curvature, couplings)
         sweep_id=stored.sweep_id)
 
@@ -582,9 +609,14 @@ class _DueRun:
         rig, schedule = self.rig, self.schedule
         pair = (c.aggressor, c.victim)
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
-        trend = pair_trend(self.ledger.history(*pair),
-                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now(),
-                           diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        if c.entry.tag == STEP_TAG:
+            previous_h = None  # a step: the pair starts again as if new
+        try:
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=self.protocol.recheck.tolerance_db,
+                               now_s=rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        except DriftInputError:  # a step whose own entry was rejected: no history yet
+            trend = None
         nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, **DUE_POLICY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
@@ -635,7 +667,8 @@ class _DueRun:
         with the trend alone); :func:`first_interval` for a pair without history."""
         settings = self.protocol.recheck
         try:
-            trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=settings.tolerance_db,
                                now_s=self.rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
         except DriftInputError:  # no usable entry (cannot happen after an accepted one)
             return first_interval(settings)
