@@ -3,8 +3,11 @@
 A re-check of a compensated pair replays the calibration's probe (same aggressor
 amplitude, same amplification K, same method) with the pair's own cancellation tone on
 and its column's other tones off (:func:`run_due`; :func:`recheck_column` can also ring
-a column's victims together with every tone on, as the verification does), and puts a
-small ring of points (plus the centre) around the stored null. The analysis and the
+a column's victims together with every tone on, as the verification does). A pair
+re-checked alone gets a cross of four points and the centre around its stored null, in
+two stages: a quarter of the protocol's shots, then as many more as bring the error of
+its residual to a quarter of its margin to the tolerance (:func:`second_stage_target`,
+at most ``MAX_SECOND_STAGE`` times the first). The analysis and the
 decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
 calibration's rule (the signal rises by a set amount), the curvature prior comes
 from refitting the pair's calibration sweep stored in the ledger.
@@ -16,7 +19,8 @@ current null, which re-centres the pair), recalibrate the columns of pairs that 
 own, free of its co-victims' drifting leak, and only the repeat counts) or drifted beyond
 doubt without a precise new null, and reschedule (a re-centred or
 recalibrated pair gets its interval from its measured drift, which the new null does not
-reset; a pair new to the schedule is first checked early). A drift that the
+reset; a pair new to the schedule is first checked early; a step, a residual confidently
+beyond twice the tolerance, starts the pair's trend and interval again). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 
 A pair whose stored compensation cannot be played within its victim line's amplitude
