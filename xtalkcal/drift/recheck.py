@@ -65,8 +65,8 @@ from xtalkcal.drift.stored_sweep import (
     take_out_co_victim_leak,
 )
 from xtalkcal.drift.trends import pair_trend
-from xtalkcal.exceptions import SafetyLimitError
-from xtalkcal.fits import RejectionReason
+from xtalkcal.exceptions import FitInputError, SafetyLimitError
+from xtalkcal.fits import RejectionReason, VerdictRules, fit_paraboloid_column
 from xtalkcal.hardware import Chip, Rig
 from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape
 from xtalkcal.store import (
@@ -295,6 +295,10 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
         sweep_id=stored.sweep_id)
 
 
+# A Stark victim due within this fraction of its interval joins a due one's shared train:
+# its re-check comes early, but it costs the train nothing but its own readout.
+SHARE_AHEAD = 0.5
+
 # A pair re-checked alone: a cross of CROSS_POINTS points about its stored null, then the
 # centre. The first stage spends FIRST_STAGE_FRACTION of the protocol's re-check shots;
 # the second is sized from the first's own error (see second_stage_target).
@@ -403,6 +407,7 @@ def recheck_column(
     key: str = "recheck",
     silent: Iterable[str] = (),
     solo: bool = False,
+    shared: bool = False,
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -428,6 +433,11 @@ def recheck_column(
         nulls): a cross of ``CROSS_POINTS`` points about its stored null and the centre, in
         two stages (:func:`second_stage_shots`), instead of ringing the calibration pass's
         co-victims together.
+    shared : bool
+        Stark victims rung together in one train have their co-victims' leak taken out with
+        the couplings fitted from these same shots (:func:`fits.fit_paraboloid_column`, a
+        ring of enough points for it), not with those stored at calibration: the couplings
+        drift too, and what the stored ones missed moved the nulls.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -444,13 +454,15 @@ def recheck_column(
             checks.append(_solo_check(rig, runner, gp, amp, settings, key))
             continue
         radius = _ring_radii(gp)
-        n = ring_points_for(len(group), settings.points)
+        fresh = shared and gp.stark and len(group) > 1
+        n = ring_points_for(len(group), _shared_points(len(group)) if fresh else settings.points)
         shots = shots_per_point(settings.shots_per_point, settings.points, n)
         pts = ring_around(gp.z_stored, radius, n)
         sig = measure_probe(runner, gp.probe, pts, shots,
                             f"{key}-{aggressor}-{'stark' if gp.stark else 'res-' + group[0]}")
         now = rig.now()
-        couplings = _pass_couplings(ledger, gp.entries[0])
+        couplings = (_fitted_couplings(group, pts, sig) if fresh
+                     else _pass_couplings(ledger, gp.entries[0]))
         tone_of = _co_victim_tones(pts, group, column, amp)
         for i, (v, e) in enumerate(zip(group, gp.entries, strict=True)):
             stderr = sig.stderr[:, i]
@@ -462,6 +474,24 @@ def recheck_column(
                                    int(sig.shots[:, i].sum()), now, settings.tolerance_db)
             checks.append(PairCheck(aggressor, v, out, entry))
     return checks
+
+
+def _shared_points(n_victims: int) -> int:
+    """Ring points of a shared Stark re-check: twice the column model's parameters per
+    victim (offset, shift, curvature and two complex terms per other tone)."""
+    return 2 * (4 + 4 * (n_victims - 1))
+
+
+def _fitted_couplings(group: list[str], pts: np.ndarray, sig) -> _Couplings | None:
+    """(victims, sources, C, σ_C) fitted from a shared re-check's own shots, or None."""
+    try:
+        fit = fit_paraboloid_column(pts.T, sig.signal.T, sig.stderr.T,
+                                    rules=VerdictRules(mismatch_pvalue=0.0))
+    except FitInputError:
+        return None
+    V = len(group)
+    C, err = fit.couplings[:, :V], fit.couplings_stderr[:, :V]
+    return tuple(group), tuple(group), C, np.where(np.isfinite(err), err, 0.0)
 
 
 def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str | None:
@@ -569,6 +599,21 @@ class _DueRun:
         return [u for (aa, u), e in self.snapshot.entries.items()
                 if aa == a and u != v and e.kind != "survey"]
 
+    def shared_group(self, a: str, due: list[str]) -> list[str]:
+        """Stark victims of ``a`` re-checked in one train: the due ones and those due within
+        ``SHARE_AHEAD`` of their interval, when there are two or more (else none)."""
+        now = self.rig.now()
+        aside = set(self.aside(a))
+
+        def soon(v: str) -> bool:
+            slot = self.schedule.slot((a, v))
+            return slot.due_s - now <= SHARE_AHEAD * slot.interval_h * 3600.0
+
+        group = [v for aa, v in self.schedule.pairs()
+                 if aa == a and v not in aside and self.in_use((a, v))
+                 and self.snapshot[(a, v)].method == "stark" and (v in due or soon(v))]
+        return group if len(group) > 1 and any(v in due for v in group) else []
+
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
         """Re-check ``victims`` of ``a``, each alone, and act on each outcome; the broken ones.
 
@@ -585,7 +630,18 @@ class _DueRun:
         """
         checks: list[PairCheck] = []
         before = self.runner.shots_executed
-        for v in victims:
+        shared = [] if confirming else self.shared_group(a, victims)
+        if shared:
+            try:
+                checks += recheck_column(self.rig, self.protocol, self.snapshot, a, shared,
+                                         runner=self.runner, ledger=self.ledger,
+                                         key=f"{key}-shared",
+                                         silent=self.aside(a) + [u for u in self.co_victims(a, "")
+                                                                 if u not in shared],
+                                         shared=True)
+            except SafetyLimitError:  # each alone below, where a refusal sets one pair aside
+                shared = []
+        for v in (v for v in victims if v not in shared):
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
                                          runner=self.runner, ledger=self.ledger,
