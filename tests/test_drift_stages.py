@@ -197,3 +197,51 @@ def test_the_diffusion_upper_bound_caps_a_walk_estimated_as_none() -> None:
     assert seen_zero > 0  # the case the bound is for does occur at these errors
     with pytest.raises(Exception, match="diffusion_sigma"):
         pair_trend(hist, tolerance_db=TOL_DB, now_s=now, diffusion_sigma=-1.0)
+
+
+def _drifted(residual: float, stderr: float) -> object:
+    from types import SimpleNamespace
+
+    return SimpleNamespace(decision=RecheckDecision.DRIFTED, confident=True, tolerance_db=TOL_DB,
+                           residual=residual, residual_stderr=stderr)
+
+
+def test_a_step_is_a_residual_confidently_beyond_twice_the_tolerance() -> None:
+    from xtalkcal.drift.recheck import STEP_TAG, is_step, since_step
+
+    assert is_step(_drifted(4 * TOL, 0.1 * TOL))
+    assert not is_step(_drifted(2.1 * TOL, 0.1 * TOL))  # within 2 sigma of twice the tolerance
+    assert not is_step(_drifted(1.5 * TOL, 0.01 * TOL))  # an ordinary drift
+    # the trend starts again at the latest step entry (accepted or not)
+    hist = _walk_history(0, n=6)
+    import dataclasses
+
+    hist[3] = dataclasses.replace(hist[3], tag=STEP_TAG, verdict="rejected")
+    assert since_step(hist) == hist[3:]
+    assert since_step(hist[:3]) == hist[:3]
+
+
+def test_stark_victims_due_together_or_soon_share_one_train() -> None:
+    from types import SimpleNamespace
+
+    from xtalkcal.drift import Schedule
+    from xtalkcal.drift.recheck import SHARE_AHEAD, _DueRun
+    from xtalkcal.measure import RecheckSettings
+
+    settings = RecheckSettings(tolerance_db=TOL_DB, interval_hours=12.0)
+    schedule = Schedule(settings)
+    h = 3600.0
+    for v, due_h, iv in (("q0", 10.0, 4.0), ("q2", 10.0 + SHARE_AHEAD * 4.0 - 0.1, 4.0),
+                         ("q3", 10.0 + SHARE_AHEAD * 4.0 + 0.1, 4.0), ("q4", 10.0, 4.0)):
+        schedule.calibrated(("q1-line", v), (due_h - iv) * h, interval_h=iv)
+    methods = {"q0": "stark", "q2": "stark", "q3": "stark", "q4": "leakage"}
+    snap = {("q1-line", v): SimpleNamespace(kind="null", method=m) for v, m in methods.items()}
+    run = _DueRun(SimpleNamespace(now=lambda: 10.0 * h), None, None, schedule, None, print,
+                  None, None)
+    run.snapshot = snap
+    # q0 is due, q2 is due within SHARE_AHEAD of its interval, q3 is not, q4 is not Stark
+    assert run.shared_group("q1-line", ["q0", "q4"]) == ["q0", "q2"]
+    # a lone Stark victim, or none due, shares nothing
+    assert run.shared_group("q1-line", ["q4"]) == []
+    schedule.calibrated(("q1-line", "q2"), 10.0 * h, interval_h=4.0)
+    assert run.shared_group("q1-line", ["q0"]) == []

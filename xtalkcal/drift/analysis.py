@@ -374,6 +374,16 @@ def _widened_prior(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules
     return prior[0], max(prior[1], abs(data_k - prior[0]))
 
 
+def _refit_widened(inp: _RecheckInput, prior: tuple[float, float]
+                   ) -> tuple[_RecheckInput, _RingFit]:
+    """The fit again with the widened prior (the data alone determined the paraboloid, so a
+    wider prior leaves it determined)."""
+    inp = dataclasses.replace(inp, prior=prior)
+    fit = _fit_ring(inp)
+    assert fit.coef is not None
+    return inp, fit
+
+
 def _broken_by(inp: _RecheckInput, fit: _RingFit, est: _Estimate, rules: RecheckRules
                ) -> tuple[str, RejectionReason] | None:
     """Rules 2-5 of :func:`analyse_recheck` (and non-finite numbers): why the re-check is
@@ -558,11 +568,7 @@ def analyse_recheck(
         )
     widened = _widened_prior(inp, fit, rules)
     if widened is not None:
-        inp = dataclasses.replace(inp, prior=widened)
-        fit = _fit_ring(inp)
-        if fit.coef is None:  # cannot happen: the data alone determined the paraboloid
-            return _outcome(inp, RecheckDecision.BROKEN, "the widened fit is degenerate",
-                            RejectionReason.FIT_FAILED)
+        inp, fit = _refit_widened(inp, widened)
     est = _estimate(inp, fit, rules)
     broken = _broken_by(inp, fit, est, rules)
     if broken is not None:

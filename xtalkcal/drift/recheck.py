@@ -3,8 +3,11 @@
 A re-check of a compensated pair replays the calibration's probe (same aggressor
 amplitude, same amplification K, same method) with the pair's own cancellation tone on
 and its column's other tones off (:func:`run_due`; :func:`recheck_column` can also ring
-a column's victims together with every tone on, as the verification does), and puts a
-small ring of points (plus the centre) around the stored null. The analysis and the
+a column's victims together with every tone on, as the verification does). A pair
+re-checked alone gets a cross of four points and the centre around its stored null, in
+two stages: a quarter of the protocol's shots, then as many more as bring the error of
+its residual to a quarter of its margin to the tolerance (:func:`second_stage_target`,
+at most ``MAX_SECOND_STAGE`` times the first). The analysis and the
 decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
 calibration's rule (the signal rises by a set amount), the curvature prior comes
 from refitting the pair's calibration sweep stored in the ledger.
@@ -16,7 +19,8 @@ current null, which re-centres the pair), recalibrate the columns of pairs that 
 own, free of its co-victims' drifting leak, and only the repeat counts) or drifted beyond
 doubt without a precise new null, and reschedule (a re-centred or
 recalibrated pair gets its interval from its measured drift, which the new null does not
-reset; a pair new to the schedule is first checked early). A drift that the
+reset; a pair new to the schedule is first checked early; a step, a residual confidently
+beyond twice the tolerance, starts the pair's trend and interval again). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 
 A pair whose stored compensation cannot be played within its victim line's amplitude
@@ -61,8 +65,8 @@ from xtalkcal.drift.stored_sweep import (
     take_out_co_victim_leak,
 )
 from xtalkcal.drift.trends import pair_trend
-from xtalkcal.exceptions import SafetyLimitError
-from xtalkcal.fits import RejectionReason
+from xtalkcal.exceptions import FitInputError, SafetyLimitError
+from xtalkcal.fits import RejectionReason, VerdictRules, fit_paraboloid_column
 from xtalkcal.hardware import Chip, Rig
 from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape
 from xtalkcal.store import (
@@ -238,6 +242,33 @@ def _analyse_pair(z: np.ndarray, signal: np.ndarray, stderr: np.ndarray,
     return out
 
 
+# A re-check whose residual is confidently above STEP_FACTOR times the tolerance found a step:
+# intervals are set so that a drifting pair is checked where its predicted residual (2σ)
+# reaches the tolerance, so twice the tolerance is a change the drift model did not
+# foresee. Its entry is tagged STEP_TAG and the pair's trend starts again from it.
+STEP_FACTOR = 2.0
+STEP_TAG = "step"
+
+
+def is_step(out: RecheckOutcome, factor: float = STEP_FACTOR) -> bool:
+    """True for a drifted re-check with ``|dX| − kσ > factor · tol`` (k: the rules'
+    ``confidence_sigma``, as in ``confident``)."""
+    if out.decision is not RecheckDecision.DRIFTED or not out.confident:
+        return False
+    tol = 10 ** (out.tolerance_db / 20)
+    return bool(out.residual - 2.0 * out.residual_stderr > factor * tol)
+
+
+def since_step(history: Iterable[LedgerEntry]) -> list[LedgerEntry]:
+    """A pair's history from its latest step (an entry tagged ``STEP_TAG``) on; all of it
+    without one. The drift before a step says nothing of the drift after it, and a step
+    taken as a random-walk increment would hold the pair at the shortest interval."""
+    entries = list(history)
+    at = max((i for i, e in enumerate(entries) if e.kind == "recheck" and e.tag == STEP_TAG),
+             default=0)
+    return entries[at:]
+
+
 def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
                    out: RecheckOutcome, amp: float, amplification: int, shots: int,
                    now: float, tolerance_db: float) -> LedgerEntry:
@@ -259,10 +290,14 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
         verdict="accepted" if ok else "rejected", reason=reason,
         measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
         software_version=f"xtalkcal {__version__}", kind="recheck",
-        tag=f"{out.decision.value}",
+        tag=STEP_TAG if is_step(out) else out.decision.value,
         # the calibration sweep this analysis rests on (curvature, couplings)
         sweep_id=stored.sweep_id)
 
+
+# A Stark victim due within this fraction of its interval joins a due one's shared train:
+# its re-check comes early, but it costs the train nothing but its own readout.
+SHARE_AHEAD = 0.5
 
 # A pair re-checked alone: a cross of CROSS_POINTS points about its stored null, then the
 # centre. The first stage spends FIRST_STAGE_FRACTION of the protocol's re-check shots;
@@ -372,6 +407,7 @@ def recheck_column(
     key: str = "recheck",
     silent: Iterable[str] = (),
     solo: bool = False,
+    shared: bool = False,
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -397,6 +433,11 @@ def recheck_column(
         nulls): a cross of ``CROSS_POINTS`` points about its stored null and the centre, in
         two stages (:func:`second_stage_shots`), instead of ringing the calibration pass's
         co-victims together.
+    shared : bool
+        Stark victims rung together in one train have their co-victims' leak taken out with
+        the couplings fitted from these same shots (:func:`fits.fit_paraboloid_column`, a
+        ring of enough points for it), not with those stored at calibration: the couplings
+        drift too, and what the stored ones missed moved the nulls.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -413,13 +454,15 @@ def recheck_column(
             checks.append(_solo_check(rig, runner, gp, amp, settings, key))
             continue
         radius = _ring_radii(gp)
-        n = ring_points_for(len(group), settings.points)
+        fresh = shared and gp.stark and len(group) > 1
+        n = ring_points_for(len(group), _shared_points(len(group)) if fresh else settings.points)
         shots = shots_per_point(settings.shots_per_point, settings.points, n)
         pts = ring_around(gp.z_stored, radius, n)
         sig = measure_probe(runner, gp.probe, pts, shots,
                             f"{key}-{aggressor}-{'stark' if gp.stark else 'res-' + group[0]}")
         now = rig.now()
-        couplings = _pass_couplings(ledger, gp.entries[0])
+        couplings = (_fitted_couplings(group, pts, sig) if fresh
+                     else _pass_couplings(ledger, gp.entries[0]))
         tone_of = _co_victim_tones(pts, group, column, amp)
         for i, (v, e) in enumerate(zip(group, gp.entries, strict=True)):
             stderr = sig.stderr[:, i]
@@ -431,6 +474,24 @@ def recheck_column(
                                    int(sig.shots[:, i].sum()), now, settings.tolerance_db)
             checks.append(PairCheck(aggressor, v, out, entry))
     return checks
+
+
+def _shared_points(n_victims: int) -> int:
+    """Ring points of a shared Stark re-check: twice the column model's parameters per
+    victim (offset, shift, curvature and two complex terms per other tone)."""
+    return 2 * (4 + 4 * (n_victims - 1))
+
+
+def _fitted_couplings(group: list[str], pts: np.ndarray, sig) -> _Couplings | None:
+    """(victims, sources, C, σ_C) fitted from a shared re-check's own shots, or None."""
+    try:
+        fit = fit_paraboloid_column(pts.T, sig.signal.T, sig.stderr.T,
+                                    rules=VerdictRules(mismatch_pvalue=0.0))
+    except FitInputError:
+        return None
+    V = len(group)
+    C, err = fit.couplings[:, :V], fit.couplings_stderr[:, :V]
+    return tuple(group), tuple(group), C, np.where(np.isfinite(err), err, 0.0)
 
 
 def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str | None:
@@ -538,6 +599,21 @@ class _DueRun:
         return [u for (aa, u), e in self.snapshot.entries.items()
                 if aa == a and u != v and e.kind != "survey"]
 
+    def shared_group(self, a: str, due: list[str]) -> list[str]:
+        """Stark victims of ``a`` re-checked in one train: the due ones and those due within
+        ``SHARE_AHEAD`` of their interval, when there are two or more (else none)."""
+        now = self.rig.now()
+        aside = set(self.aside(a))
+
+        def soon(v: str) -> bool:
+            slot = self.schedule.slot((a, v))
+            return slot.due_s - now <= SHARE_AHEAD * slot.interval_h * 3600.0
+
+        group = [v for aa, v in self.schedule.pairs()
+                 if aa == a and v not in aside and self.in_use((a, v))
+                 and self.snapshot[(a, v)].method == "stark" and (v in due or soon(v))]
+        return group if len(group) > 1 and any(v in due for v in group) else []
+
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
         """Re-check ``victims`` of ``a``, each alone, and act on each outcome; the broken ones.
 
@@ -554,7 +630,18 @@ class _DueRun:
         """
         checks: list[PairCheck] = []
         before = self.runner.shots_executed
-        for v in victims:
+        shared = [] if confirming else self.shared_group(a, victims)
+        if shared:
+            try:
+                checks += recheck_column(self.rig, self.protocol, self.snapshot, a, shared,
+                                         runner=self.runner, ledger=self.ledger,
+                                         key=f"{key}-shared",
+                                         silent=self.aside(a) + [u for u in self.co_victims(a, "")
+                                                                 if u not in shared],
+                                         shared=True)
+            except SafetyLimitError:  # each alone below, where a refusal sets one pair aside
+                shared = []
+        for v in (v for v in victims if v not in shared):
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
                                          runner=self.runner, ledger=self.ledger,
@@ -582,9 +669,14 @@ class _DueRun:
         rig, schedule = self.rig, self.schedule
         pair = (c.aggressor, c.victim)
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
-        trend = pair_trend(self.ledger.history(*pair),
-                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now(),
-                           diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        if c.entry.tag == STEP_TAG:
+            previous_h = None  # a step: the pair starts again as if new
+        try:
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=self.protocol.recheck.tolerance_db,
+                               now_s=rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        except DriftInputError:  # a step whose own entry was rejected: no history yet
+            trend = None
         nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, **DUE_POLICY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
@@ -635,7 +727,8 @@ class _DueRun:
         with the trend alone); :func:`first_interval` for a pair without history."""
         settings = self.protocol.recheck
         try:
-            trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=settings.tolerance_db,
                                now_s=self.rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
         except DriftInputError:  # no usable entry (cannot happen after an accepted one)
             return first_interval(settings)

@@ -348,6 +348,13 @@ class PairTrend:
         }
 
 
+def _nonnegative(name: str, value: float) -> float:
+    v = _finite_real(name, value)
+    if v < 0:
+        raise DriftInputError(f"{name} must be >= 0, got {value!r}")
+    return v
+
+
 _HORIZON_H = 1e5  # prediction horizon: beyond ~11 years "never" is the honest answer
 
 
@@ -443,10 +450,8 @@ def pair_trend(
     frequency_tolerance_ghz : float
         Entries within this of the latest entry's frequency are used, GHz.
     diffusion_sigma : float
-        Predict with each diffusion constant raised by this many standard errors (>= 0). A
-        random walk whose steps are not large against the entries' errors is often
-        estimated as D = 0, and a prediction from that lets the interval grow while the
-        walk goes on; the upper bound does not.
+        Predict with each diffusion raised by this many stderrs (>= 0): a walk small against
+        the entries' errors is often estimated as D = 0; its upper bound is not.
 
     Returns
     -------
@@ -505,10 +510,8 @@ def pair_trend(
         phase=phase_fit,
         magnitude=mag_fit,
         tolerance_db=tol_db,
-        diffusion_sigma=_finite_real("diffusion_sigma", diffusion_sigma),
+        diffusion_sigma=_nonnegative("diffusion_sigma", diffusion_sigma),
     )
-    if trend.diffusion_sigma < 0:
-        raise DriftInputError(f"diffusion_sigma must be >= 0, got {diffusion_sigma!r}")
     if phase_fit is None:
         return trend
     hours = _hours_to_tolerance(trend, _lin(tol_db))
