@@ -18,6 +18,11 @@ on), each timeline a DRAG pulse on the victim's line and a flat-top pulse on the
 line that reach both transmons (own gain and a leak), 60 ns; density matrices compared.
 Target ≥ 10× at ≤ 1e-6. Both ratios are printed side by side at the end.
 
+Last, what exchange costs a whole chip: ``SimRig`` on the bundled demo chip and on the same
+chip with J on every grid edge (clusters of 3 transmons), the same 10-pulse trains read on
+the centre qubit; time per timeline of each and their ratio (no target: it says whether a
+chip with exchange can stand in for the demo chip; measured ~100× on two shared cores).
+
 Run:  PYTHONPATH=. python benchmarks/bench_device.py [--subset 20] [--scan] [--cold]
       PYTHONPATH=. python benchmarks/bench_device.py --start-up
 
@@ -182,6 +187,46 @@ def qutip_cluster(cluster, tones, r: int) -> np.ndarray:
     return res.states[-1].full()
 
 
+def bench_coupled_rig(n: int = 8) -> float:
+    """Time per timeline of SimRig on the demo chip alone and with exchange; their ratio."""
+    import copy
+    import warnings
+
+    import tomllib
+
+    from simulated_device import SimRig, demo_device_path
+    from simulated_device.device import device_from_dict
+    from xtalkcal.hardware import Envelope, Timeline, Tone
+
+    with open(demo_device_path(), "rb") as fh:
+        plain = tomllib.load(fh)
+    coupled = copy.deepcopy(plain)
+    coupled["version"] = 3
+    coupled["paths"] = {"envelope_delay": False}
+    edges = [(0, 1), (1, 2), (3, 4), (4, 5), (6, 7), (7, 8), (0, 3), (3, 6), (1, 4), (4, 7),
+             (2, 5), (5, 8)]
+    coupled["exchange"] = [{"qubit_a": f"q{a}", "qubit_b": f"q{b}", "j_mhz": 2.0 + 0.25 * (k % 5)}
+                           for k, (a, b) in enumerate(edges)]
+    env = Envelope("gaussian", sigma_ns=8.0)
+    per = {}
+    for label, doc in (("alone", plain), ("with exchange", coupled)):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # the capped clusters are expected here
+            rig = SimRig(device_from_dict(doc), drift=False)
+        f = rig.chip.qubit("q0").f01_ghz
+        tls = [Timeline(tuple(Tone("q0-line", 45.0 * k, 40.0, f, 0.3, 0.1 * r, env)
+                              for k in range(10)), readout=("q4",)) for r in range(n)]
+        rig.populations(tls[:2], "q4")
+        t0 = time.perf_counter()
+        rig.populations(tls, "q4")
+        per[label] = (time.perf_counter() - t0) / n
+    ratio = per["with exchange"] / per["alone"]
+    print(f"\nSimRig, demo chip, 10-pulse train read on q4: alone {per['alone'] * 1e3:.1f} "
+          f"ms/timeline, with exchange on every edge {per['with exchange'] * 1e3:.0f} "
+          f"ms/timeline: {ratio:.0f}x slower")
+    return ratio
+
+
 def bench_cluster(n_runs: int, n_subset: int) -> tuple[float, float]:
     """Cluster against QuTiP on one batch; returns (ratio at 1 thread, max |Δρ|)."""
     import numba
@@ -334,6 +379,8 @@ def main(argv: list[str] | None = None) -> int:
     print(f"\nside by side: single transmon {q_per / per1:.0f}x (target ≥ {TARGET_RATIO:.0f}x), "
           f"coupled cluster {c_ratio:.0f}x (target ≥ {TARGET_CLUSTER_RATIO:.0f}x), both 1 thread; "
           f"max deviations {dev:.1e} and {c_dev:.1e}")
+
+    bench_coupled_rig()
 
     if args.scan:
         print("\nStepControl scan, 1 thread (max |ΔP| against the QuTiP subset, dop853):")
