@@ -631,6 +631,7 @@ class _DueRun:
         checks: list[PairCheck] = []
         before = self.runner.shots_executed
         shared = [] if confirming else self.shared_group(a, victims)
+        short: set[str] = set()
         if shared:
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, shared,
@@ -641,7 +642,15 @@ class _DueRun:
                                          shared=True)
             except SafetyLimitError:  # each alone below, where a refusal sets one pair aside
                 shared = []
-        for v in (v for v in victims if v not in shared):
+            # A due victim the shared train did not measure to its second-stage target (a
+            # weak responder next to strong ones) is re-checked alone, in two stages.
+            tol_db = self.protocol.recheck.tolerance_db
+            short = {c.victim for c in checks
+                     if residual_axis(c.outcome) > second_stage_target(c.outcome.residual,
+                                                                       tol_db)}
+            checks = [c for c in checks if c.victim not in short]
+            shared = [v for v in shared if v not in short]
+        for v in (v for v in victims if v not in shared):  # a not-due one short: left for later
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
                                          runner=self.runner, ledger=self.ledger,
