@@ -34,6 +34,8 @@ tolerance. Targets: at the demo drift A keeps ≥ 99 % of the samples within tol
 ≤ 0.5× its shots; the step is caught at the first re-check after it.
 
 The two policies of a case run in two processes at once (``--jobs 1`` runs them in turn).
+``XTALKCAL_BENCH_SHARE_STARK=1`` in the environment runs policy A with ``run_due``'s
+``share_stark`` (a column's Stark victims due together re-checked in one train).
 
 Usage::
 
@@ -79,6 +81,7 @@ DRIFT_LEVELS = {
 }
 
 Pair = tuple[str, str]
+SHARE_STARK = os.environ.get("XTALKCAL_BENCH_SHARE_STARK", "") == "1"  # run_due's option
 
 
 @dataclass
@@ -155,7 +158,7 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
             if due_s >= end_s:
                 break
             rig.wait(max(0.0, due_s - rig.now()))
-            rep = run_due(rig, proto, ledger, schedule, runner=runner)
+            rep = run_due(rig, proto, ledger, schedule, runner=runner, share_stark=SHARE_STARK)
             run.due_calls += 1
             run.recheck_shots += rep.recheck_shots
             run.recal_shots += rep.recalibration_shots

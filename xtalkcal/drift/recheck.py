@@ -541,6 +541,7 @@ class _DueRun:
     report: DueReport
     snapshot: MatrixSnapshot  # the ledger's current matrix when the run began
     recalibrate: set[str] = field(default_factory=set)
+    share_stark: bool = False  # see run_due
 
     def in_use(self, pair: Pair) -> bool:
         """Compensated now: its current entry is a null or a re-check, not a survey."""
@@ -630,7 +631,8 @@ class _DueRun:
         """
         checks: list[PairCheck] = []
         before = self.runner.shots_executed
-        shared = [] if confirming else self.shared_group(a, victims)
+        shared = [] if confirming or not self.share_stark else self.shared_group(a, victims)
+        short: set[str] = set()
         if shared:
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, shared,
@@ -641,7 +643,15 @@ class _DueRun:
                                          shared=True)
             except SafetyLimitError:  # each alone below, where a refusal sets one pair aside
                 shared = []
-        for v in (v for v in victims if v not in shared):
+            # A due victim the shared train did not measure to its second-stage target (a
+            # weak responder next to strong ones) is re-checked alone, in two stages.
+            tol_db = self.protocol.recheck.tolerance_db
+            short = {c.victim for c in checks
+                     if residual_axis(c.outcome) > second_stage_target(c.outcome.residual,
+                                                                       tol_db)}
+            checks = [c for c in checks if c.victim not in short]
+            shared = [v for v in shared if v not in short]
+        for v in (v for v in victims if v not in shared):  # a not-due one short: left for later
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
                                          runner=self.runner, ledger=self.ledger,
@@ -745,18 +755,25 @@ def run_due(
     *,
     runner: BatchRunner | None = None,
     log: Callable[[str], None] | None = None,
+    share_stark: bool = False,
 ) -> DueReport:
     """Do whatever is due now: re-checks, re-centring, recalibrations; then reschedule.
 
     Returns a :class:`DueReport`. Ledger commits are made as work completes, so an
     interrupted run loses at most the column in flight.
+
+    With ``share_stark`` the Stark victims of one aggressor that are due together (or due
+    within ``SHARE_AHEAD`` of their interval) are re-checked in one train
+    (:meth:`_DueRun.shared_group`, ``recheck_column(..., shared=True)``). Off by default:
+    on the drift bench's generated chips the early checks it brings cost more than the
+    shared train saved (see DEVELOPERS.md).
     """
     say = log or (lambda s: None)
     runner = runner or BatchRunner(rig)
     start_shots = runner.shots_executed
     now = rig.now()
     run = _DueRun(rig, protocol, ledger, schedule, runner, say, DueReport(now),
-                  ledger.current())
+                  ledger.current(), share_stark=share_stark)
     run.take_stock()
     run.set_aside_unplayable(now)
     due = schedule.due(now)
