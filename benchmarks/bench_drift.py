@@ -47,6 +47,7 @@ from __future__ import annotations
 import argparse
 import math
 import os
+import re
 import tempfile
 import time
 from collections import Counter
@@ -94,11 +95,13 @@ class PolicyRun:
     calibrations: int = 0  # full column-set calibrations (policy B), initial included
     # Policy A: one row per re-checked pair: (t_s, pair, decision, residual_db, accepted,
     # next interval h, the outcome's reason, the entry's reason, reduced chi-square, null
-    # shift in ring radii).
+    # shift in ring radii, the signal shots behind the re-check).
     checks: list[tuple] = field(default_factory=list)
     recentred: list[tuple[float, Pair]] = field(default_factory=list)
     recalibrated: list[tuple[float, str]] = field(default_factory=list)
     due_calls: int = 0
+    recheck_shots: int = 0  # policy A: re-checks (repeats included)
+    recal_shots: int = 0  # policy A: column recalibrations
     triggers: list[str] = field(default_factory=list)  # pairs behind A's recalibrations
 
 
@@ -154,6 +157,8 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
             rig.wait(max(0.0, due_s - rig.now()))
             rep = run_due(rig, proto, ledger, schedule, runner=runner)
             run.due_calls += 1
+            run.recheck_shots += rep.recheck_shots
+            run.recal_shots += rep.recalibration_shots
             for c in rep.checked:
                 pair = (c.aggressor, c.victim)
                 slot = schedule.slot(pair) if pair in schedule else None
@@ -163,6 +168,7 @@ def run_policy(name: str, device: str | dict, columns: list[str], days: float, s
                     slot.interval_h if slot else math.nan, c.outcome.reason, c.entry.reason,
                     float(c.outcome.reduced_chi2),
                     float(abs(c.outcome.null_shift) / c.outcome.probe_radius),
+                    int(c.entry.shots),
                 ))
             run.recentred += [(rep.now_s, p) for p in rep.recentred]
             run.recalibrated += [(rep.now_s, a) for a in rep.recalibrated]
@@ -312,10 +318,16 @@ class Case:
         }
 
 
+def _line_number(line: str) -> int:
+    """The qubit number in a line's name (``q12-line`` → 12), for a stable order."""
+    m = re.search(r"\d+", line)
+    return int(m.group()) if m else -1
+
+
 def choose_columns(doc: dict, n: int) -> list[str]:
     """The stepped line first, then the lines with the most couplings of |X| ≥ −40 dB."""
     strong = Counter(c["line"] for c in doc["couplings"] if c["crosstalk_db"] >= -40.0)
-    order = sorted(strong, key=lambda line: (-strong[line], int(line[1:])))
+    order = sorted(strong, key=lambda line: (-strong[line], _line_number(line)))
     first = [s["line"] for s in doc.get("steps", [])]
     return list(dict.fromkeys(first + order))[:n]
 
@@ -365,6 +377,11 @@ def print_case(case: Case, detail: bool) -> None:
           + ", ".join(f"{k} {n}" for k, n in sorted(decisions.items()))
           + f"; {case.rejected()} entries rejected), {len(runA.recentred)} re-centrings, "
           f"{len(runA.recalibrated)} column recalibrations; shots(A)/shots(B) = {case.ratio:.3f}")
+    n_checks = max(len(runA.checks), 1)
+    print(f"  A's shots: initial {runA.initial_shots:,}, re-checks {runA.recheck_shots:,} "
+          f"({runA.recheck_shots / n_checks:,.0f} per re-check), recalibrations "
+          f"{runA.recal_shots:,}; B's: {runB.calibrations} calibrations of "
+          f"{runB.shots / max(runB.calibrations, 1):,.0f} on average")
     if runA.triggers:
         print("  recalibrations triggered by: " + ", ".join(
             f"{k} ×{n}" for k, n in Counter(runA.triggers).most_common()))
@@ -386,13 +403,18 @@ def print_case(case: Case, detail: bool) -> None:
     for c in runA.checks:
         intervals.setdefault(c[1], []).append(c[5])
     per_checks = Counter(c[1] for c in runA.checks)
-    print(f"  {'pair':<10}{'A within':>10}{'A worst':>10}{'checks':>8}{'last interval':>15}"
+    per_shots = Counter()
+    for c in runA.checks:
+        per_shots[c[1]] += c[10]
+    print(f"  {'pair':<10}{'A within':>10}{'A worst':>10}{'checks':>8}{'shots/check':>12}"
+          f"{'last interval':>15}"
           f"{'B within':>10}{'B worst':>10}{'B fresh med/worst':>19}")
     for p in pairs:
         iv = intervals.get(p, [math.nan])[-1]
         fl = case.floorB[p]
         print(f"  {p[0] + '→' + p[1]:<10}{100 * np.mean(case.resA[p] <= tol):>9.2f}%"
-              f"{np.max(case.resA[p]):>9.1f} {per_checks[p]:>7d}{iv:>13.1f} h"
+              f"{np.max(case.resA[p]):>9.1f} {per_checks[p]:>7d}"
+              f"{per_shots[p] / max(per_checks[p], 1):>12,.0f}{iv:>13.1f} h"
               f"{100 * np.mean(case.resB[p] <= tol):>9.2f}%{np.max(case.resB[p]):>9.1f} "
               f"{np.median(fl):>10.1f}/{np.max(fl):.1f}")
     for p in pairs:

@@ -10,7 +10,8 @@ What it owns:
   couplings with phases and delays, relaxation, readout errors, drift, electronics
   jitter), and the chip file a lab would write, derived from it;
 * transmon levels (:mod:`simulated_device.transmon`) and the driven, damped dynamics
-  (:mod:`simulated_device.dynamics`);
+  (:mod:`simulated_device.dynamics`); exchange-coupled clusters of a few transmons
+  (:mod:`simulated_device.cluster`) and how the rig uses them (:mod:`simulated_device.coupled`);
 * seeded drift versus simulated time (:mod:`simulated_device.drift`,
   :mod:`simulated_device.drift_state`);
 * :class:`SimRig` (:mod:`simulated_device.rig`), which runs timelines into counts.
@@ -35,6 +36,8 @@ __all__ = [
     "load_device",
     "device_from_dict",
     "demo_device_path",
+    "minimal_device_path",
+    "hard_device_path",
     # the rig
     "SimRig",
     # physics
@@ -51,3 +54,15 @@ __all__ = [
 def demo_device_path() -> str:
     """Path of the bundled invented 9-qubit demo device file."""
     return str(resources.files("simulated_device") / "data" / "grid9_device.toml")
+
+
+def minimal_device_path() -> str:
+    """Path of the bundled minimal device file: two qubits, every hardware-like effect off,
+    each field explained in the file."""
+    return str(resources.files("simulated_device") / "data" / "minimal_device.toml")
+
+
+def hard_device_path() -> str:
+    """Path of the bundled invented hard 4-qubit device: every hardware-like effect on, several
+    strongly (the scenario is written at the top of the file)."""
+    return str(resources.files("simulated_device") / "data" / "square4_hard_device.toml")

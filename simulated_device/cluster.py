@@ -21,7 +21,8 @@ neighbours; :func:`build_cluster` says in ``Cluster.warning`` which were left ou
 here (and said so in the warning).
 
 Method (compiled with numba, parallel over runs). A run's time axis is cut at every tone
-start and end and at the ends of flat-top ramps.
+start and end and at the ends of flat-top ramps (it starts before 0 where a path delay moves a
+tone there, as in :mod:`simulated_device.dynamics`).
 
 * Where every active tone shares one frequency and has a constant envelope (square tones,
   flat tops, idle waits), H is static in the frame of that frequency: its propagator over a
@@ -47,6 +48,7 @@ from dataclasses import dataclass
 
 import numba as nb
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from simulated_device.dynamics import DRAG, FLATTOP, GAUSSIAN, SQUARE, ToneBatch, _envelope
 from simulated_device.exchange import CLUSTER_MAX_QUBITS, exchange_neighbours
@@ -396,11 +398,11 @@ def _evolve_one(rho, energies, nvec, hj, raise_ops, coupled, g1, gphi, dims, str
     cuts = [0.0, end]
     for k in range(n_tones):
         for t in (start[k], start[k] + dur[k]):
-            if 0.0 < t < end:
+            if t < end:  # a tone moved before 0 by a path delay starts there
                 cuts.append(t)
         if code[k] == FLATTOP and ramp[k] > 0.0:
             for t in (start[k] + ramp[k], start[k] + dur[k] - ramp[k]):
-                if 0.0 < t < end:
+                if t < end:
                     cuts.append(t)
     grid = np.unique(np.array(cuts))
     active = np.zeros(nq, dtype=np.bool_)
@@ -465,7 +467,7 @@ def _evolve_batch(rho0, energies, nvec, hj, raise_ops, coupled, g1, gphi, dims, 
     for r in nb.prange(R):
         rho = rho0[r].copy()
         tones = (start[r], dur[r], freq[r], code[r], sigma[r], drag[r], ramp[r])
-        _evolve_one(rho, energies, nvec, hj, raise_ops, coupled, g1, gphi, dims, strides,
+        _evolve_one(rho, energies[r], nvec, hj, raise_ops, coupled, g1, gphi, dims, strides,
                     tones, n_tones[r], omega[r], end[r], f0, out_phase, ctrl)
         out[r] = rho
     return out
@@ -488,7 +490,8 @@ def _initial_states(cluster: Cluster, rho0, runs: int) -> np.ndarray:
 
 def evolve_cluster(cluster: Cluster, tones: ClusterTones, rho0=None, *,
                    control: ClusterControl | None = None,
-                   frame_ghz: Sequence[float] | None = None) -> np.ndarray:
+                   frame_ghz: Sequence[float] | None = None,
+                   shifts_ghz: np.ndarray | None = None) -> np.ndarray:
     """Final density matrices (R, d, d) of R runs of the cluster under ``tones``.
 
     Parameters
@@ -502,6 +505,9 @@ def evolve_cluster(cluster: Cluster, tones: ClusterTones, rho0=None, *,
     control : ClusterControl, optional
     frame_ghz : sequence of float, optional
         Frequency of each transmon's output frame; default its bare f01.
+    shifts_ghz : array (R, n), optional
+        A per-run f01 offset of each transmon (quasi-static noise): its level ε_m moves by
+        m·shift in that run. The output frame stays at ``frame_ghz``.
 
     Returns
     -------
@@ -522,6 +528,9 @@ def evolve_cluster(cluster: Cluster, tones: ClusterTones, rho0=None, *,
     nvec = digits.sum(axis=1).astype(float)
     energies = cluster.bare_energies()
     hj = np.ascontiguousarray(cluster.static_hamiltonian() - np.diag(energies), dtype=complex)
+    per_run = np.zeros((R, nq)) if shifts_ghz is None else np.broadcast_to(
+        np.asarray(shifts_ghz, float), (R, nq))
+    run_energies = np.ascontiguousarray(energies[None, :] + per_run @ digits.T.astype(float))
     coupled = np.abs(raise_ops).sum(axis=0) > 0
     coupled = coupled | coupled.T
     f_out = (np.array([lv.energies_ghz[1] for lv in cluster.levels]) if frame_ghz is None
@@ -533,10 +542,14 @@ def evolve_cluster(cluster: Cluster, tones: ClusterTones, rho0=None, *,
     def arr(x, dtype=float):
         return np.ascontiguousarray(x, dtype=dtype)
 
-    return _evolve_batch(
-        _initial_states(cluster, rho0, R), energies, nvec, hj, raise_ops, coupled, g1, gphi,
-        dims, strides, arr(tones.start_ns), arr(tones.duration_ns), arr(tones.freq_ghz), omega,
-        arr(tones.env_code, np.int64), arr(tones.sigma_ns), arr(tones.drag_ns),
-        arr(tones.ramp_ns), arr(tones.n_tones, np.int64), arr(tones.end_ns),
-        float(f_out[0]), out_phase,
-        (float(c.max_step_ns), float(c.phase_per_step), float(c.envelope_fraction)))
+    # One BLAS thread inside the kernel: its matrices are small (d ≤ 64) and the runs are
+    # already spread over cores; a threaded BLAS under parallel runs oversubscribes the
+    # cores (measured: a 27 × 27 eigendecomposition 200× slower under load).
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _evolve_batch(
+            _initial_states(cluster, rho0, R), run_energies, nvec, hj, raise_ops, coupled, g1,
+            gphi, dims, strides, arr(tones.start_ns), arr(tones.duration_ns),
+            arr(tones.freq_ghz), omega, arr(tones.env_code, np.int64), arr(tones.sigma_ns),
+            arr(tones.drag_ns), arr(tones.ramp_ns), arr(tones.n_tones, np.int64),
+            arr(tones.end_ns), float(f_out[0]), out_phase,
+            (float(c.max_step_ns), float(c.phase_per_step), float(c.envelope_fraction)))

@@ -76,6 +76,8 @@ Device file, field by field::
     qubit_a = "q0"             # H_J/h = J·(a†b + ab†), rotating-wave (see
     qubit_b = "q1"             # simulated_device.exchange); a victim with such neighbours
     j_mhz = 3.0                # is simulated with them as one cluster; 0 < J ≤ 50 MHz
+                               # (simulated_device.coupled); the derived chip file lists
+                               # its dressed frequencies
 
 Leak paths and electronics (version 3; every field optional, each effect off without it;
 the values below are an invented example)::
@@ -298,15 +300,22 @@ class DeviceSpec:
         return next((c for c in self.couplings if c.line == line and c.qubit == qubit), None)
 
     def chip(self) -> Chip:
-        """The chip file a lab would have: nominal values only, no hidden truth."""
+        """The chip file a lab would have: nominal values only, no hidden truth.
+
+        A qubit with exchange neighbours is listed at its dressed frequencies (neighbours in
+        |0⟩), as a lab measures them.
+        """
+        from simulated_device.coupled import dressed_frequencies
+
+        freqs = {q.name: dressed_frequencies(self, q.name) for q in self.qubits}
         return Chip(
             name=self.name,
             qubits=tuple(
                 Qubit(
                     q.name,
-                    round(q.f01_ghz, 6),
-                    round(q.f12_ghz - q.f01_ghz, 6),
-                    round(q.f12_ghz, 6),
+                    round(freqs[q.name][0], 6),
+                    round(freqs[q.name][1] - freqs[q.name][0], 6),
+                    round(freqs[q.name][1], 6),
                     q.t1_us,
                     q.t2_us,
                 )
@@ -428,15 +437,19 @@ def _read_couplings(top: Fields, own_qubit: Mapping[Any, Any], qnames: list[Any]
                     version_1: bool, version_3: bool = False) -> list[CouplingTruth]:
     """The ``[[couplings]]`` blocks (the version 2 fields refused in a version 1 file)."""
     couplings: list[CouplingTruth] = []
+    seen: set[tuple[Any, Any]] = set()
+    known_qubits = dict.fromkeys(qnames)  # ordered names with O(1) look-up: large chips
     for ct in top.tables("couplings", None):
-        line = ct.reference("line", list(own_qubit), "line")
-        qubit = ct.reference("qubit", qnames, "qubit")
+        line = ct.reference("line", own_qubit, "line")
+        qubit = ct.reference("qubit", known_qubits, "qubit")
         if valid(line, qubit, own_qubit.get(line)) and own_qubit.get(line) == qubit:
             qubit = ct.reject("qubit", "a line's coupling to its own qubit is set by its "
                                        "rabi_mhz; accepted: another qubit")
-        elif valid(line, qubit) and any(c.line == line and c.qubit == qubit for c in couplings):
+        elif valid(line, qubit) and (line, qubit) in seen:
             qubit = ct.reject("qubit", f"coupling {line} → {qubit} is listed twice; "
                                        "accepted: one [[couplings]] block per pair")
+        if valid(line, qubit):
+            seen.add((line, qubit))
         phase_deg = ct.number("phase_deg", lo=-360.0, hi=360.0, unit="deg")
         if version_1:
             for key in (k for k in _VERSION_2_FIELDS if k in ct.data):

@@ -8,8 +8,13 @@ are common practice for fixed-frequency transmon chips (values from memory, not 
 
 How a chip is drawn
 -------------------
-* **Layout.** N qubits on a square grid (⌈√N⌉ columns, filled row by row) or a line, one
-  site per unit of distance; the distance of two qubits is Euclidean, in sites.
+* **Layout.** N qubits on a square grid (⌈√N⌉ columns, filled row by row), a line, or a
+  heavy-hex lattice (the hexagonal lattice with a qubit on every vertex and on every edge,
+  so that vertex qubits have three neighbours and edge qubits two; drawn as rows of qubits
+  joined by one bridge qubit every fourth column, the bridges of successive row gaps offset
+  by two columns, each hexagon of 12 qubits), one site per unit of distance; the distance of
+  two qubits is Euclidean, in sites, and nearest neighbours are one site apart in every
+  layout.
 * **Frequency plan.** Every f01 lies in ``band_ghz`` on a 1 MHz raster, anharmonicities
   in ``anharmonicity_ghz``. For an aggressor a and a victim v (f12 = f01 + α, the
   two-photon 0–2 frequency f02/2 = f01 + α/2), three hazards:
@@ -36,6 +41,10 @@ How a chip is drawn
   ``t2_over_t1`` (at most 2, so T2 ≤ 2·T1); readout errors drawn per qubit.
 * **Limits.** ``[limits]`` with a per-line amplitude limit and an average-power limit; every
   line has ``full_scale_dbm``.
+* **Exchange** (off by default). With ``exchange_mhz = (lo, hi)``, hi > 0, every
+  nearest-neighbour pair (distance 1) gets an ``[[exchange]]`` J uniform in that range, drawn
+  from a stream of its own (the rest of the chip is the one drawn without it); the document
+  is then version 3 with ``[paths] envelope_delay = false`` (the leak model of version 2).
 """
 
 from __future__ import annotations
@@ -60,6 +69,9 @@ __all__ = [
 ]
 
 HAZARD_KINDS = ("leakage", "near_resonant", "two_photon")
+LAYOUTS = ("grid", "line", "heavy-hex")
+#: Largest chip the generator draws (a 1000-qubit file holds ~10⁵ couplings, ~10 MB).
+MAX_QUBITS = 1000
 #: Hazard windows (MHz) on |detuning|: (smallest, largest).
 DEFAULT_HAZARD_WINDOWS_MHZ = {"leakage": (10.0, 40.0), "near_resonant": (5.0, 30.0),
                               "two_photon": (0.0, 3.0)}
@@ -77,8 +89,8 @@ class FamilyParams:
     Parameters
     ----------
     n_qubits : int
-        Number of qubits (2 … 64).
-    layout : {"grid", "line"}
+        Number of qubits (2 … :data:`MAX_QUBITS`).
+    layout : {"grid", "line", "heavy-hex"}
         Placement of the qubits; distances are counted in sites.
     leakage_hazards, near_resonant_hazards, two_photon_hazards : int
         How many nearest-neighbour pairs carry each hazard.
@@ -113,7 +125,7 @@ class FamilyParams:
     """
 
     n_qubits: int = 9
-    layout: Literal["grid", "line"] = "grid"
+    layout: Literal["grid", "line", "heavy-hex"] = "grid"
     leakage_hazards: int = 1
     near_resonant_hazards: int = 1
     two_photon_hazards: int = 1
@@ -143,13 +155,15 @@ class FamilyParams:
     max_amplitude: float = 0.9
     max_average_power_dbm: float = -40.0
     full_scale_dbm: float = -25.0
+    exchange_mhz: tuple[float, float] = (0.0, 0.0)
 
     def __post_init__(self) -> None:
         problems = []
-        if not 2 <= self.n_qubits <= 64:
-            problems.append(f"n_qubits = {self.n_qubits}; accepted: 2 … 64")
-        if self.layout not in ("grid", "line"):
-            problems.append(f"layout = {self.layout!r}; accepted: 'grid' or 'line'")
+        if not 2 <= self.n_qubits <= MAX_QUBITS:
+            problems.append(f"n_qubits = {self.n_qubits}; accepted: 2 … {MAX_QUBITS}")
+        if self.layout not in LAYOUTS:
+            problems.append(f"layout = {self.layout!r}; accepted: "
+                            + ", ".join(repr(k) for k in LAYOUTS))
         if min(self.hazard_counts().values()) < 0:
             problems.append("hazard counts must be ≥ 0")
         if not -60.0 <= self.omit_below_db < self.strongest_db <= 0.0:
@@ -164,6 +178,8 @@ class FamilyParams:
             problems.append("step_db within ±40 dB and step_hours within 0 … 1e6 h")
         if not 0.0 < self.line_max_amplitude <= 1.0 or not 0.0 < self.max_amplitude <= 1.0:
             problems.append("amplitude limits must be within (0, 1]")
+        if not 0.0 <= self.exchange_mhz[0] <= self.exchange_mhz[1] <= 50.0:
+            problems.append("exchange_mhz must be an ordered range within 0 … 50 MHz")
         if problems:
             raise ValueError("FamilyParams: " + "; ".join(problems))
 
@@ -174,12 +190,31 @@ class FamilyParams:
 
 
 def layout_positions(n: int, layout: str) -> np.ndarray:
-    """Site coordinates (n, 2) of the qubits: a square grid filled row by row, or a line."""
+    """Site coordinates (n, 2) of the qubits: a square grid filled row by row, a line, or a
+    heavy-hex lattice (module docstring) filled row by row, each row's bridges after it."""
     if layout == "line":
         return np.column_stack([np.arange(n, dtype=float), np.zeros(n)])
+    if layout == "heavy-hex":
+        return _heavy_hex_positions(n)
     cols = math.ceil(math.sqrt(n))
     k = np.arange(n)
     return np.column_stack([(k % cols).astype(float), (k // cols).astype(float)])
+
+
+def _heavy_hex_positions(n: int) -> np.ndarray:
+    """Heavy-hex sites: rows of ``width`` qubits two sites apart in y, and between rows r and
+    r+1 a bridge qubit at every column ≡ 2·(r mod 2) (mod 4). Rows are about twice as long
+    as there are rows (a roughly square patch: N ≈ 2.5·rows²)."""
+    rows = max(1, round(math.sqrt(n / 2.5)))
+    width = max(5, math.ceil(n / (1.25 * rows)))
+    width += (1 - width % 4) % 4  # width ≡ 1 (mod 4): every row ends on a bridge column
+    sites: list[tuple[float, float]] = []
+    r = 0
+    while len(sites) < n:
+        sites += [(float(c), 2.0 * r) for c in range(width)]
+        sites += [(float(c), 2.0 * r + 1.0) for c in range(2 * (r % 2), width, 4)]
+        r += 1
+    return np.asarray(sites[:n], dtype=float)
 
 
 def pair_hazards(f_a: float, f_v: float, alpha_v: float,
@@ -227,9 +262,9 @@ def _allowed(cand: np.ndarray, alpha: float, f_other: float, alpha_other: float,
 def _choose_hazard_pairs(rng: np.random.Generator, pos: np.ndarray, p: FamilyParams
                          ) -> dict[tuple[int, int], str]:
     """Distinct nearest-neighbour pairs (aggressor, victim) for each requested hazard."""
-    n = len(pos)
-    nearest = [(i, j) for i in range(n) for j in range(i + 1, n)
-               if abs(np.linalg.norm(pos[i] - pos[j]) - 1.0) < 1e-9]
+    dist = np.linalg.norm(pos[:, None, :] - pos[None, :, :], axis=2)
+    nearest = [(int(i), int(j)) for i, j in zip(*np.nonzero(np.abs(dist - 1.0) < 1e-9),
+                                                strict=True) if i < j]
     wanted = [k for k, c in p.hazard_counts().items() for _ in range(c)]
     if len(wanted) > len(nearest):
         raise ValueError(f"{len(wanted)} hazards asked for but the layout has only "
@@ -254,9 +289,9 @@ def _frequency_plan(rng: np.random.Generator, pos: np.ndarray, alphas: np.ndarra
     for _ in range(_ATTEMPTS):
         hazards = _choose_hazard_pairs(rng, pos, p)
         f = np.full(n, np.nan)
-        for q in range(n):  # row by row: each qubit meets at most four placed neighbours
+        for q in range(n):  # row by row: each qubit meets a few placed neighbours
             ok = np.ones(cand.shape, bool)
-            for o in np.flatnonzero(~np.isnan(f)):
+            for o in np.flatnonzero(~np.isnan(f) & (dist[q] <= max(p.clear_radius, 1.0) + 1e-9)):
                 kind = hazards.get((q, o)) or hazards.get((o, q))
                 if kind is None and dist[q, o] > p.clear_radius + 1e-9:
                     continue
@@ -306,20 +341,19 @@ def _couplings(rng: np.random.Generator, pos: np.ndarray, p: FamilyParams
     """Every ordered pair above ``omit_below_db``, in (line, qubit) order."""
     n = len(pos)
     out = []
-    for j in range(n):  # aggressor line d{j}
-        for i in range(n):  # victim q{i}
+    for j in range(n):  # aggressor line q{j}-line
+        dist = np.linalg.norm(pos - pos[j], axis=1)
+        for i in range(n):  # victim q{i}; scalar draws, in the order every seed was made with
             if i == j:
                 continue
-            d = float(np.linalg.norm(pos[i] - pos[j]))
-            db = p.nearest_db - p.falloff_db * (d - 1.0) + rng.normal(0.0, p.spread_db)
-            db = min(db, p.strongest_db)
+            db = p.nearest_db - p.falloff_db * (dist[i] - 1.0) + rng.normal(0.0, p.spread_db)
+            db = min(float(db), p.strongest_db)
             phase = rng.uniform(-180.0, 180.0)
             delay = rng.uniform(*p.delay_ns)
             if db < p.omit_below_db:
                 continue
-            c = {"line": f"q{j}-line", "qubit": f"q{i}", "crosstalk_db": round(db, 2),
-                 "phase_deg": round(phase, 1), "delay_ns": round(delay, 2)}
-            out.append(c)
+            out.append({"line": f"q{j}-line", "qubit": f"q{i}", "crosstalk_db": round(db, 2),
+                        "phase_deg": round(phase, 1), "delay_ns": round(delay, 2)})
     return out
 
 
@@ -381,6 +415,15 @@ def generate_device(params: FamilyParams, seed: int) -> dict[str, Any]:
         "couplings": _couplings(rng, pos, params),
     }
     _add_drift(rng, doc, params)
+    if params.exchange_mhz[1] > 0.0:
+        erng = np.random.default_rng(np.random.SeedSequence([int(seed), params.n_qubits, 3]))
+        doc["version"] = 3
+        doc["paths"] = {"envelope_delay": False}
+        doc["exchange"] = [
+            {"qubit_a": f"q{a}", "qubit_b": f"q{b}",
+             "j_mhz": round(float(erng.uniform(*params.exchange_mhz)), 3) or 0.001}
+            for a in range(params.n_qubits) for b in range(a + 1, params.n_qubits)
+            if abs(np.linalg.norm(pos[a] - pos[b]) - 1.0) < 1e-9]
     return doc
 
 

@@ -1,7 +1,11 @@
 """The simulated device behind the :class:`xtalkcal.hardware.Rig` protocol.
 
 Each read-out qubit is simulated separately under the fields of all lines (product
-states: exact for classical drive crosstalk, cost linear in the number of qubits).
+states: exact for classical drive crosstalk, cost linear in the number of qubits). A qubit
+with ``[[exchange]]`` neighbours is simulated together with them as one small cluster
+(:mod:`simulated_device.coupled`; at most 3 transmons, the victim and its strongest-J
+neighbours, a warning at load naming anyone left out), and read from the cluster's reduced
+state; qubits without exchange neighbours keep the single-transmon path.
 The device's clock advances by the repetition time per shot, and drift evolves with
 that clock, so calibration time and drift are consequences of the shots spent.
 
@@ -17,11 +21,21 @@ from __future__ import annotations
 
 import hashlib
 import math
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
 
+from simulated_device.cluster import ClusterControl, build_cluster
+from simulated_device.coupled import (
+    ClusterWarning,
+    CoupledCrosstalk,
+    cluster_members,
+    cluster_states,
+    coupled_crosstalk,
+    victim_populations,
+)
 from simulated_device.device import DeviceSpec, load_device
 from simulated_device.drift_state import DeviceDrift
 from simulated_device.dynamics import StepControl, ToneBatch, evolve_held, evolve_populations
@@ -64,6 +78,8 @@ class SimRig:
     start_s : float
         Simulated time (s) the clock starts from; the drift paths are those of the
         seed at that time (a session resumed on a later day sees the drifted chip).
+    cluster_control : ClusterControl, optional
+        Integrator accuracy knobs of the coupled-cluster path.
     """
 
     def __init__(
@@ -74,6 +90,7 @@ class SimRig:
         drift: bool = True,
         control: StepControl | None = None,
         start_s: float = 0.0,
+        cluster_control: ClusterControl | None = None,
     ) -> None:
         self.device = device if isinstance(device, DeviceSpec) else load_device(device)
         self._seed = self.device.seed if seed is None else int(seed)
@@ -87,6 +104,9 @@ class SimRig:
         self._t_s = float(start_s)
         self._shots_total = 0
         self._control = control or StepControl()
+        self._cluster_control = cluster_control or ClusterControl()
+        # Victims simulated with their exchange neighbours (fixed per victim; warns at load).
+        self.clusters = cluster_members(self.device)
         # Two-level defects of the qubits that have one, each seeded by the seed and its index.
         self._defects = {q.name: TelegraphDefect(q.noise.tls_rate_per_hour, (self._seed, 15, k))
                          for k, q in enumerate(self.device.qubits) if q.noise.tls_shift_mhz}
@@ -269,26 +289,47 @@ class SimRig:
         group_shots = _group_shots(shots, dev.jitter_groups)
         # A child generator, so the jitter and shot draws stay where they were.
         qrng = rng.spawn(1)[0]
+        noises = self._batch_noises(readout, R * dev.jitter_groups, qrng, self._t_s)
         for iq, victim in enumerate(readout):
             q = dev.qubit(victim)
-            noise = self.qubit_noise(victim, R * dev.jitter_groups, qrng, self._t_s)
-            pops = self._tone_populations(timelines, victim, state, jit, noise)
+            pops = self._tone_populations(timelines, victim, state, jit, noises)
             out[:, iq, : q.readout.shape[0]] = _assigned_counts(pops, q.readout, group_shots, rng)
         return out
 
+    def _batch_noises(self, readout, runs, qrng, t_s) -> dict:
+        """Qubit noise of one batch for the read-out qubits (drawn first, in readout order,
+        so a chip without exchange draws what it always drew) and then for their cluster
+        neighbours: a qubit has one draw per batch, whoever's cluster it is in."""
+        noises = {v: self.qubit_noise(v, runs, qrng, t_s) for v in readout}
+        for v in readout:
+            for m in self.clusters.get(v, ())[1:]:
+                if m not in noises:
+                    noises[m] = self.qubit_noise(m, runs, qrng, t_s)
+        return noises
+
     def populations(self, timelines: Sequence[Timeline], victim: str) -> np.ndarray:
         """Level populations of ``victim`` after each timeline, shape (R, L): no jitter, no
-        shots, drift state at the rig's clock; nothing is checked or counted (for tests)."""
+        shots, drift state at the rig's clock; nothing is checked or counted (for tests). A
+        victim with exchange neighbours is read in the dressed basis, as :meth:`run` reads it."""
         jit = np.ones((len(timelines), 1, len(self._chip.line_names)), dtype=complex)
         return self._tone_populations(list(timelines), victim, self._drift.at(self._t_s), jit)
 
-    def _tone_populations(self, timelines, victim, state, jit, noise=None) -> np.ndarray:
-        """Populations (R·G, L) of ``victim`` under the tones, jitter ``jit`` (R, G, lines),
-        qubit noise ``noise`` (:class:`BatchQubitNoise`, or None)."""
-        dev = self.device
-        R, G = jit.shape[:2]
-        line_names = self._chip.line_names
-        line_index = {n: k for k, n in enumerate(line_names)}
+    def cluster_density(self, timelines: Sequence[Timeline], victim: str):
+        """The cluster of ``victim`` and its final density matrices (R, d, d) after each
+        timeline (no jitter, no noise, drift state at the rig's clock; for tests), in the
+        frame of each member's bare f01 (:mod:`simulated_device.cluster`)."""
+        if victim not in self.clusters:
+            raise KeyError(f"{victim} has no exchange neighbours (simulated alone)")
+        jit = np.ones((len(timelines), 1, len(self._chip.line_names)), dtype=complex)
+        cols, ntones, end = self._tone_columns(list(timelines))
+        return cluster_states(self, victim, cols, ntones, end, self._drift.at(self._t_s), jit,
+                              None, self._cluster_control)
+
+    def _tone_columns(self, timelines):
+        """Tone columns (R, M) of a batch as played (before the electronics), tone counts
+        and readout times."""
+        R = len(timelines)
+        line_index = {n: k for k, n in enumerate(self._chip.line_names)}
         M = max((len(tl.tones) for tl in timelines), default=0)
         M = max(M, 1)
         start = np.zeros((R, M))
@@ -314,7 +355,21 @@ class SimRig:
                 drag[r, k] = t.envelope.drag_ns
                 ramp[r, k] = t.envelope.ramp_ns
                 lidx[r, k] = line_index[t.line]
-        cols = (start, dur, freq, amp, code, sigma, drag, ramp, lidx)
+        return (start, dur, freq, amp, code, sigma, drag, ramp, lidx), ntones, end
+
+    def _tone_populations(self, timelines, victim, state, jit, noises=None) -> np.ndarray:
+        """Populations (R·G, L) of ``victim`` under the tones, jitter ``jit`` (R, G, lines),
+        qubit noise ``noises`` (qubit → :class:`BatchQubitNoise` or None; or None)."""
+        dev = self.device
+        R, G = jit.shape[:2]
+        line_names = self._chip.line_names
+        line_index = {n: k for k, n in enumerate(line_names)}
+        cols, ntones, end = self._tone_columns(timelines)
+        noise = (noises or {}).get(victim)
+        if victim in self.clusters:
+            cluster, rho = cluster_states(self, victim, cols, ntones, end, state, jit, noises,
+                                          self._cluster_control, dressed_frame=True)
+            return victim_populations(cluster, rho, dev.qubit(victim).levels.n_levels)
         cols, ntones = self._hardware_tones(victim, cols, ntones, end)
         start, dur, freq, amp, code, sigma, drag, ramp, lidx = cols
         M = start.shape[1]
@@ -353,6 +408,48 @@ class SimRig:
                    ) -> complex:
         """True compensation ratio r = −X (README: the crosstalk element and the ratio)."""
         return -self.true_crosstalk(victim, line, freq_ghz, t_s)
+
+    def true_coupled_crosstalk(self, victim: str, line: str, freq_ghz: float | None = None,
+                               t_s: float | None = None) -> CoupledCrosstalk:
+        """Effective X of ``line`` on ``victim`` with the victim's exchange neighbours in each of
+        |0⟩ and |1⟩, from the cluster Hamiltonian (:func:`simulated_device.coupled.
+        coupled_crosstalk`): its state average and conditional part per neighbour. A victim
+        without neighbours has the classical X as its one state and no conditional part.
+
+        ``freq_ghz`` defaults to the (dressed) f01 of the line's own qubit, where an
+        aggressor plays.
+        """
+        state = self._drift.at(self._t_s if t_s is None else t_s)
+        f = self._chip.qubit(self.device.line(line).qubit).f01_ghz if freq_ghz is None \
+            else float(freq_ghz)
+        if victim in self.clusters:
+            return coupled_crosstalk(self, victim, line, f, state)
+        x = self.true_crosstalk(victim, line, f, t_s)
+        return CoupledCrosstalk((), {(): x}, x, {})
+
+    def true_coupled_matrix(self, t_s: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """State-averaged effective X and the largest conditional part per (qubit, line), at
+        each aggressor's own (dressed) f01, shape (n_qubits, n_lines) each, chip order; for an
+        uncoupled chip the first is :meth:`true_matrix` and the second is zero."""
+        qubits, lines = self._chip.qubit_names, self._chip.lines
+        avg = np.zeros((len(qubits), len(lines)), dtype=complex)
+        cond = np.zeros((len(qubits), len(lines)), dtype=complex)
+        for i, v in enumerate(qubits):
+            for j, ln in enumerate(lines):
+                x = self.true_coupled_crosstalk(v, ln.name, None, t_s)
+                avg[i, j] = x.average
+                if x.conditional:
+                    cond[i, j] = max(x.conditional.values(), key=abs)
+        return avg, cond
+
+    def true_zz_ghz(self, qubit_a: str, qubit_b: str, t_s: float | None = None) -> float:
+        """Static ZZ (GHz) of two qubits, E_11 − E_10 − E_01 + E_00 of the dressed levels of
+        ``qubit_a``'s cluster (its other members in |0⟩); 0 where ``qubit_b`` is not in it."""
+        if qubit_a not in self.clusters or qubit_b not in self.clusters[qubit_a]:
+            return 0.0
+        state = self._drift.at(self._t_s if t_s is None else t_s)
+        c = build_cluster(self.device, qubit_a, shifts_ghz=dict(state.qubit_shift_ghz))
+        return c.zz_ghz(0, c.names.index(qubit_b))
 
     def true_envelope_delay(self, victim: str, line: str) -> float:
         """How late (ns) the leak of ``line`` reaches ``victim`` against the victim's own line,
@@ -479,6 +576,10 @@ class SimulatedSampledRig(SampledRig):
     ) -> None:
         super().__init__(samples_per_ns=samples_per_ns, lo_ghz=lo_ghz)
         self.sim = SimRig(device, seed=seed, drift=drift, control=control, start_s=start_s)
+        if self.sim.device.exchange:
+            warnings.warn(f"{self.sim.device.source}: the waveform-level path simulates every "
+                          "qubit alone; its [[exchange]] couplings are left out (use SimRig)",
+                          ClusterWarning, stacklevel=2)
         self._lo_plan = self.lo_ghz  # refuses an LO plan naming unknown lines now
 
     @property

@@ -27,6 +27,13 @@ def test_writes_a_device_and_its_chip_that_load_and_agree(tmp_path, capsys):
     assert main(["check", str(dev), str(chip)]) == 0
 
 
+def test_a_heavy_hex_chip_of_a_hundred_qubits(tmp_path, capsys):
+    dev = tmp_path / "hh.toml"
+    assert main(["sim-chip", "--layout", "heavy-hex", "--qubits", "100", "-o", str(dev)]) == 0
+    assert "100 qubits on a heavy-hex" in capsys.readouterr().out
+    assert len(load_device(dev).qubits) == 100
+
+
 @pytest.mark.parametrize("argv, words", [
     (["--qubits", "5000"], ["--qubits", "accepted"]),
     (["--qubits", "1"], ["--qubits", "accepted"]),

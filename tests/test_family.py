@@ -23,7 +23,12 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from simulated_device import SimRig, load_device
-from simulated_device.family import FamilyParams, generate_device, write_device
+from simulated_device.family import (
+    FamilyParams,
+    generate_device,
+    layout_positions,
+    write_device,
+)
 from xtalkcal.cli import main
 
 WINDOWS_MHZ = {"leakage": (10.0, 40.0), "near_resonant": (5.0, 30.0), "two_photon": (0.0, 3.0)}
@@ -31,6 +36,8 @@ MARGINS_MHZ = {"leakage": 60.0, "near_resonant": 50.0, "two_photon": 25.0}
 
 
 def _positions(n: int, layout: str) -> list[tuple[float, float]]:
+    if layout == "heavy-hex":  # the generator's sites; their graph is checked on its own below
+        return [tuple(p) for p in layout_positions(n, layout)]
     if layout == "line":
         return [(float(i), 0.0) for i in range(n)]
     cols = math.ceil(math.sqrt(n))
@@ -75,7 +82,7 @@ def _hazards_found(doc: dict, layout: str, radius: float) -> tuple[dict, list]:
 
 @pytest.mark.parametrize(("n", "layout", "counts"), [
     (9, "grid", (1, 1, 1)), (16, "grid", (3, 2, 2)), (12, "line", (2, 1, 2)),
-    (6, "grid", (0, 0, 0)),
+    (6, "grid", (0, 0, 0)), (24, "heavy-hex", (2, 1, 1)),
 ])
 def test_hazards_are_those_asked_for(tmp_path, n, layout, counts):
     params = FamilyParams(n_qubits=n, layout=layout, leakage_hazards=counts[0],
@@ -212,3 +219,81 @@ def test_every_generated_file_loads_and_checks(tmp_path, n, layout, hazards, nea
 def test_params_are_frozen():
     with pytest.raises(dataclasses.FrozenInstanceError):
         FamilyParams().n_qubits = 4  # type: ignore[misc]
+
+
+def _girth(adj: list[set[int]]) -> int:
+    """Length of the shortest cycle of a graph (BFS from every node)."""
+    best = math.inf
+    for root in range(len(adj)):
+        depth, parent, queue = {root: 0}, {root: -1}, [root]
+        for u in queue:
+            for w in adj[u]:
+                if w not in depth:
+                    depth[w], parent[w] = depth[u] + 1, u
+                    queue.append(w)
+                elif parent[u] != w:
+                    best = min(best, depth[u] + depth[w] + 1)
+    return int(best) if best < math.inf else 0
+
+
+@pytest.mark.parametrize("n", [12, 40, 127, 300])
+def test_heavy_hex_is_the_hexagonal_lattice_with_a_qubit_on_every_edge(n):
+    """The defining properties of a heavy-hex lattice: bipartite between vertex qubits (at
+    most 3 neighbours) and edge qubits (at most 2), shortest cycle the 12-qubit hexagon
+    (6 vertices + 6 edges), connected, and nearest neighbours one site apart."""
+    pos = layout_positions(n, "heavy-hex")
+    assert pos.shape == (n, 2) and len({tuple(p) for p in pos}) == n
+    d = np.linalg.norm(pos[:, None] - pos[None], axis=2)
+    assert d[~np.eye(n, dtype=bool)].min() == pytest.approx(1.0)
+    adj = [set(np.flatnonzero(np.abs(row - 1.0) < 1e-9).tolist()) for row in d]
+    deg = np.array([len(a) for a in adj])
+    assert deg.max() <= 3 and deg.min() >= 1
+    side = {0: 0}
+    queue = [0]
+    for u in queue:  # 2-colour the graph; connected means every qubit gets a colour
+        for w in adj[u]:
+            if w not in side:
+                side[w] = 1 - side[u]
+                queue.append(w)
+            assert side[w] != side[u]  # bipartite
+    assert len(side) == n
+    if n >= 40:
+        assert _girth(adj) == 12
+        # one side is the edge qubits (≤ 2 neighbours), the other the vertices (≤ 3)
+        maxdeg = [deg[[q for q in side if side[q] == k]].max() for k in (0, 1)]
+        assert sorted(maxdeg) == [2, 3]
+
+
+@pytest.mark.slow
+def test_a_thousand_qubit_chip_is_drawn_and_loads(tmp_path):
+    params = FamilyParams(n_qubits=1000, layout="heavy-hex", leakage_hazards=5,
+                          near_resonant_hazards=5, two_photon_hazards=5)
+    path, doc = _written(tmp_path, params, 3)
+    dev = load_device(path)
+    assert len(dev.qubits) == 1000 and len(doc["couplings"]) > 10_000
+    assert path.stat().st_size < 20e6
+    with pytest.raises(ValueError, match="accepted: 2 … 1000"):
+        FamilyParams(n_qubits=1001)
+
+def test_exchange_on_nearest_neighbours_when_asked():
+    from simulated_device.coupled import ClusterWarning
+    from simulated_device.device import device_from_dict
+
+    plain = generate_device(FamilyParams(n_qubits=4), 3)
+    coupled = generate_device(FamilyParams(n_qubits=4, exchange_mhz=(1.0, 4.0)), 3)
+    assert "exchange" not in plain and plain["version"] == 2
+    assert coupled["version"] == 3 and coupled["paths"] == {"envelope_delay": False}
+    # The rest of the chip is the one drawn without exchange.
+    assert {k: v for k, v in coupled.items() if k not in ("exchange", "version", "paths")} == \
+        {k: v for k, v in plain.items() if k != "version"}
+    pairs = {(e["qubit_a"], e["qubit_b"]) for e in coupled["exchange"]}
+    assert pairs == {("q0", "q1"), ("q2", "q3"), ("q0", "q2"), ("q1", "q3")}  # 2 × 2 grid
+    assert all(1.0 <= e["j_mhz"] <= 4.0 for e in coupled["exchange"])
+    dev = device_from_dict(coupled)
+    assert len(dev.exchange) == 4
+    nine = device_from_dict(generate_device(FamilyParams(exchange_mhz=(1.0, 4.0)), 3))
+    with pytest.warns(ClusterWarning) as caught:  # centre: 4 neighbours, edges: 3 (cap: 2)
+        SimRig(nine, drift=False)
+    assert any("cluster of q4 capped at 3" in str(w.message) for w in caught)
+    with pytest.raises(ValueError, match="exchange_mhz"):
+        FamilyParams(exchange_mhz=(3.0, 1.0))

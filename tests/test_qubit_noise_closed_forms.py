@@ -57,7 +57,7 @@ def test_thermal_start_shows_in_the_rig() -> None:
     tl = Timeline((), readout=("q0",), readout_ns=1.0)
     noise = rig.qubit_noise("q0", 1, None, 0.0)
     pops = rig._tone_populations([tl], "q0", rig._drift.at(0.0),
-                                 np.ones((1, 1, 2), complex), noise)
+                                 np.ones((1, 1, 2), complex), {"q0": noise})
     p = thermal_populations(rig.device.qubit("q0").levels.energies_ghz, 0.04)
     g1t = 1.0 / 50e3  # Γ1·t: level 1 loses Γ1·p1·t and gains 2Γ1·p2·t (rate equations)
     assert pops[0, :2].sum() + pops[0, 2] == pytest.approx(1.0, abs=1e-12)

@@ -219,9 +219,10 @@ def add_commands(add) -> None:
     e.add_argument("-o", "--output", required=True, help="chip file to write")
     g = add("sim-chip", cmd_sim_chip, "write an invented simulated device of a chosen size "
                                       "(a chip to try the toolkit on: pass it as --rig FILE)")
-    g.add_argument("--layout", choices=("grid", "line"), default="grid",
-                   help="square grid (filled row by row) or a line")
-    g.add_argument("--qubits", type=int, default=16, help="number of qubits")
+    g.add_argument("--layout", choices=("grid", "line", "heavy-hex"), default="grid",
+                   help="square grid (filled row by row), a line, or heavy-hex (qubits on the "
+                        "vertices and edges of a hexagonal lattice: 2 or 3 neighbours each)")
+    g.add_argument("--qubits", type=int, default=16, help="number of qubits (2 … 1000)")
     g.add_argument("--seed", type=int, default=1, help="seed of the invented values")
     g.add_argument("--phase-walk", type=float, default=0.0,
                    help="random walk of every coupling's phase (rad/√h; 0: no drift)")

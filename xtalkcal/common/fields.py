@@ -11,7 +11,7 @@ import json
 import math
 import re
 import sys
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from typing import Any, Final, NoReturn
 
 from xtalkcal.exceptions import ConfigError
@@ -445,10 +445,11 @@ class Fields:
         return named
 
     def reference(
-        self, key: str, known: Sequence[Any], noun: str, *, of: str = "this file"
+        self, key: str, known: Collection[Any], noun: str, *, of: str = "this file"
     ) -> Any:
         """A name that must be one of ``known`` (names defined earlier in the file, or in
-        the file ``of`` names, e.g. ``"chip 'grid9-demo'"``).
+        the file ``of`` names, e.g. ``"chip 'grid9-demo'"``; a dict keyed by the names looks
+        them up in constant time, for large chips).
 
         If ``known`` holds an :data:`INVALID` name, an unknown name may be that one: it
         comes back as :data:`INVALID` without a message of its own.

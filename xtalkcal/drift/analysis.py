@@ -8,6 +8,7 @@ the decision rules.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -348,6 +349,41 @@ def _estimate(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules) -> _Estima
     return _Estimate(numbers, d, res, res_se, kappa, kappa_se, fit.chi2, pvalue, finite)
 
 
+def _prior_disagreement(inp: _RecheckInput, fit: _RingFit) -> float:
+    """Combined standard errors between the data's own curvature and the prior (0 without)."""
+    prior, data_k, data_k_se = inp.prior, fit.data_curvature, fit.data_curvature_stderr
+    if prior is None or not math.isfinite(data_k):
+        return 0.0
+    spread = math.sqrt(data_k_se**2 + prior[1] ** 2)
+    gap = abs(data_k - prior[0])
+    return gap / spread if spread > 0 else (math.inf if gap > 0 else 0.0)
+
+
+def _widened_prior(inp: _RecheckInput, fit: _RingFit, rules: RecheckRules
+                   ) -> tuple[float, float] | None:
+    """The prior widened to the gap when the data's curvature disagrees with it but lies within
+    ``rules.curvature_ratio`` of it (see :class:`RecheckRules`); None otherwise."""
+    prior, data_k = inp.prior, fit.data_curvature
+    if prior is None or not (math.isfinite(data_k) and data_k > 0 and prior[0] > 0):
+        return None
+    if _prior_disagreement(inp, fit) <= rules.prior_consistency_sigma:
+        return None
+    ratio = data_k / prior[0]
+    if not 1 / rules.curvature_ratio <= ratio <= rules.curvature_ratio:
+        return None
+    return prior[0], max(prior[1], abs(data_k - prior[0]))
+
+
+def _refit_widened(inp: _RecheckInput, prior: tuple[float, float]
+                   ) -> tuple[_RecheckInput, _RingFit]:
+    """The fit again with the widened prior (the data alone determined the paraboloid, so a
+    wider prior leaves it determined)."""
+    inp = dataclasses.replace(inp, prior=prior)
+    fit = _fit_ring(inp)
+    assert fit.coef is not None
+    return inp, fit
+
+
 def _broken_by(inp: _RecheckInput, fit: _RingFit, est: _Estimate, rules: RecheckRules
                ) -> tuple[str, RejectionReason] | None:
     """Rules 2-5 of :func:`analyse_recheck` (and non-finite numbers): why the re-check is
@@ -360,9 +396,7 @@ def _broken_by(inp: _RecheckInput, fit: _RingFit, est: _Estimate, rules: Recheck
     prior, rho, dof = inp.prior, inp.rho, inp.dof
     data_k, data_k_se = fit.data_curvature, fit.data_curvature_stderr
     if prior is not None and math.isfinite(data_k):
-        spread = math.sqrt(data_k_se**2 + prior[1] ** 2)
-        gap = abs(data_k - prior[0])
-        zk = gap / spread if spread > 0 else (math.inf if gap > 0 else 0.0)
+        zk = _prior_disagreement(inp, fit)
         if zk > rules.prior_consistency_sigma:
             return (
                 f"the re-check's curvature {data_k:.4g} +/- {data_k_se:.2g} disagrees with the "
@@ -460,7 +494,8 @@ def analyse_recheck(
        (``fit_failed``).
     2. **broken**, with a prior: the data's own ``kappa`` differs from the prior by more than
        ``rules.prior_consistency_sigma`` combined standard errors (the landscape changed:
-       ``model_mismatch``).
+       ``model_mismatch``), unless it lies within ``rules.curvature_ratio`` (1.5) of the
+       prior: then the prior's stderr is widened to the gap and the fit redone.
     3. **broken**, fit rejected: the chi-square tail probability (data, plus the prior's
        pull when a prior is given) is below ``rules.mismatch_pvalue`` (``model_mismatch``).
     4. **broken**, ``kappa / stderr(kappa) < rules.min_curvature_snr``: the curvature is not
@@ -531,11 +566,19 @@ def analyse_recheck(
             data_curvature=fit.data_curvature,
             data_curvature_stderr=fit.data_curvature_stderr,
         )
+    widened = _widened_prior(inp, fit, rules)
+    if widened is not None:
+        inp, fit = _refit_widened(inp, widened)
     est = _estimate(inp, fit, rules)
     broken = _broken_by(inp, fit, est, rules)
     if broken is not None:
         return _outcome(inp, RecheckDecision.BROKEN, *broken, **est.numbers)
-    return _decide(inp, est, rules)
+    out = _decide(inp, est, rules)
+    if widened is not None:
+        out = dataclasses.replace(out, reason=out.reason + (
+            f"; the curvature {fit.data_curvature:.4g} is within x{rules.curvature_ratio:g} "
+            f"of the calibration's, whose prior was widened to +/- {widened[1]:.2g}"))
+    return out
 
 
 def analyse_recheck_counts(

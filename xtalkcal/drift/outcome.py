@@ -71,6 +71,13 @@ class RecheckRules:
     comfort_db : float
         A "within" is comfortable when the upper bound ``|dX| + k sigma`` is at least this many
         dB below the tolerance (6 dB: a factor 2 in amplitude). Used by `next_check`.
+    curvature_ratio : float
+        A data curvature that disagrees with the prior (``prior_consistency_sigma``) but lies
+        within this factor of it widens the prior (its stderr becomes the gap) instead of
+        judging the re-check broken: the landscape is the same paraboloid, its curvature
+        moved with the drift (a qubit's wander changes its detuning from the aggressor, so
+        its response), and a ring's saturating signal reads a little lower than the
+        calibration's wider sweep. Beyond the factor the landscape changed.
     """
 
     min_curvature_snr: float = 3.0
@@ -79,6 +86,7 @@ class RecheckRules:
     confidence_sigma: float = 2.0
     prior_consistency_sigma: float = 4.0
     comfort_db: float = 6.0
+    curvature_ratio: float = 1.5
 
     def __post_init__(self) -> None:
         for name in (
@@ -93,6 +101,11 @@ class RecheckRules:
         if not 0 < self.mismatch_pvalue < 1:
             raise DriftInputError(
                 f"RecheckRules.mismatch_pvalue must lie in (0, 1), got {self.mismatch_pvalue!r}"
+            )
+        if not (math.isfinite(self.curvature_ratio) and self.curvature_ratio >= 1):
+            raise DriftInputError(
+                f"RecheckRules.curvature_ratio must be >= 1 and finite, got "
+                f"{self.curvature_ratio!r}"
             )
         if not (math.isfinite(self.comfort_db) and self.comfort_db >= 0):
             raise DriftInputError(

@@ -70,6 +70,25 @@ def _interval_limits(settings: RecheckSettings) -> tuple[float, float, float]:
 FIRST_INTERVAL_FRACTION = 0.125
 
 
+# Fraction of the trend's predicted hours left (mean + 1 sigma of the residual at the
+# tolerance) at which run_due checks a pair again. For a residual driven by a random walk the
+# variance grows linearly in time, so at a quarter of the hours left the 1-sigma band is half
+# the tolerance: the check lands where mean + 2 sigma reaches it. A 1-D walk from a fresh null
+# then spends ~1 % of each interval beyond the tolerance (the time average of
+# 2 Phi(-tol / sigma(t))); at 0.5 (sigma = 0.71 tol) it was ~6 %.
+DUE_SAFETY = 0.25
+# The interval factors run_due passes to next_check: a confident "within" doubles the
+# interval, as a comfortable one does. A pair re-checked alone is measured to a quarter of
+# its margin (drift.recheck.second_stage_target), so its upper 2-sigma bound is rarely 6 dB
+# below the tolerance even at a null just adopted; the trend's cap (DUE_SAFETY) is what
+# keeps the interval short where the drift demands it.
+# run_due predicts with each pair's diffusion constants raised by one standard error
+# (drift.pair_trend's diffusion_sigma), so a walk not yet resolved from the entries' errors
+# still caps the interval.
+DUE_DIFFUSION_SIGMA = 1.0
+DUE_POLICY = dict(safety=DUE_SAFETY, lengthen=2.0, modest_lengthen=2.0)
+
+
 def first_interval(settings: RecheckSettings) -> float:
     """First re-check interval of a pair without history (h), within the protocol's limits.
 

@@ -3,8 +3,11 @@
 A re-check of a compensated pair replays the calibration's probe (same aggressor
 amplitude, same amplification K, same method) with the pair's own cancellation tone on
 and its column's other tones off (:func:`run_due`; :func:`recheck_column` can also ring
-a column's victims together with every tone on, as the verification does), and puts a
-small ring of points (plus the centre) around the stored null. The analysis and the
+a column's victims together with every tone on, as the verification does). A pair
+re-checked alone gets a cross of four points and the centre around its stored null, in
+two stages: a quarter of the protocol's shots, then as many more as bring the error of
+its residual to a quarter of its margin to the tolerance (:func:`second_stage_target`,
+at most ``MAX_SECOND_STAGE`` times the first). The analysis and the
 decision are :func:`xtalkcal.drift.analyse_recheck`; the ring radius follows the
 calibration's rule (the signal rises by a set amount), the curvature prior comes
 from refitting the pair's calibration sweep stored in the ledger.
@@ -16,7 +19,8 @@ current null, which re-centres the pair), recalibrate the columns of pairs that 
 own, free of its co-victims' drifting leak, and only the repeat counts) or drifted beyond
 doubt without a precise new null, and reschedule (a re-centred or
 recalibrated pair gets its interval from its measured drift, which the new null does not
-reset; a pair new to the schedule is first checked early). A drift that the
+reset; a pair new to the schedule is first checked early; a step, a residual confidently
+beyond twice the tolerance, starts the pair's trend and interval again). A drift that the
 re-check cannot establish beyond its own noise only shortens the interval.
 
 A pair whose stored compensation cannot be played within its victim line's amplitude
@@ -43,6 +47,7 @@ from xtalkcal.calibrate import (
     pass_amplitude,
     ring_around,
     ring_points_for,
+    ring_radius_caps,
     shots_per_point,
     stark_windows,
     survey_radii,
@@ -51,7 +56,7 @@ from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
 from xtalkcal.drift.inputs import DriftInputError
 from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
-from xtalkcal.drift.policy import first_interval, next_check
+from xtalkcal.drift.policy import DUE_DIFFUSION_SIGMA, DUE_POLICY, first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
     _Couplings,
@@ -60,8 +65,8 @@ from xtalkcal.drift.stored_sweep import (
     take_out_co_victim_leak,
 )
 from xtalkcal.drift.trends import pair_trend
-from xtalkcal.exceptions import SafetyLimitError
-from xtalkcal.fits import RejectionReason
+from xtalkcal.exceptions import FitInputError, SafetyLimitError
+from xtalkcal.fits import RejectionReason, VerdictRules, fit_paraboloid_column
 from xtalkcal.hardware import Chip, Rig
 from xtalkcal.measure import BatchRunner, ColumnProbe, Protocol, PulseShape
 from xtalkcal.store import (
@@ -102,6 +107,8 @@ class DueReport:
     still_aside: list[Pair] = field(default_factory=list)  # set aside by an earlier run
     reinstated: list[Pair] = field(default_factory=list)  # calibrated anew since set aside
     shots: int = 0
+    recheck_shots: int = 0  # of ``shots``: re-checks, their repeats included
+    recalibration_shots: int = 0  # of ``shots``: column recalibrations
 
 
 def _column_in_use(snapshot: MatrixSnapshot, aggressor: str, wanted: list[str],
@@ -152,13 +159,22 @@ def _group_probe(chip: Chip, aggressor: str, group: list[str], column: dict[str,
     return _GroupProbe(group, entries, stark, K, probe, z_stored, priors)
 
 
-def _ring_radii(gp: _GroupProbe) -> np.ndarray:
-    """Ring radius per victim of the batch (fraction of full scale)."""
+# Rise of a Stark victim's cross in a re-check of its own (rad). A Stark phase is quadratic
+# in the field and read without wrapping up to 3π/2 (ColumnProbe.signals), and the null's
+# position error goes as 1/√(κ·rise): the calibration's null-ring cap (1.5 × RISE_STARK_RAD,
+# calibrate.ring_radius_caps) costs a third fewer shots than its 2 rad for the same error.
+RECHECK_RISE_STARK_RAD = 1.5 * RISE_STARK_RAD
+
+
+def _ring_radii(gp: _GroupProbe, *, solo: bool = False) -> np.ndarray:
+    """Ring radius per victim of the batch (fraction of full scale); ``solo``: the rise of a
+    pair re-checked alone (``RECHECK_RISE_STARK_RAD`` for Stark victims)."""
     # The calibration's rule: where the signal rises by a set amount; without a
     # stored sweep, the survey's radius from the nominal chip.
-    radius = survey_radii(gp.probe)
+    radius = ring_radius_caps(gp.probe) if solo else survey_radii(gp.probe)
+    stark_rise = RECHECK_RISE_STARK_RAD if solo else RISE_STARK_RAD
     for i, (e, pr) in enumerate(zip(gp.entries, gp.priors, strict=True)):
-        rise = RISE_STARK_RAD if e.method == "stark" else RISE_PROBABILITY
+        rise = stark_rise if e.method == "stark" else RISE_PROBABILITY
         if pr is not None and pr[0] > 0:
             radius[i] = min(math.sqrt(rise / pr[0]), radius[i])
     return radius
@@ -226,6 +242,33 @@ def _analyse_pair(z: np.ndarray, signal: np.ndarray, stderr: np.ndarray,
     return out
 
 
+# A re-check whose residual is confidently above STEP_FACTOR times the tolerance found a step:
+# intervals are set so that a drifting pair is checked where its predicted residual (2σ)
+# reaches the tolerance, so twice the tolerance is a change the drift model did not
+# foresee. Its entry is tagged STEP_TAG and the pair's trend starts again from it.
+STEP_FACTOR = 2.0
+STEP_TAG = "step"
+
+
+def is_step(out: RecheckOutcome, factor: float = STEP_FACTOR) -> bool:
+    """True for a drifted re-check with ``|dX| − kσ > factor · tol`` (k: the rules'
+    ``confidence_sigma``, as in ``confident``)."""
+    if out.decision is not RecheckDecision.DRIFTED or not out.confident:
+        return False
+    tol = 10 ** (out.tolerance_db / 20)
+    return bool(out.residual - 2.0 * out.residual_stderr > factor * tol)
+
+
+def since_step(history: Iterable[LedgerEntry]) -> list[LedgerEntry]:
+    """A pair's history from its latest step (an entry tagged ``STEP_TAG``) on; all of it
+    without one. The drift before a step says nothing of the drift after it, and a step
+    taken as a random-walk increment would hold the pair at the shortest interval."""
+    entries = list(history)
+    at = max((i for i, e in enumerate(entries) if e.kind == "recheck" and e.tag == STEP_TAG),
+             default=0)
+    return entries[at:]
+
+
 def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
                    out: RecheckOutcome, amp: float, amplification: int, shots: int,
                    now: float, tolerance_db: float) -> LedgerEntry:
@@ -247,9 +290,109 @@ def _recheck_entry(rig: Rig, aggressor: str, victim: str, stored: LedgerEntry,
         verdict="accepted" if ok else "rejected", reason=reason,
         measured_at_s=now, measured_at_utc=utc_timestamp(), rig=rig.describe(),
         software_version=f"xtalkcal {__version__}", kind="recheck",
-        tag=f"{out.decision.value}",
+        tag=STEP_TAG if is_step(out) else out.decision.value,
         # the calibration sweep this analysis rests on (curvature, couplings)
         sweep_id=stored.sweep_id)
+
+
+# A Stark victim due within this fraction of its interval joins a due one's shared train:
+# its re-check comes early, but it costs the train nothing but its own readout.
+SHARE_AHEAD = 0.5
+
+# A pair re-checked alone: a cross of CROSS_POINTS points about its stored null, then the
+# centre. The first stage spends FIRST_STAGE_FRACTION of the protocol's re-check shots;
+# the second is sized from the first's own error (see second_stage_target).
+CROSS_POINTS = 4
+FIRST_STAGE_FRACTION = 0.25
+MAX_SECOND_STAGE = 8  # the second stage spends at most this many times the first's shots
+
+
+def residual_axis(out: RecheckOutcome) -> float:
+    """Largest standard-error axis of a re-check's ``dX`` (inf when it has none).
+
+    The error of the null the re-check would adopt, in every direction, not only along the
+    residual: what re-centring the pair leaves behind.
+    """
+    c = np.asarray(out.shift_covariance, dtype=float)
+    if not np.all(np.isfinite(c)):
+        return math.inf
+    return float(math.sqrt(max(float(np.linalg.eigvalsh(c)[-1]), 0.0)))
+
+
+def second_stage_target(residual: float, tolerance_db: float) -> float:
+    """Error of the residual a re-check aims at: a quarter of its margin to the tolerance.
+
+    The margin ``tol − |dX|`` of the first stage's estimate, taken within
+    ``[tol/2, tol]``: an estimate at or above the tolerance will be re-centred on the
+    re-check's own null, whose error is then the pair's residual, so it gets a quarter of a
+    fresh null's margin (the whole tolerance); the floor of half the tolerance keeps an
+    estimate close to it from asking for unbounded shots. With this error, a pair whose
+    residual is a third of the tolerance fails "confidently within" (``|dX| + 2σ < tol``)
+    by chance with probability ``ncx2.sf(16, 2, 4)`` ≈ 3.4 % (the estimate's
+    ``|dX|²/σ²`` is non-central χ² with 2 degrees of freedom).
+    """
+    tol = 10 ** (float(tolerance_db) / 20)
+    if not (math.isfinite(residual) and residual < tol):
+        return 0.25 * tol
+    return 0.25 * min(max(tol - residual, 0.5 * tol), tol)
+
+
+def second_stage_shots(first_shots: int, first_error: float, target: float) -> int:
+    """Shots per point of the second stage: the pooled error ``first_error·√(n1/(n1+n2))``
+    reaches ``target`` (0 when the first stage already does; an undetermined first error
+    gets the rest of the protocol's shots), at most ``MAX_SECOND_STAGE`` times the first's.
+    """
+    if not math.isfinite(first_error):
+        need = first_shots * (1.0 / FIRST_STAGE_FRACTION - 1.0)
+    elif first_error <= target:
+        return 0
+    else:
+        need = first_shots * ((first_error / target) ** 2 - 1.0)
+    return int(min(math.ceil(need), MAX_SECOND_STAGE * first_shots))
+
+
+def _pooled(stages: list[tuple[np.ndarray, np.ndarray, np.ndarray]]
+            ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Signal and error per point of stages measured at the same points, and the shots.
+
+    Each stage is weighted by its shots (the same weight at every point): for counts this
+    is the pooled fraction, and a Stark batch's common reference offset stays one constant
+    offset, which the paraboloid's ``c0`` absorbs.
+    """
+    n = np.array([float(sh.mean()) for _, _, sh in stages])
+    w = n / n.sum()
+    signal = sum(wi * s for wi, (s, _, _) in zip(w, stages, strict=True))
+    err = np.sqrt(sum((wi * e) ** 2 for wi, (_, e, _) in zip(w, stages, strict=True)))
+    return signal, err, int(sum(sh.sum() for _, _, sh in stages))
+
+
+def _solo_check(rig: Rig, runner: BatchRunner, gp: _GroupProbe, amp: float,
+                settings, key: str) -> PairCheck:
+    """One pair re-checked alone in two stages on a cross about its stored null."""
+    v, e = gp.group[0], gp.entries[0]
+    radius = _ring_radii(gp, solo=True)
+    pts = ring_around(gp.z_stored, radius, CROSS_POINTS)
+    total = settings.shots_per_point * settings.points  # the protocol's shots per ring
+    first = max(50, int(round(FIRST_STAGE_FRACTION * total / pts.shape[0])))
+    tag = f"{key}-{gp.probe.aggressor}-{'stark' if gp.stark else 'res-' + v}"
+    stages = []
+
+    def analyse(shots: int, label: str) -> RecheckOutcome:
+        sig = measure_probe(runner, gp.probe, pts, shots, label)
+        stages.append((sig.signal[:, 0], sig.stderr[:, 0], sig.shots[:, 0]))
+        signal, err, _ = _pooled(stages)
+        return _analyse_pair(pts[:, 0], signal, err, err, gp.z_stored[0], amp,
+                             settings.tolerance_db, gp.priors[0])
+
+    out = analyse(first, tag)
+    more = second_stage_shots(first, residual_axis(out),
+                              second_stage_target(out.residual, settings.tolerance_db))
+    if more:
+        out = analyse(more, f"{tag}-more")
+    _, _, shots = _pooled(stages)
+    entry = _recheck_entry(rig, gp.probe.aggressor, v, e, out, amp, gp.amplification, shots,
+                           rig.now(), settings.tolerance_db)
+    return PairCheck(gp.probe.aggressor, v, out, entry)
 
 
 def recheck_column(
@@ -264,6 +407,7 @@ def recheck_column(
     key: str = "recheck",
     silent: Iterable[str] = (),
     solo: bool = False,
+    shared: bool = False,
 ) -> list[PairCheck]:
     """Re-check the given victims of one aggressor, all cancellation tones on.
 
@@ -285,8 +429,15 @@ def recheck_column(
     silent : iterable of str
         Victims whose stored tones are not played (pairs set aside, see :func:`run_due`).
     solo : bool
-        Put each victim on a ring of its own (the column's other tones held at their stored
-        nulls), instead of ringing the calibration pass's co-victims together.
+        Re-check each victim on its own (the column's other tones held at their stored
+        nulls): a cross of ``CROSS_POINTS`` points about its stored null and the centre, in
+        two stages (:func:`second_stage_shots`), instead of ringing the calibration pass's
+        co-victims together.
+    shared : bool
+        Stark victims rung together in one train have their co-victims' leak taken out with
+        the couplings fitted from these same shots (:func:`fits.fit_paraboloid_column`, a
+        ring of enough points for it), not with those stored at calibration: the couplings
+        drift too, and what the stored ones missed moved the nulls.
     """
     chip = rig.chip
     amp = pass_amplitude(protocol, chip, aggressor)
@@ -299,14 +450,19 @@ def recheck_column(
               else nulled_pass_groups({v: column[v].method for v in wanted}))
     for group in groups:
         gp = _group_probe(chip, aggressor, group, column, amp, shape, ledger)
+        if solo:
+            checks.append(_solo_check(rig, runner, gp, amp, settings, key))
+            continue
         radius = _ring_radii(gp)
-        n = ring_points_for(len(group), settings.points)
+        fresh = shared and gp.stark and len(group) > 1
+        n = ring_points_for(len(group), _shared_points(len(group)) if fresh else settings.points)
         shots = shots_per_point(settings.shots_per_point, settings.points, n)
         pts = ring_around(gp.z_stored, radius, n)
         sig = measure_probe(runner, gp.probe, pts, shots,
                             f"{key}-{aggressor}-{'stark' if gp.stark else 'res-' + group[0]}")
         now = rig.now()
-        couplings = _pass_couplings(ledger, gp.entries[0])
+        couplings = (_fitted_couplings(group, pts, sig) if fresh
+                     else _pass_couplings(ledger, gp.entries[0]))
         tone_of = _co_victim_tones(pts, group, column, amp)
         for i, (v, e) in enumerate(zip(group, gp.entries, strict=True)):
             stderr = sig.stderr[:, i]
@@ -318,6 +474,24 @@ def recheck_column(
                                    int(sig.shots[:, i].sum()), now, settings.tolerance_db)
             checks.append(PairCheck(aggressor, v, out, entry))
     return checks
+
+
+def _shared_points(n_victims: int) -> int:
+    """Ring points of a shared Stark re-check: twice the column model's parameters per
+    victim (offset, shift, curvature and two complex terms per other tone)."""
+    return 2 * (4 + 4 * (n_victims - 1))
+
+
+def _fitted_couplings(group: list[str], pts: np.ndarray, sig) -> _Couplings | None:
+    """(victims, sources, C, σ_C) fitted from a shared re-check's own shots, or None."""
+    try:
+        fit = fit_paraboloid_column(pts.T, sig.signal.T, sig.stderr.T,
+                                    rules=VerdictRules(mismatch_pvalue=0.0))
+    except FitInputError:
+        return None
+    V = len(group)
+    C, err = fit.couplings[:, :V], fit.couplings_stderr[:, :V]
+    return tuple(group), tuple(group), C, np.where(np.isfinite(err), err, 0.0)
 
 
 def unplayable_reason(chip: Chip, protocol: Protocol, entry: LedgerEntry) -> str | None:
@@ -425,6 +599,21 @@ class _DueRun:
         return [u for (aa, u), e in self.snapshot.entries.items()
                 if aa == a and u != v and e.kind != "survey"]
 
+    def shared_group(self, a: str, due: list[str]) -> list[str]:
+        """Stark victims of ``a`` re-checked in one train: the due ones and those due within
+        ``SHARE_AHEAD`` of their interval, when there are two or more (else none)."""
+        now = self.rig.now()
+        aside = set(self.aside(a))
+
+        def soon(v: str) -> bool:
+            slot = self.schedule.slot((a, v))
+            return slot.due_s - now <= SHARE_AHEAD * slot.interval_h * 3600.0
+
+        group = [v for aa, v in self.schedule.pairs()
+                 if aa == a and v not in aside and self.in_use((a, v))
+                 and self.snapshot[(a, v)].method == "stark" and (v in due or soon(v))]
+        return group if len(group) > 1 and any(v in due for v in group) else []
+
     def check(self, a: str, victims: list[str], key: str, confirming: bool) -> list[str]:
         """Re-check ``victims`` of ``a``, each alone, and act on each outcome; the broken ones.
 
@@ -440,7 +629,19 @@ class _DueRun:
         all-tones-on field is what the verification measures.)
         """
         checks: list[PairCheck] = []
-        for v in victims:
+        before = self.runner.shots_executed
+        shared = [] if confirming else self.shared_group(a, victims)
+        if shared:
+            try:
+                checks += recheck_column(self.rig, self.protocol, self.snapshot, a, shared,
+                                         runner=self.runner, ledger=self.ledger,
+                                         key=f"{key}-shared",
+                                         silent=self.aside(a) + [u for u in self.co_victims(a, "")
+                                                                 if u not in shared],
+                                         shared=True)
+            except SafetyLimitError:  # each alone below, where a refusal sets one pair aside
+                shared = []
+        for v in (v for v in victims if v not in shared):
             try:
                 checks += recheck_column(self.rig, self.protocol, self.snapshot, a, [v],
                                          runner=self.runner, ledger=self.ledger,
@@ -449,6 +650,7 @@ class _DueRun:
                                          solo=True)
             except SafetyLimitError as exc:  # refused before anything was played
                 self.put_aside((a, v), f"its re-check was refused by the safety check ({exc})")
+        self.report.recheck_shots += self.runner.shots_executed - before
         self.ledger.append([c.entry for c in checks])
         broken = []
         for c in checks:
@@ -467,9 +669,15 @@ class _DueRun:
         rig, schedule = self.rig, self.schedule
         pair = (c.aggressor, c.victim)
         previous_h = schedule.slot(pair).interval_h if pair in schedule else None
-        trend = pair_trend(self.ledger.history(*pair),
-                           tolerance_db=self.protocol.recheck.tolerance_db, now_s=rig.now())
-        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend)
+        if c.entry.tag == STEP_TAG:
+            previous_h = None  # a step: the pair starts again as if new
+        try:
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=self.protocol.recheck.tolerance_db,
+                               now_s=rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
+        except DriftInputError:  # a step whose own entry was rejected: no history yet
+            trend = None
+        nxt = schedule.record(pair, c.outcome, rig.now(), trend=trend, **DUE_POLICY)
         self.report.checked.append(c)
         self.say(f"{c.aggressor} → {c.victim}: {c.outcome.decision.value} ({c.outcome.reason}), "
                  f"residual {c.outcome.residual_db:.1f} dB; next in {nxt.interval_h:.1f} h")
@@ -497,8 +705,10 @@ class _DueRun:
         tag = f"recal-{a}-{int(rig.now())}"
         aside = self.aside(a)
         in_use = [v for aa, v in schedule.pairs() if aa == a and v not in aside]
+        before = self.runner.shots_executed
         res = calibrate_chip(rig, protocol, runner=self.runner, aggressors=[a], key_prefix=tag,
                              null_victims={a: in_use})
+        self.report.recalibration_shots += self.runner.shots_executed - before
         entries, sweeps = ledger_entries(res, run_tag=tag), ledger_sweeps(res, run_tag=tag)
         if entries or sweeps:  # a column with nothing left to measure stores nothing
             ledger.append(entries, sweeps=sweeps)
@@ -517,13 +727,14 @@ class _DueRun:
         with the trend alone); :func:`first_interval` for a pair without history."""
         settings = self.protocol.recheck
         try:
-            trend = pair_trend(self.ledger.history(*pair), tolerance_db=settings.tolerance_db,
-                               now_s=self.rig.now())
+            trend = pair_trend(since_step(self.ledger.history(*pair)),
+                               tolerance_db=settings.tolerance_db,
+                               now_s=self.rig.now(), diffusion_sigma=DUE_DIFFUSION_SIGMA)
         except DriftInputError:  # no usable entry (cannot happen after an accepted one)
             return first_interval(settings)
         if previous_h is None and trend.hours_left is None:
             return first_interval(settings)
-        return next_check(trend, previous_h, settings).interval_h
+        return next_check(trend, previous_h, settings, **DUE_POLICY).interval_h
 
 
 def run_due(

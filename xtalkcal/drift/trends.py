@@ -211,6 +211,9 @@ class PairTrend:
         Hours after the last entry at which the predicted residual plus one sigma reaches the
         tolerance (see :meth:`predicted_residual`); 0 if it already does at the last entry,
         ``inf`` if not within 1e5 h; None when the rates are unknown.
+    diffusion_sigma : float
+        The predictions use the diffusion constants raised by this many of their standard
+        errors (0: the estimates themselves).
     """
 
     aggressor: str
@@ -229,6 +232,7 @@ class PairTrend:
     magnitude: RandomWalkRate | None
     tolerance_db: float
     hours_to_tolerance: float | None = field(default=None)
+    diffusion_sigma: float = 0.0
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "last_covariance", readonly(self.last_covariance))
@@ -308,11 +312,15 @@ class PairTrend:
         w = self.phase.rate
         mean = abs(xl * np.exp(complex(g, w) * tau) - xr)
         mag2 = abs(xl) ** 2
-        var_rad = mag2 * (
-            self.magnitude.diffusion * to_ln**2 * tau
-            + (self.magnitude.rate_stderr * to_ln * tau) ** 2
+        d_mag, d_phase = (
+            r.diffusion + self.diffusion_sigma * (r.diffusion_stderr
+                                                  if math.isfinite(r.diffusion_stderr) else 0.0)
+            for r in (self.magnitude, self.phase)
         )
-        var_tan = mag2 * (self.phase.diffusion * tau + (self.phase.rate_stderr * tau) ** 2)
+        var_rad = mag2 * (
+            d_mag * to_ln**2 * tau + (self.magnitude.rate_stderr * to_ln * tau) ** 2
+        )
+        var_tan = mag2 * (d_phase * tau + (self.phase.rate_stderr * tau) ** 2)
         phi = math.atan2(xl.imag, xl.real)
         rot = np.array([[math.cos(phi), -math.sin(phi)], [math.sin(phi), math.cos(phi)]])
         cov = cov + rot @ np.diag([var_rad, var_tan]) @ rot.T
@@ -338,6 +346,13 @@ class PairTrend:
             "hours_to_tolerance": json_float(self.hours_to_tolerance),
             "hours_left": json_float(self.hours_left),
         }
+
+
+def _nonnegative(name: str, value: float) -> float:
+    v = _finite_real(name, value)
+    if v < 0:
+        raise DriftInputError(f"{name} must be >= 0, got {value!r}")
+    return v
 
 
 _HORIZON_H = 1e5  # prediction horizon: beyond ~11 years "never" is the honest answer
@@ -389,6 +404,7 @@ def pair_trend(
     kinds: Sequence[str] = ("null", "recheck", "manual"),
     reference: LedgerEntry | None = None,
     frequency_tolerance_ghz: float = 1e-3,
+    diffusion_sigma: float = 0.0,
 ) -> PairTrend:
     """Drift rates of one pair from its ledger history, and when it will leave tolerance.
 
@@ -433,6 +449,9 @@ def pair_trend(
         Entry the stored compensation was set from.
     frequency_tolerance_ghz : float
         Entries within this of the latest entry's frequency are used, GHz.
+    diffusion_sigma : float
+        Predict with each diffusion raised by this many stderrs (>= 0): a walk small against
+        the entries' errors is often estimated as D = 0; its upper bound is not.
 
     Returns
     -------
@@ -491,6 +510,7 @@ def pair_trend(
         phase=phase_fit,
         magnitude=mag_fit,
         tolerance_db=tol_db,
+        diffusion_sigma=_nonnegative("diffusion_sigma", diffusion_sigma),
     )
     if phase_fit is None:
         return trend
