@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 from simulated_device import SimRig, device_from_dict
 from simulated_device.family import FamilyParams, generate_device
 from xtalkcal.calibrate import ring_around
-from xtalkcal.calibrate.stages import TONE_LEAK_SHARE, seen_nulls
+from xtalkcal.calibrate.stages import TONE_LEAK_SHARE, seen_nulls, tone_radii
 from xtalkcal.exceptions import FitInputError
 from xtalkcal.fits import fit_paraboloid_column, ring_wraps
 from xtalkcal.measure import default_protocol
@@ -119,6 +119,7 @@ def test_strong_stark_pair_whose_survey_wraps_is_nulled():
     lines: list[str] = []
     res = calibrate_chip_q2(rig, lines)
     assert any("q3 saturated at its survey" in t for t in lines)
+    assert any("Stark train back to K=" in t for t in lines)  # full train for the nulls
     f = rig.chip.qubit("q2").f01_ghz
     for p in res.pairs:
         truth = rig.true_crosstalk(p.victim, "q2-line", f)
@@ -131,3 +132,25 @@ def calibrate_chip_q2(rig, lines):
     from xtalkcal.calibrate import calibrate_chip
 
     return calibrate_chip(rig, default_protocol(), aggressors=["q2-line"], log=lines.append)
+
+
+def test_ringing_tones_keep_their_leak_to_a_share_of_each_victims_ring():
+    from types import SimpleNamespace
+
+    plan = SimpleNamespace(probe=SimpleNamespace(repeats=4), n_victims=2,
+                           comp_radius=np.array([0.1, 0.1]))
+    # Victim 0 nulled (ring 0.004), victim 1 handed (rings like a companion, first 0.1);
+    # companion 0 couples at 0.2, companion 1's coupling is unmeasured.
+    col = SimpleNamespace(couplings=np.array([[np.nan, 0.05, 0.2, np.nan],
+                                              [0.1, np.nan, 0.1, 0.1]], dtype=complex))
+    rad = np.array([0.004, 0.1])
+    sel, handed = np.array([True, False]), np.array([False, True])
+    new_rad, comp = tone_radii(plan, col, rad, sel, handed, repeats=16)
+    assert new_rad[0] == 0.004  # the victim's own ring is not touched
+    assert new_rad[1] == pytest.approx(TONE_LEAK_SHARE * 0.004 / 0.05)
+    assert comp[0] == pytest.approx(TONE_LEAK_SHARE * 0.004 / 0.2)
+    assert comp[1] == pytest.approx(0.1 * 4 / 16)  # unmeasured: shrinks as 1/K
+    # a weak coupling never widens a tone beyond its first ring
+    col.couplings[0, 2] = 1e-6
+    _, comp = tone_radii(plan, col, rad, sel, handed, repeats=16)
+    assert comp[0] == 0.1
