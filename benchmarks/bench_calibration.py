@@ -20,8 +20,9 @@ Prints:
 Usage: ``python benchmarks/bench_calibration.py [--quick]`` (quick: 3 columns, fewer seeds);
 ``python benchmarks/bench_calibration.py --effects [--chip DEVICE.toml] [--columns a,b]
 [--protocol FILE]`` (effects only; default the demo chip, the one column q4-line — its
-8 victims above −40 dB: one leakage, seven Stark — and protocols/full.toml: ~1.5 min per
-variant, ~17 min for the table on a loaded 2-core machine).
+8 victims above −40 dB: one leakage, seven Stark — and protocols/full.toml). Measured on a
+loaded 2-core machine: ~50 s per variant without spurious tones; the IQ-image variant had not
+finished after 14 min, so ``--only`` picks effects (``all together`` is then their union).
 """
 
 from __future__ import annotations
