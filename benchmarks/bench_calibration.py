@@ -317,7 +317,8 @@ def effect_variants(data: dict, names: list[str] | None = None) -> dict[str, dic
         EFFECTS[name][1](d)
         EFFECTS[name][1](every)
         out[name] = d
-    out["all together"] = every
+    if len(chosen) > 1:  # with one effect, "all together" would repeat its row
+        out["all together"] = every
     return out
 
 
