@@ -21,8 +21,9 @@ Usage: ``python benchmarks/bench_calibration.py [--quick]`` (quick: 3 columns, f
 ``python benchmarks/bench_calibration.py --effects [--chip DEVICE.toml] [--columns a,b]
 [--protocol FILE]`` (effects only; default the demo chip, the one column q4-line — its
 8 victims above −40 dB: one leakage, seven Stark — and protocols/full.toml). Measured on a
-loaded 2-core machine: ~50 s per variant without spurious tones; the IQ-image variant had not
-finished after 14 min, so ``--only`` picks effects (``all together`` is then their union).
+loaded 2-core machine: 20–100 s per variant without spurious tones; LO leakage 535 s (same
+shots: the simulation of a tone on through every shot is slower); the IQ-image variant had not
+finished after 14 min. ``--only`` picks effects (``all together`` is then their union).
 """
 
 from __future__ import annotations
