@@ -259,10 +259,10 @@ def _allowed(cand: np.ndarray, alpha: float, f_other: float, alpha_other: float,
     return ok
 
 
-def _choose_hazard_pairs(rng: np.random.Generator, pos: np.ndarray, p: FamilyParams
+def _choose_hazard_pairs(rng: np.random.Generator, dist: np.ndarray, p: FamilyParams
                          ) -> dict[tuple[int, int], str]:
-    """Distinct nearest-neighbour pairs (aggressor, victim) for each requested hazard."""
-    dist = np.linalg.norm(pos[:, None, :] - pos[None, :, :], axis=2)
+    """Distinct nearest-neighbour pairs (aggressor, victim) for each requested hazard;
+    ``dist`` is the (n, n) matrix of site distances."""
     nearest = [(int(i), int(j)) for i, j in zip(*np.nonzero(np.abs(dist - 1.0) < 1e-9),
                                                 strict=True) if i < j]
     wanted = [k for k, c in p.hazard_counts().items() for _ in range(c)]
@@ -287,7 +287,7 @@ def _frequency_plan(rng: np.random.Generator, pos: np.ndarray, alphas: np.ndarra
     cand = np.round(np.arange(lo, hi + 1e-9, _RASTER_MHZ * 1e-3), 6)
     dist = np.linalg.norm(pos[:, None, :] - pos[None, :, :], axis=2)
     for _ in range(_ATTEMPTS):
-        hazards = _choose_hazard_pairs(rng, pos, p)
+        hazards = _choose_hazard_pairs(rng, dist, p)
         f = np.full(n, np.nan)
         for q in range(n):  # row by row: each qubit meets a few placed neighbours
             ok = np.ones(cand.shape, bool)

@@ -330,7 +330,7 @@ def lengthen_stark_train(plan: PassPlan, probe: ColumnProbe, est: Sequence[Any],
             say(f"{req.line}: Stark train back to K={k_new} for "
                 f"{', '.join(req.victims[i] for i in nulling)}")
             return longer, new_rad
-        k_new = max(k_cur, k_new // 2) if k_new // 2 > k_cur else k_cur
+        k_new //= 2  # the loop ends once it is no longer above the current K
     return probe, rad
 
 
