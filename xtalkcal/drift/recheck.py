@@ -55,7 +55,7 @@ from xtalkcal.calibrate import (
 from xtalkcal.common import __version__
 from xtalkcal.drift.analysis import analyse_recheck
 from xtalkcal.drift.inputs import DriftInputError
-from xtalkcal.drift.outcome import FollowUp, RecheckDecision, RecheckOutcome
+from xtalkcal.drift.outcome import DEFAULT_RECHECK_RULES, FollowUp, RecheckDecision, RecheckOutcome
 from xtalkcal.drift.policy import DUE_DIFFUSION_SIGMA, DUE_POLICY, first_interval, next_check
 from xtalkcal.drift.schedule import Pair, Schedule
 from xtalkcal.drift.stored_sweep import (
@@ -250,13 +250,15 @@ STEP_FACTOR = 2.0
 STEP_TAG = "step"
 
 
-def is_step(out: RecheckOutcome, factor: float = STEP_FACTOR) -> bool:
-    """True for a drifted re-check with ``|dX| − kσ > factor · tol`` (k: the rules'
-    ``confidence_sigma``, as in ``confident``)."""
+def is_step(out: RecheckOutcome, factor: float = STEP_FACTOR,
+            k: float = DEFAULT_RECHECK_RULES.confidence_sigma) -> bool:
+    """True for a drifted re-check with ``|dX| − kσ > factor · tol`` (``k`` the rules'
+    ``confidence_sigma``, as in ``confident``; the re-checks are analysed with the default
+    rules)."""
     if out.decision is not RecheckDecision.DRIFTED or not out.confident:
         return False
     tol = 10 ** (out.tolerance_db / 20)
-    return bool(out.residual - 2.0 * out.residual_stderr > factor * tol)
+    return bool(out.residual - k * out.residual_stderr > factor * tol)
 
 
 def since_step(history: Iterable[LedgerEntry]) -> list[LedgerEntry]:
